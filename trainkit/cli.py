@@ -1,0 +1,498 @@
+"""Command-line interface: parse options, call one function per command, print results.
+
+Exit codes (the same for every command): 0 all done; 1 done but some inputs were
+skipped; 2 usage error or nothing could be done; 3 an acceptance gate failed.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import traceback
+from contextlib import contextmanager
+from pathlib import Path
+
+import click
+
+__all__ = ["main", "cli"]
+
+EXIT_OK, EXIT_SKIPPED, EXIT_USAGE, EXIT_GATE = 0, 1, 2, 3
+
+
+class Ctx:
+    """Options shared by all commands."""
+
+    def __init__(self, quiet: bool, debug: bool) -> None:
+        self.quiet = quiet
+        self.debug = debug
+
+    @property
+    def console(self):
+        from rich.console import Console
+
+        return Console(stderr=False, quiet=self.quiet, highlight=False)
+
+
+def _fail(message: str, code: int = EXIT_USAGE) -> None:
+    click.echo(f"trainkit: {message}", err=True)
+    raise SystemExit(code)
+
+
+@contextmanager
+def user_errors(ctx: Ctx):
+    """Turn the kit's ValueErrors into one `trainkit:` line (a traceback only with --debug)."""
+    try:
+        yield
+    except (ValueError, OSError) as exc:
+        if ctx.debug:
+            traceback.print_exc()
+        _fail(str(exc))
+    except KeyboardInterrupt:
+        _fail("interrupted; finished work is saved, run the same command again to continue", EXIT_USAGE)
+
+
+@contextmanager
+def progress_bar(ctx: Ctx, description: str, total: int | None = None):
+    """A rich progress bar with ETA; yields advance(n=1) and set_total(total) callables."""
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeElapsedColumn,
+        TimeRemainingColumn,
+    )
+
+    prog = Progress(
+        TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
+        TextColumn("eta"), TimeRemainingColumn(), disable=ctx.quiet, transient=False,
+    )
+    with prog:
+        task = prog.add_task(description, total=total)
+
+        class Handle:
+            def advance(self, n: int = 1) -> None:
+                prog.advance(task, n)
+
+            def update(self, completed: int, total: int | None = None, description: str | None = None) -> None:
+                kw = {"completed": completed}
+                if total is not None:
+                    kw["total"] = total
+                if description is not None:
+                    kw["description"] = description
+                prog.update(task, **kw)
+
+            def log(self, text: str) -> None:
+                prog.console.print(text, highlight=False)
+
+        yield Handle()
+
+
+EPILOG_CAUTION = (
+    "The screener is a triage aid, not an inspection; its figures hold only for photos "
+    "like its test set. Defer to local codes and licensed engineers."
+)
+
+
+@click.group(
+    context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100},
+    epilog=EPILOG_CAUTION,
+)
+@click.option("-q", "--quiet", is_flag=True, help="No progress bars or chatter (for scripts).")
+@click.option("--debug", is_flag=True, help="Show the full traceback on errors.")
+@click.version_option(package_name="trainkit")
+@click.pass_context
+def cli(click_ctx: click.Context, quiet: bool, debug: bool) -> None:
+    """trainkit: build, check and export a concrete-crack patch screener on CPU.
+
+    \b
+    Workflow:  synth/photos -> tile -> split -> train -> evaluate -> export -> scan
+    Try it:    trainkit demo --out demo-output
+    """
+    click_ctx.obj = Ctx(quiet, debug)
+
+
+# ----- synth ---------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit synth my-synthetic --photos 12 --seed 7")
+@click.argument("out", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--photos", "n_photos", type=click.IntRange(1, 100000), default=32, show_default=True,
+              help="Number of photos to generate.")
+@click.option("--seed", type=int, default=2026, show_default=True, help="Random seed; same seed, same files.")
+@click.option("--size", default="768x512", show_default=True, help="Photo size WIDTHxHEIGHT in pixels.")
+@click.option("--tile-px", type=click.IntRange(16, 2048), default=128, show_default=True,
+              help="Patch size of the labels.csv grid, pixels.")
+@click.option("--classes", default="orientation", show_default=True,
+              help="Class set for the labels: orientation, presence or a YAML file.")
+@click.pass_obj
+def synth(ctx: Ctx, out: Path, n_photos: int, seed: int, size: str, tile_px: int, classes: str) -> None:
+    """Generate synthetic concrete photos with exact crack ground truth and patch labels.
+
+    Writes OUT/photos/*.jpg, OUT/truth/*.json (crack polylines and widths),
+    OUT/labels.csv (one row per patch of a TILE_PX grid), OUT/scale.csv and
+    OUT/manifest.json. Everything is invented: no real photo is involved.
+    """
+    from .synth import SynthOptions, write_dataset
+    from .taxonomy import load_class_set
+
+    with user_errors(ctx):
+        try:
+            w, h = (int(v) for v in size.lower().split("x"))
+        except ValueError:
+            _fail(f"--size must look like 768x512, got {size!r}")
+        cs = load_class_set(classes)
+        with progress_bar(ctx, "generating photos", n_photos) as bar:
+            manifest = write_dataset(
+                out, n_photos=n_photos, seed=seed, tile_px=tile_px,
+                options=SynthOptions(height=h, width=w), class_set=cs,
+                progress=lambda i, n: bar.update(i, n),
+            )
+        ctx.console.print(f"wrote {n_photos} photos to {out}; label counts: {manifest.get('label_counts', {})}")
+
+
+# ----- tile ----------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit tile photos/ --workspace ws --tile-px 224 --sidecar photos/scale.csv")
+@click.argument("photos", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
+@click.option("--workspace", "-w", "ws_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Workspace folder (created if missing).")
+@click.option("--tile-px", type=click.IntRange(16, 2048), default=224, show_default=True,
+              help="Patch size in pixels (the model's input size).")
+@click.option("--tile-mm", type=click.FloatRange(min=0, min_open=True), default=None,
+              help="Cut patches covering this many mm of surface (needs scale), resampled to --tile-px.")
+@click.option("--overlap", type=click.FloatRange(0, 0.9), default=0.0, show_default=True,
+              help="Overlap between neighbouring patches as a fraction.")
+@click.option("--sidecar", type=click.Path(exists=True, dir_okay=False, path_type=Path),
+              help="CSV with photo,gsd_mm (or distance_m,focal_mm,sensor_width_mm) and structure columns.")
+@click.option("--gsd-mm", type=click.FloatRange(min=0, min_open=True), default=None,
+              help="Scale in mm per pixel for photos the sidecar does not cover.")
+@click.option("--group-by", type=click.Choice(["sidecar", "photo"]), default="sidecar", show_default=True,
+              help="Split groups: the sidecar's structure column (photo when absent) or each photo.")
+@click.option("--classes", default="orientation", show_default=True,
+              help="Class set of a new workspace: orientation, presence or a YAML file.")
+@click.option("--import-labels", type=click.Path(exists=True, dir_okay=False, path_type=Path),
+              help="CSV photo,x0,y0,x1,y1,label of existing labels to load (empty label = unsure).")
+@click.pass_obj
+def tile(ctx: Ctx, photos, ws_dir, tile_px, tile_mm, overlap, sidecar, gsd_mm, group_by, classes,
+         import_labels) -> None:
+    """Cut photos into patches in a workspace, with scale, quality flags and provenance."""
+    from .imaging import list_images
+    from .taxonomy import load_class_set
+    from .tiling import read_sidecar, tile_into_workspace
+    from .workspace import Workspace, import_labels_csv
+
+    with user_errors(ctx):
+        ws = Workspace.create(ws_dir, class_set=load_class_set(classes), tile_px=tile_px)
+        files = list_images(list(photos))
+        if not files:
+            _fail(f"no image files found in {', '.join(map(str, photos))}")
+        side = read_sidecar(sidecar) if sidecar else {}
+        with progress_bar(ctx, "tiling photos", len(files)) as bar:
+            res = tile_into_workspace(
+                files, ws, overlap=overlap, tile_mm=tile_mm, sidecar=side, default_gsd_mm=gsd_mm,
+                group_by=group_by, progress=lambda i, n, name: bar.update(i, n),
+            )
+        for p in res["problems"]:
+            click.echo(f"trainkit: {p}", err=True)
+        ctx.console.print(
+            f"{res['photos_added']} photos added ({res['photos_already_present']} already present, "
+            f"{res['photos_skipped']} skipped), {res['patches_added']} patches, "
+            f"{res['patches_flagged']} with quality flags -> {ws.root}"
+        )
+        if import_labels:
+            n = import_labels_csv(ws, import_labels)
+            ctx.console.print(f"imported {n} labels from {import_labels}")
+    if res["photos_skipped"]:
+        raise SystemExit(EXIT_SKIPPED)
+
+
+# ----- split ---------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit split ws --test 0.2 --val 0.15 --seed 1")
+@click.argument("ws_dir", metavar="WORKSPACE", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--test", "test_fraction", type=float, default=0.2, show_default=True, help="Share held out for testing.")
+@click.option("--val", "val_fraction", type=float, default=0.15, show_default=True, help="Share held out for validation.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Random seed of the split.")
+@click.pass_obj
+def split(ctx: Ctx, ws_dir: Path, test_fraction: float, val_fraction: float, seed: int) -> None:
+    """Split labelled patches into train/val/test by photo or structure, stratified by class."""
+    from .splits import split_workspace
+    from .workspace import Workspace
+
+    with user_errors(ctx):
+        rep = split_workspace(Workspace.open(ws_dir), test_fraction=test_fraction, val_fraction=val_fraction, seed=seed)
+        _print_split(ctx, rep)
+
+
+def _print_split(ctx: Ctx, rep: dict) -> None:
+    from rich.table import Table
+
+    t = Table(title="Split (patches per class; groups never shared)")
+    t.add_column("subset")
+    t.add_column("groups", justify="right")
+    names = list(next(iter(rep["class_counts"].values())).keys())
+    for n in names:
+        t.add_column(n, justify="right")
+    for s, counts in rep["class_counts"].items():
+        t.add_row(s, str(rep["groups"][s]), *[str(counts[n]) for n in names])
+    ctx.console.print(t)
+
+
+# ----- train ---------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit train ws --out runs/first --config default --epochs 10")
+@click.argument("ws_dir", metavar="WORKSPACE", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--out", "exp_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Experiment folder to write.")
+@click.option("--config", "config", default="default", show_default=True,
+              help="Recipe name (default, demo, presence) or a YAML file.")
+@click.option("--backbone", default=None, help="Override the recipe's backbone.")
+@click.option("--weights", default=None, help="Pretrained backbone state dict (.pth) or 'torchvision'.")
+@click.option("--epochs", type=click.IntRange(1, 1000), default=None, help="Override the number of epochs.")
+@click.option("--batch-size", type=click.IntRange(1, 4096), default=None, help="Override the batch size.")
+@click.option("--seed", type=int, default=None, help="Override the seed.")
+@click.option("--threads", type=click.IntRange(1, 512), default=None, help="CPU threads for PyTorch.")
+@click.option("--restart", is_flag=True, help="Ignore last.pt and start from epoch 1.")
+@click.pass_obj
+def train(ctx: Ctx, ws_dir, exp_dir, config, backbone, weights, epochs, batch_size, seed, threads, restart) -> None:
+    """Train a screener on the workspace's train subset, selecting on val.
+
+    Resumes from EXP/last.pt after an interruption unless --restart is given.
+    """
+    from .config import load_train_config
+    from .workspace import Workspace
+
+    with user_errors(ctx):
+        cfg = load_train_config(config, {"backbone": backbone, "weights": weights, "epochs": epochs,
+                                         "batch_size": batch_size, "seed": seed, "threads": threads})
+        res = run_training(ctx, Workspace.open(ws_dir), exp_dir, cfg, resume=not restart)
+        ctx.console.print(
+            f"best epoch {res['best_epoch']} (val balanced accuracy "
+            f"{res['best_val']['val_balanced_accuracy']:.3f}); {res['median_images_per_second']:.0f} images/s; "
+            f"checkpoint in {exp_dir}"
+        )
+
+
+def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> dict:
+    """Shared by `train` and `demo`: train with a progress bar and one line per epoch."""
+    from .training import train as train_fn
+
+    state = {"bar": None}
+    with progress_bar(ctx, "training") as bar:
+        def on_start(epochs: int, n: int) -> None:
+            bar.update(0, epochs * n, f"training ({epochs} epochs x {n} patches)")
+
+        def on_epoch(row: dict) -> None:
+            bar.log(
+                f"epoch {row['epoch']:3d}  loss {row['train_loss']:.3f}  val acc {row['val_accuracy']:.3f}  "
+                f"val crack recall {row['val_crack_recall']:.3f}  {row['images_per_second']:.0f} img/s"
+            )
+
+        state["bar"] = bar
+        return train_fn(ws, exp_dir, cfg, resume=resume, on_start=on_start, on_epoch=on_epoch,
+                        on_batch=lambda n: bar.advance(n))
+
+
+# ----- evaluate ------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit evaluate runs/first --require-recall 0.9")
+@click.argument("exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--split", "subset", type=click.Choice(["test", "val"]), default="test", show_default=True)
+@click.option("--target-recall", type=click.FloatRange(0, 1, min_open=True), default=0.95, show_default=True,
+              help="Screening recall the threshold must reach on validation.")
+@click.option("--require-recall", type=click.FloatRange(0, 1), default=None,
+              help="Gate: exit 3 unless the lower confidence bound of screening recall is at least this.")
+@click.option("--confidence", type=click.FloatRange(0.5, 1, max_open=True), default=0.95, show_default=True)
+@click.option("--interval", type=click.Choice(["wilson", "clopper-pearson"]), default="wilson", show_default=True,
+              help="Confidence interval method for recall.")
+@click.option("--workspace", type=click.Path(exists=True, file_okay=False, path_type=Path), default=None,
+              help="Workspace folder if it moved since training.")
+@click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
+@click.pass_obj
+def evaluate(ctx: Ctx, exp_dir, subset, target_recall, require_recall, confidence, interval, workspace, as_json) -> None:
+    """Evaluate a trained screener: confusion matrix, per-class recall with intervals, threshold, report."""
+    from .evaluation import evaluate_experiment
+
+    with user_errors(ctx):
+        res = evaluate_experiment(exp_dir, split=subset, target_recall=target_recall, require_recall=require_recall,
+                                  confidence=confidence, interval_method=interval, workspace=workspace)
+    if as_json:
+        click.echo(json.dumps(res, indent=2))
+    else:
+        print_evaluation(ctx, res, Path(exp_dir) / "evaluation")
+    if res["gate"] and not res["gate"]["passed"]:
+        raise SystemExit(EXIT_GATE)
+
+
+def print_evaluation(ctx: Ctx, res: dict, out: Path) -> None:
+    from rich.table import Table
+
+    names = res["class_names"]
+    t = Table(title=f"Confusion matrix ({res['split']}: rows true, columns predicted)")
+    t.add_column("true \\ pred")
+    for n in names:
+        t.add_column(n[:10], justify="right")
+    for n, row in zip(names, res["confusion_matrix"], strict=True):
+        t.add_row(n, *[str(v) for v in row])
+    ctx.console.print(t)
+    t2 = Table(title="Per class (recall interval: " + res["interval_method"] + f", {res['confidence']:.0%})")
+    for col in ("class", "support", "precision", "recall", "interval"):
+        t2.add_column(col, justify="right" if col != "class" else "left")
+    for c in res["per_class"]:
+        ci = c["recall_interval"]
+        t2.add_row(c["name"], str(c["support"]), f"{c['precision']:.3f}", f"{c['recall']:.3f}",
+                   "n/a" if ci["n"] == 0 else f"{ci['low']:.3f}-{ci['high']:.3f} ({ci['k']}/{ci['n']})")
+    ctx.console.print(t2)
+    s = res["screening"]
+    ci = s["recall_interval"]
+    ctx.console.print(
+        f"screening recall {s['recall']:.3f} [{ci['low']:.3f}, {ci['high']:.3f}] ({ci['method']}, {ci['k']}/{ci['n']}) "
+        f"at threshold {s['threshold']:.3f}; false-alarm rate {s['false_alarm_rate']:.3f} ({s['fp']} patches)"
+    )
+    if res["gate"]:
+        ctx.console.print(res["gate"]["verdict"])
+    ctx.console.print(f"report: {out / 'report.html'}")
+    ctx.console.print(f"[dim]{res['caution']}[/dim]")
+
+
+# ----- export --------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit export runs/first")
+@click.argument("exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--opset", type=click.IntRange(18, 23), default=18, show_default=True, help="ONNX opset.")
+@click.pass_obj
+def export(ctx: Ctx, exp_dir: Path, opset: int) -> None:
+    """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
+    from .export import export_experiment
+
+    with user_errors(ctx):
+        with ctx.console.status("exporting to ONNX and checking parity"):
+            res = export_experiment(exp_dir, opset=opset)
+    ctx.console.print(
+        f"wrote {res['model']} ({res['bytes'] / 1e6:.2f} MB, opset {res['opset']}); parity max |dp| "
+        f"{res['parity_max_abs_diff']:.1e} on {res['parity_patches']} patches; threshold {res['threshold']:.3f}"
+        + ("" if res["evaluated"] else " (not evaluated yet: run `trainkit evaluate` first for a tuned threshold)")
+    )
+
+
+# ----- scan ----------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit scan runs/first/model.onnx drone-frames/ --out scan-results")
+@click.argument("model", type=click.Path(exists=True, path_type=Path))
+@click.argument("frames", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Output folder for frames.jsonl and overlays (resumed if present).")
+@click.option("--workers", type=click.IntRange(1, 256), default=1, show_default=True, help="Local processes.")
+@click.option("--gsd-mm", type=click.FloatRange(min=0, min_open=True), default=None,
+              help="Frames' scale in mm per pixel (cells then cover the model's patch size in mm).")
+@click.option("--no-overlays", is_flag=True, help="Do not write overlay images of flagged frames.")
+@click.pass_obj
+def scan(ctx: Ctx, model: Path, frames, out_dir: Path, workers: int, gsd_mm, no_overlays: bool) -> None:
+    """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl.
+
+    MODEL is a model.onnx or an experiment folder holding one.
+    """
+    from .scan import scan_frames
+
+    if model.is_dir():
+        model = model / "model.onnx"
+    with user_errors(ctx):
+        with progress_bar(ctx, "scanning frames") as bar:
+            res = scan_frames(model, list(frames), out_dir, workers=workers, gsd_mm=gsd_mm,
+                              overlays=not no_overlays, progress=lambda d, n: bar.update(d, n))
+    ctx.console.print(
+        f"{res['scanned']} frames scanned ({res['resumed_skip']} already done), {res['flagged']} flagged, "
+        f"{res['unreadable']} unreadable -> {res['frames_file']}"
+    )
+    if res["unreadable"]:
+        raise SystemExit(EXIT_SKIPPED)
+
+
+# ----- status --------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit status ws --json")
+@click.argument("path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Machine-readable output.")
+@click.pass_obj
+def status(ctx: Ctx, path: Path, as_json: bool) -> None:
+    """Summarise a workspace (photos, patches, labels, split) or an experiment folder."""
+    from .workspace import DB_NAME, Workspace
+
+    with user_errors(ctx):
+        if (path / DB_NAME).exists():
+            info = Workspace.open(path).summary()
+        elif (path / "experiment.json").exists() or (path / "checkpoint.pt").exists():
+            info = _experiment_status(path)
+        else:
+            _fail(f"{path} is neither a workspace nor an experiment folder")
+    if as_json:
+        click.echo(json.dumps(info, indent=2))
+    else:
+        for k, v in info.items():
+            ctx.console.print(f"{k:>22}: {v}")
+
+
+def _experiment_status(path: Path) -> dict:
+    info: dict = {"experiment": str(path)}
+    for name in ("checkpoint.pt", "history.csv", "evaluation/metrics.json", "evaluation/report.html", "model.onnx"):
+        info[name] = "present" if (path / name).exists() else "missing"
+    if (path / "experiment.json").exists():
+        e = json.loads((path / "experiment.json").read_text())
+        info["workspace"] = e.get("workspace")
+        info["training_patches"] = e.get("training_patches")
+    if (path / "evaluation/metrics.json").exists():
+        m = json.loads((path / "evaluation/metrics.json").read_text())
+        s = m["screening"]
+        info["screening_recall"] = f"{s['recall']:.3f} [{s['recall_interval']['low']:.3f}, {s['recall_interval']['high']:.3f}]"
+        info["threshold"] = s["threshold"]
+    return info
+
+
+# ----- demo ----------------------------------------------------------------------------
+
+
+@cli.command(epilog="Example: trainkit demo --out demo-output")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=Path("demo-output"),
+              show_default=True, help="Experiment folder for everything the demo makes.")
+@click.option("--epochs", type=click.IntRange(1, 1000), default=None, help="Override the demo recipe's epochs.")
+@click.option("--photos", type=click.IntRange(6, 100000), default=None,
+              help="Use only the first N photos of the tiny dataset (quicker, noisier).")
+@click.pass_obj
+def demo(ctx: Ctx, out_dir: Path, epochs, photos) -> None:
+    """Run the whole chain on the shipped synthetic tiny dataset, end to end, on CPU.
+
+    Tiles the photos, loads their labels, splits by photo, trains the demo recipe
+    from random initialisation (no pretrained weights are downloaded), evaluates on
+    held-out photos, exports ONNX and scans fresh synthetic frames.
+    """
+    from .demo import run_demo
+
+    with user_errors(ctx):
+        run_demo(ctx, out_dir, epochs=epochs, photos=photos)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Console-script entry point."""
+    try:
+        cli.main(args=argv, prog_name="trainkit", standalone_mode=False)
+    except click.exceptions.Abort:
+        click.echo("trainkit: aborted", err=True)
+        return EXIT_USAGE
+    except click.exceptions.ClickException as exc:
+        exc.show()
+        return EXIT_USAGE
+    except SystemExit as exc:
+        return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_USAGE
+    return EXIT_OK
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,101 @@
+"""Typed, validated training configuration loaded from YAML (one error line per bad field)."""
+
+from __future__ import annotations
+
+from importlib import resources
+from pathlib import Path
+from typing import Literal
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+__all__ = ["AugmentConfig", "TrainConfig", "ConfigError", "load_train_config", "BUILTIN_RECIPES"]
+
+BUILTIN_RECIPES = ("default", "demo", "presence")
+
+
+class ConfigError(ValueError):
+    """A configuration that failed validation; the message has one line per bad field."""
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class AugmentConfig(_Strict):
+    """Training-time augmentation; see configs/train/default.yaml for each field's meaning."""
+
+    symmetries: bool = True
+    photometric: float = Field(0.8, ge=0.0, le=1.0)
+    brightness_contrast: float = Field(0.25, ge=0.0, le=1.0)
+    gamma: tuple[float, float] = (0.8, 1.25)
+    hue_saturation: bool = True
+    shadow: float = Field(0.2, ge=0.0, le=1.0)
+    blur: float = Field(0.15, ge=0.0, le=1.0)
+    noise: float = Field(0.2, ge=0.0, le=1.0)
+    jpeg: float = Field(0.2, ge=0.0, le=1.0)
+    small_rotation_deg: float = Field(0.0, ge=0.0, le=15.0)
+
+
+class TrainConfig(_Strict):
+    """Everything that decides a training run; stored beside the run and in the checkpoint."""
+
+    class_set: str = "orientation"
+    backbone: str = "mobilenet_v3_small"
+    weights: str | None = None
+    epochs: int = Field(20, ge=1, le=1000)
+    batch_size: int = Field(32, ge=1, le=4096)
+    lr: float = Field(2e-3, gt=0.0, le=1.0)
+    weight_decay: float = Field(1e-4, ge=0.0, le=1.0)
+    warmup_epochs: float = Field(1.0, ge=0.0)
+    label_smoothing: float = Field(0.05, ge=0.0, lt=1.0)
+    class_weighting: Literal["none", "balanced", "sqrt"] = "sqrt"
+    early_stop_patience: int = Field(0, ge=0)
+    seed: int = 0
+    threads: int | None = Field(None, ge=1, le=512)
+    augment: AugmentConfig = AugmentConfig()
+
+    @field_validator("backbone")
+    @classmethod
+    def _known_backbone(cls, v: str) -> str:
+        from .models import BACKBONES
+
+        if v not in BACKBONES:
+            raise ValueError(f"unknown backbone {v!r}; choose one of: {', '.join(sorted(BACKBONES))}")
+        return v
+
+
+def _format_errors(exc: ValidationError, source: str) -> str:
+    lines = []
+    for err in exc.errors():
+        field = ".".join(str(p) for p in err["loc"]) or "(top level)"
+        msg = err["msg"]
+        if err["type"] == "extra_forbidden":
+            msg = "unknown key"
+        lines.append(f"{source}: {field}: {msg} (got {err.get('input')!r})")
+    return "\n".join(lines)
+
+
+def load_train_config(name_or_path: str | Path = "default", overrides: dict | None = None) -> TrainConfig:
+    """Load a built-in recipe by name or a YAML file by path, then apply overrides."""
+    source = str(name_or_path)
+    if source in BUILTIN_RECIPES:
+        text = resources.files("trainkit").joinpath("configs", "train", f"{source}.yaml").read_text("utf-8")
+    else:
+        p = Path(name_or_path)
+        if not p.is_file():
+            raise ConfigError(f"config {source!r} is neither a built-in recipe ({', '.join(BUILTIN_RECIPES)}) nor a file")
+        text = p.read_text(encoding="utf-8")
+    try:
+        data = yaml.safe_load(text) or {}
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"{source}: not valid YAML ({exc})") from None
+    if not isinstance(data, dict):
+        raise ConfigError(f"{source}: expected a mapping of settings, got {type(data).__name__}")
+    for k, v in (overrides or {}).items():
+        if v is not None:
+            data[k] = v
+    try:
+        return TrainConfig.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(_format_errors(exc, source)) from None

@@ -1,0 +1,149 @@
+"""Patch arrays for training and evaluation: loading crops, augmentation with label remapping.
+
+Samples are uint8 RGB arrays (S, S, 3) with an integer class index. Geometric
+augmentation draws one of the symmetries of the square that the class set is
+closed under, applies it, and remaps the label from the class angle centres
+(taxonomy.ClassSet.d4_permutation); albumentations is used only for photometric
+changes (and an optional small rotation), behind :func:`build_photometric`,
+because it passes class labels through unchanged.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .config import AugmentConfig
+from .taxonomy import ClassSet, apply_d4
+
+__all__ = ["PatchSet", "load_patch_set", "build_photometric", "Augmenter", "build_transform"]
+
+
+@dataclass
+class PatchSet:
+    """Crops and labels of one subset held in memory.
+
+    Attributes:
+        images: (N, S, S, 3) uint8 RGB.
+        labels: (N,) int64 class indices.
+        patch_ids: (N,) int64 workspace patch ids.
+        photos: photo name per patch.
+        groups: group id per patch.
+        patch_mm: surface width per patch in mm (NaN where unknown).
+    """
+
+    images: np.ndarray
+    labels: np.ndarray
+    patch_ids: np.ndarray
+    photos: list[str]
+    groups: list[str]
+    patch_mm: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.labels)
+
+
+def load_patch_set(workspace, subset: str, class_set: ClassSet, *, input_px: int | None = None) -> PatchSet:
+    """Read the labelled crops of one split subset ('train', 'val', 'test') into memory.
+
+    Patches whose current label is "unsure" are left out.
+    """
+    from PIL import Image
+
+    recs = [r for r in workspace.patches() if r.subset == subset and r.label is not None]
+    size = input_px or workspace.tile_px
+    imgs = np.empty((len(recs), size, size, 3), dtype=np.uint8)
+    for i, r in enumerate(recs):
+        with Image.open(Path(workspace.root) / r.crop) as im:
+            im = im.convert("RGB")
+            if im.size != (size, size):
+                im = im.resize((size, size), Image.BILINEAR)
+            imgs[i] = np.asarray(im)
+    return PatchSet(
+        images=imgs,
+        labels=np.array([class_set.index(r.label) for r in recs], dtype=np.int64),
+        patch_ids=np.array([r.id for r in recs], dtype=np.int64),
+        photos=[r.photo for r in recs],
+        groups=[r.group for r in recs],
+        patch_mm=np.array([np.nan if r.patch_mm is None else r.patch_mm for r in recs], dtype=float),
+    )
+
+
+def build_photometric(cfg: AugmentConfig):
+    """The albumentations pipeline for photometric changes (and the optional small rotation)."""
+    os.environ.setdefault("NO_ALBUMENTATIONS_UPDATE", "1")  # no network check at import
+    import albumentations as A
+    import cv2
+
+    ops = [
+        A.RandomBrightnessContrast(
+            brightness_limit=cfg.brightness_contrast, contrast_limit=cfg.brightness_contrast, p=0.8
+        ),
+        A.RandomGamma(gamma_limit=(cfg.gamma[0] * 100, cfg.gamma[1] * 100), p=0.5),
+    ]
+    if cfg.hue_saturation:
+        ops.append(A.HueSaturationValue(hue_shift_limit=6, sat_shift_limit=12, val_shift_limit=0, p=0.4))
+    if cfg.shadow > 0:
+        ops.append(A.RandomShadow(shadow_roi=(0, 0, 1, 1), shadow_intensity_range=(0.2, 0.5), p=cfg.shadow))
+    if cfg.blur > 0:
+        ops.append(A.GaussianBlur(blur_limit=(3, 5), p=cfg.blur))
+    if cfg.noise > 0:
+        ops.append(A.GaussNoise(std_range=(0.01, 0.04), p=cfg.noise))
+    if cfg.jpeg > 0:
+        ops.append(A.ImageCompression(quality_range=(50, 95), p=cfg.jpeg))
+    block = A.Compose(ops, p=cfg.photometric)
+    if cfg.small_rotation_deg > 0:
+        rot = A.Rotate(limit=cfg.small_rotation_deg, border_mode=cv2.BORDER_REFLECT_101, p=0.5)
+        return A.Compose([rot, block])
+    return block
+
+
+class Augmenter:
+    """Callable (image, label, rng) -> (image, label) used by the training dataset.
+
+    Args:
+        class_set: the class set, for label remapping under symmetries.
+        cfg: augmentation settings.
+    """
+
+    def __init__(self, class_set: ClassSet, cfg: AugmentConfig) -> None:
+        self.class_set = class_set
+        self.cfg = cfg
+        self.elements = class_set.allowed_d4_elements() if cfg.symmetries else [(0, False)]
+        self.perms = {e: class_set.d4_permutation(*e) for e in self.elements}
+        self.photometric = build_photometric(cfg) if cfg.photometric > 0 else None
+
+    def __call__(self, image: np.ndarray, label: int, rng: np.random.Generator) -> tuple[np.ndarray, int]:
+        k, flip = self.elements[int(rng.integers(len(self.elements)))]
+        out = apply_d4(image, k, flip)
+        new_label = int(self.perms[(k, flip)][label])
+        if self.photometric is not None:
+            out = self.photometric(image=out)["image"]
+        return np.ascontiguousarray(out), new_label
+
+
+def build_transform(input_px: int):
+    """The evaluation preset: resize an RGB uint8 patch to the model's input size, nothing else.
+
+    Normalisation happens inside the model (trainkit.training.Preprocess), so
+    evaluation, export and scanning share one definition.
+    """
+    import cv2
+
+    def transform(image: np.ndarray) -> np.ndarray:
+        if image.shape[:2] != (input_px, input_px):
+            interp = cv2.INTER_AREA if image.shape[0] > input_px else cv2.INTER_LINEAR
+            image = cv2.resize(image, (input_px, input_px), interpolation=interp)
+        return np.ascontiguousarray(image)
+
+    return transform
+
+
+def batches(indices: Sequence[int], batch_size: int):
+    """Consecutive slices of ``indices`` of at most ``batch_size``."""
+    for i in range(0, len(indices), batch_size):
+        yield indices[i : i + batch_size]

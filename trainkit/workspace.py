@@ -1,0 +1,362 @@
+"""The workspace store: one SQLite database of photos, patches, label history and splits.
+
+A workspace is a folder holding ``workspace.sqlite`` and the patch crops under
+``patches/``. Labels are an append-only history of events; a patch's current label
+is the newest event for it, never an in-place edit. The database runs in WAL mode
+so another process can read while a session writes.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+import time
+from collections.abc import Iterable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+from .taxonomy import ClassSet, class_set_from_dict
+
+__all__ = ["Workspace", "WorkspaceError", "PatchRecord", "DB_NAME", "LABEL_SOURCES"]
+
+DB_NAME = "workspace.sqlite"
+SCHEMA_VERSION = 1
+#: Where a label event came from.
+LABEL_SOURCES = ("human", "imported", "model-accepted")
+#: Label value meaning "looked at, unsure": kept out of training and evaluation.
+UNSURE = None
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS photos (
+    id INTEGER PRIMARY KEY,
+    name TEXT NOT NULL UNIQUE,          -- file name relative to the folder it came from
+    source_path TEXT NOT NULL,          -- absolute path at intake time
+    width INTEGER NOT NULL, height INTEGER NOT NULL,
+    gsd_mm REAL,                        -- mm per pixel of the original photo, NULL if unknown
+    group_id TEXT NOT NULL,             -- structure / site / photo id used to keep splits apart
+    sha256 TEXT NOT NULL,
+    added_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS patches (
+    id INTEGER PRIMARY KEY,
+    photo_id INTEGER NOT NULL REFERENCES photos(id),
+    row INTEGER NOT NULL, col INTEGER NOT NULL,
+    x0 INTEGER NOT NULL, y0 INTEGER NOT NULL, x1 INTEGER NOT NULL, y1 INTEGER NOT NULL,
+    crop TEXT NOT NULL,                 -- crop file relative to the workspace
+    patch_mm REAL,                      -- surface width covered by the patch, NULL if unknown
+    focus REAL NOT NULL,                -- variance of the Laplacian of the grey crop
+    clipped REAL NOT NULL,              -- fraction of grey pixels at <= 2 or >= 253
+    flags TEXT NOT NULL DEFAULT '',     -- comma-separated quality flags
+    UNIQUE (photo_id, x0, y0, x1, y1)
+);
+CREATE TABLE IF NOT EXISTS label_events (
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    patch_id INTEGER NOT NULL REFERENCES patches(id),
+    label TEXT,                         -- class name; NULL = unsure (kept out of training)
+    reviewer TEXT NOT NULL,
+    source TEXT NOT NULL,
+    created_at REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS label_events_patch ON label_events(patch_id, id);
+CREATE TABLE IF NOT EXISTS split_assignments (
+    patch_id INTEGER PRIMARY KEY REFERENCES patches(id),
+    subset TEXT NOT NULL CHECK (subset IN ('train', 'val', 'test'))
+);
+"""
+
+
+class WorkspaceError(ValueError):
+    """A workspace that is missing, of another version, or used inconsistently."""
+
+
+@dataclass(frozen=True)
+class PatchRecord:
+    """One patch as stored, with its photo's name and group and its current label."""
+
+    id: int
+    photo: str
+    group: str
+    row: int
+    col: int
+    box: tuple[int, int, int, int]
+    crop: str
+    patch_mm: float | None
+    gsd_mm: float | None
+    focus: float
+    clipped: float
+    flags: str
+    label: str | None
+    labelled: bool
+    subset: str | None
+
+
+class Workspace:
+    """Handle on a workspace folder; open it with :meth:`create` or :meth:`open`."""
+
+    def __init__(self, root: str | Path) -> None:
+        self.root = Path(root)
+        self.db_path = self.root / DB_NAME
+
+    # ----- lifecycle -------------------------------------------------------------
+    @classmethod
+    def create(cls, root: str | Path, *, class_set: ClassSet, tile_px: int) -> Workspace:
+        """Create a new workspace, or open an existing one after checking it matches."""
+        ws = cls(root)
+        if ws.db_path.exists():
+            ws = cls.open(root)
+            if ws.class_set.names != class_set.names:
+                raise WorkspaceError(
+                    f"workspace {ws.root} uses classes {list(ws.class_set.names)}, not {list(class_set.names)}"
+                )
+            if ws.tile_px != tile_px:
+                raise WorkspaceError(
+                    f"workspace {ws.root} holds {ws.tile_px}-px patches, not {tile_px}-px; use another workspace"
+                )
+            return ws
+        ws.root.mkdir(parents=True, exist_ok=True)
+        (ws.root / "patches").mkdir(exist_ok=True)
+        with ws.connect() as con:
+            con.executescript(_SCHEMA)
+            con.executemany(
+                "INSERT INTO meta(key, value) VALUES (?, ?)",
+                [
+                    ("schema_version", str(SCHEMA_VERSION)),
+                    ("class_set", json.dumps(class_set.to_dict())),
+                    ("tile_px", str(tile_px)),
+                    ("created_at", str(time.time())),
+                ],
+            )
+        return ws
+
+    @classmethod
+    def open(cls, root: str | Path) -> Workspace:
+        ws = cls(root)
+        if not ws.db_path.is_file():
+            raise WorkspaceError(f"{ws.root} is not a trainkit workspace (no {DB_NAME}); create it with `trainkit tile`")
+        version = ws.meta("schema_version")
+        if version != str(SCHEMA_VERSION):
+            raise WorkspaceError(f"workspace {ws.root} has schema version {version}, this kit reads {SCHEMA_VERSION}")
+        return ws
+
+    @contextmanager
+    def connect(self) -> Iterator[sqlite3.Connection]:
+        """A connection in WAL mode; commits on success, rolls back on error."""
+        con = sqlite3.connect(self.db_path, timeout=30.0)
+        try:
+            con.execute("PRAGMA journal_mode=WAL")
+            con.execute("PRAGMA foreign_keys=ON")
+            con.execute("PRAGMA synchronous=NORMAL")
+            yield con
+            con.commit()
+        except BaseException:
+            con.rollback()
+            raise
+        finally:
+            con.close()
+
+    # ----- meta ------------------------------------------------------------------
+    def meta(self, key: str) -> str | None:
+        with self.connect() as con:
+            row = con.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()
+        return None if row is None else row[0]
+
+    def set_meta(self, key: str, value: str) -> None:
+        with self.connect() as con:
+            con.execute("INSERT OR REPLACE INTO meta(key, value) VALUES (?, ?)", (key, value))
+
+    @property
+    def class_set(self) -> ClassSet:
+        return class_set_from_dict(json.loads(self.meta("class_set") or "{}"))
+
+    @property
+    def tile_px(self) -> int:
+        return int(self.meta("tile_px") or 0)
+
+    # ----- photos and patches ------------------------------------------------------
+    def photo_id(self, name: str) -> int | None:
+        with self.connect() as con:
+            row = con.execute("SELECT id FROM photos WHERE name = ?", (name,)).fetchone()
+        return None if row is None else int(row[0])
+
+    def add_photo_with_patches(
+        self,
+        *,
+        name: str,
+        source_path: str,
+        width: int,
+        height: int,
+        gsd_mm: float | None,
+        group_id: str,
+        sha256: str,
+        patches: Iterable[dict],
+    ) -> int:
+        """Add one photo and all its patches in a single transaction; returns the photo id.
+
+        Each patch dict has row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped, flags.
+        """
+        with self.connect() as con:
+            cur = con.execute(
+                "INSERT INTO photos(name, source_path, width, height, gsd_mm, group_id, sha256, added_at)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (name, source_path, width, height, gsd_mm, group_id, sha256, time.time()),
+            )
+            pid = int(cur.lastrowid)
+            con.executemany(
+                "INSERT INTO patches(photo_id, row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped, flags)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                [
+                    (
+                        pid, p["row"], p["col"], p["x0"], p["y0"], p["x1"], p["y1"], p["crop"],
+                        p.get("patch_mm"), p["focus"], p["clipped"], p.get("flags", ""),
+                    )
+                    for p in patches
+                ],
+            )
+        return pid
+
+    def patches(self) -> list[PatchRecord]:
+        """All patches in photo then grid order, with current label and split subset."""
+        q = """
+        SELECT p.id, ph.name, ph.group_id, p.row, p.col, p.x0, p.y0, p.x1, p.y1, p.crop,
+               p.patch_mm, ph.gsd_mm, p.focus, p.clipped, p.flags,
+               (SELECT e.label FROM label_events e WHERE e.patch_id = p.id ORDER BY e.id DESC LIMIT 1),
+               EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = p.id),
+               s.subset
+        FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        LEFT JOIN split_assignments s ON s.patch_id = p.id
+        ORDER BY ph.id, p.row, p.col
+        """
+        with self.connect() as con:
+            rows = con.execute(q).fetchall()
+        return [
+            PatchRecord(
+                id=r[0], photo=r[1], group=r[2], row=r[3], col=r[4], box=(r[5], r[6], r[7], r[8]),
+                crop=r[9], patch_mm=r[10], gsd_mm=r[11], focus=r[12], clipped=r[13], flags=r[14],
+                label=r[15], labelled=bool(r[16]), subset=r[17],
+            )
+            for r in rows
+        ]
+
+    def patch_lookup(self) -> dict[tuple[str, tuple[int, int, int, int]], int]:
+        """Map (photo name, box) -> patch id, for importing labels keyed by place."""
+        q = "SELECT ph.name, p.x0, p.y0, p.x1, p.y1, p.id FROM patches p JOIN photos ph ON ph.id = p.photo_id"
+        with self.connect() as con:
+            return {(r[0], (r[1], r[2], r[3], r[4])): r[5] for r in con.execute(q)}
+
+    # ----- labels ------------------------------------------------------------------
+    def add_labels(
+        self, items: Iterable[tuple[int, str | None]], *, reviewer: str, source: str = "human"
+    ) -> int:
+        """Append label events (patch id, class name or None for unsure); returns the count."""
+        if source not in LABEL_SOURCES:
+            raise ValueError(f"invalid label source {source!r}; choose one of: {', '.join(LABEL_SOURCES)}")
+        names = set(self.class_set.names)
+        rows = []
+        now = time.time()
+        for patch_id, label in items:
+            if label is not None and label not in names:
+                raise ValueError(f"unknown class {label!r}; choose one of: {', '.join(self.class_set.names)}")
+            rows.append((int(patch_id), label, reviewer, source, now))
+        with self.connect() as con:
+            con.executemany(
+                "INSERT INTO label_events(patch_id, label, reviewer, source, created_at) VALUES (?, ?, ?, ?, ?)",
+                rows,
+            )
+        return len(rows)
+
+    def label_history(self, patch_id: int) -> list[dict]:
+        with self.connect() as con:
+            rows = con.execute(
+                "SELECT id, label, reviewer, source, created_at FROM label_events WHERE patch_id = ? ORDER BY id",
+                (patch_id,),
+            ).fetchall()
+        return [dict(zip(("id", "label", "reviewer", "source", "created_at"), r, strict=True)) for r in rows]
+
+    # ----- splits ------------------------------------------------------------------
+    def set_split(self, assignments: dict[int, str], info: dict) -> None:
+        """Replace the split: patch id -> 'train' | 'val' | 'test', plus how it was made."""
+        with self.connect() as con:
+            con.execute("DELETE FROM split_assignments")
+            con.executemany(
+                "INSERT INTO split_assignments(patch_id, subset) VALUES (?, ?)",
+                sorted(assignments.items()),
+            )
+            con.execute(
+                "INSERT OR REPLACE INTO meta(key, value) VALUES ('split_info', ?)", (json.dumps(info),)
+            )
+
+    def split_info(self) -> dict | None:
+        raw = self.meta("split_info")
+        return None if raw is None else json.loads(raw)
+
+    # ----- summary -----------------------------------------------------------------
+    def summary(self) -> dict:
+        """Counts for `trainkit status`: photos, patches, labelled per class, split sizes."""
+        recs = self.patches()
+        by_label: dict[str, int] = {}
+        by_subset: dict[str, int] = {}
+        flagged = 0
+        for r in recs:
+            if r.labelled:
+                key = r.label if r.label is not None else "(unsure)"
+                by_label[key] = by_label.get(key, 0) + 1
+            if r.subset:
+                by_subset[r.subset] = by_subset.get(r.subset, 0) + 1
+            flagged += bool(r.flags)
+        with self.connect() as con:
+            n_photos = con.execute("SELECT COUNT(*) FROM photos").fetchone()[0]
+        return {
+            "workspace": str(self.root),
+            "class_set": self.class_set.name,
+            "tile_px": self.tile_px,
+            "photos": n_photos,
+            "patches": len(recs),
+            "flagged_patches": flagged,
+            "labelled": sum(by_label.values()),
+            "labels": {n: by_label.get(n, 0) for n in (*self.class_set.names, "(unsure)") if by_label.get(n, 0) or n in self.class_set.names},
+            "split": by_subset,
+        }
+
+
+def import_labels_csv(
+    workspace: Workspace, path: str | Path, *, reviewer: str = "import", source: str = "imported"
+) -> int:
+    """Load labels keyed by place: CSV columns photo,x0,y0,x1,y1,label (empty label = unsure).
+
+    Rows whose photo or box is not in the workspace are refused with the line number.
+    Returns the number of label events added.
+    """
+    import csv
+
+    path = Path(path)
+    lookup = workspace.patch_lookup()
+    names = set(workspace.class_set.names)
+    items: list[tuple[int, str | None]] = []
+    with path.open(newline="", encoding="utf-8") as fh:
+        reader = csv.DictReader(fh)
+        need = {"photo", "x0", "y0", "x1", "y1", "label"}
+        if reader.fieldnames is None or not need <= set(reader.fieldnames):
+            raise WorkspaceError(f"{path.name}: expected columns {sorted(need)}, got {reader.fieldnames}")
+        for i, row in enumerate(reader, start=2):
+            photo = row["photo"]
+            if Path(photo).is_absolute() or ".." in Path(photo).parts or "/" in photo or "\\" in photo:
+                raise WorkspaceError(f"{path.name} line {i}: photo {photo!r} must be a plain file name")
+            try:
+                box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
+            except (TypeError, ValueError):
+                raise WorkspaceError(f"{path.name} line {i}: box values must be integers") from None
+            pid = lookup.get((photo, box))
+            if pid is None:
+                raise WorkspaceError(
+                    f"{path.name} line {i}: no patch {box} of photo {photo!r} in the workspace "
+                    "(tile the photos first, with the same tile size)"
+                )
+            label = (row["label"] or "").strip() or None
+            if label is not None and label not in names:
+                raise WorkspaceError(
+                    f"{path.name} line {i}: unknown class {label!r}; choose one of: {', '.join(workspace.class_set.names)}"
+                )
+            items.append((pid, label))
+    return workspace.add_labels(items, reviewer=reviewer, source=source)
