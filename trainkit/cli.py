@@ -83,7 +83,8 @@ def progress_bar(ctx: Ctx, description: str, total: int | None = None):
                 prog.update(task, **kw)
 
             def log(self, text: str) -> None:
-                prog.console.print(text, highlight=False)
+                if not ctx.quiet:
+                    prog.console.print(text, highlight=False)
 
         yield Handle()
 
@@ -148,7 +149,7 @@ def synth(ctx: Ctx, out: Path, n_photos: int, seed: int, size: str, tile_px: int
                 options=SynthOptions(height=h, width=w), class_set=cs,
                 progress=lambda i, n: bar.update(i, n),
             )
-        ctx.console.print(f"wrote {n_photos} photos to {out}; label counts: {manifest.get('label_counts', {})}")
+        ctx.console.print(f"wrote {n_photos} photos to {out}; label counts: {manifest.get('counts', {})}")
 
 
 # ----- tile ----------------------------------------------------------------------------

@@ -12,8 +12,8 @@ from pathlib import Path
 
 __all__ = ["run_demo", "TINY_DATASET", "tiny_dataset_dir"]
 
-#: How tiny_dataset/ was made: `trainkit synth tiny_dataset --photos 32 --seed 2026 --size 768x512 --tile-px 128`.
-TINY_DATASET = {"n_photos": 32, "seed": 2026, "width": 768, "height": 512, "tile_px": 128}
+#: How tiny_dataset/ was made: `trainkit synth tiny_dataset --photos 40 --seed 2026 --size 768x512 --tile-px 128`.
+TINY_DATASET = {"n_photos": 40, "seed": 2026, "width": 768, "height": 512, "tile_px": 128}
 #: Seeds of the fresh frames the demo scans (never used for the tiny dataset's photos).
 FRAME_SEEDS = (900_001, 900_002, 900_003, 900_004, 900_005, 900_006)
 

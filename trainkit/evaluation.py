@@ -41,6 +41,8 @@ def screening_probability(probs: np.ndarray) -> np.ndarray:
 
 
 def _write_predictions(path: Path, data: PatchSet, probs: np.ndarray, class_set: ClassSet) -> None:
+    # float32 probabilities with 9 significant digits and the float64 screening
+    # probability in round-trip form, so thresholds recompute exactly.
     tmp = path.with_suffix(".csv.tmp")
     names = class_set.names
     with tmp.open("w", newline="", encoding="utf-8") as fh:
@@ -51,7 +53,7 @@ def _write_predictions(path: Path, data: PatchSet, probs: np.ndarray, class_set:
         scr = screening_probability(probs)
         for i in range(len(data)):
             w.writerow([int(data.patch_ids[i]), data.photos[i], data.groups[i], names[data.labels[i]],
-                        names[pred[i]], *[f"{p:.6f}" for p in probs[i]], f"{scr[i]:.6f}"])
+                        names[pred[i]], *[f"{p:.9g}" for p in probs[i]], repr(float(scr[i]))])
     os.replace(tmp, path)
 
 

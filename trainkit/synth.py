@@ -1177,7 +1177,7 @@ def write_dataset(
     """Write a labelled synthetic dataset of concrete photos.
 
     Layout: ``photos/<name>.jpg``, ``truth/<name>.json``, ``scale.csv``
-    (photo,structure,gsd_mm), ``labels.csv`` (photo,x0,y0,x1,y1,label,status,reason)
+    (photo,structure,gsd_mm; photo is the file name with its suffix), ``labels.csv`` (photo,x0,y0,x1,y1,label,status,reason)
     for a tile grid of ``tile_px`` squares, and ``manifest.json``. Photos belong to
     structures of a fictional owner (:data:`ASSET_OWNER`). Each photo gets its own seed,
     a scene from :data:`SCENE_MIX` (single-crack angles spread over [0, 180)), a gsd in
@@ -1253,11 +1253,11 @@ def write_dataset(
         (out_dir / "truth" / f"{name}.json").write_text(
             json.dumps(truth, sort_keys=True, separators=(",", ":")) + "\n", encoding="utf-8"
         )
-        scale_rows.append((name, structure, f"{gsd:.4f}"))
+        scale_rows.append((f"{name}.jpg", structure, f"{gsd:.4f}"))
         for b in boxes:
             t = derive_patch_label(photo.cracks, b, class_set, rules)
             label = "" if t.label is None else class_set.names[t.label]
-            label_rows.append((name, *b, label, t.status, t.reason))
+            label_rows.append((f"{name}.jpg", *b, label, t.status, t.reason))
         if progress is not None:
             progress(i + 1, n_photos)
 

@@ -1,0 +1,112 @@
+"""The demo chain end to end on a cut-down setting, and the folder contract it leaves."""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import numpy as np
+import onnxruntime as ort
+import pytest
+from click.testing import CliRunner
+
+from trainkit.cli import cli
+from trainkit.export import read_metadata
+from trainkit.workspace import Workspace
+
+
+def test_demo_leaves_the_experiment_folder(demo_run):
+    out, headline = demo_run
+    for rel in ("model.onnx", "evaluation/metrics.json", "evaluation/report.html", "evaluation/predictions.csv",
+                "checkpoint.pt", "history.csv", "config.yaml", "scan/frames.jsonl", "demo-summary.json"):
+        assert (out / rel).is_file(), rel
+    assert (out / "workspace" / "workspace.sqlite").is_file()
+    history = list(csv.DictReader((out / "history.csv").open()))
+    assert len(history) == 2 and float(history[0]["images_per_second"]) > 0
+    assert 0.0 <= headline["screening_recall"] <= 1.0
+
+
+def test_metrics_recomputed_from_predictions_csv(demo_run):
+    """Every figure must be recomputable from predictions.csv (checked with scikit-learn)."""
+    from sklearn.metrics import confusion_matrix, recall_score
+
+    out, _ = demo_run
+    m = json.loads((out / "evaluation/metrics.json").read_text())
+    rows = list(csv.DictReader((out / "evaluation/predictions.csv").open()))
+    names = m["class_names"]
+    assert set(rows[0]) >= {"patch_id", "photo", "group", "true", "predicted", "screening_probability",
+                            *[f"p_{n}" for n in names]}
+    y = [names.index(r["true"]) for r in rows]
+    p = [names.index(r["predicted"]) for r in rows]
+    assert confusion_matrix(y, p, labels=range(len(names))).tolist() == m["confusion_matrix"]
+    scr = np.array([float(r["screening_probability"]) for r in rows])
+    thr = m["screening"]["threshold"]
+    crack = np.array(y) != 0
+    flagged = scr >= thr
+    assert recall_score(crack, flagged) == pytest.approx(m["screening"]["recall"], abs=1e-9)
+    probs = np.array([[float(r[f"p_{n}"]) for n in names] for r in rows])
+    np.testing.assert_allclose(probs.sum(1), 1.0, atol=1e-5)
+
+
+def test_no_photo_in_two_subsets(demo_run):
+    out, _ = demo_run
+    recs = Workspace.open(out / "workspace").patches()
+    by_photo = {}
+    for r in recs:
+        if r.subset:
+            by_photo.setdefault(r.photo, set()).add(r.subset)
+    assert by_photo and all(len(s) == 1 for s in by_photo.values())
+
+
+def test_onnx_contract(demo_run):
+    out, _ = demo_run
+    sess = ort.InferenceSession(str(out / "model.onnx"), providers=["CPUExecutionProvider"])
+    (inp,), (outp,) = sess.get_inputs(), sess.get_outputs()
+    assert inp.name == "image" and inp.type == "tensor(uint8)" and inp.shape[1:] == [128, 128, 3]
+    assert isinstance(inp.shape[0], str)  # dynamic batch
+    assert outp.name == "probabilities" and outp.type == "tensor(float)"
+    for n in (1, 3):
+        probs = sess.run(None, {"image": np.zeros((n, 128, 128, 3), np.uint8)})[0]
+        assert probs.shape == (n, 6)
+        np.testing.assert_allclose(probs.sum(1), 1.0, atol=1e-5)
+    meta = read_metadata(out / "model.onnx")
+    assert json.loads(meta["class_names"])[0] == "none"
+    assert json.loads(meta["angle_centres"]) == [None, 0.0, 45.0, 90.0, 135.0, None]
+    assert int(meta["patch_px"]) == 128
+    m = json.loads((out / "evaluation/metrics.json").read_text())
+    assert json.loads(meta["threshold"]) == pytest.approx(m["screening"]["threshold"])
+    assert json.loads(meta["patch_mm"]) > 0 and len(meta["data_digest"]) == 64
+
+
+def test_evaluate_and_export_commands_work_on_the_demo_folder(demo_run):
+    out, _ = demo_run
+    runner = CliRunner()
+    res = runner.invoke(cli, ["-q", "evaluate", str(out), "--json"], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    assert json.loads(res.output)["split"] == "test"
+    res = runner.invoke(cli, ["-q", "export", str(out)], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+
+
+def test_acceptance_gate_exit_code(demo_run):
+    out, _ = demo_run
+    runner = CliRunner()
+    res = runner.invoke(cli, ["-q", "evaluate", str(out), "--require-recall", "1.0", "--json"])
+    assert res.exit_code == 3  # a lower bound is below 1 for any finite test set
+    assert json.loads(res.output)["gate"]["passed"] is False
+    res = runner.invoke(cli, ["-q", "evaluate", str(out), "--require-recall", "0.0", "--json"])
+    assert res.exit_code == 0
+
+
+def test_report_states_the_cautions(demo_run):
+    out, _ = demo_run
+    page = (out / "evaluation/report.html").read_text()
+    assert "not an inspection" in page and "licensed engineers" in page
+    assert page.count("data:image/png;base64,") >= 2
+
+
+def test_scan_lines(demo_run):
+    out, _ = demo_run
+    lines = [json.loads(x) for x in (out / "scan/frames.jsonl").read_text().splitlines()]
+    assert len(lines) == 6 and all(rec["status"] == "ok" for rec in lines)
+    assert all(rec["cells"] == 24 for rec in lines)  # 768x512 at 128 px: 6 x 4

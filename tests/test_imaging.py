@@ -1,0 +1,78 @@
+"""Decoding to 8-bit RGB and the ground-sampling-distance arithmetic."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from trainkit.imaging import FULL_FRAME_WIDTH_MM, PhotoError, gsd_mm_per_px, list_images, read_rgb
+
+
+def test_gsd_worked_examples():
+    # Pinhole relation, standard photogrammetry (shared REFERENCES): sensor 13.125 mm,
+    # focal 15.4 mm, 100 m, 4608 px -> 18.4955 mm/px and a footprint of 85.2 m.
+    g = gsd_mm_per_px(sensor_width_mm=13.125, distance_m=100, focal_mm=15.4, image_width_px=4608)
+    assert g == pytest.approx(18.4955, abs=1e-4)
+    assert g * 4608 / 1000 == pytest.approx(85.2, abs=0.05)
+    # Sensor 6.17 mm, focal 5 mm, 4000 px, GSD 50 mm/px <-> distance 162.07 m.
+    g2 = gsd_mm_per_px(sensor_width_mm=6.17, distance_m=162.07, focal_mm=5, image_width_px=4000)
+    assert g2 == pytest.approx(50.0, abs=0.01)
+    assert FULL_FRAME_WIDTH_MM == 36.0  # 35 mm-equivalent focal length uses the 36 mm width
+    with pytest.raises(ValueError, match="focal_mm must be positive"):
+        gsd_mm_per_px(sensor_width_mm=6.17, distance_m=1, focal_mm=0, image_width_px=4000)
+
+
+@pytest.mark.parametrize("mode", ["L", "P", "CMYK", "RGBA", "RGB"])
+def test_colour_modes_become_rgb8(tmp_path, mode):
+    rgb = np.random.default_rng(0).integers(0, 255, (20, 30, 3), dtype=np.uint8)
+    im = Image.fromarray(rgb).convert(mode)
+    path = tmp_path / f"x.{'tif' if mode == 'CMYK' else 'png'}"
+    im.save(path)
+    out = read_rgb(path)
+    assert out.shape == (20, 30, 3) and out.dtype == np.uint8
+    np.testing.assert_array_equal(out, np.asarray(im.convert("RGB")))
+
+
+def test_sixteen_bit_is_scaled(tmp_path):
+    arr = np.array([[0, 257 * 100, 65535]], dtype=np.uint16)
+    path = tmp_path / "g16.png"
+    Image.fromarray(arr).save(path)
+    out = read_rgb(path)
+    assert out[0, :, 0].tolist() == [0, 100, 255]
+
+
+def test_exif_orientation_is_applied(tmp_path):
+    arr = np.zeros((10, 20, 3), np.uint8)
+    arr[:, :5] = 255  # bright left edge
+    im = Image.fromarray(arr)
+    exif = im.getexif()
+    exif[0x0112] = 6  # rotate 90 CW on display
+    path = tmp_path / "o.jpg"
+    im.save(path, exif=exif, quality=95)
+    out = read_rgb(path)
+    assert out.shape == (20, 10, 3)
+    assert out[:5].mean() > 200  # left edge is now the top
+
+
+def test_broken_files_say_which_and_why(tmp_path):
+    (tmp_path / "empty.jpg").write_bytes(b"")
+    with pytest.raises(PhotoError, match="empty.jpg cannot be decoded"):
+        read_rgb(tmp_path / "empty.jpg")
+    (tmp_path / "text.jpg").write_text("not an image")
+    with pytest.raises(PhotoError, match="text.jpg"):
+        read_rgb(tmp_path / "text.jpg")
+    with pytest.raises(PhotoError, match="does not exist"):
+        read_rgb(tmp_path / "missing.jpg")
+    big = Image.new("L", (200, 200))
+    big.save(tmp_path / "big.png")
+    with pytest.raises(PhotoError, match="larger than the limit"):
+        read_rgb(tmp_path / "big.png", max_pixels=1000)
+
+
+def test_list_images(tmp_path):
+    (tmp_path / "a").mkdir()
+    for n in ("a/1.JPG", "a/2.png", "a/notes.txt", "3.tif"):
+        (tmp_path / n).write_bytes(b"x")
+    names = [p.name for p in list_images([tmp_path])]
+    assert names == ["3.tif", "1.JPG", "2.png"]  # sorted by full path, suffix case-insensitive
