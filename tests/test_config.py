@@ -33,7 +33,12 @@ def test_errors_name_each_bad_field(tmp_path):
     lines = str(info.value).splitlines()
     assert len(lines) == 5
     text = str(info.value)
-    assert "epochs:" in text and "lr:" in text and "colour: unknown key" in text and "augment.blur" in text
+    assert (
+        "epochs:" in text
+        and "lr:" in text
+        and "colour: unknown key" in text
+        and "augment.blur" in text
+    )
     assert "unknown backbone 'resnet9000'; choose one of:" in text
 
 
@@ -47,8 +52,10 @@ def test_overrides_and_missing_file(tmp_path):
 
 
 @settings(max_examples=60, deadline=None)
-@given(epochs=st.one_of(st.integers(-5, 2000), st.text(max_size=4), st.floats(allow_nan=True)),
-       lr=st.one_of(st.floats(allow_nan=True, allow_infinity=True), st.integers(-2, 3)))
+@given(
+    epochs=st.one_of(st.integers(-5, 2000), st.text(max_size=4), st.floats(allow_nan=True)),
+    lr=st.one_of(st.floats(allow_nan=True, allow_infinity=True), st.integers(-2, 3)),
+)
 def test_any_value_is_either_valid_or_a_config_error(epochs, lr):
     try:
         cfg = load_train_config("default", {"epochs": epochs, "lr": lr})

@@ -16,7 +16,9 @@ def crack_patch(angle_deg: float, size: int = 96) -> np.ndarray:
     c = size / 2
     d = np.array([np.cos(np.radians(angle_deg)), -np.sin(np.radians(angle_deg))])
     pts = np.array([[c, c] - d * size, [c, c] + d * size])
-    cov, _, _ = render_cracks([Crack(points=pts, widths=np.array([3.0, 3.0]), kind="main", crack_id=0)], size, size)
+    cov, _, _ = render_cracks(
+        [Crack(points=pts, widths=np.array([3.0, 3.0]), kind="main", crack_id=0)], size, size
+    )
     grey = (170 * (1 - 0.8 * cov)).astype(np.uint8)
     return np.repeat(grey[..., None], 3, axis=2)
 

@@ -17,8 +17,17 @@ from trainkit.workspace import Workspace
 
 def test_demo_leaves_the_experiment_folder(demo_run):
     out, headline = demo_run
-    for rel in ("model.onnx", "evaluation/metrics.json", "evaluation/report.html", "evaluation/predictions.csv",
-                "checkpoint.pt", "history.csv", "config.yaml", "scan/frames.jsonl", "demo-summary.json"):
+    for rel in (
+        "model.onnx",
+        "evaluation/metrics.json",
+        "evaluation/report.html",
+        "evaluation/predictions.csv",
+        "checkpoint.pt",
+        "history.csv",
+        "config.yaml",
+        "scan/frames.jsonl",
+        "demo-summary.json",
+    ):
         assert (out / rel).is_file(), rel
     assert (out / "workspace" / "workspace.sqlite").is_file()
     history = list(csv.DictReader((out / "history.csv").open()))
@@ -34,8 +43,15 @@ def test_metrics_recomputed_from_predictions_csv(demo_run):
     m = json.loads((out / "evaluation/metrics.json").read_text())
     rows = list(csv.DictReader((out / "evaluation/predictions.csv").open()))
     names = m["class_names"]
-    assert set(rows[0]) >= {"patch_id", "photo", "group", "true", "predicted", "screening_probability",
-                            *[f"p_{n}" for n in names]}
+    assert set(rows[0]) >= {
+        "patch_id",
+        "photo",
+        "group",
+        "true",
+        "predicted",
+        "screening_probability",
+        *[f"p_{n}" for n in names],
+    }
     y = [names.index(r["true"]) for r in rows]
     p = [names.index(r["predicted"]) for r in rows]
     assert confusion_matrix(y, p, labels=range(len(names))).tolist() == m["confusion_matrix"]

@@ -426,9 +426,11 @@ def test_write_dataset_reproducible_and_consistent(tmp_path: Path) -> None:
     for row in scale:
         assert row["photo"].startswith(row["structure"] + "-")
         assert 0.25 <= float(row["gsd_mm"]) <= 0.6
-        img = np.asarray(Image.open(root / "photos" / f"{row['photo']}.jpg"))
+        img = np.asarray(Image.open(root / "photos" / row["photo"]))
         assert img.shape == (160, 224, 3) and img.dtype == np.uint8
-        truth = json.loads((root / "truth" / f"{row['photo']}.json").read_text())
+        truth = json.loads(
+            (root / "truth" / (row["photo"].removesuffix(".jpg") + ".json")).read_text()
+        )
         assert truth["gsd_mm"] == float(row["gsd_mm"])
 
     with open(root / "labels.csv", newline="") as f:

@@ -62,12 +62,19 @@ def test_contract_examples_from_design():
 
 def test_default_class_set_contract():
     cs = load_class_set("orientation")
-    assert cs.names == ("none", "horizontal", "diagonal_rising", "vertical", "diagonal_falling", "map")
+    assert cs.names == (
+        "none",
+        "horizontal",
+        "diagonal_rising",
+        "vertical",
+        "diagonal_falling",
+        "map",
+    )
     assert cs.angle_centres == (None, 0.0, 45.0, 90.0, 135.0, None)
     assert cs.catchall_index == 5
-    assert [cs.class_for_angle(a) for a in (0, 22, 23, 45, 67, 68, 90, 112, 113, 135, 157, 158, 179.9)] == [
-        1, 1, 2, 2, 2, 3, 3, 3, 4, 4, 4, 1, 1
-    ]
+    assert [
+        cs.class_for_angle(a) for a in (0, 22, 23, 45, 67, 68, 90, 112, 113, 135, 157, 158, 179.9)
+    ] == [1, 1, 2, 2, 2, 3, 3, 3, 4, 4, 4, 1, 1]
     assert cs.boundary_distance(22.5) == pytest.approx(0.0)
     assert cs.boundary_distance(40.0) == pytest.approx(17.5)
 

@@ -7,7 +7,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from trainkit.tiling import axis_starts, crop, grid_boxes, overlap_to_stride, quality_measures, tile_photo
+from trainkit.tiling import (
+    axis_starts,
+    crop,
+    grid_boxes,
+    overlap_to_stride,
+    quality_measures,
+    tile_photo,
+)
 
 
 @settings(max_examples=300, deadline=None)
@@ -30,7 +37,11 @@ def test_border_rule_example():
     assert axis_starts(500, 224, 224) == [0, 224, 276]
     assert axis_starts(448, 224, 224) == [0, 224]
     assert axis_starts(100, 224, 224) == [0]
-    assert grid_boxes(300, 500, 224)[:3] == [(0, 0, 224, 224), (224, 0, 448, 224), (276, 0, 500, 224)]
+    assert grid_boxes(300, 500, 224)[:3] == [
+        (0, 0, 224, 224),
+        (224, 0, 448, 224),
+        (276, 0, 500, 224),
+    ]
 
 
 def test_overlap_to_stride():

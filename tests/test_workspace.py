@@ -15,11 +15,26 @@ def make_ws(tmp_path, n_photos=3, per_photo=4):
     ws = Workspace.create(tmp_path / "ws", class_set=load_class_set("orientation"), tile_px=32)
     for i in range(n_photos):
         ws.add_photo_with_patches(
-            name=f"p{i}.jpg", source_path=f"/x/p{i}.jpg", width=128, height=32, gsd_mm=0.5,
-            group_id=f"g{i}", sha256="0" * 64,
+            name=f"p{i}.jpg",
+            source_path=f"/x/p{i}.jpg",
+            width=128,
+            height=32,
+            gsd_mm=0.5,
+            group_id=f"g{i}",
+            sha256="0" * 64,
             patches=[
-                {"row": 0, "col": c, "x0": 32 * c, "y0": 0, "x1": 32 * c + 32, "y1": 32,
-                 "crop": f"patches/p{i}/{c}.png", "patch_mm": 16.0, "focus": 50.0, "clipped": 0.0}
+                {
+                    "row": 0,
+                    "col": c,
+                    "x0": 32 * c,
+                    "y0": 0,
+                    "x1": 32 * c + 32,
+                    "y1": 32,
+                    "crop": f"patches/p{i}/{c}.png",
+                    "patch_mm": 16.0,
+                    "focus": 50.0,
+                    "clipped": 0.0,
+                }
                 for c in range(per_photo)
             ],
         )
@@ -86,7 +101,9 @@ def test_split_keeps_groups_together_and_is_seeded(tmp_path):
     ws.add_labels([(r.id, names[r.col]) for r in ws.patches()], reviewer="t")
     rep = split_workspace(ws, seed=3)
     check_no_leak(ws.patches())
-    assert sum(rep["groups"].values()) == 12 and all(rep["groups"][s] >= 1 for s in ("train", "val", "test"))
+    assert sum(rep["groups"].values()) == 12 and all(
+        rep["groups"][s] >= 1 for s in ("train", "val", "test")
+    )
     first = {r.id: r.subset for r in ws.patches()}
     split_workspace(ws, seed=3)
     assert {r.id: r.subset for r in ws.patches()} == first
@@ -102,7 +119,9 @@ def test_leak_is_refused(tmp_path):
     recs = ws.patches()
     ws.add_labels([(r.id, "none") for r in recs], reviewer="t")
     ws.set_split({recs[0].id: "train", recs[1].id: "test"}, {})
-    with pytest.raises(SplitError, match="1 group\\(s\\) appear in more than one subset \\(g0 in test\\+train\\)"):
+    with pytest.raises(
+        SplitError, match="1 group\\(s\\) appear in more than one subset \\(g0 in test\\+train\\)"
+    ):
         check_no_leak(ws.patches())
 
 

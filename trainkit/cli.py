@@ -48,7 +48,10 @@ def user_errors(ctx: Ctx):
             traceback.print_exc()
         _fail(str(exc))
     except KeyboardInterrupt:
-        _fail("interrupted; finished work is saved, run the same command again to continue", EXIT_USAGE)
+        _fail(
+            "interrupted; finished work is saved, run the same command again to continue",
+            EXIT_USAGE,
+        )
 
 
 @contextmanager
@@ -64,8 +67,14 @@ def progress_bar(ctx: Ctx, description: str, total: int | None = None):
     )
 
     prog = Progress(
-        TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn(),
-        TextColumn("eta"), TimeRemainingColumn(), disable=ctx.quiet, transient=False,
+        TextColumn("{task.description}"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        TimeElapsedColumn(),
+        TextColumn("eta"),
+        TimeRemainingColumn(),
+        disable=ctx.quiet,
+        transient=False,
     )
     with prog:
         task = prog.add_task(description, total=total)
@@ -74,7 +83,9 @@ def progress_bar(ctx: Ctx, description: str, total: int | None = None):
             def advance(self, n: int = 1) -> None:
                 prog.advance(task, n)
 
-            def update(self, completed: int, total: int | None = None, description: str | None = None) -> None:
+            def update(
+                self, completed: int, total: int | None = None, description: str | None = None
+            ) -> None:
                 kw = {"completed": completed}
                 if total is not None:
                     kw["total"] = total
@@ -118,16 +129,37 @@ def cli(click_ctx: click.Context, quiet: bool, debug: bool) -> None:
 
 @cli.command(epilog="Example: trainkit synth my-synthetic --photos 12 --seed 7")
 @click.argument("out", type=click.Path(file_okay=False, path_type=Path))
-@click.option("--photos", "n_photos", type=click.IntRange(1, 100000), default=32, show_default=True,
-              help="Number of photos to generate.")
-@click.option("--seed", type=int, default=2026, show_default=True, help="Random seed; same seed, same files.")
-@click.option("--size", default="768x512", show_default=True, help="Photo size WIDTHxHEIGHT in pixels.")
-@click.option("--tile-px", type=click.IntRange(16, 2048), default=128, show_default=True,
-              help="Patch size of the labels.csv grid, pixels.")
-@click.option("--classes", default="orientation", show_default=True,
-              help="Class set for the labels: orientation, presence or a YAML file.")
+@click.option(
+    "--photos",
+    "n_photos",
+    type=click.IntRange(1, 100000),
+    default=32,
+    show_default=True,
+    help="Number of photos to generate.",
+)
+@click.option(
+    "--seed", type=int, default=2026, show_default=True, help="Random seed; same seed, same files."
+)
+@click.option(
+    "--size", default="768x512", show_default=True, help="Photo size WIDTHxHEIGHT in pixels."
+)
+@click.option(
+    "--tile-px",
+    type=click.IntRange(16, 2048),
+    default=128,
+    show_default=True,
+    help="Patch size of the labels.csv grid, pixels.",
+)
+@click.option(
+    "--classes",
+    default="orientation",
+    show_default=True,
+    help="Class set for the labels: orientation, presence or a YAML file.",
+)
 @click.pass_obj
-def synth(ctx: Ctx, out: Path, n_photos: int, seed: int, size: str, tile_px: int, classes: str) -> None:
+def synth(
+    ctx: Ctx, out: Path, n_photos: int, seed: int, size: str, tile_px: int, classes: str
+) -> None:
     """Generate synthetic concrete photos with exact crack ground truth and patch labels.
 
     Writes OUT/photos/*.jpg, OUT/truth/*.json (crack polylines and widths),
@@ -145,39 +177,97 @@ def synth(ctx: Ctx, out: Path, n_photos: int, seed: int, size: str, tile_px: int
         cs = load_class_set(classes)
         with progress_bar(ctx, "generating photos", n_photos) as bar:
             manifest = write_dataset(
-                out, n_photos=n_photos, seed=seed, tile_px=tile_px,
-                options=SynthOptions(height=h, width=w), class_set=cs,
+                out,
+                n_photos=n_photos,
+                seed=seed,
+                tile_px=tile_px,
+                options=SynthOptions(height=h, width=w),
+                class_set=cs,
                 progress=lambda i, n: bar.update(i, n),
             )
-        ctx.console.print(f"wrote {n_photos} photos to {out}; label counts: {manifest.get('counts', {})}")
+        ctx.console.print(
+            f"wrote {n_photos} photos to {out}; label counts: {manifest.get('counts', {})}"
+        )
 
 
 # ----- tile ----------------------------------------------------------------------------
 
 
-@cli.command(epilog="Example: trainkit tile photos/ --workspace ws --tile-px 224 --sidecar photos/scale.csv")
+@cli.command(
+    epilog="Example: trainkit tile photos/ --workspace ws --tile-px 224 --sidecar photos/scale.csv"
+)
 @click.argument("photos", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
-@click.option("--workspace", "-w", "ws_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
-              help="Workspace folder (created if missing).")
-@click.option("--tile-px", type=click.IntRange(16, 2048), default=224, show_default=True,
-              help="Patch size in pixels (the model's input size).")
-@click.option("--tile-mm", type=click.FloatRange(min=0, min_open=True), default=None,
-              help="Cut patches covering this many mm of surface (needs scale), resampled to --tile-px.")
-@click.option("--overlap", type=click.FloatRange(0, 0.9), default=0.0, show_default=True,
-              help="Overlap between neighbouring patches as a fraction.")
-@click.option("--sidecar", type=click.Path(exists=True, dir_okay=False, path_type=Path),
-              help="CSV with photo,gsd_mm (or distance_m,focal_mm,sensor_width_mm) and structure columns.")
-@click.option("--gsd-mm", type=click.FloatRange(min=0, min_open=True), default=None,
-              help="Scale in mm per pixel for photos the sidecar does not cover.")
-@click.option("--group-by", type=click.Choice(["sidecar", "photo"]), default="sidecar", show_default=True,
-              help="Split groups: the sidecar's structure column (photo when absent) or each photo.")
-@click.option("--classes", default="orientation", show_default=True,
-              help="Class set of a new workspace: orientation, presence or a YAML file.")
-@click.option("--import-labels", type=click.Path(exists=True, dir_okay=False, path_type=Path),
-              help="CSV photo,x0,y0,x1,y1,label of existing labels to load (empty label = unsure).")
+@click.option(
+    "--workspace",
+    "-w",
+    "ws_dir",
+    required=True,
+    type=click.Path(file_okay=False, path_type=Path),
+    help="Workspace folder (created if missing).",
+)
+@click.option(
+    "--tile-px",
+    type=click.IntRange(16, 2048),
+    default=224,
+    show_default=True,
+    help="Patch size in pixels (the model's input size).",
+)
+@click.option(
+    "--tile-mm",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Cut patches covering this many mm of surface (needs scale), resampled to --tile-px.",
+)
+@click.option(
+    "--overlap",
+    type=click.FloatRange(0, 0.9),
+    default=0.0,
+    show_default=True,
+    help="Overlap between neighbouring patches as a fraction.",
+)
+@click.option(
+    "--sidecar",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="CSV with photo,gsd_mm (or distance_m,focal_mm,sensor_width_mm) and structure columns.",
+)
+@click.option(
+    "--gsd-mm",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Scale in mm per pixel for photos the sidecar does not cover.",
+)
+@click.option(
+    "--group-by",
+    type=click.Choice(["sidecar", "photo"]),
+    default="sidecar",
+    show_default=True,
+    help="Split groups: the sidecar's structure column (photo when absent) or each photo.",
+)
+@click.option(
+    "--classes",
+    default="orientation",
+    show_default=True,
+    help="Class set of a new workspace: orientation, presence or a YAML file.",
+)
+@click.option(
+    "--import-labels",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="CSV photo,x0,y0,x1,y1,label of existing labels to load (empty label = unsure).",
+)
 @click.pass_obj
-def tile(ctx: Ctx, photos, ws_dir, tile_px, tile_mm, overlap, sidecar, gsd_mm, group_by, classes,
-         import_labels) -> None:
+def tile(
+    ctx: Ctx,
+    photos,
+    ws_dir,
+    tile_px,
+    tile_mm,
+    overlap,
+    sidecar,
+    gsd_mm,
+    group_by,
+    classes,
+    import_labels,
+) -> None:
     """Cut photos into patches in a workspace, with scale, quality flags and provenance."""
     from .imaging import list_images
     from .taxonomy import load_class_set
@@ -192,8 +282,14 @@ def tile(ctx: Ctx, photos, ws_dir, tile_px, tile_mm, overlap, sidecar, gsd_mm, g
         side = read_sidecar(sidecar) if sidecar else {}
         with progress_bar(ctx, "tiling photos", len(files)) as bar:
             res = tile_into_workspace(
-                files, ws, overlap=overlap, tile_mm=tile_mm, sidecar=side, default_gsd_mm=gsd_mm,
-                group_by=group_by, progress=lambda i, n, name: bar.update(i, n),
+                files,
+                ws,
+                overlap=overlap,
+                tile_mm=tile_mm,
+                sidecar=side,
+                default_gsd_mm=gsd_mm,
+                group_by=group_by,
+                progress=lambda i, n, name: bar.update(i, n),
             )
         for p in res["problems"]:
             click.echo(f"trainkit: {p}", err=True)
@@ -213,9 +309,25 @@ def tile(ctx: Ctx, photos, ws_dir, tile_px, tile_mm, overlap, sidecar, gsd_mm, g
 
 
 @cli.command(epilog="Example: trainkit split ws --test 0.2 --val 0.15 --seed 1")
-@click.argument("ws_dir", metavar="WORKSPACE", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--test", "test_fraction", type=float, default=0.2, show_default=True, help="Share held out for testing.")
-@click.option("--val", "val_fraction", type=float, default=0.15, show_default=True, help="Share held out for validation.")
+@click.argument(
+    "ws_dir", metavar="WORKSPACE", type=click.Path(exists=True, file_okay=False, path_type=Path)
+)
+@click.option(
+    "--test",
+    "test_fraction",
+    type=float,
+    default=0.2,
+    show_default=True,
+    help="Share held out for testing.",
+)
+@click.option(
+    "--val",
+    "val_fraction",
+    type=float,
+    default=0.15,
+    show_default=True,
+    help="Share held out for validation.",
+)
 @click.option("--seed", type=int, default=0, show_default=True, help="Random seed of the split.")
 @click.pass_obj
 def split(ctx: Ctx, ws_dir: Path, test_fraction: float, val_fraction: float, seed: int) -> None:
@@ -224,7 +336,12 @@ def split(ctx: Ctx, ws_dir: Path, test_fraction: float, val_fraction: float, see
     from .workspace import Workspace
 
     with user_errors(ctx):
-        rep = split_workspace(Workspace.open(ws_dir), test_fraction=test_fraction, val_fraction=val_fraction, seed=seed)
+        rep = split_workspace(
+            Workspace.open(ws_dir),
+            test_fraction=test_fraction,
+            val_fraction=val_fraction,
+            seed=seed,
+        )
         _print_split(ctx, rep)
 
 
@@ -246,20 +363,42 @@ def _print_split(ctx: Ctx, rep: dict) -> None:
 
 
 @cli.command(epilog="Example: trainkit train ws --out runs/first --config default --epochs 10")
-@click.argument("ws_dir", metavar="WORKSPACE", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--out", "exp_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
-              help="Experiment folder to write.")
-@click.option("--config", "config", default="default", show_default=True,
-              help="Recipe name (default, demo, presence) or a YAML file.")
+@click.argument(
+    "ws_dir", metavar="WORKSPACE", type=click.Path(exists=True, file_okay=False, path_type=Path)
+)
+@click.option(
+    "--out",
+    "exp_dir",
+    required=True,
+    type=click.Path(file_okay=False, path_type=Path),
+    help="Experiment folder to write.",
+)
+@click.option(
+    "--config",
+    "config",
+    default="default",
+    show_default=True,
+    help="Recipe name (default, demo, presence) or a YAML file.",
+)
 @click.option("--backbone", default=None, help="Override the recipe's backbone.")
-@click.option("--weights", default=None, help="Pretrained backbone state dict (.pth) or 'torchvision'.")
-@click.option("--epochs", type=click.IntRange(1, 1000), default=None, help="Override the number of epochs.")
-@click.option("--batch-size", type=click.IntRange(1, 4096), default=None, help="Override the batch size.")
+@click.option(
+    "--weights", default=None, help="Pretrained backbone state dict (.pth) or 'torchvision'."
+)
+@click.option(
+    "--epochs", type=click.IntRange(1, 1000), default=None, help="Override the number of epochs."
+)
+@click.option(
+    "--batch-size", type=click.IntRange(1, 4096), default=None, help="Override the batch size."
+)
 @click.option("--seed", type=int, default=None, help="Override the seed.")
-@click.option("--threads", type=click.IntRange(1, 512), default=None, help="CPU threads for PyTorch.")
+@click.option(
+    "--threads", type=click.IntRange(1, 512), default=None, help="CPU threads for PyTorch."
+)
 @click.option("--restart", is_flag=True, help="Ignore last.pt and start from epoch 1.")
 @click.pass_obj
-def train(ctx: Ctx, ws_dir, exp_dir, config, backbone, weights, epochs, batch_size, seed, threads, restart) -> None:
+def train(
+    ctx: Ctx, ws_dir, exp_dir, config, backbone, weights, epochs, batch_size, seed, threads, restart
+) -> None:
     """Train a screener on the workspace's train subset, selecting on val.
 
     Resumes from EXP/last.pt after an interruption unless --restart is given.
@@ -268,8 +407,17 @@ def train(ctx: Ctx, ws_dir, exp_dir, config, backbone, weights, epochs, batch_si
     from .workspace import Workspace
 
     with user_errors(ctx):
-        cfg = load_train_config(config, {"backbone": backbone, "weights": weights, "epochs": epochs,
-                                         "batch_size": batch_size, "seed": seed, "threads": threads})
+        cfg = load_train_config(
+            config,
+            {
+                "backbone": backbone,
+                "weights": weights,
+                "epochs": epochs,
+                "batch_size": batch_size,
+                "seed": seed,
+                "threads": threads,
+            },
+        )
         res = run_training(ctx, Workspace.open(ws_dir), exp_dir, cfg, resume=not restart)
         ctx.console.print(
             f"best epoch {res['best_epoch']} (val balanced accuracy "
@@ -284,6 +432,7 @@ def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> di
 
     state = {"bar": None}
     with progress_bar(ctx, "training") as bar:
+
         def on_start(epochs: int, n: int) -> None:
             bar.update(0, epochs * n, f"training ({epochs} epochs x {n} patches)")
 
@@ -294,34 +443,82 @@ def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> di
             )
 
         state["bar"] = bar
-        return train_fn(ws, exp_dir, cfg, resume=resume, on_start=on_start, on_epoch=on_epoch,
-                        on_batch=lambda n: bar.advance(n))
+        return train_fn(
+            ws,
+            exp_dir,
+            cfg,
+            resume=resume,
+            on_start=on_start,
+            on_epoch=on_epoch,
+            on_batch=lambda n: bar.advance(n),
+        )
 
 
 # ----- evaluate ------------------------------------------------------------------------
 
 
 @cli.command(epilog="Example: trainkit evaluate runs/first --require-recall 0.9")
-@click.argument("exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--split", "subset", type=click.Choice(["test", "val"]), default="test", show_default=True)
-@click.option("--target-recall", type=click.FloatRange(0, 1, min_open=True), default=0.95, show_default=True,
-              help="Screening recall the threshold must reach on validation.")
-@click.option("--require-recall", type=click.FloatRange(0, 1), default=None,
-              help="Gate: exit 3 unless the lower confidence bound of screening recall is at least this.")
-@click.option("--confidence", type=click.FloatRange(0.5, 1, max_open=True), default=0.95, show_default=True)
-@click.option("--interval", type=click.Choice(["wilson", "clopper-pearson"]), default="wilson", show_default=True,
-              help="Confidence interval method for recall.")
-@click.option("--workspace", type=click.Path(exists=True, file_okay=False, path_type=Path), default=None,
-              help="Workspace folder if it moved since training.")
+@click.argument(
+    "exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path)
+)
+@click.option(
+    "--split", "subset", type=click.Choice(["test", "val"]), default="test", show_default=True
+)
+@click.option(
+    "--target-recall",
+    type=click.FloatRange(0, 1, min_open=True),
+    default=0.95,
+    show_default=True,
+    help="Screening recall the threshold must reach on validation.",
+)
+@click.option(
+    "--require-recall",
+    type=click.FloatRange(0, 1),
+    default=None,
+    help="Gate: exit 3 unless the lower confidence bound of screening recall is at least this.",
+)
+@click.option(
+    "--confidence", type=click.FloatRange(0.5, 1, max_open=True), default=0.95, show_default=True
+)
+@click.option(
+    "--interval",
+    type=click.Choice(["wilson", "clopper-pearson"]),
+    default="wilson",
+    show_default=True,
+    help="Confidence interval method for recall.",
+)
+@click.option(
+    "--workspace",
+    type=click.Path(exists=True, file_okay=False, path_type=Path),
+    default=None,
+    help="Workspace folder if it moved since training.",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
 @click.pass_obj
-def evaluate(ctx: Ctx, exp_dir, subset, target_recall, require_recall, confidence, interval, workspace, as_json) -> None:
+def evaluate(
+    ctx: Ctx,
+    exp_dir,
+    subset,
+    target_recall,
+    require_recall,
+    confidence,
+    interval,
+    workspace,
+    as_json,
+) -> None:
     """Evaluate a trained screener: confusion matrix, per-class recall with intervals, threshold, report."""
     from .evaluation import evaluate_experiment
 
     with user_errors(ctx):
-        res = evaluate_experiment(exp_dir, split=subset, target_recall=target_recall, require_recall=require_recall,
-                                  confidence=confidence, interval_method=interval, workspace=workspace)
+        res = evaluate_experiment(
+            exp_dir,
+            split=subset,
+            target_recall=target_recall,
+            require_recall=require_recall,
+            confidence=confidence,
+            interval_method=interval,
+            workspace=workspace,
+        )
     if as_json:
         click.echo(json.dumps(res, indent=2))
     else:
@@ -341,13 +538,22 @@ def print_evaluation(ctx: Ctx, res: dict, out: Path) -> None:
     for n, row in zip(names, res["confusion_matrix"], strict=True):
         t.add_row(n, *[str(v) for v in row])
     ctx.console.print(t)
-    t2 = Table(title="Per class (recall interval: " + res["interval_method"] + f", {res['confidence']:.0%})")
+    t2 = Table(
+        title="Per class (recall interval: "
+        + res["interval_method"]
+        + f", {res['confidence']:.0%})"
+    )
     for col in ("class", "support", "precision", "recall", "interval"):
         t2.add_column(col, justify="right" if col != "class" else "left")
     for c in res["per_class"]:
         ci = c["recall_interval"]
-        t2.add_row(c["name"], str(c["support"]), f"{c['precision']:.3f}", f"{c['recall']:.3f}",
-                   "n/a" if ci["n"] == 0 else f"{ci['low']:.3f}-{ci['high']:.3f} ({ci['k']}/{ci['n']})")
+        t2.add_row(
+            c["name"],
+            str(c["support"]),
+            f"{c['precision']:.3f}",
+            f"{c['recall']:.3f}",
+            "n/a" if ci["n"] == 0 else f"{ci['low']:.3f}-{ci['high']:.3f} ({ci['k']}/{ci['n']})",
+        )
     ctx.console.print(t2)
     s = res["screening"]
     ci = s["recall_interval"]
@@ -365,8 +571,12 @@ def print_evaluation(ctx: Ctx, res: dict, out: Path) -> None:
 
 
 @cli.command(epilog="Example: trainkit export runs/first")
-@click.argument("exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--opset", type=click.IntRange(18, 23), default=18, show_default=True, help="ONNX opset.")
+@click.argument(
+    "exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path)
+)
+@click.option(
+    "--opset", type=click.IntRange(18, 23), default=18, show_default=True, help="ONNX opset."
+)
 @click.pass_obj
 def export(ctx: Ctx, exp_dir: Path, opset: int) -> None:
     """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
@@ -378,7 +588,11 @@ def export(ctx: Ctx, exp_dir: Path, opset: int) -> None:
     ctx.console.print(
         f"wrote {res['model']} ({res['bytes'] / 1e6:.2f} MB, opset {res['opset']}); parity max |dp| "
         f"{res['parity_max_abs_diff']:.1e} on {res['parity_patches']} patches; threshold {res['threshold']:.3f}"
-        + ("" if res["evaluated"] else " (not evaluated yet: run `trainkit evaluate` first for a tuned threshold)")
+        + (
+            ""
+            if res["evaluated"]
+            else " (not evaluated yet: run `trainkit evaluate` first for a tuned threshold)"
+        )
     )
 
 
@@ -388,14 +602,27 @@ def export(ctx: Ctx, exp_dir: Path, opset: int) -> None:
 @cli.command(epilog="Example: trainkit scan runs/first/model.onnx drone-frames/ --out scan-results")
 @click.argument("model", type=click.Path(exists=True, path_type=Path))
 @click.argument("frames", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
-@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
-              help="Output folder for frames.jsonl and overlays (resumed if present).")
-@click.option("--workers", type=click.IntRange(1, 256), default=1, show_default=True, help="Local processes.")
-@click.option("--gsd-mm", type=click.FloatRange(min=0, min_open=True), default=None,
-              help="Frames' scale in mm per pixel (cells then cover the model's patch size in mm).")
+@click.option(
+    "--out",
+    "out_dir",
+    required=True,
+    type=click.Path(file_okay=False, path_type=Path),
+    help="Output folder for frames.jsonl and overlays (resumed if present).",
+)
+@click.option(
+    "--workers", type=click.IntRange(1, 256), default=1, show_default=True, help="Local processes."
+)
+@click.option(
+    "--gsd-mm",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Frames' scale in mm per pixel (cells then cover the model's patch size in mm).",
+)
 @click.option("--no-overlays", is_flag=True, help="Do not write overlay images of flagged frames.")
 @click.pass_obj
-def scan(ctx: Ctx, model: Path, frames, out_dir: Path, workers: int, gsd_mm, no_overlays: bool) -> None:
+def scan(
+    ctx: Ctx, model: Path, frames, out_dir: Path, workers: int, gsd_mm, no_overlays: bool
+) -> None:
     """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl.
 
     MODEL is a model.onnx or an experiment folder holding one.
@@ -406,8 +633,15 @@ def scan(ctx: Ctx, model: Path, frames, out_dir: Path, workers: int, gsd_mm, no_
         model = model / "model.onnx"
     with user_errors(ctx):
         with progress_bar(ctx, "scanning frames") as bar:
-            res = scan_frames(model, list(frames), out_dir, workers=workers, gsd_mm=gsd_mm,
-                              overlays=not no_overlays, progress=lambda d, n: bar.update(d, n))
+            res = scan_frames(
+                model,
+                list(frames),
+                out_dir,
+                workers=workers,
+                gsd_mm=gsd_mm,
+                overlays=not no_overlays,
+                progress=lambda d, n: bar.update(d, n),
+            )
     ctx.console.print(
         f"{res['scanned']} frames scanned ({res['resumed_skip']} already done), {res['flagged']} flagged, "
         f"{res['unreadable']} unreadable -> {res['frames_file']}"
@@ -443,7 +677,13 @@ def status(ctx: Ctx, path: Path, as_json: bool) -> None:
 
 def _experiment_status(path: Path) -> dict:
     info: dict = {"experiment": str(path)}
-    for name in ("checkpoint.pt", "history.csv", "evaluation/metrics.json", "evaluation/report.html", "model.onnx"):
+    for name in (
+        "checkpoint.pt",
+        "history.csv",
+        "evaluation/metrics.json",
+        "evaluation/report.html",
+        "model.onnx",
+    ):
         info[name] = "present" if (path / name).exists() else "missing"
     if (path / "experiment.json").exists():
         e = json.loads((path / "experiment.json").read_text())
@@ -452,7 +692,9 @@ def _experiment_status(path: Path) -> dict:
     if (path / "evaluation/metrics.json").exists():
         m = json.loads((path / "evaluation/metrics.json").read_text())
         s = m["screening"]
-        info["screening_recall"] = f"{s['recall']:.3f} [{s['recall_interval']['low']:.3f}, {s['recall_interval']['high']:.3f}]"
+        info["screening_recall"] = (
+            f"{s['recall']:.3f} [{s['recall_interval']['low']:.3f}, {s['recall_interval']['high']:.3f}]"
+        )
         info["threshold"] = s["threshold"]
     return info
 
@@ -461,11 +703,26 @@ def _experiment_status(path: Path) -> dict:
 
 
 @cli.command(epilog="Example: trainkit demo --out demo-output")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=Path("demo-output"),
-              show_default=True, help="Experiment folder for everything the demo makes.")
-@click.option("--epochs", type=click.IntRange(1, 1000), default=None, help="Override the demo recipe's epochs.")
-@click.option("--photos", type=click.IntRange(6, 100000), default=None,
-              help="Use only the first N photos of the tiny dataset (quicker, noisier).")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=Path("demo-output"),
+    show_default=True,
+    help="Experiment folder for everything the demo makes.",
+)
+@click.option(
+    "--epochs",
+    type=click.IntRange(1, 1000),
+    default=None,
+    help="Override the demo recipe's epochs.",
+)
+@click.option(
+    "--photos",
+    type=click.IntRange(6, 100000),
+    default=None,
+    help="Use only the first N photos of the tiny dataset (quicker, noisier).",
+)
 @click.pass_obj
 def demo(ctx: Ctx, out_dir: Path, epochs, photos) -> None:
     """Run the whole chain on the shipped synthetic tiny dataset, end to end, on CPU.

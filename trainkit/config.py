@@ -61,7 +61,9 @@ class TrainConfig(_Strict):
         from .models import BACKBONES
 
         if v not in BACKBONES:
-            raise ValueError(f"unknown backbone {v!r}; choose one of: {', '.join(sorted(BACKBONES))}")
+            raise ValueError(
+                f"unknown backbone {v!r}; choose one of: {', '.join(sorted(BACKBONES))}"
+            )
         return v
 
 
@@ -76,15 +78,23 @@ def _format_errors(exc: ValidationError, source: str) -> str:
     return "\n".join(lines)
 
 
-def load_train_config(name_or_path: str | Path = "default", overrides: dict | None = None) -> TrainConfig:
+def load_train_config(
+    name_or_path: str | Path = "default", overrides: dict | None = None
+) -> TrainConfig:
     """Load a built-in recipe by name or a YAML file by path, then apply overrides."""
     source = str(name_or_path)
     if source in BUILTIN_RECIPES:
-        text = resources.files("trainkit").joinpath("configs", "train", f"{source}.yaml").read_text("utf-8")
+        text = (
+            resources.files("trainkit")
+            .joinpath("configs", "train", f"{source}.yaml")
+            .read_text("utf-8")
+        )
     else:
         p = Path(name_or_path)
         if not p.is_file():
-            raise ConfigError(f"config {source!r} is neither a built-in recipe ({', '.join(BUILTIN_RECIPES)}) nor a file")
+            raise ConfigError(
+                f"config {source!r} is neither a built-in recipe ({', '.join(BUILTIN_RECIPES)}) nor a file"
+            )
         text = p.read_text(encoding="utf-8")
     try:
         data = yaml.safe_load(text) or {}

@@ -47,7 +47,9 @@ class PatchSet:
         return len(self.labels)
 
 
-def load_patch_set(workspace, subset: str, class_set: ClassSet, *, input_px: int | None = None) -> PatchSet:
+def load_patch_set(
+    workspace, subset: str, class_set: ClassSet, *, input_px: int | None = None
+) -> PatchSet:
     """Read the labelled crops of one split subset ('train', 'val', 'test') into memory.
 
     Patches whose current label is "unsure" are left out.
@@ -69,7 +71,9 @@ def load_patch_set(workspace, subset: str, class_set: ClassSet, *, input_px: int
         patch_ids=np.array([r.id for r in recs], dtype=np.int64),
         photos=[r.photo for r in recs],
         groups=[r.group for r in recs],
-        patch_mm=np.array([np.nan if r.patch_mm is None else r.patch_mm for r in recs], dtype=float),
+        patch_mm=np.array(
+            [np.nan if r.patch_mm is None else r.patch_mm for r in recs], dtype=float
+        ),
     )
 
 
@@ -86,9 +90,13 @@ def build_photometric(cfg: AugmentConfig):
         A.RandomGamma(gamma_limit=(cfg.gamma[0] * 100, cfg.gamma[1] * 100), p=0.5),
     ]
     if cfg.hue_saturation:
-        ops.append(A.HueSaturationValue(hue_shift_limit=6, sat_shift_limit=12, val_shift_limit=0, p=0.4))
+        ops.append(
+            A.HueSaturationValue(hue_shift_limit=6, sat_shift_limit=12, val_shift_limit=0, p=0.4)
+        )
     if cfg.shadow > 0:
-        ops.append(A.RandomShadow(shadow_roi=(0, 0, 1, 1), shadow_intensity_range=(0.2, 0.5), p=cfg.shadow))
+        ops.append(
+            A.RandomShadow(shadow_roi=(0, 0, 1, 1), shadow_intensity_range=(0.2, 0.5), p=cfg.shadow)
+        )
     if cfg.blur > 0:
         ops.append(A.GaussianBlur(blur_limit=(3, 5), p=cfg.blur))
     if cfg.noise > 0:
@@ -117,7 +125,9 @@ class Augmenter:
         self.perms = {e: class_set.d4_permutation(*e) for e in self.elements}
         self.photometric = build_photometric(cfg) if cfg.photometric > 0 else None
 
-    def __call__(self, image: np.ndarray, label: int, rng: np.random.Generator) -> tuple[np.ndarray, int]:
+    def __call__(
+        self, image: np.ndarray, label: int, rng: np.random.Generator
+    ) -> tuple[np.ndarray, int]:
         k, flip = self.elements[int(rng.integers(len(self.elements)))]
         out = apply_d4(image, k, flip)
         new_label = int(self.perms[(k, flip)][label])

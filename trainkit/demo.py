@@ -33,9 +33,14 @@ def _ensure_dataset(ctx, out: Path) -> Path:
 
     target = out / "tiny_dataset"
     if not (target / "labels.csv").is_file():
-        ctx.console.print("tiny_dataset/ not found beside the package; generating it (same command, same files)")
+        ctx.console.print(
+            "tiny_dataset/ not found beside the package; generating it (same command, same files)"
+        )
         write_dataset(
-            target, n_photos=TINY_DATASET["n_photos"], seed=TINY_DATASET["seed"], tile_px=TINY_DATASET["tile_px"],
+            target,
+            n_photos=TINY_DATASET["n_photos"],
+            seed=TINY_DATASET["seed"],
+            tile_px=TINY_DATASET["tile_px"],
             options=SynthOptions(height=TINY_DATASET["height"], width=TINY_DATASET["width"]),
             class_set=load_class_set("orientation"),
         )
@@ -46,7 +51,9 @@ def _step(ctx, n: int, text: str) -> None:
     ctx.console.rule(f"[bold]{n}/7 {text}")
 
 
-def run_demo(ctx, out_dir: str | Path, *, epochs: int | None = None, photos: int | None = None) -> dict:
+def run_demo(
+    ctx, out_dir: str | Path, *, epochs: int | None = None, photos: int | None = None
+) -> dict:
     """Run tile -> labels -> split -> train -> evaluate -> export -> scan; returns the headline figures."""
     from PIL import Image
 
@@ -76,12 +83,21 @@ def run_demo(ctx, out_dir: str | Path, *, epochs: int | None = None, photos: int
     files = list_images([data / "photos"])
     if photos:
         files = files[:photos]
-    ws = Workspace.create(out / "workspace", class_set=load_class_set("orientation"), tile_px=TINY_DATASET["tile_px"])
+    ws = Workspace.create(
+        out / "workspace", class_set=load_class_set("orientation"), tile_px=TINY_DATASET["tile_px"]
+    )
     with progress_bar(ctx, "tiling photos", len(files)) as bar:
-        tiled = tile_into_workspace(files, ws, sidecar=read_sidecar(data / "scale.csv"), group_by="photo",
-                                    progress=lambda i, n, name: bar.update(i, n))
-    ctx.console.print(f"{tiled['photos_added']} photos, {tiled['patches_added']} patches "
-                      f"({tiled['patches_flagged']} with quality flags)")
+        tiled = tile_into_workspace(
+            files,
+            ws,
+            sidecar=read_sidecar(data / "scale.csv"),
+            group_by="photo",
+            progress=lambda i, n, name: bar.update(i, n),
+        )
+    ctx.console.print(
+        f"{tiled['photos_added']} photos, {tiled['patches_added']} patches "
+        f"({tiled['patches_flagged']} with quality flags)"
+    )
 
     _step(ctx, 2, "load the shipped labels")
     labels_csv = data / "labels.csv"
@@ -89,11 +105,15 @@ def run_demo(ctx, out_dir: str | Path, *, epochs: int | None = None, photos: int
         keep = {f.name for f in files}
         lines = labels_csv.read_text(encoding="utf-8").splitlines()
         labels_csv = out / "labels-subset.csv"
-        labels_csv.write_text("\n".join([lines[0], *[ln for ln in lines[1:] if ln.split(",")[0] in keep]]) + "\n",
-                              encoding="utf-8")
+        labels_csv.write_text(
+            "\n".join([lines[0], *[ln for ln in lines[1:] if ln.split(",")[0] in keep]]) + "\n",
+            encoding="utf-8",
+        )
     if not any(r.labelled for r in ws.patches()):
         n = import_labels_csv(ws, labels_csv, reviewer="synth-ground-truth")
-        ctx.console.print(f"{n} labels loaded (ambiguous patches are stored as 'unsure' and kept out of training)")
+        ctx.console.print(
+            f"{n} labels loaded (ambiguous patches are stored as 'unsure' and kept out of training)"
+        )
     else:
         ctx.console.print("labels already loaded (resumed demo)")
 
@@ -125,7 +145,9 @@ def run_demo(ctx, out_dir: str | Path, *, epochs: int | None = None, photos: int
             ph = generate_photo(seed, SynthOptions(height=512, width=768, scene=scene))
             Image.fromarray(ph.image).save(path, quality=90)
     with progress_bar(ctx, "scanning frames", len(FRAME_SEEDS)) as bar:
-        scanned = scan_frames(exported["model"], [frames_dir], out / "scan", progress=lambda d, n: bar.update(d, n))
+        scanned = scan_frames(
+            exported["model"], [frames_dir], out / "scan", progress=lambda d, n: bar.update(d, n)
+        )
 
     seconds = time.perf_counter() - t_start
     s = metrics["screening"]
@@ -151,7 +173,9 @@ def run_demo(ctx, out_dir: str | Path, *, epochs: int | None = None, photos: int
     ctx.console.print(f"  model         {out / 'model.onnx'}")
     ctx.console.print(f"  metrics       {out / 'evaluation' / 'metrics.json'}")
     ctx.console.print(f"  report        {out / 'evaluation' / 'report.html'}")
-    ctx.console.print(f"  scan results  {out / 'scan' / 'frames.jsonl'} (overlays in {out / 'scan' / 'overlays'})")
+    ctx.console.print(
+        f"  scan results  {out / 'scan' / 'frames.jsonl'} (overlays in {out / 'scan' / 'overlays'})"
+    )
     ctx.console.print(f"  workspace     {out / 'workspace'}")
     ctx.console.print(f"[dim]{metrics['caution']}[/dim]")
     return headline

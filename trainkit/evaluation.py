@@ -47,13 +47,31 @@ def _write_predictions(path: Path, data: PatchSet, probs: np.ndarray, class_set:
     names = class_set.names
     with tmp.open("w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh)
-        w.writerow(["patch_id", "photo", "group", "true", "predicted", *[f"p_{n}" for n in names],
-                    "screening_probability"])
+        w.writerow(
+            [
+                "patch_id",
+                "photo",
+                "group",
+                "true",
+                "predicted",
+                *[f"p_{n}" for n in names],
+                "screening_probability",
+            ]
+        )
         pred = probs.argmax(1)
         scr = screening_probability(probs)
         for i in range(len(data)):
-            w.writerow([int(data.patch_ids[i]), data.photos[i], data.groups[i], names[data.labels[i]],
-                        names[pred[i]], *[f"{p:.9g}" for p in probs[i]], repr(float(scr[i]))])
+            w.writerow(
+                [
+                    int(data.patch_ids[i]),
+                    data.photos[i],
+                    data.groups[i],
+                    names[data.labels[i]],
+                    names[pred[i]],
+                    *[f"{p:.9g}" for p in probs[i]],
+                    repr(float(scr[i])),
+                ]
+            )
     os.replace(tmp, path)
 
 
@@ -114,14 +132,21 @@ def evaluate_experiment(
     labels = list(range(nc))
     cm = M.confusion_matrix(y, pred, labels=labels)
     per_class = M.per_class_report(
-        y, pred, labels=labels, class_names=list(class_set.names), confidence=confidence,
+        y,
+        pred,
+        labels=labels,
+        class_names=list(class_set.names),
+        confidence=confidence,
         method=interval_method,
     )
     p_crack = screening_probability(probs)
     is_crack = y != 0
     screen = M.screening_scores(is_crack, p_crack, threshold=threshold)
     recall_ci = M.recall_interval(
-        int(screen["tp"]), int(screen["tp"] + screen["fn"]), confidence=confidence, method=interval_method
+        int(screen["tp"]),
+        int(screen["tp"] + screen["fn"]),
+        confidence=confidence,
+        method=interval_method,
     )
     conf = probs.max(1)
     ece = M.expected_calibration_error(conf, pred == y, n_bins=10)
@@ -155,7 +180,10 @@ def evaluate_experiment(
         "screening": {
             "threshold": float(threshold),
             "threshold_source": threshold_source,
-            **{k: (float(v) if isinstance(v, float | np.floating) else int(v)) for k, v in screen.items()},
+            **{
+                k: (float(v) if isinstance(v, float | np.floating) else int(v))
+                for k, v in screen.items()
+            },
             "recall_interval": recall_ci.to_dict(),
         },
         "expected_calibration_error": float(ece),
@@ -169,7 +197,9 @@ def evaluate_experiment(
     tmp = out / "metrics.json.tmp"
     tmp.write_text(json.dumps(result, indent=2, default=_json_default), encoding="utf-8")
     os.replace(tmp, out / "metrics.json")
-    write_report(out, result, data=data, probs=probs, class_set=class_set, experiment=ckpt["experiment"])
+    write_report(
+        out, result, data=data, probs=probs, class_set=class_set, experiment=ckpt["experiment"]
+    )
     return result
 
 

@@ -64,7 +64,9 @@ def _sample_patches(ckpt: dict, input_px: int, n: int = 32) -> np.ndarray:
     return rng.integers(0, 256, size=(8, input_px, input_px, 3), dtype=np.uint8)
 
 
-def export_experiment(exp_dir: str | Path, *, opset: int = DEFAULT_OPSET, out: str | Path | None = None) -> dict:
+def export_experiment(
+    exp_dir: str | Path, *, opset: int = DEFAULT_OPSET, out: str | Path | None = None
+) -> dict:
     """Export ``EXP/checkpoint.pt`` to ``EXP/model.onnx`` (or ``out``); returns a summary.
 
     Raises:
@@ -110,7 +112,9 @@ def export_experiment(exp_dir: str | Path, *, opset: int = DEFAULT_OPSET, out: s
         "patch_px": str(input_px),
         "patch_mm": json.dumps(None if not pmm else round(float(np.mean(pmm)), 3)),
         "threshold": json.dumps(metrics["screening"]["threshold"] if metrics else 0.5),
-        "threshold_source": metrics["screening"]["threshold_source"] if metrics else "default 0.5 (not evaluated)",
+        "threshold_source": metrics["screening"]["threshold_source"]
+        if metrics
+        else "default 0.5 (not evaluated)",
         "gsd_mm_range": json.dumps(experiment.get("gsd_mm_range")),
         "patch_mm_range": json.dumps(pmm),
         "kit_version": __version__,

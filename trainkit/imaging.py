@@ -97,7 +97,9 @@ def list_images(paths: list[Path]) -> list[Path]:
         p = Path(p)
         if p.is_dir():
             out.extend(
-                sorted(q for q in p.rglob("*") if q.is_file() and q.suffix.lower() in IMAGE_SUFFIXES)
+                sorted(
+                    q for q in p.rglob("*") if q.is_file() and q.suffix.lower() in IMAGE_SUFFIXES
+                )
             )
         elif p.is_file():
             out.append(p)

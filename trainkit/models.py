@@ -54,7 +54,9 @@ class TinyCNN(nn.Module):
             layers += stage(w[i - 1], w[i], pool=i < len(w) - 1)
         self.features = nn.Sequential(*layers)
         self.pool = nn.AdaptiveAvgPool2d(1)
-        self.classifier = nn.Sequential(nn.Flatten(), nn.Dropout(0.2), nn.Linear(w[-1], num_classes))
+        self.classifier = nn.Sequential(
+            nn.Flatten(), nn.Dropout(0.2), nn.Linear(w[-1], num_classes)
+        )
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self.classifier(self.pool(self.features(x)))
@@ -131,7 +133,9 @@ def create_model(name: str, num_classes: int, *, weights: str | Path | None = No
             unusable weights.
     """
     if name not in BACKBONES:
-        raise ValueError(f"unknown backbone {name!r}; choose one of: {', '.join(sorted(BACKBONES))}")
+        raise ValueError(
+            f"unknown backbone {name!r}; choose one of: {', '.join(sorted(BACKBONES))}"
+        )
     if num_classes < 2:
         raise ValueError(f"num_classes must be at least 2, got {num_classes}")
     model = BACKBONES[name](num_classes)
@@ -145,7 +149,9 @@ def _torchvision_state_dict(name: str) -> dict[str, torch.Tensor]:
 
     enum_name = _TORCHVISION_WEIGHTS.get(name)
     if enum_name is None:
-        raise ValueError(f"backbone {name!r} has no torchvision pretrained weights; use a weights file")
+        raise ValueError(
+            f"backbone {name!r} has no torchvision pretrained weights; use a weights file"
+        )
     weights = getattr(tvm, enum_name).DEFAULT
     try:
         return weights.get_state_dict(progress=False)
@@ -174,8 +180,14 @@ def load_backbone_weights(model: nn.Module, name: str, weights: str | Path) -> d
             # weights_only=True: a weights file never runs code when loaded.
             state = torch.load(path, map_location="cpu", weights_only=True)
         except Exception as exc:
-            raise ValueError(f"weights file {path.name} is not a loadable state dict ({exc})") from None
-        if isinstance(state, dict) and "state_dict" in state and isinstance(state["state_dict"], dict):
+            raise ValueError(
+                f"weights file {path.name} is not a loadable state dict ({exc})"
+            ) from None
+        if (
+            isinstance(state, dict)
+            and "state_dict" in state
+            and isinstance(state["state_dict"], dict)
+        ):
             state = state["state_dict"]
         if not isinstance(state, dict):
             raise ValueError(f"weights file {path.name} does not hold a state dict")

@@ -33,8 +33,15 @@ def plot_confusion(cm: np.ndarray, class_names: list[str], path: Path) -> None:
     im = ax.imshow(norm, cmap="cividis", vmin=0, vmax=1)
     for i in range(n):
         for j in range(n):
-            ax.text(j, i, f"{cm[i, j]}\n{norm[i, j]:.0%}", ha="center", va="center", fontsize=8,
-                    color="black" if norm[i, j] > 0.55 else "white")
+            ax.text(
+                j,
+                i,
+                f"{cm[i, j]}\n{norm[i, j]:.0%}",
+                ha="center",
+                va="center",
+                fontsize=8,
+                color="black" if norm[i, j] > 0.55 else "white",
+            )
     ax.set_xticks(range(n), class_names, rotation=35, ha="right")
     ax.set_yticks(range(n), class_names)
     ax.set_xlabel("predicted class")
@@ -46,7 +53,9 @@ def plot_confusion(cm: np.ndarray, class_names: list[str], path: Path) -> None:
     plt.close(fig)
 
 
-def plot_screening_curves(is_crack: np.ndarray, p_crack: np.ndarray, threshold: float, path: Path) -> None:
+def plot_screening_curves(
+    is_crack: np.ndarray, p_crack: np.ndarray, threshold: float, path: Path
+) -> None:
     """Precision-recall and ROC curves of crack vs none with the operating point marked."""
     from sklearn.metrics import precision_recall_curve, roc_curve
 
@@ -68,16 +77,29 @@ def plot_screening_curves(is_crack: np.ndarray, p_crack: np.ndarray, threshold: 
     else:
         for a in (a1, a2):
             a.text(0.5, 0.5, "needs both crack and no-crack patches", ha="center")
-    a1.set(xlabel="recall (cracks found)", ylabel="precision", xlim=(0, 1.02), ylim=(0, 1.02),
-           title="Precision-recall, crack vs none")
+    a1.set(
+        xlabel="recall (cracks found)",
+        ylabel="precision",
+        xlim=(0, 1.02),
+        ylim=(0, 1.02),
+        title="Precision-recall, crack vs none",
+    )
     a2.plot([0, 1], [0, 1], ":", color="grey")
-    a2.set(xlabel="false-alarm rate", ylabel="recall", xlim=(0, 1.02), ylim=(0, 1.02), title="ROC, crack vs none")
+    a2.set(
+        xlabel="false-alarm rate",
+        ylabel="recall",
+        xlim=(0, 1.02),
+        ylim=(0, 1.02),
+        title="ROC, crack vs none",
+    )
     fig.tight_layout()
     fig.savefig(path)
     plt.close(fig)
 
 
-def contact_sheet(images: np.ndarray, captions: list[str], path: Path, *, cols: int = 8, scale: int = 1) -> None:
+def contact_sheet(
+    images: np.ndarray, captions: list[str], path: Path, *, cols: int = 8, scale: int = 1
+) -> None:
     """A grid of patches with a caption under each, saved as PNG."""
     from PIL import Image, ImageDraw
 
@@ -107,7 +129,9 @@ def _img_tag(path: Path, alt: str) -> str:
     return f'<img src="data:image/png;base64,{data}" alt="{html.escape(alt)}">'
 
 
-def write_report(out: Path, result: dict, *, data, probs: np.ndarray, class_set: ClassSet, experiment: dict) -> Path:
+def write_report(
+    out: Path, result: dict, *, data, probs: np.ndarray, class_set: ClassSet, experiment: dict
+) -> Path:
     """Write plots and ``report.html`` (images embedded, one self-contained file)."""
     names = list(class_set.names)
     cm = np.array(result["confusion_matrix"])
@@ -118,12 +142,18 @@ def write_report(out: Path, result: dict, *, data, probs: np.ndarray, class_set:
     plot_screening_curves(is_crack, p_crack, thr, out / "screening_curves.png")
     missed = np.flatnonzero(is_crack & (p_crack < thr))
     missed = missed[np.argsort(p_crack[missed])][:48]
-    contact_sheet(data.images[missed], [f"{names[data.labels[i]][:9]} {p_crack[i]:.2f}" for i in missed],
-                  out / "missed_cracks.png")
+    contact_sheet(
+        data.images[missed],
+        [f"{names[data.labels[i]][:9]} {p_crack[i]:.2f}" for i in missed],
+        out / "missed_cracks.png",
+    )
     false_alarms = np.flatnonzero(~is_crack & (p_crack >= thr))
     false_alarms = false_alarms[np.argsort(-p_crack[false_alarms])][:48]
-    contact_sheet(data.images[false_alarms], [f"none {p_crack[i]:.2f}" for i in false_alarms],
-                  out / "false_alarms.png")
+    contact_sheet(
+        data.images[false_alarms],
+        [f"none {p_crack[i]:.2f}" for i in false_alarms],
+        out / "false_alarms.png",
+    )
 
     s = result["screening"]
     ci = s["recall_interval"]
@@ -139,7 +169,9 @@ def write_report(out: Path, result: dict, *, data, probs: np.ndarray, class_set:
         cls = "pass" if gate["passed"] else "fail"
         gate_html = f'<p class="verdict {cls}">{html.escape(gate["verdict"])}</p>'
     scale = experiment.get("gsd_mm_range")
-    scale_txt = f"{scale[0]:.3f}-{scale[1]:.3f} mm per pixel" if scale else "unknown (photos had no scale)"
+    scale_txt = (
+        f"{scale[0]:.3f}-{scale[1]:.3f} mm per pixel" if scale else "unknown (photos had no scale)"
+    )
     page = f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>trainkit evaluation</title>
 <style>
@@ -150,25 +182,25 @@ td:first-child {{ text-align: left; }} .caution {{ border-left: 6px solid #c2410
 .verdict {{ font-size: 1.2em; font-weight: 600; padding: .6em 1em; }} .pass {{ background: #e6f4ea; }} .fail {{ background: #fde8e8; }}
 .headline {{ font-size: 1.15em; }} img {{ max-width: 100%; border: 1px solid #ddd; margin: .5em 0; }}
 </style></head><body>
-<h1>Crack screener evaluation — {html.escape(result['split'])} subset</h1>
-<p class="caution"><strong>Read this first.</strong> {html.escape(result['caution'])}</p>
+<h1>Crack screener evaluation — {html.escape(result["split"])} subset</h1>
+<p class="caution"><strong>Read this first.</strong> {html.escape(result["caution"])}</p>
 {gate_html}
-<p class="headline">Screening recall (crack patches flagged) at threshold {s['threshold']:.3f}:
-<strong>{s['recall']:.3f}</strong>, {ci['confidence']:.0%} interval {_fmt_ci(ci)} ({method}, {ci['k']}/{ci['n']}).
-False-alarm rate {s['false_alarm_rate']:.3f} ({s['fp']} of {s['fp'] + s['tn']} clean patches flagged).</p>
-<p>Threshold chosen on the {html.escape(s['threshold_source'])}. Evaluated on {result['patches']} patches from
-{result['photos']} photos that the model never saw in training. Training scale: {scale_txt}.
-Expected calibration error (10 bins): {result['expected_calibration_error']:.3f}. Accuracy over all classes: {result['accuracy']:.3f}.</p>
+<p class="headline">Screening recall (crack patches flagged) at threshold {s["threshold"]:.3f}:
+<strong>{s["recall"]:.3f}</strong>, {ci["confidence"]:.0%} interval {_fmt_ci(ci)} ({method}, {ci["k"]}/{ci["n"]}).
+False-alarm rate {s["false_alarm_rate"]:.3f} ({s["fp"]} of {s["fp"] + s["tn"]} clean patches flagged).</p>
+<p>Threshold chosen on the {html.escape(s["threshold_source"])}. Evaluated on {result["patches"]} patches from
+{result["photos"]} photos that the model never saw in training. Training scale: {scale_txt}.
+Expected calibration error (10 bins): {result["expected_calibration_error"]:.3f}. Accuracy over all classes: {result["accuracy"]:.3f}.</p>
 <h2>Per class</h2>
-<table><tr><th>class</th><th>support</th><th>precision</th><th>recall</th><th>recall {ci['confidence']:.0%} interval ({method})</th><th>F1</th></tr>
+<table><tr><th>class</th><th>support</th><th>precision</th><th>recall</th><th>recall {ci["confidence"]:.0%} interval ({method})</th><th>F1</th></tr>
 {rows}</table>
-<h2>Confusion matrix</h2>{_img_tag(out / 'confusion_matrix.png', 'confusion matrix')}
-<h2>Screening curves</h2>{_img_tag(out / 'screening_curves.png', 'precision-recall and ROC curves')}
+<h2>Confusion matrix</h2>{_img_tag(out / "confusion_matrix.png", "confusion matrix")}
+<h2>Screening curves</h2>{_img_tag(out / "screening_curves.png", "precision-recall and ROC curves")}
 <h2>Missed cracks (lowest screening probability first)</h2>
-{_img_tag(out / 'missed_cracks.png', 'missed cracks') or '<p>None at this threshold.</p>'}
+{_img_tag(out / "missed_cracks.png", "missed cracks") or "<p>None at this threshold.</p>"}
 <h2>False alarms (highest screening probability first)</h2>
-{_img_tag(out / 'false_alarms.png', 'false alarms') or '<p>None at this threshold.</p>'}
-<p><small>Training-data digest {html.escape(str(result.get('data_digest')))}; checkpoint epoch {result.get('checkpoint_epoch')}.
+{_img_tag(out / "false_alarms.png", "false alarms") or "<p>None at this threshold.</p>"}
+<p><small>Training-data digest {html.escape(str(result.get("data_digest")))}; checkpoint epoch {result.get("checkpoint_epoch")}.
 Every figure can be recomputed from predictions.csv.</small></p>
 </body></html>
 """

@@ -45,7 +45,9 @@ def read_done(path: Path) -> set[str]:
     return done
 
 
-def _frame_record(screener: Screener, path: Path, *, gsd_mm: float | None, overlay_dir: Path | None) -> dict:
+def _frame_record(
+    screener: Screener, path: Path, *, gsd_mm: float | None, overlay_dir: Path | None
+) -> dict:
     t0 = time.perf_counter()
     try:
         rgb = read_rgb(path)
@@ -63,8 +65,11 @@ def _frame_record(screener: Screener, path: Path, *, gsd_mm: float | None, overl
         "max_probability": round(float(cm.probabilities.max()), 4),
         "threshold": cm.threshold,
         "flagged_boxes": [
-            {"box": [int(v) for v in cm.boxes[r, c]], "probability": round(float(cm.probabilities[r, c]), 4),
-             "class": cm.class_names[int(cm.labels[r, c])]}
+            {
+                "box": [int(v) for v in cm.boxes[r, c]],
+                "probability": round(float(cm.probabilities[r, c]), 4),
+                "class": cm.class_names[int(cm.labels[r, c])],
+            }
             for r, c in zip(*cm.flagged.nonzero(), strict=True)
         ],
         "seconds": round(time.perf_counter() - t0, 4),
@@ -86,7 +91,8 @@ def _init_worker(model: str, threads: int) -> None:
 
 def _work(args: tuple[str, float | None, str | None]) -> dict:
     path, gsd, ov = args
-    assert _WORKER is not None
+    if _WORKER is None:  # pragma: no cover - the pool initializer always runs first
+        raise RuntimeError("scan worker was not initialised")
     return _frame_record(_WORKER, Path(path), gsd_mm=gsd, overlay_dir=Path(ov) if ov else None)
 
 
@@ -124,8 +130,13 @@ def scan_frames(
     frames = list_images(inputs)
     todo = [p for p in frames if str(p) not in done]
     screener = Screener(model)  # validates the model before any work starts
-    counts = {"frames": len(frames), "resumed_skip": len(frames) - len(todo), "scanned": 0, "flagged": 0,
-              "unreadable": 0}
+    counts = {
+        "frames": len(frames),
+        "resumed_skip": len(frames) - len(todo),
+        "scanned": 0,
+        "flagged": 0,
+        "unreadable": 0,
+    }
     t0 = time.perf_counter()
     with frames_path.open("a", encoding="utf-8") as fh:
 
@@ -144,7 +155,9 @@ def scan_frames(
                 write(_frame_record(screener, p, gsd_mm=gsd_mm, overlay_dir=overlay_dir))
         else:
             threads = max(1, (os.cpu_count() or 1) // workers)
-            with ProcessPoolExecutor(workers, initializer=_init_worker, initargs=(str(model), threads)) as pool:
+            with ProcessPoolExecutor(
+                workers, initializer=_init_worker, initargs=(str(model), threads)
+            ) as pool:
                 jobs = [(str(p), gsd_mm, str(overlay_dir) if overlay_dir else None) for p in todo]
                 for rec in pool.map(_work, jobs, chunksize=4):
                     write(rec)

@@ -28,8 +28,14 @@ _REQUIRED_META = ("class_names", "patch_px", "threshold")
 
 #: Overlay colours per class index (RGB); class 0 is never drawn.
 _PALETTE = [
-    (0, 0, 0), (230, 85, 13), (49, 130, 189), (117, 107, 177), (49, 163, 84), (222, 45, 38),
-    (253, 174, 107), (158, 202, 225),
+    (235, 235, 235),
+    (230, 85, 13),
+    (49, 130, 189),
+    (117, 107, 177),
+    (49, 163, 84),
+    (222, 45, 38),
+    (253, 174, 107),
+    (158, 202, 225),
 ]
 
 
@@ -102,9 +108,21 @@ class CrackMap:
                 x0, y0, x1, y1 = (int(v) for v in self.boxes[r, c])
                 colour = _PALETTE[int(self.labels[r, c]) % len(_PALETTE)]
                 a = int(255 * alpha * (0.5 + 0.5 * float(self.probabilities[r, c])))
-                draw.rectangle([x0, y0, x1 - 1, y1 - 1], fill=(*colour, a // 2), outline=(*colour, 255), width=2)
-                name = self.class_names[int(self.labels[r, c])]
-                draw.text((x0 + 3, y0 + 2), f"{name} {self.probabilities[r, c]:.2f}", fill=(255, 255, 255, 255))
+                draw.rectangle(
+                    [x0, y0, x1 - 1, y1 - 1],
+                    fill=(*colour, a // 2),
+                    outline=(*colour, 255),
+                    width=2,
+                )
+                label = int(self.labels[r, c])
+                # A cell can be flagged while "none" is its single likeliest class: the
+                # crack classes together outweigh the threshold. Say so rather than "none".
+                name = self.class_names[label] if label != 0 else "crack?"
+                draw.text(
+                    (x0 + 3, y0 + 2),
+                    f"{name} {self.probabilities[r, c]:.2f}",
+                    fill=(255, 255, 255, 255),
+                )
         return Image.alpha_composite(base, layer).convert("RGB")
 
 
@@ -131,40 +149,56 @@ class Screener:
         if self.threads:
             opts.intra_op_num_threads = int(self.threads)
         try:
-            self._session = ort.InferenceSession(str(self.path), opts, providers=["CPUExecutionProvider"])
+            self._session = ort.InferenceSession(
+                str(self.path), opts, providers=["CPUExecutionProvider"]
+            )
         except Exception as exc:
             raise ScreenerError(f"{self.path.name} is not a loadable ONNX model ({exc})") from None
         meta = dict(self._session.get_modelmeta().custom_metadata_map)
         missing = [k for k in _REQUIRED_META if k not in meta]
         if missing:
-            raise ScreenerError(f"{self.path.name} lacks trainkit metadata {missing}; export it with `trainkit export`")
+            raise ScreenerError(
+                f"{self.path.name} lacks trainkit metadata {missing}; export it with `trainkit export`"
+            )
         inputs = self._session.get_inputs()
         if len(inputs) != 1 or inputs[0].name != "image" or inputs[0].type != "tensor(uint8)":
-            raise ScreenerError(f"{self.path.name}: expected one uint8 input named 'image', got "
-                                f"{[(i.name, i.type) for i in inputs]}")
+            raise ScreenerError(
+                f"{self.path.name}: expected one uint8 input named 'image', got "
+                f"{[(i.name, i.type) for i in inputs]}"
+            )
         self.class_names: list[str] = json.loads(meta["class_names"])
         self.patch_px = int(meta["patch_px"])
         self.threshold = float(json.loads(meta["threshold"]))
         pmm = json.loads(meta.get("patch_mm", "null"))
         self.patch_mm: float | None = None if pmm is None else float(pmm)
         if not self.class_names or self.class_names[0] != "none":
-            raise ScreenerError(f"{self.path.name}: class 0 must be 'none', got {self.class_names[:1]}")
+            raise ScreenerError(
+                f"{self.path.name}: class 0 must be 'none', got {self.class_names[:1]}"
+            )
         return meta
 
     def predict(self, patches: np.ndarray, *, batch_size: int = 64) -> np.ndarray:
         """Class probabilities (N, C) for uint8 patches (N, S, S, 3)."""
         patches = np.asarray(patches)
-        if patches.dtype != np.uint8 or patches.ndim != 4 or patches.shape[1:] != (self.patch_px, self.patch_px, 3):
+        if (
+            patches.dtype != np.uint8
+            or patches.ndim != 4
+            or patches.shape[1:] != (self.patch_px, self.patch_px, 3)
+        ):
             raise ScreenerError(
                 f"expected uint8 patches of shape (n, {self.patch_px}, {self.patch_px}, 3), "
                 f"got {patches.dtype} {patches.shape}"
             )
         out = [np.zeros((0, len(self.class_names)), dtype=np.float32)]
         for i in range(0, len(patches), batch_size):
-            out.append(self._session.run(["probabilities"], {"image": patches[i : i + batch_size]})[0])
+            out.append(
+                self._session.run(["probabilities"], {"image": patches[i : i + batch_size]})[0]
+            )
         return np.concatenate(out)
 
-    def crack_map(self, rgb: np.ndarray, stride: int | None = None, gsd_mm: float | None = None) -> CrackMap:
+    def crack_map(
+        self, rgb: np.ndarray, stride: int | None = None, gsd_mm: float | None = None
+    ) -> CrackMap:
         """Screen one frame: (H, W, 3) uint8 RGB -> :class:`CrackMap`.
 
         Args:
@@ -175,7 +209,9 @@ class Screener:
         """
         rgb = np.asarray(rgb)
         if rgb.dtype != np.uint8 or rgb.ndim != 3 or rgb.shape[2] != 3:
-            raise ScreenerError(f"expected an (H, W, 3) uint8 RGB frame, got {rgb.dtype} {rgb.shape}")
+            raise ScreenerError(
+                f"expected an (H, W, 3) uint8 RGB frame, got {rgb.dtype} {rgb.shape}"
+            )
         s = self.patch_px
         stride = s if stride is None else int(stride)
         if not 1 <= stride <= s:
@@ -206,8 +242,10 @@ class Screener:
                 k += 1
                 x1, y1 = min(x0 + s, ww), min(y0 + s, wh)
                 boxes[r, c] = [
-                    int(round(x0 / factor)), int(round(y0 / factor)),
-                    min(w, int(round(x1 / factor))), min(h, int(round(y1 / factor))),
+                    int(round(x0 / factor)),
+                    int(round(y0 / factor)),
+                    min(w, int(round(x1 / factor))),
+                    min(h, int(round(y1 / factor))),
                 ]
         probs = self.predict(patches).reshape(len(ys), len(xs), -1)
         screen = np.clip(1.0 - probs[..., 0], 0.0, 1.0).astype(np.float32)

@@ -90,15 +90,21 @@ class ClassSet:
 
     def __post_init__(self) -> None:
         if len(self.names) < 2:
-            raise ValueError(f"class set {self.name!r} needs at least 2 classes, got {len(self.names)}")
+            raise ValueError(
+                f"class set {self.name!r} needs at least 2 classes, got {len(self.names)}"
+            )
         if len(set(self.names)) != len(self.names):
-            raise ValueError(f"class set {self.name!r} has repeated class names: {list(self.names)}")
+            raise ValueError(
+                f"class set {self.name!r} has repeated class names: {list(self.names)}"
+            )
         if len(self.angle_centres) != len(self.names):
             raise ValueError(
                 f"class set {self.name!r}: expected {len(self.names)} angle centres, got {len(self.angle_centres)}"
             )
         if self.angle_centres[0] is not None:
-            raise ValueError(f"class set {self.name!r}: class 0 ({self.names[0]!r}) is the no-crack class and cannot have an angle")
+            raise ValueError(
+                f"class set {self.name!r}: class 0 ({self.names[0]!r}) is the no-crack class and cannot have an angle"
+            )
         for n, c in zip(self.names, self.angle_centres, strict=True):
             if c is not None and not (0.0 <= c < 180.0):
                 raise ValueError(f"class {n!r}: angle_deg must be in [0, 180), got {c}")
@@ -135,7 +141,9 @@ class ClassSet:
         try:
             return self.names.index(name)
         except ValueError:
-            raise ValueError(f"unknown class {name!r}; choose one of: {', '.join(self.names)}") from None
+            raise ValueError(
+                f"unknown class {name!r}; choose one of: {', '.join(self.names)}"
+            ) from None
 
     def to_dict(self) -> dict:
         return {
@@ -215,7 +223,9 @@ def _class_set_from_mapping(data: dict, source: str) -> ClassSet:
         names.append(str(item["name"]))
         a = item.get("angle_deg")
         if a is not None and not isinstance(a, int | float):
-            raise ValueError(f"{source}: class {item['name']!r}: angle_deg must be a number, got {a!r}")
+            raise ValueError(
+                f"{source}: class {item['name']!r}: angle_deg must be a number, got {a!r}"
+            )
         centres.append(None if a is None else float(a))
         descs.append(str(item.get("description", "")))
     return ClassSet(

@@ -174,13 +174,17 @@ def read_sidecar(path: str | Path) -> dict[str, dict]:
     with path.open(newline="", encoding="utf-8") as fh:
         reader = csv.DictReader(fh)
         if reader.fieldnames is None or "photo" not in reader.fieldnames:
-            raise ValueError(f"sidecar {path.name}: expected a header with a 'photo' column, got {reader.fieldnames}")
+            raise ValueError(
+                f"sidecar {path.name}: expected a header with a 'photo' column, got {reader.fieldnames}"
+            )
         for i, row in enumerate(reader, start=2):
             name = (row.get("photo") or "").strip()
             if not name:
                 raise ValueError(f"sidecar {path.name} line {i}: empty 'photo'")
             if Path(name).is_absolute() or ".." in Path(name).parts:
-                raise ValueError(f"sidecar {path.name} line {i}: photo {name!r} must be a plain file name")
+                raise ValueError(
+                    f"sidecar {path.name} line {i}: photo {name!r} must be a plain file name"
+                )
             rec: dict = {}
             for key in ("gsd_mm", "distance_m", "focal_mm", "sensor_width_mm"):
                 v = (row.get(key) or "").strip()
@@ -188,9 +192,13 @@ def read_sidecar(path: str | Path) -> dict[str, dict]:
                     try:
                         rec[key] = float(v)
                     except ValueError:
-                        raise ValueError(f"sidecar {path.name} line {i}: {key} {v!r} is not a number") from None
+                        raise ValueError(
+                            f"sidecar {path.name} line {i}: {key} {v!r} is not a number"
+                        ) from None
                     if not rec[key] > 0:
-                        raise ValueError(f"sidecar {path.name} line {i}: {key} must be positive, got {v}")
+                        raise ValueError(
+                            f"sidecar {path.name} line {i}: {key} must be positive, got {v}"
+                        )
             grp = (row.get("structure") or row.get("group") or "").strip()
             if grp:
                 rec["group"] = grp
@@ -276,15 +284,28 @@ def tile_into_workspace(
             side_px = pb.x1 - pb.x0
             rows.append(
                 {
-                    "row": pb.row, "col": pb.col, "x0": pb.x0, "y0": pb.y0, "x1": pb.x1, "y1": pb.y1,
-                    "crop": rel, "patch_mm": None if gsd is None else side_px * gsd, **q,
+                    "row": pb.row,
+                    "col": pb.col,
+                    "x0": pb.x0,
+                    "y0": pb.y0,
+                    "x1": pb.x1,
+                    "y1": pb.y1,
+                    "crop": rel,
+                    "patch_mm": None if gsd is None else side_px * gsd,
+                    **q,
                 }
             )
             n_flagged += bool(q["flags"])
         digest = hashlib.sha256(path.read_bytes()).hexdigest()
         workspace.add_photo_with_patches(
-            name=name, source_path=str(path.resolve()), width=w, height=h, gsd_mm=gsd,
-            group_id=rec.get("group", path.stem) if group_by == "sidecar" else path.stem, sha256=digest, patches=rows,
+            name=name,
+            source_path=str(path.resolve()),
+            width=w,
+            height=h,
+            gsd_mm=gsd,
+            group_id=rec.get("group", path.stem) if group_by == "sidecar" else path.stem,
+            sha256=digest,
+            patches=rows,
         )
         added += 1
         n_patches += len(rows)

@@ -134,10 +134,14 @@ class Workspace:
     def open(cls, root: str | Path) -> Workspace:
         ws = cls(root)
         if not ws.db_path.is_file():
-            raise WorkspaceError(f"{ws.root} is not a trainkit workspace (no {DB_NAME}); create it with `trainkit tile`")
+            raise WorkspaceError(
+                f"{ws.root} is not a trainkit workspace (no {DB_NAME}); create it with `trainkit tile`"
+            )
         version = ws.meta("schema_version")
         if version != str(SCHEMA_VERSION):
-            raise WorkspaceError(f"workspace {ws.root} has schema version {version}, this kit reads {SCHEMA_VERSION}")
+            raise WorkspaceError(
+                f"workspace {ws.root} has schema version {version}, this kit reads {SCHEMA_VERSION}"
+            )
         return ws
 
     @contextmanager
@@ -208,8 +212,18 @@ class Workspace:
                 " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 [
                     (
-                        pid, p["row"], p["col"], p["x0"], p["y0"], p["x1"], p["y1"], p["crop"],
-                        p.get("patch_mm"), p["focus"], p["clipped"], p.get("flags", ""),
+                        pid,
+                        p["row"],
+                        p["col"],
+                        p["x0"],
+                        p["y0"],
+                        p["x1"],
+                        p["y1"],
+                        p["crop"],
+                        p.get("patch_mm"),
+                        p["focus"],
+                        p["clipped"],
+                        p.get("flags", ""),
                     )
                     for p in patches
                 ],
@@ -232,9 +246,21 @@ class Workspace:
             rows = con.execute(q).fetchall()
         return [
             PatchRecord(
-                id=r[0], photo=r[1], group=r[2], row=r[3], col=r[4], box=(r[5], r[6], r[7], r[8]),
-                crop=r[9], patch_mm=r[10], gsd_mm=r[11], focus=r[12], clipped=r[13], flags=r[14],
-                label=r[15], labelled=bool(r[16]), subset=r[17],
+                id=r[0],
+                photo=r[1],
+                group=r[2],
+                row=r[3],
+                col=r[4],
+                box=(r[5], r[6], r[7], r[8]),
+                crop=r[9],
+                patch_mm=r[10],
+                gsd_mm=r[11],
+                focus=r[12],
+                clipped=r[13],
+                flags=r[14],
+                label=r[15],
+                labelled=bool(r[16]),
+                subset=r[17],
             )
             for r in rows
         ]
@@ -251,13 +277,17 @@ class Workspace:
     ) -> int:
         """Append label events (patch id, class name or None for unsure); returns the count."""
         if source not in LABEL_SOURCES:
-            raise ValueError(f"invalid label source {source!r}; choose one of: {', '.join(LABEL_SOURCES)}")
+            raise ValueError(
+                f"invalid label source {source!r}; choose one of: {', '.join(LABEL_SOURCES)}"
+            )
         names = set(self.class_set.names)
         rows = []
         now = time.time()
         for patch_id, label in items:
             if label is not None and label not in names:
-                raise ValueError(f"unknown class {label!r}; choose one of: {', '.join(self.class_set.names)}")
+                raise ValueError(
+                    f"unknown class {label!r}; choose one of: {', '.join(self.class_set.names)}"
+                )
             rows.append((int(patch_id), label, reviewer, source, now))
         with self.connect() as con:
             con.executemany(
@@ -272,7 +302,10 @@ class Workspace:
                 "SELECT id, label, reviewer, source, created_at FROM label_events WHERE patch_id = ? ORDER BY id",
                 (patch_id,),
             ).fetchall()
-        return [dict(zip(("id", "label", "reviewer", "source", "created_at"), r, strict=True)) for r in rows]
+        return [
+            dict(zip(("id", "label", "reviewer", "source", "created_at"), r, strict=True))
+            for r in rows
+        ]
 
     # ----- splits ------------------------------------------------------------------
     def set_split(self, assignments: dict[int, str], info: dict) -> None:
@@ -284,7 +317,8 @@ class Workspace:
                 sorted(assignments.items()),
             )
             con.execute(
-                "INSERT OR REPLACE INTO meta(key, value) VALUES ('split_info', ?)", (json.dumps(info),)
+                "INSERT OR REPLACE INTO meta(key, value) VALUES ('split_info', ?)",
+                (json.dumps(info),),
             )
 
     def split_info(self) -> dict | None:
@@ -315,7 +349,11 @@ class Workspace:
             "patches": len(recs),
             "flagged_patches": flagged,
             "labelled": sum(by_label.values()),
-            "labels": {n: by_label.get(n, 0) for n in (*self.class_set.names, "(unsure)") if by_label.get(n, 0) or n in self.class_set.names},
+            "labels": {
+                n: by_label.get(n, 0)
+                for n in (*self.class_set.names, "(unsure)")
+                if by_label.get(n, 0) or n in self.class_set.names
+            },
             "split": by_subset,
         }
 
@@ -338,11 +376,20 @@ def import_labels_csv(
         reader = csv.DictReader(fh)
         need = {"photo", "x0", "y0", "x1", "y1", "label"}
         if reader.fieldnames is None or not need <= set(reader.fieldnames):
-            raise WorkspaceError(f"{path.name}: expected columns {sorted(need)}, got {reader.fieldnames}")
+            raise WorkspaceError(
+                f"{path.name}: expected columns {sorted(need)}, got {reader.fieldnames}"
+            )
         for i, row in enumerate(reader, start=2):
             photo = row["photo"]
-            if Path(photo).is_absolute() or ".." in Path(photo).parts or "/" in photo or "\\" in photo:
-                raise WorkspaceError(f"{path.name} line {i}: photo {photo!r} must be a plain file name")
+            if (
+                Path(photo).is_absolute()
+                or ".." in Path(photo).parts
+                or "/" in photo
+                or "\\" in photo
+            ):
+                raise WorkspaceError(
+                    f"{path.name} line {i}: photo {photo!r} must be a plain file name"
+                )
             try:
                 box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
             except (TypeError, ValueError):

@@ -1,0 +1,116 @@
+"""Side-by-side performance ratios, measured in one run (the machine is shared and noisy).
+
+Run with `make bench`. Each benchmark times two variants alternately, several
+rounds each, and reports the median of each and their ratio; absolute numbers
+vary from run to run, ratios much less.
+
+1. training step of the demo network: the channels-last view that Preprocess's
+   permute gives (what the kit uses) versus a contiguous NCHW copy;
+2. inference: ONNX Runtime on the exported screener versus PyTorch eager, same patches.
+"""
+
+from __future__ import annotations
+
+import json
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+
+
+def alternate(fns: dict, rounds: int = 7) -> dict:
+    times = {k: [] for k in fns}
+    for _ in range(rounds):
+        for k, f in fns.items():
+            t0 = time.perf_counter()
+            f()
+            times[k].append(time.perf_counter() - t0)
+    return {k: statistics.median(v) for k, v in times.items()}
+
+
+def bench_memory_format(batch: int = 32, size: int = 128) -> dict:
+    from trainkit.models import create_model
+
+    torch.manual_seed(0)
+    model = create_model("tiny_cnn", 6)
+    opt = torch.optim.AdamW(model.parameters())
+    x = torch.randn(batch, size, size, 3)
+    y = torch.randint(0, 6, (batch,))
+
+    def step(inp):
+        loss = torch.nn.functional.cross_entropy(model(inp), y)
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+
+    med = alternate(
+        {
+            "contiguous": lambda: step(x.permute(0, 3, 1, 2).contiguous()),
+            "channels_last_view": lambda: step(x.permute(0, 3, 1, 2)),
+        }
+    )
+    return {
+        "what": f"tiny_cnn training step, batch {batch}, {size} px",
+        "images_per_second": {k: round(batch / v, 1) for k, v in med.items()},
+        "speedup_of_view_over_copy": round(med["contiguous"] / med["channels_last_view"], 2),
+    }
+
+
+def bench_onnx_vs_torch(n: int = 256, size: int = 128) -> dict:
+    import onnxruntime as ort
+
+    from trainkit.config import load_train_config
+    from trainkit.export import _wrapper
+    from trainkit.training import build_network
+
+    torch.manual_seed(0)
+    net = _wrapper(build_network(load_train_config("demo"), 6, load_weights=False).eval())
+    images = np.random.default_rng(0).integers(0, 256, (n, size, size, 3), dtype=np.uint8)
+    with tempfile.TemporaryDirectory() as d:
+        path = Path(d) / "m.onnx"
+        prog = torch.onnx.export(
+            net,
+            (torch.from_numpy(images[:2]),),
+            dynamo=True,
+            opset_version=18,
+            input_names=["image"],
+            output_names=["probabilities"],
+            dynamic_shapes=({0: torch.export.Dim("batch", min=1, max=4096)},),
+            verbose=False,
+        )
+        prog.save(str(path))
+        sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+
+        def run_torch():
+            with torch.no_grad():
+                for i in range(0, n, 64):
+                    net(torch.from_numpy(images[i : i + 64]))
+
+        def run_ort():
+            for i in range(0, n, 64):
+                sess.run(None, {"image": images[i : i + 64]})
+
+        med = alternate({"onnxruntime": run_ort, "pytorch": run_torch}, rounds=5)
+    return {
+        "what": f"demo network inference, {n} patches of {size} px, batch 64",
+        "patches_per_second": {k: round(n / v, 1) for k, v in med.items()},
+        "speedup_onnxruntime": round(med["pytorch"] / med["onnxruntime"], 2),
+    }
+
+
+def main() -> int:
+    results = {
+        "torch_threads": torch.get_num_threads(),
+        "memory_format": bench_memory_format(),
+        "inference": bench_onnx_vs_torch(),
+    }
+    print(json.dumps(results, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

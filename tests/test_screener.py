@@ -1,0 +1,143 @@
+"""The ONNX-only Screener: cell grid, thresholds, metadata checks, and no torch import."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import onnx
+import pytest
+from onnx import TensorProto, helper
+
+from trainkit.screener import CrackMap, Screener, ScreenerError
+
+S = 32
+
+
+def brightness_model(path, *, patch_px=S, threshold=0.5, patch_mm=None, meta_extra=None, drop=()):
+    """A hand-built ONNX graph: darker patches get a higher crack probability.
+
+    logits = [(mean - 128) / 10, (128 - mean) / 10] over the patch's mean grey, softmax.
+    """
+    image = helper.make_tensor_value_info("image", TensorProto.UINT8, ["N", patch_px, patch_px, 3])
+    probs = helper.make_tensor_value_info("probabilities", TensorProto.FLOAT, ["N", 2])
+    nodes = [
+        helper.make_node("Cast", ["image"], ["x"], to=TensorProto.FLOAT),
+        helper.make_node("ReduceMean", ["x", "axes"], ["m"], keepdims=0),
+        helper.make_node("Sub", ["m", "c128"], ["d"]),
+        helper.make_node("Div", ["d", "c10"], ["l0"]),
+        helper.make_node("Neg", ["l0"], ["l1"]),
+        helper.make_node("Unsqueeze", ["l0", "ax1"], ["u0"]),
+        helper.make_node("Unsqueeze", ["l1", "ax1"], ["u1"]),
+        helper.make_node("Concat", ["u0", "u1"], ["logits"], axis=1),
+        helper.make_node("Softmax", ["logits"], ["probabilities"], axis=1),
+    ]
+    inits = [
+        helper.make_tensor("axes", TensorProto.INT64, [3], [1, 2, 3]),
+        helper.make_tensor("c128", TensorProto.FLOAT, [], [128.0]),
+        helper.make_tensor("c10", TensorProto.FLOAT, [], [10.0]),
+        helper.make_tensor("ax1", TensorProto.INT64, [1], [1]),
+    ]
+    graph = helper.make_graph(nodes, "brightness", [image], [probs], initializer=inits)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 18)])
+    model.ir_version = 9
+    meta = {
+        "class_names": json.dumps(["none", "crack"]),
+        "patch_px": str(patch_px),
+        "threshold": json.dumps(threshold),
+        "patch_mm": json.dumps(patch_mm),
+        **(meta_extra or {}),
+    }
+    onnx.helper.set_model_props(model, {k: v for k, v in meta.items() if k not in drop})
+    onnx.checker.check_model(model, full_check=True)
+    onnx.save(model, path)
+    return path
+
+
+def test_cells_cover_the_whole_frame_including_the_border(tmp_path):
+    scr = Screener(brightness_model(tmp_path / "m.onnx"))
+    frame = np.full((70, 100, 3), 200, np.uint8)  # not a multiple of 32
+    cm = scr.crack_map(frame)
+    assert cm.probabilities.shape == (3, 4) and cm.boxes.shape == (3, 4, 4)
+    covered = np.zeros((70, 100), bool)
+    for x0, y0, x1, y1 in cm.boxes.reshape(-1, 4):
+        assert x1 - x0 == S and y1 - y0 == S
+        covered[y0:y1, x0:x1] = True
+    assert covered.all()
+    assert cm.boxes[0, -1].tolist() == [68, 0, 100, 32]  # last column shifted inward
+    assert cm.boxes[-1, 0].tolist() == [0, 38, 32, 70]
+
+
+def test_flagged_cells_are_the_dark_ones_and_match_onnxruntime(tmp_path):
+    import onnxruntime as ort
+
+    path = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    frame = np.full((64, 96, 3), 200, np.uint8)
+    frame[32:64, 64:96] = 40  # one dark cell
+    cm = Screener(path).crack_map(frame)
+    assert cm.flagged.tolist() == [[False, False, False], [False, False, True]]
+    assert cm.labels[1, 2] == 1 and cm.class_names == ["none", "crack"]
+    # reference: ONNX Runtime directly on the same crop
+    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    p = sess.run(None, {"image": frame[None, 32:64, 64:96]})[0]
+    assert cm.probabilities[1, 2] == pytest.approx(1 - p[0, 0], abs=1e-6)
+    d = json.loads(cm.to_json())
+    assert d["flagged_cells"] == 1 and d["rows"] == 2 and d["cols"] == 3
+    img = cm.overlay(frame)
+    assert img.size == (96, 64)
+
+
+def test_stride_gives_overlapping_cells(tmp_path):
+    cm = Screener(brightness_model(tmp_path / "m.onnx")).crack_map(
+        np.zeros((64, 64, 3), np.uint8), stride=16
+    )
+    assert cm.probabilities.shape == (3, 3)
+
+
+def test_scale_resamples_cells_to_the_model_patch_size_in_mm(tmp_path):
+    # model patch: 32 px covering 16 mm; frame at 0.25 mm/px -> one cell is 64 frame pixels
+    scr = Screener(brightness_model(tmp_path / "m.onnx", patch_mm=16.0))
+    cm = scr.crack_map(np.zeros((128, 192, 3), np.uint8), gsd_mm=0.25)
+    assert cm.probabilities.shape == (2, 3)
+    assert cm.boxes[1, 2].tolist() == [128, 64, 192, 128]
+    assert json.loads(cm.to_json())["boxes_mm"][1][2] == [32.0, 16.0, 48.0, 32.0]
+
+
+def test_tiny_frame_is_padded_to_one_cell(tmp_path):
+    cm = Screener(brightness_model(tmp_path / "m.onnx")).crack_map(np.zeros((5, 7, 3), np.uint8))
+    assert cm.probabilities.shape == (1, 1) and cm.boxes[0, 0].tolist() == [0, 0, 7, 5]
+
+
+def test_bad_inputs_and_models(tmp_path):
+    scr = Screener(brightness_model(tmp_path / "m.onnx"))
+    with pytest.raises(
+        ScreenerError, match=r"expected an \(H, W, 3\) uint8 RGB frame, got float64"
+    ):
+        scr.crack_map(np.zeros((40, 40, 3)))
+    with pytest.raises(ScreenerError, match="stride must be between 1 and 32"):
+        scr.crack_map(np.zeros((40, 40, 3), np.uint8), stride=40)
+    with pytest.raises(ScreenerError, match="lacks trainkit metadata"):
+        Screener(brightness_model(tmp_path / "n.onnx", drop=("threshold",)))
+    (tmp_path / "junk.onnx").write_bytes(b"junk")
+    with pytest.raises(ScreenerError, match="not a loadable ONNX model"):
+        Screener(tmp_path / "junk.onnx")
+    with pytest.raises(ScreenerError, match="does not exist"):
+        Screener(tmp_path / "missing.onnx")
+
+
+def test_screener_module_does_not_import_torch():
+    code = (
+        "import sys; import trainkit; from trainkit import Screener, CrackMap; import trainkit.scan; "
+        "bad = [m for m in ('torch', 'torchvision', 'sklearn', 'albumentations', 'cv2') if m in sys.modules]; "
+        "print(bad); sys.exit(1 if bad else 0)"
+    )
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert res.returncode == 0, res.stdout + res.stderr
+
+
+def test_crackmap_is_reexported():
+    import trainkit
+
+    assert trainkit.CrackMap is CrackMap and trainkit.Screener is Screener
