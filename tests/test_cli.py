@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 
@@ -64,8 +65,10 @@ def test_tile_skips_bad_photos_with_exit_1(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "trainkit: photo bad.jpg cannot be decoded" in err
     assert main(["-q", "status", str(tmp_path / "ws"), "--json"]) == 0
-    out = capsys.readouterr().out
-    assert '"patches": 6' in out  # 100 x 150 at 64 px: 2 rows x 3 columns
+    info = json.loads(capsys.readouterr().out)
+    assert info["photos"] == 1 and info["patches"] == 6  # 100 x 150 at 64 px: 2 rows x 3 columns
+    assert info["unlabeled"] == 6 and sum(info["labeled"].values()) == 0
+    assert set(info) >= {"photos", "patches", "flagged", "labeled", "unlabeled", "splits"}
 
 
 def test_synth_then_status(tmp_path, capsys):

@@ -109,6 +109,16 @@ def test_split_keeps_groups_together_and_is_seeded(tmp_path):
     assert {r.id: r.subset for r in ws.patches()} == first
 
 
+def test_status_counts(tmp_path):
+    ws = make_ws(tmp_path, n_photos=2, per_photo=3)
+    recs = ws.patches()
+    ws.add_labels([(recs[0].id, "map"), (recs[1].id, None), (recs[2].id, "none")], reviewer="t")
+    info = ws.summary()
+    assert info["photos"] == 2 and info["patches"] == 6 and info["flagged"] == 0
+    assert info["labeled"]["map"] == 1 and info["labeled"]["none"] == 1 and info["unsure"] == 1
+    assert info["unlabeled"] == 3 and info["splits"] == {"train": 0, "val": 0, "test": 0}
+
+
 def test_too_few_groups_is_a_clear_error():
     with pytest.raises(SplitError, match="needs at least 5 groups"):
         assign_groups(["none", "map", "none"], ["a", "b", "c"], test_fraction=0.2)

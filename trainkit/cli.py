@@ -228,7 +228,7 @@ def synth(
 @click.option(
     "--sidecar",
     type=click.Path(exists=True, dir_okay=False, path_type=Path),
-    help="CSV with photo,gsd_mm (or distance_m,focal_mm,sensor_width_mm) and structure columns.",
+    help="CSV: photo plus any of gsd_mm; distance_m,focal_mm,sensor_width_mm; structure; date; roi.",
 )
 @click.option(
     "--gsd-mm",
@@ -237,11 +237,39 @@ def synth(
     help="Scale in mm per pixel for photos the sidecar does not cover.",
 )
 @click.option(
+    "--distance-m",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Camera-to-surface distance in m (with EXIF focal length, or --focal-mm and --sensor-width-mm).",
+)
+@click.option(
+    "--focal-mm",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Lens focal length, mm.",
+)
+@click.option(
+    "--sensor-width-mm",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Sensor width, mm (without it, EXIF's 35 mm-equivalent focal length and 36 mm are used).",
+)
+@click.option(
     "--group-by",
     type=click.Choice(["sidecar", "photo"]),
     default="sidecar",
     show_default=True,
-    help="Split groups: the sidecar's structure column (photo when absent) or each photo.",
+    help="Split groups: the sidecar's structure column or --group-pattern (photo when absent), or each photo.",
+)
+@click.option(
+    "--group-pattern",
+    default=None,
+    metavar="REGEX",
+    help="Regex on the photo's relative path with named groups 'group' and 'date', e.g. "
+    "'^(?P<group>[^/]+)/(?P<date>[0-9-]{10})/'.",
+)
+@click.option(
+    "--skip-flagged", is_flag=True, help="Leave patches with quality flags out of the review queue."
 )
 @click.option(
     "--classes",
@@ -254,6 +282,19 @@ def synth(
     type=click.Path(exists=True, dir_okay=False, path_type=Path),
     help="CSV photo,x0,y0,x1,y1,label of existing labels to load (empty label = unsure).",
 )
+@click.option(
+    "--workers",
+    type=click.IntRange(1, 256),
+    default=None,
+    help="Parallel processes (default: all cores).",
+)
+@click.option(
+    "--max-megapixels",
+    type=click.FloatRange(min=1),
+    default=250.0,
+    show_default=True,
+    help="Refuse larger images (decompression-bomb guard); raise it for trusted huge files.",
+)
 @click.pass_obj
 def tile(
     ctx: Ctx,
@@ -264,43 +305,71 @@ def tile(
     overlap,
     sidecar,
     gsd_mm,
+    distance_m,
+    focal_mm,
+    sensor_width_mm,
     group_by,
+    group_pattern,
+    skip_flagged,
     classes,
     import_labels,
+    workers,
+    max_megapixels,
 ) -> None:
-    """Cut photos into patches in a workspace, with scale, quality flags and provenance."""
-    from .imaging import list_images
+    """Cut photos into patches in a workspace, with scale, quality flags and provenance.
+
+    Scale per photo, first found wins: sidecar gsd_mm; sidecar camera geometry;
+    --gsd-mm; --distance-m with --focal-mm and --sensor-width-mm; EXIF focal length
+    with a distance. Re-running on the same photos adds only what is new.
+    """
+    from .imaging import find_images
     from .taxonomy import load_class_set
-    from .tiling import read_sidecar, tile_into_workspace
+    from .tiling import ScaleOptions, read_sidecar, tile_into_workspace
     from .workspace import Workspace, import_labels_csv
 
     with user_errors(ctx):
-        ws = Workspace.create(ws_dir, class_set=load_class_set(classes), tile_px=tile_px)
-        files = list_images(list(photos))
-        if not files:
+        found = find_images(list(photos))
+        if not found:
             _fail(f"no image files found in {', '.join(map(str, photos))}")
         side = read_sidecar(sidecar) if sidecar else {}
-        with progress_bar(ctx, "tiling photos", len(files)) as bar:
+        ws = Workspace.create(ws_dir, class_set=load_class_set(classes), tile_px=tile_px)
+        with progress_bar(ctx, "tiling photos", len(found)) as bar:
             res = tile_into_workspace(
-                files,
+                [p for p, _ in found],
                 ws,
                 overlap=overlap,
                 tile_mm=tile_mm,
                 sidecar=side,
-                default_gsd_mm=gsd_mm,
+                scale=ScaleOptions(
+                    gsd_mm=gsd_mm,
+                    distance_m=distance_m,
+                    focal_mm=focal_mm,
+                    sensor_width_mm=sensor_width_mm,
+                ),
                 group_by=group_by,
+                group_pattern=group_pattern,
+                skip_flagged=skip_flagged,
+                workers=workers,
+                max_pixels=int(max_megapixels * 1e6),
+                roots={p: r for p, r in found if r is not None},
                 progress=lambda i, n, name: bar.update(i, n),
             )
         for p in res["problems"]:
             click.echo(f"trainkit: {p}", err=True)
         ctx.console.print(
-            f"{res['photos_added']} photos added ({res['photos_already_present']} already present, "
-            f"{res['photos_skipped']} skipped), {res['patches_added']} patches, "
-            f"{res['patches_flagged']} with quality flags -> {ws.root}"
+            f"{res['photos_added']} photos added, {res['photos_already_present']} already present, "
+            f"{res['photos_moved']} moved, {res['photos_skipped']} skipped; {res['patches_added']} patches, "
+            f"{res['patches_flagged']} with quality flags"
+            + (f" ({res['patches_left_out_of_review']} left out of review)" if skip_flagged else "")
+            + f" -> {ws.root}"
         )
         if import_labels:
             n = import_labels_csv(ws, import_labels)
             ctx.console.print(f"imported {n} labels from {import_labels}")
+    if res["photos_skipped"] and not (
+        res["photos_added"] or res["photos_already_present"] or res["photos_moved"]
+    ):
+        raise SystemExit(EXIT_USAGE)  # nothing could be tiled
     if res["photos_skipped"]:
         raise SystemExit(EXIT_SKIPPED)
 
@@ -493,6 +562,17 @@ def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> di
     default=None,
     help="Workspace folder if it moved since training.",
 )
+@click.option(
+    "--against",
+    type=click.Path(exists=True, file_okay=False, path_type=Path),
+    default=None,
+    help="Second experiment to compare with on the same patches (McNemar's test).",
+)
+@click.option(
+    "--temperature-scaling",
+    is_flag=True,
+    help="Fit one temperature on validation; report calibration before and after (report only).",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
 @click.pass_obj
 def evaluate(
@@ -504,9 +584,16 @@ def evaluate(
     confidence,
     interval,
     workspace,
+    against,
+    temperature_scaling,
     as_json,
 ) -> None:
-    """Evaluate a trained screener: confusion matrix, per-class recall with intervals, threshold, report."""
+    """Evaluate a trained screener: confusion matrix, per-class recall with intervals, threshold, report.
+
+    Writes EXP/evaluation/: predictions.csv, metrics.json, report.html and plots
+    (with --against also disagreements.csv). With --require-recall the exit code is
+    3 unless the lower confidence bound of screening recall reaches the value.
+    """
     from .evaluation import evaluate_experiment
 
     with user_errors(ctx):
@@ -518,6 +605,8 @@ def evaluate(
             confidence=confidence,
             interval_method=interval,
             workspace=workspace,
+            against=against,
+            temperature_scaling=temperature_scaling,
         )
     if as_json:
         click.echo(json.dumps(res, indent=2))
@@ -528,39 +617,76 @@ def evaluate(
 
 
 def print_evaluation(ctx: Ctx, res: dict, out: Path) -> None:
+    """Print the evaluation: confusion matrix, per-class table, screening, breakdown, verdict."""
     from rich.table import Table
 
+    def f3(v) -> str:
+        return "n/a" if v is None else f"{v:.3f}"
+
     names = res["class_names"]
-    t = Table(title=f"Confusion matrix ({res['split']}: rows true, columns predicted)")
+    t = Table(
+        title=f"Confusion matrix ({res['split']}: rows true, columns predicted; count, row %)"
+    )
     t.add_column("true \\ pred")
     for n in names:
         t.add_column(n[:10], justify="right")
-    for n, row in zip(names, res["confusion_matrix"], strict=True):
-        t.add_row(n, *[str(v) for v in row])
+    norm = res["confusion_matrix_row_normalised"]
+    for n, row, nrow in zip(names, res["confusion_matrix"], norm, strict=True):
+        t.add_row(n, *[f"{v} {p:4.0%}" for v, p in zip(row, nrow, strict=True)])
     ctx.console.print(t)
-    t2 = Table(
-        title="Per class (recall interval: "
-        + res["interval_method"]
-        + f", {res['confidence']:.0%})"
-    )
-    for col in ("class", "support", "precision", "recall", "interval"):
+    method = res["interval_method"]
+    t2 = Table(title=f"Per class (recall interval: {method}, {res['confidence']:.0%})")
+    for col in ("class", "support", "precision", "recall", "interval", "F1"):
         t2.add_column(col, justify="right" if col != "class" else "left")
     for c in res["per_class"]:
         ci = c["recall_interval"]
         t2.add_row(
             c["name"],
             str(c["support"]),
-            f"{c['precision']:.3f}",
-            f"{c['recall']:.3f}",
+            f3(c["precision"]),
+            f3(c["recall"]),
             "n/a" if ci["n"] == 0 else f"{ci['low']:.3f}-{ci['high']:.3f} ({ci['k']}/{ci['n']})",
+            f3(c["f1"]),
         )
     ctx.console.print(t2)
     s = res["screening"]
     ci = s["recall_interval"]
+    d = s["at_default_threshold"]
     ctx.console.print(
-        f"screening recall {s['recall']:.3f} [{ci['low']:.3f}, {ci['high']:.3f}] ({ci['method']}, {ci['k']}/{ci['n']}) "
-        f"at threshold {s['threshold']:.3f}; false-alarm rate {s['false_alarm_rate']:.3f} ({s['fp']} patches)"
+        f"screening recall {f3(s['recall'])} [{f3(ci['low'])}, {f3(ci['high'])}] "
+        f"({method} {res['confidence']:.0%}, {ci['k']}/{ci['n']}) at threshold "
+        f"{s['threshold']:.3f} ({s['threshold_source']}); specificity {f3(s['specificity'])}; "
+        f"false-alarm rate {f3(s['false_alarm_rate'])} ({s['fp']} of {s['fp'] + s['tn']} "
+        f"clean patches; {d['fp']} at threshold 0.5)"
     )
+    cal = res["calibration"]
+    line = f"calibration: ECE {cal['ece']:.3f}"
+    if cal.get("temperature"):
+        tt = cal["temperature"]
+        line += f" -> {tt['ece_after']:.3f} with temperature T = {tt['value']:.3f} (report only)"
+    ctx.console.print(line)
+    low = s["recall_ci_low"]
+    for key, label in (("by_group", "group"), ("by_scale", "scale band"), ("by_photo", "photo")):
+        weak = [
+            r
+            for r in res.get(key) or []
+            if r["recall"] is not None and low is not None and r["recall"] < low
+        ]
+        if weak:
+            ctx.console.print(
+                f"weak {label}s (recall below {low:.3f}): "
+                + ", ".join(f"{r['key']} {r['cracks_found']}/{r['cracks']}" for r in weak[:8])
+            )
+    comp = res.get("comparison")
+    if comp:
+        m = comp["mcnemar_recall"]
+        ctx.console.print(
+            f"against {comp['experiment_b']}: recall {f3(comp['a']['recall'])} vs "
+            f"{f3(comp['b']['recall'])} (difference {f3(comp['recall_difference'])}); "
+            f"McNemar {m['method']} p = {m['p_value']:.4f} ({m['b']} found only by this, "
+            f"{m['c']} only by the other); {comp['disagreements']} disagreements in "
+            f"{out / comp['disagreements_csv']}"
+        )
     if res["gate"]:
         ctx.console.print(res["gate"]["verdict"])
     ctx.console.print(f"report: {out / 'report.html'}")

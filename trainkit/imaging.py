@@ -1,12 +1,15 @@
 """Decode photos to 8-bit RGB arrays, and the scale (ground sampling distance) arithmetic.
 
 Colour rule: EXIF orientation is applied first; then grey, palette, CMYK and RGBA
-images become 8-bit RGB (alpha is dropped, not composited); 16-bit images are
-scaled to 8 bits by their full range (value / 257).
+images become 8-bit RGB through Pillow's conversions (alpha is dropped, not
+composited; CMYK uses Pillow's plain inversion, no colour profile); 16-bit grey is
+scaled by its full range (round(value / 257)); 16-bit RGB is reduced to 8 bits by
+Pillow the same way. Memory: the decoded image and one array copy are held, no more.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -19,6 +22,10 @@ __all__ = [
     "gsd_mm_per_px",
     "FULL_FRAME_WIDTH_MM",
     "list_images",
+    "find_images",
+    "ExifInfo",
+    "read_exif",
+    "gsd_from_exif",
 ]
 
 IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp", ".bmp")
@@ -34,20 +41,32 @@ class PhotoError(ValueError):
     """A photo that cannot be used; the message says which file and why."""
 
 
-def read_rgb(path: str | Path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> np.ndarray:
+def read_rgb(
+    path: str | Path, *, max_pixels: int = DEFAULT_MAX_PIXELS, data: bytes | None = None
+) -> np.ndarray:
     """Read an image file as an (H, W, 3) uint8 RGB array with EXIF orientation applied.
+
+    Args:
+        path: the file (named in error messages even when ``data`` is given).
+        max_pixels: decompression-bomb limit; larger images are refused.
+        data: the file's bytes, if already read (saves a second read when hashing).
 
     Raises:
         PhotoError: the file is missing, unreadable, truncated or too large.
     """
+    import io
+
     path = Path(path)
     old_limit = Image.MAX_IMAGE_PIXELS
     Image.MAX_IMAGE_PIXELS = max_pixels
     try:
-        with Image.open(path) as im:
+        src = io.BytesIO(data) if data is not None else path
+        with Image.open(src) as im:
+            if im.width * im.height > max_pixels:
+                raise Image.DecompressionBombError(f"{im.width} x {im.height} pixels")
             im.load()
-            im = ImageOps.exif_transpose(im)
-            return _to_rgb8(im)
+            upright = ImageOps.exif_transpose(im)
+            return _to_rgb8(upright)
     except FileNotFoundError:
         raise PhotoError(f"photo {path} does not exist") from None
     except Image.DecompressionBombError as exc:
@@ -68,7 +87,7 @@ def _to_rgb8(im: Image.Image) -> np.ndarray:
         return np.repeat(arr[..., None], 3, axis=2)
     if im.mode != "RGB":
         im = im.convert("RGB")
-    return np.asarray(im, dtype=np.uint8).copy()
+    return np.array(im, dtype=np.uint8)
 
 
 def gsd_mm_per_px(
@@ -92,17 +111,107 @@ def gsd_mm_per_px(
 
 def list_images(paths: list[Path]) -> list[Path]:
     """Expand files and folders (recursively, sorted) into image files by suffix."""
-    out: list[Path] = []
+    return [p for p, _ in find_images(paths)]
+
+
+def find_images(paths: list[Path]) -> list[tuple[Path, Path | None]]:
+    """Image files under the given files and folders, each with the folder it was found in.
+
+    Folders are searched recursively in sorted order; symbolic links to folders are not
+    followed (no loops). A file given directly has no folder (None). Suffixes are matched
+    case-insensitively against IMAGE_SUFFIXES; other files in a folder are ignored.
+    """
+    out: list[tuple[Path, Path | None]] = []
     for p in paths:
         p = Path(p)
         if p.is_dir():
-            out.extend(
-                sorted(
-                    q for q in p.rglob("*") if q.is_file() and q.suffix.lower() in IMAGE_SUFFIXES
-                )
+            found = sorted(
+                q for q in p.rglob("*") if q.suffix.lower() in IMAGE_SUFFIXES and q.is_file()
             )
+            out.extend((q, p) for q in found)
         elif p.is_file():
-            out.append(p)
+            out.append((p, None))
         else:
             raise PhotoError(f"{p} does not exist")
     return out
+
+
+# ----- EXIF ------------------------------------------------------------------------
+
+_TAG_ORIENTATION = 0x0112
+_IFD_EXIF = 0x8769
+_TAG_FOCAL = 0x920A
+_TAG_FOCAL_35 = 0xA405
+_TAG_DATETIME_ORIGINAL = 0x9003
+_TAG_DATETIME = 0x0132
+
+
+@dataclass(frozen=True)
+class ExifInfo:
+    """The EXIF fields the kit uses; None where the file does not carry them."""
+
+    focal_mm: float | None
+    focal_35mm: float | None
+    capture_date: str | None  # ISO date YYYY-MM-DD
+    orientation: int | None
+
+
+def read_exif(path: str | Path, *, data: bytes | None = None) -> ExifInfo:
+    """Focal length, 35 mm-equivalent focal length, capture date and orientation tag."""
+    import io
+
+    try:
+        with Image.open(io.BytesIO(data) if data is not None else path) as im:
+            exif = im.getexif()
+            sub = exif.get_ifd(_IFD_EXIF)
+    except Exception:  # unreadable EXIF is not an error: the photo just has no EXIF scale
+        return ExifInfo(None, None, None, None)
+
+    def num(v) -> float | None:
+        try:
+            f = float(v)
+        except (TypeError, ValueError, ZeroDivisionError):
+            return None
+        return f if f > 0 else None
+
+    date = None
+    raw = sub.get(_TAG_DATETIME_ORIGINAL) or exif.get(_TAG_DATETIME)
+    if isinstance(raw, str) and len(raw) >= 10 and raw[4] == ":" and raw[7] == ":":
+        date = f"{raw[0:4]}-{raw[5:7]}-{raw[8:10]}"
+    orient = exif.get(_TAG_ORIENTATION)
+    return ExifInfo(
+        focal_mm=num(sub.get(_TAG_FOCAL)),
+        focal_35mm=num(sub.get(_TAG_FOCAL_35)),
+        capture_date=date,
+        orientation=int(orient) if isinstance(orient, int) else None,
+    )
+
+
+def gsd_from_exif(
+    exif: ExifInfo,
+    *,
+    distance_m: float,
+    image_width_px: int,
+    sensor_width_mm: float | None = None,
+) -> float | None:
+    """Scale from EXIF and a camera-to-surface distance, or None when EXIF lacks the focal length.
+
+    With the true focal length and a known sensor width, the pinhole relation is used
+    directly; otherwise the 35 mm-equivalent focal length with the 36 mm full-frame
+    width stands in (the two agree when focal_35mm = focal_mm x 36 / sensor width).
+    """
+    if exif.focal_mm and sensor_width_mm:
+        return gsd_mm_per_px(
+            sensor_width_mm=sensor_width_mm,
+            distance_m=distance_m,
+            focal_mm=exif.focal_mm,
+            image_width_px=image_width_px,
+        )
+    if exif.focal_35mm:
+        return gsd_mm_per_px(
+            sensor_width_mm=FULL_FRAME_WIDTH_MM,
+            distance_m=distance_m,
+            focal_mm=exif.focal_35mm,
+            image_width_px=image_width_px,
+        )
+    return None

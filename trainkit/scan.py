@@ -9,6 +9,7 @@ last line (the process was killed mid-write) is dropped and redone.
 from __future__ import annotations
 
 import json
+import multiprocessing
 import os
 import time
 from collections.abc import Callable
@@ -155,8 +156,9 @@ def scan_frames(
                 write(_frame_record(screener, p, gsd_mm=gsd_mm, overlay_dir=overlay_dir))
         else:
             threads = max(1, (os.cpu_count() or 1) // workers)
+            ctx = multiprocessing.get_context("forkserver")  # fork could deadlock on threads
             with ProcessPoolExecutor(
-                workers, initializer=_init_worker, initargs=(str(model), threads)
+                workers, initializer=_init_worker, initargs=(str(model), threads), mp_context=ctx
             ) as pool:
                 jobs = [(str(p), gsd_mm, str(overlay_dir) if overlay_dir else None) for p in todo]
                 for rec in pool.map(_work, jobs, chunksize=4):

@@ -160,12 +160,28 @@ def tile_photo(
     return out
 
 
-def read_sidecar(path: str | Path) -> dict[str, dict]:
-    """Read a sidecar CSV keyed by photo file name.
+SIDECAR_COLUMNS = (
+    "photo",
+    "gsd_mm",
+    "distance_m",
+    "focal_mm",
+    "sensor_width_mm",
+    "structure",
+    "group",
+    "site",
+    "date",
+    "roi",
+)
 
-    Columns: ``photo`` (required), then any of ``gsd_mm``; ``distance_m``,
-    ``focal_mm``, ``sensor_width_mm`` (scale by the pinhole relation); ``structure``
-    or ``group`` (keeps a structure's photos in one split).
+
+def read_sidecar(path: str | Path) -> dict[str, dict]:
+    """Read a sidecar CSV keyed by photo (file name, or path relative to the input folder).
+
+    Columns (all but ``photo`` optional): ``gsd_mm``; or ``distance_m``, ``focal_mm``,
+    ``sensor_width_mm`` (scale by the pinhole relation; ``distance_m`` alone is used with
+    EXIF focal lengths); ``structure``, ``group`` or ``site`` (split group); ``date``
+    (capture date, YYYY-MM-DD); ``roi`` (region of interest: ``x0 y0 x1 y1`` for a box or
+    ``x,y x,y x,y ...`` for a polygon, in upright photo pixels).
     """
     import csv
 
@@ -177,13 +193,18 @@ def read_sidecar(path: str | Path) -> dict[str, dict]:
             raise ValueError(
                 f"sidecar {path.name}: expected a header with a 'photo' column, got {reader.fieldnames}"
             )
+        unknown = [c for c in reader.fieldnames if c not in SIDECAR_COLUMNS]
+        if unknown:
+            raise ValueError(
+                f"sidecar {path.name}: unknown columns {unknown}; valid: {', '.join(SIDECAR_COLUMNS)}"
+            )
         for i, row in enumerate(reader, start=2):
             name = (row.get("photo") or "").strip()
             if not name:
                 raise ValueError(f"sidecar {path.name} line {i}: empty 'photo'")
             if Path(name).is_absolute() or ".." in Path(name).parts:
                 raise ValueError(
-                    f"sidecar {path.name} line {i}: photo {name!r} must be a plain file name"
+                    f"sidecar {path.name} line {i}: photo {name!r} must be a relative name"
                 )
             rec: dict = {}
             for key in ("gsd_mm", "distance_m", "focal_mm", "sensor_width_mm"):
@@ -199,27 +220,237 @@ def read_sidecar(path: str | Path) -> dict[str, dict]:
                         raise ValueError(
                             f"sidecar {path.name} line {i}: {key} must be positive, got {v}"
                         )
-            grp = (row.get("structure") or row.get("group") or "").strip()
+            grp = (row.get("structure") or row.get("group") or row.get("site") or "").strip()
             if grp:
                 rec["group"] = grp
+            date = (row.get("date") or "").strip()
+            if date:
+                rec["date"] = _check_date(date, f"sidecar {path.name} line {i}")
+            roi = (row.get("roi") or "").strip()
+            if roi:
+                parse_roi(roi, f"sidecar {path.name} line {i}")  # validate now, use later
+                rec["roi"] = roi
             out[name] = rec
     return out
 
 
-def resolve_scale(rec: dict, image_width_px: int, default_gsd_mm: float | None) -> float | None:
-    """Scale of one photo: sidecar gsd_mm, else sidecar camera geometry, else the default."""
-    from .imaging import gsd_mm_per_px
+def _check_date(text: str, where: str) -> str:
+    import datetime as dt
 
+    try:
+        return dt.date.fromisoformat(text).isoformat()
+    except ValueError:
+        raise ValueError(f"{where}: date {text!r} is not YYYY-MM-DD") from None
+
+
+def parse_roi(text: str, where: str = "roi") -> np.ndarray:
+    """Polygon vertices (K, 2) as x, y from ``x0 y0 x1 y1`` (a box) or ``x,y x,y x,y ...``."""
+    try:
+        if "," in text:
+            pts = [
+                tuple(float(v) for v in tok.split(",")) for tok in text.replace(";", " ").split()
+            ]
+            if len(pts) < 3 or any(len(p) != 2 for p in pts):
+                raise ValueError
+            return np.array(pts, dtype=float)
+        x0, y0, x1, y1 = (float(v) for v in text.split())
+    except ValueError:
+        raise ValueError(
+            f"{where}: region of interest {text!r} must be 'x0 y0 x1 y1' or at least three 'x,y' points"
+        ) from None
+    if not (x1 > x0 and y1 > y0):
+        raise ValueError(f"{where}: box {text!r} needs x1 > x0 and y1 > y0")
+    return np.array([[x0, y0], [x1, y0], [x1, y1], [x0, y1]], dtype=float)
+
+
+def roi_fraction(roi: np.ndarray, box: Box, height: int, width: int) -> float:
+    """Share of a box's pixels inside the region of interest polygon (rasterised with OpenCV)."""
+    import cv2
+
+    x0, y0, x1, y1 = box
+    mask = np.zeros((y1 - y0, x1 - x0), np.uint8)
+    pts = np.round((roi - [x0, y0]) * 16).astype(np.int32)  # 4 fractional bits
+    cv2.fillPoly(mask, [pts], 1, lineType=cv2.LINE_8, shift=4)
+    return float(mask.mean())
+
+
+@dataclass(frozen=True)
+class ScaleOptions:
+    """Command-line scale settings, used when the sidecar does not give a photo's scale."""
+
+    gsd_mm: float | None = None
+    distance_m: float | None = None
+    focal_mm: float | None = None
+    sensor_width_mm: float | None = None
+
+
+def resolve_scale(
+    rec: dict, image_width_px: int, options: ScaleOptions | float | None = None, exif=None
+) -> tuple[float | None, str]:
+    """Scale of one photo and where it came from, in order of precedence.
+
+    1. sidecar ``gsd_mm`` ("sidecar"); 2. sidecar camera geometry ("sidecar-camera");
+    3. option ``--gsd-mm`` ("option"); 4. option camera geometry ("option-camera");
+    5. EXIF focal length with a distance from the sidecar or the options ("exif");
+    otherwise no scale ("none").
+    """
+    from .imaging import gsd_from_exif, gsd_mm_per_px
+
+    if not isinstance(options, ScaleOptions):
+        options = ScaleOptions(gsd_mm=options)
     if "gsd_mm" in rec:
-        return float(rec["gsd_mm"])
+        return float(rec["gsd_mm"]), "sidecar"
     if {"distance_m", "focal_mm", "sensor_width_mm"} <= rec.keys():
         return gsd_mm_per_px(
             sensor_width_mm=rec["sensor_width_mm"],
             distance_m=rec["distance_m"],
             focal_mm=rec["focal_mm"],
             image_width_px=image_width_px,
+        ), "sidecar-camera"
+    if options.gsd_mm:
+        return float(options.gsd_mm), "option"
+    distance = rec.get("distance_m", options.distance_m)
+    sensor = rec.get("sensor_width_mm", options.sensor_width_mm)
+    if distance and options.focal_mm and sensor:
+        return gsd_mm_per_px(
+            sensor_width_mm=sensor,
+            distance_m=distance,
+            focal_mm=options.focal_mm,
+            image_width_px=image_width_px,
+        ), "option-camera"
+    if distance and exif is not None:
+        g = gsd_from_exif(
+            exif, distance_m=distance, image_width_px=image_width_px, sensor_width_mm=sensor
         )
-    return default_gsd_mm
+        if g is not None:
+            return g, "exif"
+    return None, "none"
+
+
+@dataclass(frozen=True)
+class IntakeJob:
+    """Everything a worker needs to tile one photo (plain data, picklable)."""
+
+    path: str
+    name: str
+    root: str
+    tile_px: int
+    overlap: float
+    tile_mm: float | None
+    rec: dict
+    scale: ScaleOptions
+    group: str
+    date: str | None
+    known_hash: str | None  # hash of a photo already stored under this name
+    known_hashes: frozenset
+    max_pixels: int
+    skip_flagged: bool
+
+
+def _process(job: IntakeJob) -> dict:
+    """Worker: hash, decode, scale, tile, measure, save crops. Returns plain data, no pixels."""
+    import hashlib
+    import time
+
+    import cv2
+    from PIL import Image
+
+    from .imaging import PhotoError, read_exif, read_rgb
+
+    cv2.setNumThreads(1)
+    path = Path(job.path)
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        return {
+            "name": job.name,
+            "status": "error",
+            "error": f"photo {job.name} cannot be read ({exc})",
+        }
+    digest = hashlib.sha256(data).hexdigest()
+    if job.known_hash is not None:
+        if job.known_hash == digest:
+            return {"name": job.name, "status": "present"}
+        return {
+            "name": job.name,
+            "status": "changed",
+            "sha256": digest,
+            "error": f"photo {job.name} changed since it was tiled (content hash differs); "
+            "skipped: give the new version another name to add it",
+        }
+    if digest in job.known_hashes:
+        return {"name": job.name, "status": "moved", "sha256": digest}
+    t0 = time.perf_counter()
+    try:
+        image = read_rgb(path, max_pixels=job.max_pixels, data=data)
+    except PhotoError as exc:
+        return {"name": job.name, "status": "error", "error": f"{exc}; skipped"}
+    t_decode = time.perf_counter() - t0
+    exif = read_exif(path, data=data)
+    h, w = image.shape[:2]
+    gsd, gsd_source = resolve_scale(job.rec, w, job.scale, exif)
+    try:
+        tiles = tile_photo(
+            image, tile_px=job.tile_px, overlap=job.overlap, tile_mm=job.tile_mm, gsd_mm=gsd
+        )
+    except ValueError as exc:
+        return {"name": job.name, "status": "error", "error": f"photo {job.name}: {exc}; skipped"}
+    roi = parse_roi(job.rec["roi"], f"photo {job.name}") if "roi" in job.rec else None
+    rel_dir = f"patches/{digest[:16]}"
+    crop_dir = Path(job.root) / rel_dir
+    crop_dir.mkdir(parents=True, exist_ok=True)
+    rows = []
+    for pb, patch in tiles:
+        q = quality_measures(patch)
+        if roi is not None and roi_fraction(roi, pb.box, h, w) < 0.5:
+            q["flags"] = ",".join(f for f in (q["flags"], "outside_roi") if f)
+        rel = f"{rel_dir}/r{pb.row:03d}_c{pb.col:03d}.png"
+        Image.fromarray(patch).save(Path(job.root) / rel, compress_level=1)
+        rows.append(
+            {
+                "row": pb.row,
+                "col": pb.col,
+                "x0": pb.x0,
+                "y0": pb.y0,
+                "x1": pb.x1,
+                "y1": pb.y1,
+                "crop": rel,
+                "patch_mm": None if gsd is None else (pb.x1 - pb.x0) * gsd,
+                "review_skip": int(job.skip_flagged and bool(q["flags"])),
+                **q,
+            }
+        )
+    return {
+        "name": job.name,
+        "status": "tiled",
+        "sha256": digest,
+        "size_bytes": len(data),
+        "width": w,
+        "height": h,
+        "gsd_mm": gsd,
+        "gsd_source": gsd_source,
+        "date": job.date or exif.capture_date,
+        "roi": job.rec.get("roi"),
+        "patches": rows,
+        "seconds_decode": t_decode,
+        "seconds_total": time.perf_counter() - t0,
+    }
+
+
+def _name_and_group(
+    path: Path, root: Path | None, pattern, sidecar: dict
+) -> tuple[str, dict, str, str | None]:
+    name = path.relative_to(root).as_posix() if root is not None else path.name
+    rec = sidecar.get(name) or sidecar.get(path.name) or {}
+    group, date = rec.get("group"), rec.get("date")
+    if pattern is not None:
+        m = pattern.search(name)
+        if m:
+            gd = m.groupdict()
+            group = group or gd.get("group")
+            if gd.get("date") and not date:
+                date = _check_date(gd["date"], f"photo {name} (--group-pattern)")
+    return name, rec, group or Path(name).with_suffix("").as_posix(), date
 
 
 def tile_into_workspace(
@@ -230,92 +461,159 @@ def tile_into_workspace(
     tile_mm: float | None = None,
     sidecar: dict[str, dict] | None = None,
     default_gsd_mm: float | None = None,
+    scale: ScaleOptions | None = None,
     group_by: str = "sidecar",
+    group_pattern: str | None = None,
+    skip_flagged: bool = False,
+    workers: int | None = None,
+    max_pixels: int | None = None,
+    roots: dict[Path, Path] | None = None,
     progress: Callable[[int, int, str], None] | None = None,
 ) -> dict:
-    """Tile photos into a workspace: decode, cut, measure quality, save crops, record provenance.
+    """Tile photos into a workspace: hash, decode, scale, cut, measure quality, save crops.
 
-    Photos already in the workspace (same file name) are skipped; unreadable photos are
-    reported and skipped. ``group_by="sidecar"`` takes each photo's split group from the
-    sidecar's structure column (the photo itself when absent); ``"photo"`` uses the photo.
-    Returns counts and the list of problems.
+    Photos are named by their path relative to the folder they were found in (``roots``
+    maps each file to that folder; a file given directly is named by its file name).
+    Re-running is idempotent: a photo already present (same name, same SHA-256) is
+    skipped, a moved photo (known hash, new name) only has its location updated, and a
+    changed photo (same name, new hash) is reported and skipped. Unreadable photos are
+    reported and skipped; each photo and its patches are stored in one transaction, so an
+    interrupted run leaves the database consistent and a re-run continues.
+
+    Args:
+        group_by: "sidecar" takes the split group from the sidecar's structure/group/site
+            column or ``group_pattern`` (else the photo); "photo" uses each photo.
+        group_pattern: a regular expression searched in the photo's relative name, with
+            optional named groups ``group`` and ``date`` (YYYY-MM-DD).
+        skip_flagged: leave patches with any quality flag out of the review queue.
+        workers: processes decoding and cropping in parallel (default: the usable cores).
+
+    Returns:
+        Counts (added, present, moved, skipped, patches, flagged, left out of review),
+        the problems as one line each, and timing (photos per second, decode share).
     """
+    import multiprocessing
+    import os
+    import re
+    import time
+    from concurrent.futures import ProcessPoolExecutor
+
+    from .imaging import DEFAULT_MAX_PIXELS
+
     if group_by not in ("sidecar", "photo"):
         raise ValueError(f"invalid group_by {group_by!r}; choose one of: sidecar, photo")
-    import hashlib
-
-    from PIL import Image
-
-    from .imaging import PhotoError, read_rgb
-
+    try:
+        pattern = re.compile(group_pattern) if group_pattern else None
+    except re.error as exc:
+        raise ValueError(
+            f"--group-pattern {group_pattern!r} is not a valid regular expression ({exc})"
+        ) from None
     sidecar = sidecar or {}
-    tile_px = workspace.tile_px
-    added = skipped_existing = 0
-    n_patches = n_flagged = 0
+    scale = scale or ScaleOptions(gsd_mm=default_gsd_mm)
+    roots = roots or {}
+    known = workspace.photo_hashes()
+    known_hashes = frozenset(known.values())
+    hash_to_name = {v: k for k, v in known.items()}
+    jobs = []
+    seen_names: set[str] = set()
     problems: list[str] = []
-    for i, path in enumerate(photos):
+    for path in photos:
         path = Path(path)
-        name = path.name
-        if progress:
-            progress(i, len(photos), name)
-        if workspace.photo_id(name) is not None:
-            skipped_existing += 1
+        name, rec, group, date = _name_and_group(path, roots.get(path), pattern, sidecar)
+        if name in seen_names:
+            problems.append(f"photo {name} given twice; tiled once")
             continue
-        try:
-            image = read_rgb(path)
-        except PhotoError as exc:
-            problems.append(str(exc))
-            continue
-        rec = sidecar.get(name, {})
-        h, w = image.shape[:2]
-        gsd = resolve_scale(rec, w, default_gsd_mm)
-        try:
-            tiles = tile_photo(image, tile_px=tile_px, overlap=overlap, tile_mm=tile_mm, gsd_mm=gsd)
-        except ValueError as exc:
-            problems.append(f"photo {name}: {exc}; skipped")
-            continue
-        crop_dir = workspace.root / "patches" / path.stem
-        crop_dir.mkdir(parents=True, exist_ok=True)
-        rows = []
-        for pb, patch in tiles:
-            q = quality_measures(patch)
-            rel = f"patches/{path.stem}/r{pb.row:03d}_c{pb.col:03d}.png"
-            Image.fromarray(patch).save(workspace.root / rel, compress_level=1)
-            side_px = pb.x1 - pb.x0
-            rows.append(
-                {
-                    "row": pb.row,
-                    "col": pb.col,
-                    "x0": pb.x0,
-                    "y0": pb.y0,
-                    "x1": pb.x1,
-                    "y1": pb.y1,
-                    "crop": rel,
-                    "patch_mm": None if gsd is None else side_px * gsd,
-                    **q,
-                }
+        seen_names.add(name)
+        if group_by == "photo":
+            group = Path(name).with_suffix("").as_posix()
+        jobs.append(
+            IntakeJob(
+                path=str(path.resolve()),
+                name=name,
+                root=str(workspace.root),
+                tile_px=workspace.tile_px,
+                overlap=overlap,
+                tile_mm=tile_mm,
+                rec=rec,
+                scale=scale,
+                group=group,
+                date=date,
+                known_hash=known.get(name),
+                known_hashes=known_hashes,
+                max_pixels=max_pixels or DEFAULT_MAX_PIXELS,
+                skip_flagged=skip_flagged,
             )
-            n_flagged += bool(q["flags"])
-        digest = hashlib.sha256(path.read_bytes()).hexdigest()
-        workspace.add_photo_with_patches(
-            name=name,
-            source_path=str(path.resolve()),
-            width=w,
-            height=h,
-            gsd_mm=gsd,
-            group_id=rec.get("group", path.stem) if group_by == "sidecar" else path.stem,
-            sha256=digest,
-            patches=rows,
         )
-        added += 1
-        n_patches += len(rows)
-    if progress:
-        progress(len(photos), len(photos), "")
+    counts = {
+        "photos_added": 0,
+        "photos_already_present": 0,
+        "photos_moved": 0,
+        "photos_skipped": 0,
+        "patches_added": 0,
+        "patches_flagged": 0,
+        "patches_left_out_of_review": 0,
+    }
+    groups = {j.name: j.group for j in jobs}
+    t0 = time.perf_counter()
+    decode_s = total_s = 0.0
+
+    def handle(res: dict, i: int) -> None:
+        nonlocal decode_s, total_s
+        st = res["status"]
+        if st == "present":
+            counts["photos_already_present"] += 1
+        elif st == "moved":
+            workspace.set_source_path(
+                hash_to_name[res["sha256"]], next(j.path for j in jobs if j.name == res["name"])
+            )
+            counts["photos_moved"] += 1
+        elif st in ("error", "changed"):
+            problems.append(res["error"])
+            counts["photos_skipped"] += 1
+        else:
+            job = next(j for j in jobs if j.name == res["name"])
+            workspace.add_photo_with_patches(
+                name=res["name"],
+                source_path=job.path,
+                size_bytes=res["size_bytes"],
+                width=res["width"],
+                height=res["height"],
+                gsd_mm=res["gsd_mm"],
+                gsd_source=res["gsd_source"],
+                group_id=groups[res["name"]],
+                capture_date=res["date"],
+                roi=res["roi"],
+                sha256=res["sha256"],
+                patches=res["patches"],
+            )
+            counts["photos_added"] += 1
+            counts["patches_added"] += len(res["patches"])
+            counts["patches_flagged"] += sum(bool(p["flags"]) for p in res["patches"])
+            counts["patches_left_out_of_review"] += sum(p["review_skip"] for p in res["patches"])
+            decode_s += res["seconds_decode"]
+            total_s += res["seconds_total"]
+        if progress:
+            progress(i, len(jobs), res["name"])
+
+    n_workers = workers or max(1, len(os.sched_getaffinity(0)))
+    if n_workers <= 1 or len(jobs) <= 1:
+        for i, job in enumerate(jobs, start=1):
+            handle(_process(job), i)
+    else:
+        # forkserver, not fork: forking a process that already runs OpenMP/BLAS threads
+        # (torch, OpenCV) can deadlock the child.
+        ctx = multiprocessing.get_context("forkserver")
+        with ProcessPoolExecutor(min(n_workers, len(jobs)), mp_context=ctx) as pool:
+            for i, res in enumerate(pool.map(_process, jobs), start=1):
+                handle(res, i)
+    wall = time.perf_counter() - t0
     return {
-        "photos_added": added,
-        "photos_already_present": skipped_existing,
-        "photos_skipped": len(problems),
-        "patches_added": n_patches,
-        "patches_flagged": n_flagged,
+        **counts,
         "problems": problems,
+        "seconds": round(wall, 3),
+        "photos_per_second": round(counts["photos_added"] / wall, 3)
+        if wall > 0 and counts["photos_added"]
+        else 0.0,
+        "decode_share": round(decode_s / total_s, 3) if total_s > 0 else None,
+        "workers": n_workers,
     }

@@ -31,14 +31,19 @@ _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS photos (
     id INTEGER PRIMARY KEY,
-    name TEXT NOT NULL UNIQUE,          -- file name relative to the folder it came from
-    source_path TEXT NOT NULL,          -- absolute path at intake time
-    width INTEGER NOT NULL, height INTEGER NOT NULL,
+    name TEXT NOT NULL UNIQUE,          -- path relative to the folder it was found in
+    source_path TEXT NOT NULL,          -- absolute path at intake (updated when the file moves)
+    size_bytes INTEGER NOT NULL,
+    width INTEGER NOT NULL, height INTEGER NOT NULL,   -- upright (EXIF orientation applied)
     gsd_mm REAL,                        -- mm per pixel of the original photo, NULL if unknown
-    group_id TEXT NOT NULL,             -- structure / site / photo id used to keep splits apart
+    gsd_source TEXT NOT NULL,           -- sidecar | sidecar-camera | option | option-camera | exif | none
+    group_id TEXT NOT NULL,             -- structure / site (or the photo) keeping splits apart
+    capture_date TEXT,                  -- YYYY-MM-DD from the sidecar, the name pattern or EXIF
+    roi TEXT,                           -- region of interest as given, NULL for the whole photo
     sha256 TEXT NOT NULL,
     added_at REAL NOT NULL
 );
+CREATE INDEX IF NOT EXISTS photos_sha ON photos(sha256);
 CREATE TABLE IF NOT EXISTS patches (
     id INTEGER PRIMARY KEY,
     photo_id INTEGER NOT NULL REFERENCES photos(id),
@@ -49,6 +54,7 @@ CREATE TABLE IF NOT EXISTS patches (
     focus REAL NOT NULL,                -- variance of the Laplacian of the grey crop
     clipped REAL NOT NULL,              -- fraction of grey pixels at <= 2 or >= 253
     flags TEXT NOT NULL DEFAULT '',     -- comma-separated quality flags
+    review_skip INTEGER NOT NULL DEFAULT 0,  -- 1: left out of the review queue (--skip-flagged)
     UNIQUE (photo_id, x0, y0, x1, y1)
 );
 CREATE TABLE IF NOT EXISTS label_events (
@@ -90,6 +96,14 @@ class PatchRecord:
     label: str | None
     labelled: bool
     subset: str | None
+    review_skip: bool = False
+
+    @property
+    def box_mm(self) -> tuple[float, float, float, float] | None:
+        """The box in mm on the surface, from the photo's scale; None without scale."""
+        if self.gsd_mm is None:
+            return None
+        return tuple(round(v * self.gsd_mm, 3) for v in self.box)  # type: ignore[return-value]
 
 
 class Workspace:
@@ -195,21 +209,42 @@ class Workspace:
         group_id: str,
         sha256: str,
         patches: Iterable[dict],
+        size_bytes: int = 0,
+        gsd_source: str | None = None,
+        capture_date: str | None = None,
+        roi: str | None = None,
     ) -> int:
         """Add one photo and all its patches in a single transaction; returns the photo id.
 
-        Each patch dict has row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped, flags.
+        Each patch dict has row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped,
+        flags and optionally review_skip.
         """
+        if gsd_source is None:
+            gsd_source = "none" if gsd_mm is None else "option"
+        cols = "row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped, flags, review_skip"
         with self.connect() as con:
             cur = con.execute(
-                "INSERT INTO photos(name, source_path, width, height, gsd_mm, group_id, sha256, added_at)"
-                " VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                (name, source_path, width, height, gsd_mm, group_id, sha256, time.time()),
+                "INSERT INTO photos(name, source_path, size_bytes, width, height, gsd_mm, gsd_source,"
+                " group_id, capture_date, roi, sha256, added_at)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (
+                    name,
+                    source_path,
+                    size_bytes,
+                    width,
+                    height,
+                    gsd_mm,
+                    gsd_source,
+                    group_id,
+                    capture_date,
+                    roi,
+                    sha256,
+                    time.time(),
+                ),
             )
             pid = int(cur.lastrowid)
             con.executemany(
-                "INSERT INTO patches(photo_id, row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped, flags)"
-                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                f"INSERT INTO patches(photo_id, {cols}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 [
                     (
                         pid,
@@ -224,11 +259,29 @@ class Workspace:
                         p["focus"],
                         p["clipped"],
                         p.get("flags", ""),
+                        int(p.get("review_skip", 0)),
                     )
                     for p in patches
                 ],
             )
         return pid
+
+    def photo_hashes(self) -> dict[str, str]:
+        """Photo name -> SHA-256 of every photo in the workspace."""
+        with self.connect() as con:
+            return dict(con.execute("SELECT name, sha256 FROM photos").fetchall())
+
+    def set_source_path(self, name: str, source_path: str) -> None:
+        """Record a photo's new location (a moved file recognised by its hash)."""
+        with self.connect() as con:
+            con.execute("UPDATE photos SET source_path = ? WHERE name = ?", (source_path, name))
+
+    def photos(self) -> list[dict]:
+        """Provenance of every photo, in intake order."""
+        with self.connect() as con:
+            con.row_factory = sqlite3.Row
+            rows = con.execute("SELECT * FROM photos ORDER BY id").fetchall()
+        return [dict(r) for r in rows]
 
     def patches(self) -> list[PatchRecord]:
         """All patches in photo then grid order, with current label and split subset."""
@@ -237,7 +290,7 @@ class Workspace:
                p.patch_mm, ph.gsd_mm, p.focus, p.clipped, p.flags,
                (SELECT e.label FROM label_events e WHERE e.patch_id = p.id ORDER BY e.id DESC LIMIT 1),
                EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = p.id),
-               s.subset
+               s.subset, p.review_skip
         FROM patches p JOIN photos ph ON ph.id = p.photo_id
         LEFT JOIN split_assignments s ON s.patch_id = p.id
         ORDER BY ph.id, p.row, p.col
@@ -261,6 +314,7 @@ class Workspace:
                 label=r[15],
                 labelled=bool(r[16]),
                 subset=r[17],
+                review_skip=bool(r[18]),
             )
             for r in rows
         ]
@@ -327,17 +381,27 @@ class Workspace:
 
     # ----- summary -----------------------------------------------------------------
     def summary(self) -> dict:
-        """Counts for `trainkit status`: photos, patches, labelled per class, split sizes."""
+        """Counts for `trainkit status`; the top-level keys are stable for scripts.
+
+        Keys: ``photos``, ``patches``, ``flagged`` (patches with a quality flag),
+        ``labeled`` (class name -> patches whose current label is that class),
+        ``unsure`` (labelled but marked unsure), ``unlabeled`` (never labelled) and
+        ``splits`` (subset name -> labelled patches in it), plus descriptive fields.
+        """
         recs = self.patches()
-        by_label: dict[str, int] = {}
-        by_subset: dict[str, int] = {}
-        flagged = 0
+        names = self.class_set.names
+        labeled = dict.fromkeys(names, 0)
+        splits = {"train": 0, "val": 0, "test": 0}
+        flagged = unsure = unlabeled = 0
         for r in recs:
-            if r.labelled:
-                key = r.label if r.label is not None else "(unsure)"
-                by_label[key] = by_label.get(key, 0) + 1
-            if r.subset:
-                by_subset[r.subset] = by_subset.get(r.subset, 0) + 1
+            if not r.labelled:
+                unlabeled += 1
+            elif r.label is None:
+                unsure += 1
+            else:
+                labeled[r.label] += 1
+            if r.subset and r.label is not None:
+                splits[r.subset] += 1
             flagged += bool(r.flags)
         with self.connect() as con:
             n_photos = con.execute("SELECT COUNT(*) FROM photos").fetchone()[0]
@@ -345,16 +409,14 @@ class Workspace:
             "workspace": str(self.root),
             "class_set": self.class_set.name,
             "tile_px": self.tile_px,
-            "photos": n_photos,
+            "photos": int(n_photos),
             "patches": len(recs),
-            "flagged_patches": flagged,
-            "labelled": sum(by_label.values()),
-            "labels": {
-                n: by_label.get(n, 0)
-                for n in (*self.class_set.names, "(unsure)")
-                if by_label.get(n, 0) or n in self.class_set.names
-            },
-            "split": by_subset,
+            "flagged": flagged,
+            "labeled": labeled,
+            "unsure": unsure,
+            "unlabeled": unlabeled,
+            "splits": splits,
+            "left_out_of_review": sum(r.review_skip for r in recs),
         }
 
 
