@@ -6,7 +6,11 @@ vary from run to run, ratios much less.
 
 1. training step of the demo network: the channels-last view that Preprocess's
    permute gives (what the kit uses) versus a contiguous NCHW copy;
-2. inference: ONNX Runtime on the exported screener versus PyTorch eager, same patches.
+2. inference: ONNX Runtime on the exported screener versus PyTorch eager, same patches;
+3. tiling 12-megapixel JPEGs into a workspace: photos per second with one worker and with
+   one worker per core, and the share of worker time spent decoding.
+
+`python benchmarks/run.py [memory_format|inference|tiling ...]` runs a subset.
 """
 
 from __future__ import annotations
@@ -102,15 +106,78 @@ def bench_onnx_vs_torch(n: int = 256, size: int = 128) -> dict:
     }
 
 
-def main() -> int:
-    results = {
-        "torch_threads": torch.get_num_threads(),
-        "memory_format": bench_memory_format(),
-        "inference": bench_onnx_vs_torch(),
+def bench_tiling(n_photos: int = 8, rounds: int = 2) -> dict:
+    """12-Mpx JPEGs (synthetic concrete upscaled to 4000 x 3000 plus noise) tiled at 224 px."""
+    import os
+    import shutil
+
+    import cv2
+    from PIL import Image
+
+    from trainkit.synth import SynthOptions, generate_photo
+    from trainkit.taxonomy import load_class_set
+    from trainkit.tiling import tile_into_workspace
+    from trainkit.workspace import Workspace
+
+    cores = len(os.sched_getaffinity(0))
+    with tempfile.TemporaryDirectory() as d:
+        root = Path(d)
+        photos = []
+        rng = np.random.default_rng(0)
+        for i in range(n_photos):
+            small = generate_photo(1000 + i, SynthOptions(height=750, width=1000)).image
+            big = cv2.resize(small, (4000, 3000), interpolation=cv2.INTER_CUBIC)
+            big = np.clip(big + rng.normal(0, 3, big.shape), 0, 255).astype(np.uint8)
+            p = root / f"frame-{i:02d}.jpg"
+            Image.fromarray(big).save(p, quality=92)
+            photos.append(p)
+        out: dict = {}
+        variants = [(1, "tiff"), (cores, "tiff"), (cores, "png")]
+        for _ in range(rounds):
+            for workers, fmt in variants:
+                ws_dir = root / f"ws-{workers}-{fmt}"
+                shutil.rmtree(ws_dir, ignore_errors=True)
+                ws = Workspace.create(ws_dir, class_set=load_class_set("orientation"), tile_px=224)
+                res = tile_into_workspace(photos, ws, workers=workers, crop_format=fmt)
+                best = out.get((workers, fmt))
+                if best is None or res["photos_per_second"] > best["photos_per_second"]:
+                    out[(workers, fmt)] = res
+    one, many, png = out[(1, "tiff")], out[(cores, "tiff")], out[(cores, "png")]
+    return {
+        "what": f"{n_photos} JPEGs of 4000 x 3000 px tiled at 224 px (best of {rounds})",
+        "photos_per_second": {
+            "1 worker, tiff crops": one["photos_per_second"],
+            f"{cores} workers, tiff crops": many["photos_per_second"],
+            f"{cores} workers, png crops": png["photos_per_second"],
+        },
+        "patches_per_photo": one["patches_added"] // n_photos,
+        "decode_share_of_worker_time": one["decode_share"],
+        "speedup_parallel": round(many["photos_per_second"] / one["photos_per_second"], 2),
+        "speedup_tiff_over_png": round(many["photos_per_second"] / png["photos_per_second"], 2),
     }
+
+
+BENCHMARKS = {
+    "memory_format": bench_memory_format,
+    "inference": bench_onnx_vs_torch,
+    "tiling": bench_tiling,
+}
+
+
+def main(argv: list[str]) -> int:
+    names = argv or list(BENCHMARKS)
+    unknown = [n for n in names if n not in BENCHMARKS]
+    if unknown:
+        print(
+            f"unknown benchmark(s) {unknown}; choose from: {', '.join(BENCHMARKS)}", file=sys.stderr
+        )
+        return 2
+    results: dict = {"torch_threads": torch.get_num_threads()}
+    for n in names:
+        results[n] = BENCHMARKS[n]()
     print(json.dumps(results, indent=2))
     return 0
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    sys.exit(main(sys.argv[1:]))

@@ -470,3 +470,192 @@ def test_cohen_kappa_absent_label_and_undefined_case():
         ValueError, match=r"expected every value of b to be one of labels \[0, 1\], got \[2\]"
     ):
         M.cohen_kappa([0, 1], [0, 2], labels=[0, 1])
+
+
+# --------------------------------------------------------------------------- against sklearn, edges
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_confusion_and_per_class_match_sklearn_on_random_labels(seed):
+    # Reference library: sklearn.metrics confusion_matrix and precision_recall_fscore_support.
+    rng = np.random.default_rng(seed)
+    y_true = rng.integers(0, 6, 300)
+    y_pred = np.where(rng.random(300) < 0.6, y_true, rng.integers(0, 6, 300))
+    labels = list(range(6))
+    cm = M.confusion_matrix(y_true, y_pred, labels=labels)
+    np.testing.assert_array_equal(cm, skm.confusion_matrix(y_true, y_pred, labels=labels))
+    p, r, f, s = skm.precision_recall_fscore_support(y_true, y_pred, labels=labels)
+    rep = M.per_class_report(y_true, y_pred, labels=labels, class_names=list("abcdef"))
+    for i, row in enumerate(rep):
+        assert (row["precision"], row["recall"], row["f1"], row["support"]) == pytest.approx(
+            (p[i], r[i], f[i], s[i])
+        )
+        # Recall interval: k/n from the confusion matrix, limits as scipy's Wilson interval.
+        ref = stats.binomtest(int(cm[i, i]), int(cm[i].sum())).proportion_ci(method="wilson")
+        assert (row["recall_ci_low"], row["recall_ci_high"]) == pytest.approx(
+            (ref.low, ref.high), abs=1e-12
+        )
+
+
+def test_per_class_all_predictions_one_class_matches_sklearn():
+    # Edge case: the model predicts "none" for everything; class 2 is absent from y_true.
+    y_true = [0, 0, 1, 1, 1, 3, 3]
+    y_pred = [0] * 7
+    labels = [0, 1, 2, 3]
+    rep = M.per_class_report(y_true, y_pred, labels=labels, class_names=["n", "a", "b", "c"])
+    p, r, f, s = skm.precision_recall_fscore_support(y_true, y_pred, labels=labels, zero_division=0)
+    assert [row["precision"] for row in rep] == pytest.approx(p.tolist())
+    assert [row["recall"] for row in rep] == pytest.approx(r.tolist())
+    assert [row["f1"] for row in rep] == pytest.approx(f.tolist())
+    assert [row["support"] for row in rep] == s.tolist()
+    np.testing.assert_array_equal(
+        M.confusion_matrix(y_true, y_pred, labels=labels),
+        skm.confusion_matrix(y_true, y_pred, labels=labels),
+    )
+    # Recall 0 of 3 for class 1 still has a finite interval with lower limit 0.
+    assert rep[1]["recall_ci_low"] == 0.0 and rep[1]["recall_ci_high"] > 0.5
+    assert math.isnan(rep[2]["recall_ci_low"])  # absent class: undefined
+
+
+@pytest.mark.parametrize("n", [1, 7, 20, 263])
+@pytest.mark.parametrize("method", ["wilson", "clopper-pearson"])
+def test_intervals_at_k_zero_and_k_n(n, method):
+    # Reference libraries: scipy binomtest(...).proportion_ci and statsmodels proportion_confint.
+    proportion = pytest.importorskip("statsmodels.stats.proportion")
+    sm_method = {"wilson": "wilson", "clopper-pearson": "beta"}[method]
+    sp_method = {"wilson": "wilson", "clopper-pearson": "exact"}[method]
+    for k in (0, n):
+        iv = M.recall_interval(k, n, method=method)
+        ref = stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method=sp_method)
+        lo, hi = proportion.proportion_confint(k, n, alpha=0.05, method=sm_method)
+        assert (iv.low, iv.high) == pytest.approx((ref.low, ref.high), abs=1e-10)
+        assert (iv.low, iv.high) == pytest.approx((lo, hi), abs=1e-10)
+    # Symmetry: the interval for n/n mirrors the one for 0/n.
+    zero, full = M.recall_interval(0, n, method=method), M.recall_interval(n, n, method=method)
+    assert full.high == 1.0 and zero.low == 0.0
+    assert full.low == pytest.approx(1.0 - zero.high, abs=1e-12)
+
+
+# --------------------------------------------------------------------------- temperature scaling
+
+
+def _overconfident_logits(seed: int = 0, n: int = 400, c: int = 4):
+    """Logits from a calibrated model (labels drawn from softmax(z)), then multiplied by 3."""
+    rng = np.random.default_rng(seed)
+    z = rng.normal(0.0, 1.5, size=(n, c))
+    p = np.exp(z) / np.exp(z).sum(1, keepdims=True)
+    y = np.array([rng.choice(c, p=row) for row in p])
+    return 3.0 * z, y
+
+
+def test_softmax_and_nll_match_sklearn_log_loss():
+    # Reference library: sklearn.metrics.log_loss (natural log, mean over samples).
+    z, y = _overconfident_logits()
+    for t in (0.5, 1.0, 2.7):
+        probs = M.softmax(z, temperature=t)
+        np.testing.assert_allclose(probs.sum(1), 1.0, atol=1e-12)
+        ref = skm.log_loss(y, probs, labels=[0, 1, 2, 3])
+        assert M.negative_log_likelihood(z, y, temperature=t) == pytest.approx(ref, rel=1e-9)
+
+
+def test_fit_temperature_overconfident_gives_t_above_one_and_lower_nll():
+    # Guo et al. (2017): temperature scaling fits one T > 0 by NLL and keeps the argmax.
+    z, y = _overconfident_logits()
+    t = M.fit_temperature(z, y)
+    assert t > 1.0
+    assert t == pytest.approx(3.0, rel=0.25)  # the logits were scaled by 3 (sampling noise)
+    assert M.negative_log_likelihood(z, y, temperature=t) < M.negative_log_likelihood(z, y)
+    np.testing.assert_array_equal(M.softmax(z, temperature=t).argmax(1), z.argmax(1))
+    conf_before = M.softmax(z).max(1)
+    conf_after = M.softmax(z, temperature=t).max(1)
+    correct = z.argmax(1) == y
+    assert M.expected_calibration_error(conf_after, correct) < M.expected_calibration_error(
+        conf_before, correct
+    )
+
+
+def test_fit_temperature_matches_grid_and_scipy_minimize():
+    # Outside checks: a brute-force grid over T, and scipy.optimize.minimize (L-BFGS-B) on T.
+    from scipy.optimize import minimize
+
+    z, y = _overconfident_logits(seed=3)
+    t = M.fit_temperature(z, y)
+    grid = np.linspace(0.5, 8.0, 15001)  # step 0.0005
+    nll = [skm.log_loss(y, M.softmax(z, temperature=g), labels=[0, 1, 2, 3]) for g in grid[::50]]
+    coarse = grid[::50][int(np.argmin(nll))]
+    fine = grid[np.abs(grid - coarse) <= 0.03]
+    best = fine[np.argmin([M.negative_log_likelihood(z, y, temperature=g) for g in fine])]
+    assert t == pytest.approx(best, abs=1e-3)
+    res = minimize(
+        lambda v: M.negative_log_likelihood(z, y, temperature=float(v[0])),
+        x0=[1.0],
+        bounds=[(0.05, 20.0)],
+        method="L-BFGS-B",
+    )
+    assert t == pytest.approx(res.x[0], abs=1e-3)
+
+
+def test_fit_temperature_underconfident_gives_t_below_one():
+    z, y = _overconfident_logits(seed=5)
+    assert M.fit_temperature(z / 9.0, y) < 1.0  # logits shrunk below the calibrated scale
+
+
+def test_temperature_functions_validate_inputs():
+    z, y = _overconfident_logits(n=10)
+    with pytest.raises(ValueError, match=r"expected temperature > 0, got 0"):
+        M.softmax(z, temperature=0)
+    with pytest.raises(ValueError, match=r"expected logits of shape \(n, C\).*got shape \(10,\)"):
+        M.fit_temperature(z[:, 0], y)
+    with pytest.raises(ValueError, match=r"expected labels in \[0, 3\], got \[4\]"):
+        M.negative_log_likelihood(z, np.where(y == 0, 4, y))
+    with pytest.raises(ValueError, match="same length, got 10 and 9"):
+        M.fit_temperature(z, y[:9])
+    with pytest.raises(ValueError, match=r"expected bounds 0 < low < high, got \(2.0, 1.0\)"):
+        M.fit_temperature(z, y, bounds=(2.0, 1.0))
+    with pytest.raises(ValueError, match="expected finite logits"):
+        M.softmax(np.array([[0.0, np.inf]]))
+
+
+# --------------------------------------------------------------------------- breakdowns
+
+
+def test_scale_bands_equal_count_with_unknown():
+    mm = np.array([30.0, 31.0, 40.0, 41.0, 60.0, 61.0, np.nan])
+    bands, order = M.scale_bands(mm, n_bands=3)
+    # Hand-computed quantiles (linear interpolation at position 5q of the six sorted widths):
+    # q=1/3 -> 31 + 2/3 * 9 = 37.0; q=2/3 -> 41 + 1/3 * 19 = 47.33; ends 30 and 61.
+    assert order == ["30.0-37.0 mm", "37.0-47.3 mm", "47.3-61.0 mm", "unknown"]
+    assert bands == [order[0], order[0], order[1], order[1], order[2], order[2], "unknown"]
+    same, order_same = M.scale_bands([50.0, 50.0], n_bands=3)
+    assert same == ["50.0-50.0 mm"] * 2 and order_same == ["50.0-50.0 mm"]
+    with pytest.raises(ValueError, match=r"expected patch widths > 0 mm, got \[-1.0\]"):
+        M.scale_bands([10.0, -1.0])
+
+
+def test_breakdown_matches_sklearn_per_group():
+    # Reference library: sklearn recall_score per group; intervals from scipy's Wilson.
+    rng = np.random.default_rng(4)
+    keys = rng.choice(["site-a", "site-b", "site-c"], 120)
+    crack = rng.random(120) < 0.4
+    flagged = np.where(crack, rng.random(120) < 0.8, rng.random(120) < 0.1)
+    correct = rng.random(120) < 0.7
+    keys[:5] = "site-d"  # a group
+    crack[:5] = False  # ... without cracks
+    rows = M.breakdown(keys, crack, flagged, correct)
+    assert [r["key"] for r in rows] == ["site-a", "site-b", "site-c", "site-d"]
+    for r in rows:
+        m = keys == r["key"]
+        assert r["patches"] == m.sum() and r["cracks"] == (crack & m).sum()
+        assert r["accuracy"] == pytest.approx(correct[m].mean())
+        if r["cracks"]:
+            assert r["recall"] == pytest.approx(skm.recall_score(crack[m], flagged[m]))
+            ref = stats.binomtest(r["cracks_found"], r["cracks"]).proportion_ci(method="wilson")
+            assert (r["recall_ci_low"], r["recall_ci_high"]) == pytest.approx((ref.low, ref.high))
+        fa = skm.confusion_matrix(crack[m], flagged[m], labels=[False, True])[0]
+        assert (r["false_alarms"], r["clean"]) == (fa[1], fa.sum())
+    assert math.isnan(rows[-1]["recall"]) and math.isnan(rows[-1]["recall_ci_low"])
+
+
+def test_breakdown_order_must_cover_every_key():
+    with pytest.raises(ValueError, match=r"keys missing from it: \['b'\]"):
+        M.breakdown(["a", "b"], [1, 0], [1, 0], [1, 1], order=["a"])

@@ -272,6 +272,13 @@ def synth(
     "--skip-flagged", is_flag=True, help="Leave patches with quality flags out of the review queue."
 )
 @click.option(
+    "--crop-format",
+    type=click.Choice(["tiff", "png"]),
+    default="tiff",
+    show_default=True,
+    help="Lossless crop files: uncompressed TIFF (fast) or PNG (smaller, slower to write).",
+)
+@click.option(
     "--classes",
     default="orientation",
     show_default=True,
@@ -311,6 +318,7 @@ def tile(
     group_by,
     group_pattern,
     skip_flagged,
+    crop_format,
     classes,
     import_labels,
     workers,
@@ -349,6 +357,7 @@ def tile(
                 group_by=group_by,
                 group_pattern=group_pattern,
                 skip_flagged=skip_flagged,
+                crop_format=crop_format,
                 workers=workers,
                 max_pixels=int(max_megapixels * 1e6),
                 roots={p: r for p, r in found if r is not None},

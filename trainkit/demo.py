@@ -164,10 +164,14 @@ def run_demo(
     }
     (out / "demo-summary.json").write_text(json.dumps(headline, indent=2), encoding="utf-8")
     ctx.console.rule("[bold]done")
+
+    def f3(v) -> str:  # metrics.json writes undefined values as null
+        return "n/a" if v is None else f"{v:.3f}"
+
     ctx.console.print(
-        f"finished in {seconds / 60:.1f} min. Test screening recall {s['recall']:.3f} "
-        f"[{s['recall_interval']['low']:.3f}, {s['recall_interval']['high']:.3f}] (Wilson 95%), false-alarm rate "
-        f"{s['false_alarm_rate']:.3f}, 6-class accuracy {metrics['accuracy']:.3f}; "
+        f"finished in {seconds / 60:.1f} min. Test screening recall {f3(s['recall'])} "
+        f"[{f3(s['recall_interval']['low'])}, {f3(s['recall_interval']['high'])}] (Wilson 95%), false-alarm rate "
+        f"{f3(s['false_alarm_rate'])}, 6-class accuracy {metrics['accuracy']:.3f}; "
         f"{trained['median_images_per_second']:.0f} training images/s."
     )
     ctx.console.print(f"  model         {out / 'model.onnx'}")

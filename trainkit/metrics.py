@@ -15,15 +15,20 @@ from sklearn import metrics as skm
 __all__ = [
     "Interval",
     "INTERVAL_METHODS",
+    "breakdown",
     "cohen_kappa",
     "confusion_matrix",
     "expected_calibration_error",
+    "fit_temperature",
     "mcnemar_test",
+    "negative_log_likelihood",
     "per_class_report",
     "recall_interval",
     "reliability_bins",
     "row_normalise",
+    "scale_bands",
     "screening_scores",
+    "softmax",
     "threshold_for_recall",
 ]
 
@@ -321,7 +326,8 @@ def per_class_report(
 
     Returns:
         One dict per label with keys name, index (the label), precision, recall, f1,
-        support and recall_interval (a dict with low, high, method, confidence, k, n).
+        support, recall_ci_low, recall_ci_high and recall_interval (a dict with low,
+        high, method, confidence, k, n).
 
     Raises:
         ValueError: on mismatched lengths, or values outside ``labels``.
@@ -351,6 +357,8 @@ def per_class_report(
                 "recall": float(rec[i]),
                 "f1": float(f1[i]),
                 "support": int(sup[i]),
+                "recall_ci_low": iv.low,
+                "recall_ci_high": iv.high,
                 "recall_interval": iv.to_dict(),
             }
         )
@@ -618,3 +626,233 @@ def cohen_kappa(a: ArrayLike, b: ArrayLike, *, labels: Sequence[Any]) -> float:
     if p_chance >= 1.0:
         return math.nan
     return float(skm.cohen_kappa_score(np.asarray(a), np.asarray(b), labels=np.asarray(labels)))
+
+
+# ----------------------------------------------------------------- temperature scaling
+
+
+def _check_logits(logits: ArrayLike, labels: ArrayLike | None = None) -> tuple[np.ndarray, Any]:
+    z = np.asarray(logits, dtype=float)
+    if z.ndim != 2 or z.shape[0] == 0 or z.shape[1] < 2:
+        raise ValueError(
+            f"expected logits of shape (n, C) with n >= 1 and C >= 2, got shape {z.shape}"
+        )
+    if not np.isfinite(z).all():
+        raise ValueError("expected finite logits, got nan or inf entries")
+    if labels is None:
+        return z, None
+    y = _as_1d(labels, "labels")
+    _same_length(z, y, "logits", "labels")
+    if not np.issubdtype(y.dtype, np.integer):
+        raise TypeError(f"expected labels to be integer class indices, got dtype {y.dtype}")
+    bad = (y < 0) | (y >= z.shape[1])
+    if bad.any():
+        raise ValueError(
+            f"expected labels in [0, {z.shape[1] - 1}], got {np.unique(y[bad])[:10].tolist()}"
+        )
+    return z, y.astype(np.int64)
+
+
+def _check_temperature(temperature: float) -> float:
+    if isinstance(temperature, bool) or not isinstance(temperature, (int, float, np.number)):
+        raise TypeError(f"expected temperature to be a float > 0, got {type(temperature).__name__}")
+    t = float(temperature)
+    if not (math.isfinite(t) and t > 0.0):
+        raise ValueError(f"expected temperature > 0, got {temperature}")
+    return t
+
+
+def softmax(logits: ArrayLike, *, temperature: float = 1.0) -> np.ndarray:
+    """Row-wise softmax of ``logits / temperature`` (numerically stable).
+
+    Args:
+        logits: unnormalised scores, shape (n, C). Log-probabilities work too: softmax is
+            unchanged by a constant shift per row, so ``softmax(log p / T)`` equals
+            ``softmax(z / T)`` for the logits ``z`` behind ``p``.
+        temperature: T > 0; T > 1 softens, T < 1 sharpens. The argmax never changes.
+
+    Returns:
+        Probabilities, shape (n, C), rows summing to 1.
+
+    Raises:
+        ValueError: on a bad shape, non-finite logits or a temperature that is not > 0.
+    """
+    from scipy.special import softmax as _softmax
+
+    z, _ = _check_logits(logits)
+    return _softmax(z / _check_temperature(temperature), axis=1)
+
+
+def negative_log_likelihood(
+    logits: ArrayLike, labels: ArrayLike, *, temperature: float = 1.0
+) -> float:
+    """Mean negative log-likelihood (cross-entropy, natural log) of the true classes.
+
+    ``NLL(T) = -mean_i log softmax(z_i / T)[y_i]``.
+
+    Args:
+        logits: unnormalised scores, shape (n, C).
+        labels: true class index per row, shape (n,).
+        temperature: T > 0.
+
+    Returns:
+        The mean NLL in nats.
+
+    Raises:
+        ValueError: on a bad shape, labels outside [0, C) or a temperature that is not > 0.
+    """
+    from scipy.special import log_softmax
+
+    z, y = _check_logits(logits, labels)
+    logp = log_softmax(z / _check_temperature(temperature), axis=1)
+    return float(-logp[np.arange(y.size), y].mean())
+
+
+def fit_temperature(
+    logits: ArrayLike, labels: ArrayLike, *, bounds: tuple[float, float] = (0.05, 20.0)
+) -> float:
+    """Temperature T > 0 that minimises the NLL of ``softmax(logits / T)`` (Guo et al. 2017).
+
+    The NLL is convex in the inverse temperature ``b = 1 / T`` (a log-sum-exp of terms
+    linear in b, minus a linear term), so a bounded one-dimensional search over b finds
+    the global minimum within ``bounds``. Scaling by one positive T keeps every row's
+    argmax, so accuracy and the predicted classes are unchanged.
+
+    Args:
+        logits: validation logits, shape (n, C).
+        labels: validation class indices, shape (n,).
+        bounds: smallest and largest temperature searched, 0 < low < high.
+
+    Returns:
+        The fitted temperature (a bound when the optimum lies outside them).
+
+    Raises:
+        ValueError: on bad logits or labels, or bounds not 0 < low < high.
+    """
+    from scipy.optimize import minimize_scalar
+    from scipy.special import log_softmax
+
+    z, y = _check_logits(logits, labels)
+    lo, hi = (float(b) for b in bounds)
+    if not 0.0 < lo < hi:
+        raise ValueError(f"expected bounds 0 < low < high, got {bounds}")
+    rows = np.arange(y.size)
+
+    def nll(beta: float) -> float:
+        return float(-log_softmax(z * beta, axis=1)[rows, y].mean())
+
+    res = minimize_scalar(
+        nll, bounds=(1.0 / hi, 1.0 / lo), method="bounded", options={"xatol": 1e-10}
+    )
+    # The bounded search never evaluates the end points; keep one if it is better.
+    best = min((1.0 / hi, 1.0 / lo, float(res.x)), key=nll)
+    return 1.0 / best
+
+
+# ----------------------------------------------------------------- breakdowns (photo, site, scale)
+
+
+def scale_bands(patch_mm: ArrayLike, *, n_bands: int = 3) -> tuple[list[str], list[str]]:
+    """Assign each patch to an equal-count band of its physical width in mm.
+
+    Edges are the ``i / n_bands`` quantiles of the known widths (repeated edges merged);
+    bands are ``(lo, hi]`` except the first, which includes its lower edge. Patches
+    without a scale (nan) get the band ``"unknown"``.
+
+    Args:
+        patch_mm: surface width of each patch in mm, nan where unknown, shape (n,).
+        n_bands: number of bands wanted (fewer when widths repeat).
+
+    Returns:
+        (band label per patch, band labels in increasing order of width, then
+        "unknown" if any patch has no scale).
+
+    Raises:
+        ValueError: on negative widths or n_bands < 1.
+    """
+    mm = _as_1d(patch_mm, "patch_mm").astype(float)
+    nb = _check_n_bins(n_bands)
+    known = np.isfinite(mm)
+    if (mm[known] <= 0).any():
+        raise ValueError(f"expected patch widths > 0 mm, got {mm[known & (mm <= 0)][:5].tolist()}")
+    out = np.full(mm.size, "unknown", dtype=object)
+    order: list[str] = []
+    if known.any():
+        edges = np.unique(np.quantile(mm[known], np.arange(nb + 1) / nb))
+        if edges.size == 1:
+            edges = np.array([edges[0], edges[0]])
+        labels = [f"{edges[i]:.1f}-{edges[i + 1]:.1f} mm" for i in range(edges.size - 1)]
+        idx = np.clip(np.searchsorted(edges, mm[known], side="left") - 1, 0, len(labels) - 1)
+        out[known] = [labels[i] for i in idx]
+        order = [lab for lab in labels if lab in set(out[known])]
+    if (~known).any():
+        order.append("unknown")
+    return [str(v) for v in out], order
+
+
+def breakdown(
+    keys: Sequence[str],
+    is_crack: ArrayLike,
+    flagged: ArrayLike,
+    correct: ArrayLike,
+    *,
+    order: Sequence[str] | None = None,
+    confidence: float = 0.95,
+    method: str = "wilson",
+) -> list[dict[str, Any]]:
+    """Screening recall (with interval), false alarms and accuracy for each value of a key.
+
+    Args:
+        keys: the group of each patch (photo, site, scale band), shape (n,).
+        is_crack: whether each patch truly shows a crack, shape (n,).
+        flagged: whether the screener flagged each patch, shape (n,).
+        correct: whether the predicted class was right, shape (n,).
+        order: row order (default: sorted keys); every key must be listed.
+        confidence: level of the recall intervals.
+        method: interval method, see :func:`recall_interval`.
+
+    Returns:
+        One dict per key with key, patches, cracks, cracks_found, recall, recall_ci_low,
+        recall_ci_high (nan when the group has no cracks), clean, false_alarms,
+        false_alarm_rate (nan without clean patches) and accuracy.
+
+    Raises:
+        ValueError: on mismatched lengths, non-binary flags or keys missing from ``order``.
+    """
+    k = np.asarray([str(v) for v in keys], dtype=object)
+    crack = _as_bool(is_crack, "is_crack")
+    flag = _as_bool(flagged, "flagged")
+    corr = _as_bool(correct, "correct")
+    for arr, name in ((crack, "is_crack"), (flag, "flagged"), (corr, "correct")):
+        _same_length(k, arr, "keys", name)
+    present = sorted(set(k.tolist()))
+    rows_order = list(order) if order is not None else present
+    missing = sorted(set(present) - set(rows_order))
+    if missing:
+        raise ValueError(f"expected every key in order, got keys missing from it: {missing[:10]}")
+    out = []
+    for key in rows_order:
+        m = k == key
+        if not m.any():
+            continue
+        n_crack = int((m & crack).sum())
+        found = int((m & crack & flag).sum())
+        clean = int((m & ~crack).sum())
+        fa = int((m & ~crack & flag).sum())
+        iv = recall_interval(found, n_crack, confidence=confidence, method=method)
+        out.append(
+            {
+                "key": key,
+                "patches": int(m.sum()),
+                "cracks": n_crack,
+                "cracks_found": found,
+                "recall": _ratio(found, n_crack),
+                "recall_ci_low": iv.low,
+                "recall_ci_high": iv.high,
+                "clean": clean,
+                "false_alarms": fa,
+                "false_alarm_rate": _ratio(fa, clean),
+                "accuracy": float(corr[m].mean()),
+            }
+        )
+    return out
