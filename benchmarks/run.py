@@ -8,7 +8,10 @@ vary from run to run, ratios much less.
    permute gives (what the kit uses) versus a contiguous NCHW copy;
 2. inference: ONNX Runtime on the exported screener versus PyTorch eager, same patches;
 3. tiling 12-megapixel JPEGs into a workspace: photos per second with one worker and with
-   one worker per core, and the share of worker time spent decoding.
+   one worker per core, and the share of worker time spent decoding;
+4. scanning 12-megapixel JPEGs: `trainkit scan` as a whole command against the model-only
+   bound (ONNX Runtime on patches already in memory) and against a plain PyTorch loop
+   (PIL decode, crop, torchvision transforms, eager model, one batch per frame).
 
 `python benchmarks/run.py [memory_format|inference|tiling ...]` runs a subset.
 """
@@ -157,10 +160,151 @@ def bench_tiling(n_photos: int = 8, rounds: int = 2) -> dict:
     }
 
 
+def _random_screener(path: Path, backbone: str = "mobilenet_v3_small", px: int = 224) -> None:
+    """A randomly initialised network exported with trainkit's contract (speed only, not accuracy)."""
+    import contextlib
+    import io
+
+    import onnx
+
+    from trainkit.config import load_train_config
+    from trainkit.export import _wrapper
+    from trainkit.training import build_network
+
+    torch.manual_seed(0)
+    net = _wrapper(
+        build_network(load_train_config("default", {"backbone": backbone}), 6, load_weights=False)
+    )
+    with contextlib.redirect_stdout(io.StringIO()):
+        prog = torch.onnx.export(
+            net.eval(),
+            (torch.zeros(2, px, px, 3, dtype=torch.uint8),),
+            dynamo=True,
+            opset_version=18,
+            input_names=["image"],
+            output_names=["probabilities"],
+            dynamic_shapes=({0: torch.export.Dim("batch", min=1, max=4096)},),
+            verbose=False,
+        )
+    model = prog.model_proto
+    names = ["none", "horizontal", "diagonal_rising", "vertical", "diagonal_falling", "map"]
+    onnx.helper.set_model_props(
+        model,
+        {
+            "trainkit.format": "trainkit-screener-1",
+            "class_names": json.dumps(names),
+            "angle_centres": json.dumps([None, 0.0, 45.0, 90.0, 135.0, None]),
+            "patch_px": str(px),
+            "threshold": "0.5",
+            "patch_mm": "null",
+        },
+    )
+    onnx.save(model, str(path))
+
+
+def bench_scan(n_frames: int = 6) -> dict:
+    """trainkit scan on 12-Mpx JPEGs against the model-only bound and a plain PyTorch loop."""
+    import resource
+    import subprocess
+
+    import cv2
+    import onnxruntime as ort
+    from PIL import Image
+
+    from trainkit.synth import SynthOptions, generate_photo
+
+    with tempfile.TemporaryDirectory() as d:
+        root = Path(d)
+        model = root / "m.onnx"
+        _random_screener(model)
+        frames = root / "frames"
+        frames.mkdir()
+        rng = np.random.default_rng(0)
+        for i in range(n_frames):
+            small = generate_photo(2000 + i, SynthOptions(height=750, width=1000)).image
+            big = cv2.resize(small, (4000, 3000), interpolation=cv2.INTER_CUBIC)
+            big = np.clip(big + rng.normal(0, 3, big.shape), 0, 255).astype(np.uint8)
+            Image.fromarray(big).save(frames / f"f{i:02d}.jpg", quality=92)
+        per_frame = 18 * 14  # 224-px cells on 4000 x 3000, last row and column shifted inward
+
+        # 1) model-only bound: patches already in memory, best batch size
+        sess = ort.InferenceSession(str(model), providers=["CPUExecutionProvider"])
+        patches = rng.integers(0, 256, (per_frame * 2, 224, 224, 3), dtype=np.uint8)
+        bound = {}
+        for bs in (16, 64, 252):
+            t0 = time.perf_counter()
+            for i in range(0, len(patches), bs):
+                sess.run(None, {"image": patches[i : i + bs]})
+            bound[bs] = (len(patches) / per_frame) / (time.perf_counter() - t0)
+        best_bs = max(bound, key=bound.get)
+
+        # 2) the whole command, in a child process (peak memory from its rusage)
+        t0 = time.perf_counter()
+        subprocess.run(
+            [
+                sys.executable,
+                "-m",
+                "trainkit",
+                "-q",
+                "scan",
+                str(frames),
+                "--model",
+                str(model),
+                "--out",
+                str(root / "out"),
+                "--overlays",
+                "none",
+            ],
+            check=True,
+        )
+        scan_fps = n_frames / (time.perf_counter() - t0)
+        peak_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+
+        # 3) plain reference: PIL decode, crop each patch, torchvision transforms, eager model
+        from torchvision import transforms
+
+        from trainkit.config import load_train_config
+        from trainkit.models import create_model
+
+        torch.manual_seed(0)
+        net = create_model(load_train_config("default").backbone, 6).eval()
+        tf = transforms.Compose(
+            [
+                transforms.ToTensor(),
+                transforms.Normalize((0.485, 0.456, 0.406), (0.229, 0.224, 0.225)),
+            ]
+        )
+        t0 = time.perf_counter()
+        ref_frames = min(n_frames, 3)
+        for f in sorted(frames.iterdir())[:ref_frames]:
+            im = Image.open(f).convert("RGB")
+            w, h = im.size
+            crops = [
+                tf(im.crop((x, y, x + 224, y + 224)))
+                for y in list(range(0, h - 224 + 1, 224)) + [h - 224]
+                for x in list(range(0, w - 224 + 1, 224)) + [w - 224]
+            ]
+            with torch.no_grad():
+                torch.softmax(net(torch.stack(crops)), 1)
+        ref_fps = ref_frames / (time.perf_counter() - t0)
+    return {
+        "what": f"{n_frames} JPEG frames of 4000 x 3000 px, MobileNetV3-Small at 224 px (random weights)",
+        "model_only_bound_frames_per_second": round(bound[best_bs], 3),
+        "bound_batch_size": best_bs,
+        "scan_frames_per_second": round(scan_fps, 3),
+        "scan_share_of_bound": round(scan_fps / bound[best_bs], 3),
+        "reference_frames_per_second": round(ref_fps, 3),
+        "speedup_over_reference": round(scan_fps / ref_fps, 2),
+        "scan_peak_memory_mb": round(peak_mb, 1),
+        "note": "scan is timed as the whole command, including interpreter start-up and model load",
+    }
+
+
 BENCHMARKS = {
     "memory_format": bench_memory_format,
     "inference": bench_onnx_vs_torch,
     "tiling": bench_tiling,
+    "scan": bench_scan,
 }
 
 

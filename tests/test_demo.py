@@ -126,3 +126,6 @@ def test_scan_lines(demo_run):
     lines = [json.loads(x) for x in (out / "scan/frames.jsonl").read_text().splitlines()]
     assert len(lines) == 6 and all(rec["status"] == "ok" for rec in lines)
     assert all(rec["cells"] == 24 for rec in lines)  # 768x512 at 128 px: 6 x 4
+    assert all(len(rec["sha256"]) == 64 and "dominant_class" in rec for rec in lines)
+    flagged = sorted(rec["frame"] for rec in lines if rec["flagged"])
+    assert (out / "scan/flagged.txt").read_text().split() == flagged

@@ -44,6 +44,7 @@ def brightness_model(path, *, patch_px=S, threshold=0.5, patch_mm=None, meta_ext
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 18)])
     model.ir_version = 9
     meta = {
+        "trainkit.format": "trainkit-screener-1",
         "class_names": json.dumps(["none", "crack"]),
         "patch_px": str(patch_px),
         "threshold": json.dumps(threshold),
@@ -85,8 +86,11 @@ def test_flagged_cells_are_the_dark_ones_and_match_onnxruntime(tmp_path):
     assert cm.probabilities[1, 2] == pytest.approx(1 - p[0, 0], abs=1e-6)
     d = json.loads(cm.to_json())
     assert d["flagged_cells"] == 1 and d["rows"] == 2 and d["cols"] == 3
-    img = cm.overlay(frame)
-    assert img.size == (96, 64)
+    img = np.asarray(cm.overlay(frame))
+    assert img.shape == (64 + 34, 96, 3)  # frame plus the legend strip
+    # the flagged cell is tinted (redder than the grey it was), the others are untouched
+    assert img[40:56, 70:90, 0].mean() > frame[40:56, 70:90, 0].mean() + 20
+    np.testing.assert_array_equal(img[:32, :32], frame[:32, :32])
 
 
 def test_stride_gives_overlapping_cells(tmp_path):
@@ -125,6 +129,46 @@ def test_bad_inputs_and_models(tmp_path):
         Screener(tmp_path / "junk.onnx")
     with pytest.raises(ScreenerError, match="does not exist"):
         Screener(tmp_path / "missing.onnx")
+
+
+def test_contract_version_is_checked(tmp_path):
+    path = brightness_model(
+        tmp_path / "v9.onnx", meta_extra={"trainkit.format": "trainkit-screener-9"}
+    )
+    with pytest.raises(ScreenerError, match="uses contract 'trainkit-screener-9'"):
+        Screener(path)
+
+
+def test_scale_warning_flagged_cells_raster_and_overlay(tmp_path):
+    import json as _json
+
+    path = brightness_model(
+        tmp_path / "m.onnx",
+        threshold=0.9,
+        patch_mm=16.0,
+        meta_extra={"gsd_mm_range": _json.dumps([0.4, 0.6])},
+    )
+    scr = Screener(path)
+    frame = np.full((64, 96, 3), 200, np.uint8)
+    frame[:32, 64:] = 30
+    inside = scr.crack_map(frame, gsd_mm=0.5)  # 16 mm / 0.5 = 32 px: no resampling needed
+    assert inside.warnings == []
+    cells = inside.flagged_cells()
+    assert len(cells) == 1 and cells[0]["box"] == [64, 0, 96, 32] and cells[0]["class"] == "crack"
+    assert cells[0]["box_mm"] == [32.0, 0.0, 48.0, 16.0]
+    far = scr.crack_map(np.zeros((200, 200, 3), np.uint8), gsd_mm=2.0)
+    assert any("outside the training range" in w for w in far.warnings)
+    ov = scr.crack_map(frame, stride=16)
+    raster = ov.probability_raster(64, 96)
+    # pixel (0, 95) is covered by exactly the cells whose boxes contain it: average them
+    covering = [
+        p
+        for b, p in zip(ov.boxes.reshape(-1, 4), ov.probabilities.ravel(), strict=True)
+        if b[0] <= 95 < b[2] and b[1] <= 0 < b[3]
+    ]
+    assert raster[0, 95] == pytest.approx(np.mean(covering), abs=1e-6)
+    img = inside.overlay(frame)
+    assert img.size == (96, 64 + 34)  # the legend strip below the frame
 
 
 def test_screener_module_does_not_import_torch():

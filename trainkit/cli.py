@@ -705,47 +705,79 @@ def print_evaluation(ctx: Ctx, res: dict, out: Path) -> None:
 # ----- export --------------------------------------------------------------------------
 
 
-@cli.command(epilog="Example: trainkit export runs/first")
+@cli.command(epilog="Example: trainkit export runs/first --quantize int8")
 @click.argument(
     "exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path)
 )
 @click.option(
     "--opset", type=click.IntRange(18, 23), default=18, show_default=True, help="ONNX opset."
 )
+@click.option(
+    "--quantize",
+    type=click.Choice(["int8"]),
+    default=None,
+    help="Also write EXP/model-int8.onnx, kept only if test recall holds and it is faster.",
+)
 @click.pass_obj
-def export(ctx: Ctx, exp_dir: Path, opset: int) -> None:
+def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
     """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
-    from .export import export_experiment
+    from .export import export_experiment, quantize_experiment
 
     with user_errors(ctx):
         with ctx.console.status("exporting to ONNX and checking parity"):
             res = export_experiment(exp_dir, opset=opset)
-    ctx.console.print(
-        f"wrote {res['model']} ({res['bytes'] / 1e6:.2f} MB, opset {res['opset']}); parity max |dp| "
-        f"{res['parity_max_abs_diff']:.1e} on {res['parity_patches']} patches; threshold {res['threshold']:.3f}"
-        + (
-            ""
-            if res["evaluated"]
-            else " (not evaluated yet: run `trainkit evaluate` first for a tuned threshold)"
+        ctx.console.print(
+            f"wrote {res['model']} ({res['bytes'] / 1e6:.2f} MB, {res['exporter']}); parity max |dp| "
+            f"{res['parity_max_abs_diff']:.1e} on {res['parity_patches']} patches; threshold {res['threshold']:.3f}"
+            + (
+                ""
+                if res["evaluated"]
+                else " (not evaluated yet: run `trainkit evaluate` first for a tuned threshold)"
+            )
         )
-    )
+        if quantize:
+            with ctx.console.status("quantizing to int8 and checking recall and speed"):
+                q = quantize_experiment(exp_dir)
+            ctx.console.print(
+                f"wrote {q['model']} ({'per-channel' if q['per_channel'] else 'per-tensor'}): test crack recall "
+                f"{q['recall']:.3f} (float {q['float_recall']:.3f}), {q['speedup']:.2f}x faster"
+            )
 
 
 # ----- scan ----------------------------------------------------------------------------
 
 
-@cli.command(epilog="Example: trainkit scan runs/first/model.onnx drone-frames/ --out scan-results")
-@click.argument("model", type=click.Path(exists=True, path_type=Path))
+@cli.command(
+    epilog="Example: trainkit scan drone-frames/ --model runs/first/model.onnx --out scan-results"
+)
 @click.argument("frames", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
+@click.option(
+    "--model",
+    "model",
+    required=True,
+    type=click.Path(exists=True, path_type=Path),
+    help="The exported model.onnx, or an experiment folder holding one.",
+)
 @click.option(
     "--out",
     "out_dir",
     required=True,
     type=click.Path(file_okay=False, path_type=Path),
-    help="Output folder for frames.jsonl and overlays (resumed if present).",
+    help="Output folder for frames.jsonl, flagged.txt and overlays (resumed if present).",
 )
 @click.option(
-    "--workers", type=click.IntRange(1, 256), default=1, show_default=True, help="Local processes."
+    "--workers",
+    type=click.IntRange(1, 256),
+    default=1,
+    show_default=True,
+    help="Local processes (1: decoding overlapped with inference in this process).",
+)
+@click.option(
+    "--overlays",
+    type=click.Choice(["flagged", "all", "none"]),
+    default="flagged",
+    show_default=True,
+    help="Overlay pictures to write.",
 )
 @click.option(
     "--gsd-mm",
@@ -753,15 +785,32 @@ def export(ctx: Ctx, exp_dir: Path, opset: int) -> None:
     default=None,
     help="Frames' scale in mm per pixel (cells then cover the model's patch size in mm).",
 )
-@click.option("--no-overlays", is_flag=True, help="Do not write overlay images of flagged frames.")
+@click.option(
+    "--engine",
+    type=click.Choice(["local", "dask"]),
+    default="local",
+    show_default=True,
+    help="Run here, or on a Dask distributed cluster.",
+)
+@click.option(
+    "--scheduler",
+    default=None,
+    metavar="ADDRESS",
+    help="Dask scheduler address for --engine dask, e.g. tcp://10.0.0.5:8786.",
+)
 @click.pass_obj
 def scan(
-    ctx: Ctx, model: Path, frames, out_dir: Path, workers: int, gsd_mm, no_overlays: bool
+    ctx: Ctx,
+    frames,
+    model: Path,
+    out_dir: Path,
+    workers: int,
+    overlays: str,
+    gsd_mm,
+    engine,
+    scheduler,
 ) -> None:
-    """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl.
-
-    MODEL is a model.onnx or an experiment folder holding one.
-    """
+    """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl."""
     from .scan import scan_frames
 
     if model.is_dir():
@@ -774,15 +823,273 @@ def scan(
                 out_dir,
                 workers=workers,
                 gsd_mm=gsd_mm,
-                overlays=not no_overlays,
+                overlays=overlays,
+                engine=engine,
+                scheduler=scheduler,
                 progress=lambda d, n: bar.update(d, n),
             )
     ctx.console.print(
-        f"{res['scanned']} frames scanned ({res['resumed_skip']} already done), {res['flagged']} flagged, "
-        f"{res['unreadable']} unreadable -> {res['frames_file']}"
+        f"{res['scanned']} frames scanned ({res['resumed_skip']} already done) at {res['frames_per_second']:.2f} "
+        f"frames/s; {res['flagged']} flagged, {res['errors']} unreadable -> {res['frames_file']}"
     )
-    if res["unreadable"]:
+    if res["errors"]:
         raise SystemExit(EXIT_SKIPPED)
+
+
+# ----- review --------------------------------------------------------------------------
+
+
+def _default_reviewer() -> str:
+    import getpass
+
+    try:
+        return getpass.getuser()
+    except Exception:  # no user name in this environment
+        return "reviewer"
+
+
+@cli.command(
+    epilog="Examples: trainkit review ws --reviewer ana | trainkit review ws --model runs/first "
+    "| trainkit review ws --sheet --viewer xdg-open | trainkit review ws --agreement"
+)
+@click.argument("ws_dir", metavar="WORKSPACE", type=click.Path(file_okay=False, path_type=Path))
+@click.option(
+    "--reviewer",
+    default=None,
+    help="Your name, stored with every label (default: your login name).",
+)
+@click.option(
+    "--queue",
+    "queue_kind",
+    type=click.Choice(["unlabelled", "audit", "conflicts"]),
+    default="unlabelled",
+    show_default=True,
+    help="unlabelled patches; a random audit sample of labelled ones; or reviewer disagreements "
+    "to settle.",
+)
+@click.option(
+    "--model",
+    type=click.Path(exists=True, path_type=Path),
+    default=None,
+    help="Exported model (EXP folder or .onnx): least certain patches first, its suggestion on "
+    "Enter.",
+)
+@click.option(
+    "--audit-size",
+    type=click.IntRange(1, 1_000_000),
+    default=50,
+    show_default=True,
+    help="Patches in the audit sample.",
+)
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the audit sample.")
+@click.option("--sheet", is_flag=True, help="Contact-sheet mode: a numbered grid PNG per round.")
+@click.option(
+    "--grid", default="6x4", show_default=True, help="Contact sheet COLUMNSxROWS of patches."
+)
+@click.option(
+    "--viewer",
+    default=None,
+    metavar="COMMAND",
+    help="Program that opens images (e.g. xdg-open, feh, open); gets the PNG path.",
+)
+@click.option(
+    "--agreement", is_flag=True, help="Report Cohen's kappa and confusion per reviewer pair."
+)
+@click.option("--json", "as_json", is_flag=True, help="With --agreement: JSON output.")
+@click.option(
+    "--import-csv",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="Import labels from CSV (patch_id,label or photo,x0,y0,x1,y1,label).",
+)
+@click.option(
+    "--import-folder",
+    type=click.Path(exists=True, file_okay=False, path_type=Path),
+    help="Import labels from a folder per class of patch images.",
+)
+@click.option(
+    "--export-csv",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Write the current labels to this CSV.",
+)
+@click.option(
+    "--export-folder",
+    type=click.Path(file_okay=False, path_type=Path),
+    help="Copy labelled patches into a folder per class here.",
+)
+@click.pass_obj
+def review(
+    ctx: Ctx,
+    ws_dir: Path,
+    reviewer,
+    queue_kind,
+    model,
+    audit_size,
+    seed,
+    sheet,
+    grid,
+    viewer,
+    agreement,
+    as_json,
+    import_csv,
+    import_folder,
+    export_csv,
+    export_folder,
+) -> None:
+    """Label patches in the terminal: one key per answer, undo, skip, resume any time.
+
+    \b
+    Key mode (default): the patch is drawn in colour with its estimated crack angle;
+      number keys = classes in the workspace's order, Enter = accept the model's
+      suggestion, x unsure, s skip, u undo, z zoom, c contact sheet, ? help, q quit.
+    Sheet mode (--sheet, or when the terminal is too small): a numbered PNG grid,
+      answered by a line such as 'all none except 3 7' or '5=vertical'.
+    Every answer is saved at once with your name; run the same command to resume.
+    With --import-*/--export-*/--agreement it does that and exits.
+    """
+    from .workspace import Workspace
+
+    reviewer = reviewer or _default_reviewer()
+    with user_errors(ctx):
+        ws = Workspace.open(ws_dir)
+        if import_csv or import_folder or export_csv or export_folder or agreement:
+            _review_io(ctx, ws, reviewer, import_csv, import_folder, export_csv, export_folder)
+            if agreement:
+                _print_agreement(ctx, ws, as_json)
+            return
+        try:
+            cols, rows = (int(v) for v in grid.lower().split("x"))
+            if not (1 <= cols <= 20 and 1 <= rows <= 20):
+                raise ValueError
+        except ValueError:
+            _fail(f"--grid must look like 6x4 (1-20 each), got {grid!r}")
+        _run_review(
+            ctx, ws, reviewer, queue_kind, model, audit_size, seed, sheet, (cols, rows), viewer
+        )
+
+
+def _review_io(
+    ctx: Ctx, ws, reviewer, import_csv, import_folder, export_csv, export_folder
+) -> None:
+    from . import labels_io
+
+    if import_csv:
+        n = labels_io.import_csv(ws, import_csv, reviewer=reviewer)
+        ctx.console.print(f"imported {n} labels from {import_csv} as reviewer {reviewer}")
+    if import_folder:
+        n = labels_io.import_folders(ws, import_folder, reviewer=reviewer)
+        ctx.console.print(f"imported {n} labels from {import_folder} as reviewer {reviewer}")
+    if export_csv:
+        n = labels_io.export_csv(ws, export_csv)
+        ctx.console.print(f"wrote {n} current labels to {export_csv}")
+    if export_folder:
+        counts = labels_io.export_folders(ws, export_folder)
+        ctx.console.print(f"copied {sum(counts.values())} patches to {export_folder}: {counts}")
+
+
+def _print_agreement(ctx: Ctx, ws, as_json: bool) -> None:
+    from rich.table import Table
+
+    from .review import agreement, find_conflicts
+
+    events = ws.label_events()
+    pairs = agreement(events, ws.class_set)
+    conflicts = find_conflicts(events)
+    if as_json:
+        click.echo(json.dumps({"pairs": pairs, "open_conflicts": len(conflicts)}, indent=2))
+        return
+    if not pairs:
+        ctx.console.print("fewer than two reviewers have labelled this workspace: no agreement yet")
+    for p in pairs:
+        a, b = p["reviewers"]
+        if not p["n"]:
+            ctx.console.print(f"{a} and {b}: no patch labelled by both")
+            continue
+
+        def f3(v) -> str:
+            return "n/a" if v is None or v != v else f"{v:.3f}"
+
+        ctx.console.print(
+            f"{a} vs {b}: {p['n']} patches both labelled; Cohen's kappa {f3(p['kappa'])} "
+            f"(crack vs none {f3(p['kappa_crack_vs_none'])}); raw agreement "
+            f"{p['observed_agreement']:.1%}"
+        )
+        t = Table(title=f"rows: {a}, columns: {b}")
+        t.add_column(f"{a} \\ {b}")
+        for n in p["labels"]:
+            t.add_column(n[:10], justify="right")
+        for n, row in zip(p["labels"], p["confusion"], strict=True):
+            t.add_row(n, *map(str, row))
+        ctx.console.print(t)
+    ctx.console.print(
+        f"{len(conflicts)} unsettled disagreements"
+        + (" (settle them with: trainkit review WS --queue conflicts)" if conflicts else "")
+    )
+
+
+def _run_review(
+    ctx: Ctx, ws, reviewer, queue_kind, model, audit_size, seed, sheet, grid, viewer
+) -> None:
+    import re
+
+    from rich.console import Console
+
+    from .review import Session, build_queue, find_conflicts, model_probabilities
+    from .review_ui import choose_mode, run_keys, run_sheet
+
+    records = ws.patches()
+    events = ws.label_events() if queue_kind != "unlabelled" else []
+    probs = None
+    if model is not None:
+        todo = [
+            r
+            for r in records
+            if not r.review_skip and (queue_kind != "unlabelled" or not r.labelled)
+        ]
+        with progress_bar(ctx, "model predictions", len(todo)) as bar:
+            probs = model_probabilities(model, ws, todo, progress=lambda d, n: bar.update(d, n))
+    queue = build_queue(
+        records,
+        reviewer=reviewer,
+        queue=queue_kind,
+        probabilities=probs if queue_kind == "unlabelled" else None,
+        skipped=ws.review_skips(reviewer),
+        events=events,
+        audit_size=audit_size,
+        seed=seed,
+    )
+    settles = None
+    if queue_kind == "conflicts":
+        settles = {pid: sorted(by) for pid, by in find_conflicts(events).items()}
+    if not queue:
+        ctx.console.print(f"nothing to review in the {queue_kind} queue of {ws.root}")
+        return
+    session = Session(
+        ws,
+        reviewer,
+        queue,
+        suggestions=probs,
+        settles=settles,
+        check_fresh=queue_kind == "unlabelled",
+    )
+    console = Console(highlight=False, soft_wrap=True)
+    mode, why = choose_mode(sheet, console, num_classes=ws.class_set.num_classes)
+    if why:
+        console.print(f"trainkit: {why}", style="yellow", soft_wrap=True)
+    safe = re.sub(r"[^A-Za-z0-9_.-]+", "_", reviewer)
+    sheet_path = ws.root / "review" / f"sheet-{safe}.png"
+    outcome = "sheet" if mode == "sheet" else run_keys(session, console, viewer=viewer)
+    if outcome == "sheet":
+        outcome = run_sheet(session, console, sheet_path, cols=grid[0], rows=grid[1], viewer=viewer)
+    p = session.progress()
+    left = p["remaining"]
+    console.print(
+        f"{reviewer}: {p['done']} labels this session ({p['per_minute']:.1f} per min); "
+        + (
+            "queue finished"
+            if outcome == "finished"
+            else f"{left} left; run the same command to resume"
+        )
+    )
 
 
 # ----- status --------------------------------------------------------------------------

@@ -129,6 +129,11 @@ def export_experiment(
     onnx.save(proto, tmp)
     try:
         onnx.checker.check_model(str(tmp), full_check=True)
+        left = [n.name for n in proto.graph.node if n.op_type == "BatchNormalization"]
+        if left:
+            raise ExportError(
+                f"{len(left)} BatchNormalization nodes were not folded into convolutions: {left[:3]}"
+            )
         # Parity against PyTorch on real patches.
         images = _sample_patches(ckpt, input_px)
         with torch.no_grad():
@@ -152,6 +157,8 @@ def export_experiment(
         "bytes": target.stat().st_size,
         "parity_max_abs_diff": max_diff,
         "parity_patches": int(len(images)),
+        "batchnorm_nodes": 0,
+        "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
         "threshold": json.loads(meta["threshold"]),
         "evaluated": metrics is not None,
     }
@@ -178,3 +185,182 @@ def read_metadata(path: str | Path) -> dict[str, str]:
 
     model = onnx.load(str(path), load_external_data=False)
     return {p.key: p.value for p in model.metadata_props}
+
+
+# ----- int8 quantization -------------------------------------------------------------
+
+
+#: Largest allowed drop in test crack recall for an int8 model to be accepted.
+INT8_MAX_RECALL_DROP = 0.01
+#: The int8 model must be at least this much faster (throughput ratio) to be accepted.
+INT8_MIN_SPEEDUP = 1.05
+
+
+def _time_session(sess, images: np.ndarray, rounds: int = 5) -> float:
+    """Median seconds to run all images in batches of 64."""
+    import statistics
+    import time
+
+    times = []
+    for _ in range(rounds):
+        t0 = time.perf_counter()
+        for i in range(0, len(images), 64):
+            sess.run(["probabilities"], {"image": images[i : i + 64]})
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
+def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) -> dict:
+    """Make ``EXP/model-int8.onnx`` by static QDQ quantization, if it keeps recall and is faster.
+
+    Steps: ONNX Runtime's quantization pre-processing (shape inference and graph
+    optimisation) on ``EXP/model.onnx``; static quantization in QDQ form (uint8
+    activations, int8 weights) calibrated on training patches, once per tensor and once
+    per channel; each candidate is scored on the test patches (crack recall at the
+    model's threshold) and timed against the float model side by side. The better
+    candidate (higher recall, then faster) is kept only if recall drops by at most
+    INT8_MAX_RECALL_DROP and it is at least INT8_MIN_SPEEDUP times faster.
+
+    Raises:
+        ExportError: no candidate passes; the message gives the figures.
+    """
+    import onnx
+    import onnxruntime as ort
+    from onnxruntime.quantization import (
+        CalibrationDataReader,
+        QuantFormat,
+        QuantType,
+        quantize_static,
+    )
+    from onnxruntime.quantization.shape_inference import quant_pre_process
+
+    from .data import load_patch_set
+    from .taxonomy import class_set_from_dict
+    from .training import load_checkpoint
+    from .workspace import Workspace
+
+    exp = Path(exp_dir)
+    fp32 = exp / "model.onnx"
+    if not fp32.is_file():
+        raise ExportError(f"{fp32} does not exist; export the float model first")
+    _, ckpt, _ = load_checkpoint(exp)
+    cs = class_set_from_dict(ckpt["class_set"])
+    ws = Workspace.open(ckpt["experiment"]["workspace"])
+    px = int(ckpt["input_px"])
+    train = load_patch_set(ws, "train", cs, input_px=px)
+    test = load_patch_set(ws, "test", cs, input_px=px)
+    if len(train) == 0 or len(test) == 0 or not np.any(test.labels != 0):
+        raise ExportError(
+            "int8 needs training patches for calibration and test patches with cracks for the check"
+        )
+    meta = read_metadata(fp32)
+    threshold = float(json.loads(meta["threshold"]))
+    rng = np.random.default_rng(0)
+    calib = train.images[rng.permutation(len(train))[:calibration_patches]]
+
+    class Reader(CalibrationDataReader):
+        def __init__(self) -> None:
+            self.batches = iter([{"image": calib[i : i + 16]} for i in range(0, len(calib), 16)])
+
+        def get_next(self):
+            return next(self.batches, None)
+
+    def recall(sess) -> float:
+        probs = np.concatenate(
+            [
+                sess.run(["probabilities"], {"image": test.images[i : i + 64]})[0]
+                for i in range(0, len(test), 64)
+            ]
+        )
+        crack = test.labels != 0
+        return float(np.mean((1.0 - probs[crack, 0]) >= threshold))
+
+    opts = ort.SessionOptions()
+    base = ort.InferenceSession(str(fp32), opts, providers=["CPUExecutionProvider"])
+    base_recall = recall(base)
+    work = exp / ".int8-work"
+    work.mkdir(exist_ok=True)
+    pre = work / "pre.onnx"
+    quant_pre_process(str(fp32), str(pre), skip_symbolic_shape=True)
+    candidates = []
+    for per_channel in (False, True):
+        out = work / f"int8-{'channel' if per_channel else 'tensor'}.onnx"
+        quantize_static(
+            str(pre),
+            str(out),
+            Reader(),
+            quant_format=QuantFormat.QDQ,
+            per_channel=per_channel,
+            activation_type=QuantType.QUInt8,
+            weight_type=QuantType.QInt8,
+        )
+        sess = ort.InferenceSession(str(out), opts, providers=["CPUExecutionProvider"])
+        r = recall(sess)
+        # time the float and the int8 model alternately on the same patches
+        t_int8, t_fp32 = [], []
+        for _ in range(3):
+            t_int8.append(_time_session(sess, test.images, rounds=1))
+            t_fp32.append(_time_session(base, test.images, rounds=1))
+        speedup = float(np.median(t_fp32) / np.median(t_int8))
+        candidates.append(
+            {"per_channel": per_channel, "path": out, "recall": r, "speedup": round(speedup, 3)}
+        )
+    best = max(candidates, key=lambda c: (c["recall"], c["speedup"]))
+    figures = {
+        "float_recall": round(base_recall, 4),
+        "candidates": [
+            {
+                "per_channel": c["per_channel"],
+                "recall": round(c["recall"], 4),
+                "speedup": c["speedup"],
+            }
+            for c in candidates
+        ],
+        "test_patches": int(len(test)),
+        "calibration_patches": int(len(calib)),
+    }
+    ok = (
+        base_recall - best["recall"] <= INT8_MAX_RECALL_DROP and best["speedup"] >= INT8_MIN_SPEEDUP
+    )
+    if not ok:
+        import shutil
+
+        shutil.rmtree(work, ignore_errors=True)
+        raise ExportError(
+            "int8 model refused: float crack recall "
+            f"{base_recall:.3f}; candidates "
+            + "; ".join(
+                f"{'per-channel' if c['per_channel'] else 'per-tensor'} recall {c['recall']:.3f}, "
+                f"{c['speedup']:.2f}x speed"
+                for c in candidates
+            )
+            + f" (needs a drop of at most {INT8_MAX_RECALL_DROP} and at least {INT8_MIN_SPEEDUP}x)"
+        )
+    model = onnx.load(str(best["path"]))
+    props = dict(meta)
+    props["quantization"] = json.dumps(
+        {
+            "format": "QDQ",
+            "per_channel": best["per_channel"],
+            "activations": "uint8",
+            "weights": "int8",
+            **figures,
+        }
+    )
+    del model.metadata_props[:]
+    onnx.helper.set_model_props(model, props)
+    target = exp / "model-int8.onnx"
+    tmp = target.with_suffix(".onnx.tmp")
+    onnx.save(model, str(tmp))
+    onnx.checker.check_model(str(tmp), full_check=True)
+    os.replace(tmp, target)
+    import shutil
+
+    shutil.rmtree(work, ignore_errors=True)
+    return {
+        "model": str(target),
+        "per_channel": best["per_channel"],
+        "recall": best["recall"],
+        "speedup": best["speedup"],
+        **figures,
+    }

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from PIL import Image, ImageOps
+from PIL import Image, ImageOps, UnidentifiedImageError
 
 __all__ = [
     "PhotoError",
@@ -74,10 +74,20 @@ def read_rgb(
             f"photo {path.name} is larger than the limit of {max_pixels} pixels ({exc}); "
             "raise the limit if the file is trusted"
         ) from None
+    except UnidentifiedImageError:
+        what = "an empty file" if data == b"" or (data is None and _size(path) == 0) else "not an image"
+        raise PhotoError(f"photo {path.name} cannot be decoded ({what} in a format Pillow reads)") from None
     except (OSError, SyntaxError, ValueError) as exc:
         raise PhotoError(f"photo {path.name} cannot be decoded ({exc})") from None
     finally:
         Image.MAX_IMAGE_PIXELS = old_limit
+
+
+def _size(path: Path) -> int:
+    try:
+        return path.stat().st_size
+    except OSError:
+        return -1
 
 
 def _to_rgb8(im: Image.Image) -> np.ndarray:

@@ -1,32 +1,48 @@
 """Batch pre-filter: run an exported screener over folders of frames and write one JSON line per frame.
 
 ``frames.jsonl`` is append-only: each finished frame is written as one line and
-flushed to disk before the next starts, so stopping and restarting a scan loses
-nothing; frames already in the file are skipped on restart, and a half-written
-last line (the process was killed mid-write) is dropped and redone.
+flushed to disk before the next is written, so stopping and restarting a scan
+loses nothing; a frame already in the file with the same path and content hash
+is skipped on restart, and a half-written last line (the process was killed
+mid-write) is dropped and redone. ``flagged.txt`` lists the flagged frames.
+
+Engines: ``local`` overlaps decoding and cutting of the next frames (a thread
+pool; Pillow releases the GIL while decoding) with inference on the current one,
+or with ``workers > 1`` runs one process per worker; ``dask`` sends frames to the
+workers of a Dask distributed cluster (each worker must see the model and frame
+paths) and streams the results back into the same file.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 import multiprocessing
 import os
 import time
-from collections.abc import Callable
-from concurrent.futures import ProcessPoolExecutor
+from collections.abc import Callable, Iterator
+from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
 
-from .imaging import PhotoError, list_images, read_rgb
-from .screener import Screener
+import numpy as np
 
-__all__ = ["scan_frames", "read_done", "FRAMES_FILE"]
+from .imaging import PhotoError, find_images, read_rgb
+from .screener import FramePatches, Screener, usable_cores
+
+__all__ = ["scan_frames", "read_done", "FRAMES_FILE", "FLAGGED_FILE", "OVERLAY_CHOICES", "ENGINES"]
 
 FRAMES_FILE = "frames.jsonl"
+FLAGGED_FILE = "flagged.txt"
+OVERLAY_CHOICES = ("flagged", "all", "none")
+ENGINES = ("local", "dask")
 
 
-def read_done(path: Path) -> set[str]:
-    """Frames already recorded in a frames.jsonl; truncates a torn last line in place."""
-    done: set[str] = set()
+def read_done(path: Path) -> dict[str, str | None]:
+    """Frame path -> content hash of the lines already in frames.jsonl.
+
+    A torn last line (no newline, or not JSON) is truncated away in place.
+    """
+    done: dict[str, str | None] = {}
     if not path.exists():
         return done
     good_bytes = 0
@@ -38,7 +54,7 @@ def read_done(path: Path) -> set[str]:
                 rec = json.loads(raw)
             except json.JSONDecodeError:
                 break
-            done.add(rec["frame"])
+            done[rec["frame"]] = rec.get("sha256")
             good_bytes += len(raw)
     if good_bytes != path.stat().st_size:
         with path.open("r+b") as fh:
@@ -46,55 +62,192 @@ def read_done(path: Path) -> set[str]:
     return done
 
 
-def _frame_record(
-    screener: Screener, path: Path, *, gsd_mm: float | None, overlay_dir: Path | None
+def _decode_and_cut(
+    screener: Screener, path: Path, gsd_mm: float | None
+) -> tuple[dict, FramePatches | None, object]:
+    """Read, hash, decode and cut one frame; returns (record so far, patches or None, rgb)."""
+    t0 = time.perf_counter()
+    rec: dict = {"frame": str(path)}
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        rec.update(status="error", error=f"frame {path.name} cannot be read ({exc})")
+        return rec, None, None
+    rec["sha256"] = hashlib.sha256(data).hexdigest()
+    try:
+        rgb, reduced = _read_for_model(screener, path, data, gsd_mm)
+        if reduced is None:
+            fp = screener.cut(rgb, gsd_mm=gsd_mm)
+        else:  # decoded at reduced size: cut at the reduced scale, report boxes in full-size pixels
+            full_h, full_w, k = reduced
+            fp = screener.cut(rgb, gsd_mm=gsd_mm * k)
+            fp.boxes = np.minimum(
+                np.round(fp.boxes * k).astype(np.int64), [full_w, full_h, full_w, full_h]
+            )
+            fp.height, fp.width, fp.gsd_mm = full_h, full_w, gsd_mm
+            rgb = None  # overlays need the full frame: decode again only if one is drawn
+    except (PhotoError, ValueError) as exc:
+        rec.update(status="error", error=str(exc))
+        return rec, None, None
+    rec["seconds_decode"] = round(time.perf_counter() - t0, 4)
+    return rec, fp, rgb
+
+
+def _read_for_model(screener: Screener, path: Path, data: bytes, gsd_mm: float | None):
+    """Decode a frame; a JPEG that the model will downscale at least 2x is decoded at reduced size.
+
+    Returns (rgb, None) normally, or (rgb, (full_height, full_width, k)) when the JPEG
+    decoder's reduced-size mode was used, k being full-size pixels per decoded pixel.
+    """
+    if gsd_mm is None or not screener.patch_mm or data[:2] != b"\xff\xd8":
+        return read_rgb(path, data=data), None
+    factor = screener.patch_px / (screener.patch_mm / gsd_mm)  # model px per frame px
+    if factor > 0.5:
+        return read_rgb(path, data=data), None
+    import io
+
+    from PIL import Image, ImageOps
+
+    with Image.open(io.BytesIO(data)) as im:
+        w0, h0 = im.size
+        orientation = im.getexif().get(0x0112, 1)
+        im.draft("RGB", (max(1, int(w0 * factor)), max(1, int(h0 * factor))))
+        small = ImageOps.exif_transpose(im.convert("RGB"))
+    full_w, full_h = (h0, w0) if orientation in (5, 6, 7, 8) else (w0, h0)
+    if small.size[0] >= full_w:  # the decoder did not reduce
+        return np.asarray(small), None
+    return np.asarray(small), (full_h, full_w, full_w / small.size[0])
+
+
+def _finish(
+    screener: Screener, rec: dict, fp: FramePatches, rgb, overlays: str, overlay_dir: Path | None
 ) -> dict:
     t0 = time.perf_counter()
-    try:
-        rgb = read_rgb(path)
-    except PhotoError as exc:
-        return {"frame": str(path), "status": "skipped", "error": str(exc)}
-    cm = screener.crack_map(rgb, gsd_mm=gsd_mm)
-    rec = {
-        "frame": str(path),
-        "status": "ok",
-        "width": int(rgb.shape[1]),
-        "height": int(rgb.shape[0]),
-        "flagged": bool(cm.flagged.any()),
-        "flagged_cells": int(cm.flagged.sum()),
-        "cells": int(cm.flagged.size),
-        "max_probability": round(float(cm.probabilities.max()), 4),
-        "threshold": cm.threshold,
-        "flagged_boxes": [
-            {
-                "box": [int(v) for v in cm.boxes[r, c]],
-                "probability": round(float(cm.probabilities[r, c]), 4),
-                "class": cm.class_names[int(cm.labels[r, c])],
-            }
-            for r, c in zip(*cm.flagged.nonzero(), strict=True)
-        ],
-        "seconds": round(time.perf_counter() - t0, 4),
-    }
-    if overlay_dir is not None and rec["flagged"]:
-        name = f"{path.stem}-overlay.jpg"
+    cm = screener.crack_map_from_patches(fp)
+    cells = cm.flagged_cells()
+    rec.update(
+        status="ok",
+        width=fp.width,
+        height=fp.height,
+        flagged=bool(cells),
+        max_probability=round(float(cm.probabilities.max()), 4),
+        flagged_cells=len(cells),
+        cells=int(cm.flagged.size),
+        dominant_class=cm.dominant_class(),
+        threshold=cm.threshold,
+        warnings=cm.warnings,
+        flagged_boxes=[{k: c[k] for k in ("box", "probability", "class")} for c in cells],
+        seconds_model=round(time.perf_counter() - t0, 4),
+    )
+    if overlay_dir is not None and (overlays == "all" or (overlays == "flagged" and cells)):
+        if rgb is None:
+            rgb = read_rgb(Path(rec["frame"]))
+        name = f"{Path(rec['frame']).stem}-{rec['sha256'][:8]}-overlay.jpg"
         cm.overlay(rgb).save(overlay_dir / name, quality=88)
         rec["overlay"] = str(overlay_dir / name)
     return rec
 
 
-_WORKER: Screener | None = None
+def _scan_one(
+    screener: Screener, path: Path, gsd_mm, overlays: str, overlay_dir: Path | None
+) -> dict:
+    rec, fp, rgb = _decode_and_cut(screener, path, gsd_mm)
+    if fp is None:
+        return rec
+    return _finish(screener, rec, fp, rgb, overlays, overlay_dir)
 
 
-def _init_worker(model: str, threads: int) -> None:
-    global _WORKER
-    _WORKER = Screener(model, threads=threads)
+# ----- engines ---------------------------------------------------------------------------
 
 
-def _work(args: tuple[str, float | None, str | None]) -> dict:
-    path, gsd, ov = args
-    if _WORKER is None:  # pragma: no cover - the pool initializer always runs first
-        raise RuntimeError("scan worker was not initialised")
-    return _frame_record(_WORKER, Path(path), gsd_mm=gsd, overlay_dir=Path(ov) if ov else None)
+def _local_pipelined(
+    screener: Screener, paths: list[Path], gsd_mm, overlays, overlay_dir, ahead: int = 2
+) -> Iterator[dict]:
+    """Decode and cut up to ``ahead`` frames in background threads while the model runs."""
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="trainkit-decode") as pool:
+        pending = []
+        it = iter(paths)
+        for p in it:
+            pending.append(pool.submit(_decode_and_cut, screener, p, gsd_mm))
+            if len(pending) > ahead:
+                break
+        while pending:
+            rec, fp, rgb = pending.pop(0).result()
+            nxt = next(it, None)
+            if nxt is not None:
+                pending.append(pool.submit(_decode_and_cut, screener, nxt, gsd_mm))
+            yield rec if fp is None else _finish(screener, rec, fp, rgb, overlays, overlay_dir)
+
+
+_WORKER: dict[str, Screener] = {}
+
+
+def _worker_screener(model: str, threads: int) -> Screener:
+    s = _WORKER.get(model)
+    if s is None:
+        s = _WORKER[model] = Screener(model, threads=threads)
+    return s
+
+
+def _pool_task(args: tuple) -> dict:
+    model, threads, path, gsd, overlays, ov = args
+    return _scan_one(
+        _worker_screener(model, threads), Path(path), gsd, overlays, Path(ov) if ov else None
+    )
+
+
+def dask_scan_task(model: str, path: str, gsd_mm, overlays: str, overlay_dir: str | None) -> dict:
+    """One frame on a Dask worker (the Screener is cached per worker process)."""
+    return _scan_one(
+        _worker_screener(model, 1),
+        Path(path),
+        gsd_mm,
+        overlays,
+        Path(overlay_dir) if overlay_dir else None,
+    )
+
+
+def _local_pool(model, paths, gsd_mm, overlays, overlay_dir, workers) -> Iterator[dict]:
+    threads = max(1, usable_cores() // workers)
+    ctx = multiprocessing.get_context("forkserver")  # fork could deadlock on runtime threads
+    ov = str(overlay_dir) if overlay_dir else None
+    jobs = [(str(model), threads, str(p), gsd_mm, overlays, ov) for p in paths]
+    with ProcessPoolExecutor(workers, mp_context=ctx) as pool:
+        yield from pool.map(_pool_task, jobs, chunksize=2)
+
+
+def _dask(model, paths, gsd_mm, overlays, overlay_dir, scheduler: str) -> Iterator[dict]:
+    try:
+        from distributed import Client, as_completed
+    except ImportError:
+        raise ValueError(
+            "the dask engine needs dask.distributed: pip install 'trainkit[dask]'"
+        ) from None
+    ov = str(overlay_dir.resolve()) if overlay_dir else None
+    try:
+        client = Client(scheduler, timeout=30)
+    except OSError as exc:
+        raise ValueError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
+    try:
+        futures = [
+            client.submit(
+                dask_scan_task,
+                str(Path(model).resolve()),
+                str(Path(p).resolve()),
+                gsd_mm,
+                overlays,
+                ov,
+                pure=False,
+            )
+            for p in paths
+        ]
+        original = {str(Path(p).resolve()): str(p) for p in paths}
+        for fut in as_completed(futures):
+            rec = fut.result()
+            rec["frame"] = original.get(rec["frame"], rec["frame"])  # report paths as given
+            yield rec
+    finally:
+        client.close()
 
 
 def scan_frames(
@@ -104,39 +257,60 @@ def scan_frames(
     *,
     workers: int = 1,
     gsd_mm: float | None = None,
-    overlays: bool = True,
+    overlays: str | bool = "flagged",
+    engine: str = "local",
+    scheduler: str | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> dict:
-    """Scan frames into ``out_dir/frames.jsonl`` (and overlays of flagged frames).
+    """Scan frames into ``out_dir/frames.jsonl``, ``flagged.txt`` and overlays.
 
     Args:
         model: the exported ONNX screener.
         inputs: image files and folders (folders are searched recursively).
         out_dir: output folder; an existing frames.jsonl is resumed.
-        workers: local processes (1 = in this process, ONNX Runtime using all cores).
+        workers: local processes (1 = this process, decoding overlapped with inference).
         gsd_mm: scale of the frames in mm per pixel, if known.
-        overlays: write a JPEG overlay for each flagged frame.
+        overlays: "flagged" (overlay images of flagged frames), "all" or "none".
+        engine: "local" or "dask" (then ``scheduler`` is the scheduler's address).
         progress: called with (done, total) after each frame.
 
     Returns:
-        Counts: frames total, newly scanned, skipped on resume, flagged, unreadable, seconds.
+        Counts: frames, skipped on resume, scanned, flagged, errors, seconds, frames per second.
     """
+    if overlays is True:
+        overlays = "flagged"
+    elif overlays is False:
+        overlays = "none"
+    if overlays not in OVERLAY_CHOICES:
+        raise ValueError(
+            f"invalid overlays {overlays!r}; choose one of: {', '.join(OVERLAY_CHOICES)}"
+        )
+    if engine not in ENGINES:
+        raise ValueError(f"invalid engine {engine!r}; choose one of: {', '.join(ENGINES)}")
+    if engine == "dask" and not scheduler:
+        raise ValueError("the dask engine needs --scheduler ADDRESS (e.g. tcp://127.0.0.1:8786)")
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    overlay_dir = out / "overlays" if overlays else None
+    overlay_dir = out / "overlays" if overlays != "none" else None
     if overlay_dir:
         overlay_dir.mkdir(exist_ok=True)
     frames_path = out / FRAMES_FILE
     done = read_done(frames_path)
-    frames = list_images(inputs)
-    todo = [p for p in frames if str(p) not in done]
+    frames = [p for p, _ in find_images(list(inputs))]
     screener = Screener(model)  # validates the model before any work starts
+    todo = []
+    for p in frames:
+        if str(p) in done:
+            known = done[str(p)]
+            if known is None or known == hashlib.sha256(p.read_bytes()).hexdigest():
+                continue
+        todo.append(p)
     counts = {
         "frames": len(frames),
         "resumed_skip": len(frames) - len(todo),
         "scanned": 0,
         "flagged": 0,
-        "unreadable": 0,
+        "errors": 0,
     }
     t0 = time.perf_counter()
     with frames_path.open("a", encoding="utf-8") as fh:
@@ -147,22 +321,33 @@ def scan_frames(
             os.fsync(fh.fileno())
             counts["scanned"] += 1
             counts["flagged"] += bool(rec.get("flagged"))
-            counts["unreadable"] += rec["status"] != "ok"
+            counts["errors"] += rec["status"] != "ok"
             if progress:
                 progress(counts["resumed_skip"] + counts["scanned"], len(frames))
 
-        if workers <= 1:
-            for p in todo:
-                write(_frame_record(screener, p, gsd_mm=gsd_mm, overlay_dir=overlay_dir))
+        if engine == "dask":
+            results = _dask(model, todo, gsd_mm, overlays, overlay_dir, scheduler)
+        elif workers <= 1:
+            results = _local_pipelined(screener, todo, gsd_mm, overlays, overlay_dir)
         else:
-            threads = max(1, (os.cpu_count() or 1) // workers)
-            ctx = multiprocessing.get_context("forkserver")  # fork could deadlock on threads
-            with ProcessPoolExecutor(
-                workers, initializer=_init_worker, initargs=(str(model), threads), mp_context=ctx
-            ) as pool:
-                jobs = [(str(p), gsd_mm, str(overlay_dir) if overlay_dir else None) for p in todo]
-                for rec in pool.map(_work, jobs, chunksize=4):
-                    write(rec)
-    counts["seconds"] = round(time.perf_counter() - t0, 3)
+            results = _local_pool(model, todo, gsd_mm, overlays, overlay_dir, workers)
+        for rec in results:
+            write(rec)
+    seconds = time.perf_counter() - t0
+    _write_flagged(frames_path, out / FLAGGED_FILE)
+    counts["seconds"] = round(seconds, 3)
+    counts["frames_per_second"] = round(counts["scanned"] / seconds, 3) if seconds > 0 else 0.0
     counts["frames_file"] = str(frames_path)
+    counts["unreadable"] = counts["errors"]  # older name, kept for scripts
     return counts
+
+
+def _write_flagged(frames_path: Path, target: Path) -> None:
+    flagged = []
+    for line in frames_path.read_text(encoding="utf-8").splitlines():
+        rec = json.loads(line)
+        if rec.get("flagged"):
+            flagged.append(rec["frame"])
+    tmp = target.with_suffix(".txt.tmp")
+    tmp.write_text("".join(f"{f}\n" for f in sorted(set(flagged))), encoding="utf-8")
+    os.replace(tmp, target)

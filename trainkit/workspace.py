@@ -66,6 +66,21 @@ CREATE TABLE IF NOT EXISTS label_events (
     created_at REAL NOT NULL
 );
 CREATE INDEX IF NOT EXISTS label_events_patch ON label_events(patch_id, id);
+CREATE TABLE IF NOT EXISTS review_skips (
+    patch_id INTEGER NOT NULL REFERENCES patches(id),
+    reviewer TEXT NOT NULL,
+    created_at REAL NOT NULL,
+    PRIMARY KEY (patch_id, reviewer)    -- skipped patches go to the end of that reviewer's queue
+);
+CREATE TABLE IF NOT EXISTS undone_label_events (
+    id INTEGER PRIMARY KEY,             -- the label_events id the undo removed
+    patch_id INTEGER NOT NULL, label TEXT, reviewer TEXT NOT NULL, source TEXT NOT NULL,
+    created_at REAL NOT NULL, undone_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS label_settlements (
+    event_id INTEGER PRIMARY KEY REFERENCES label_events(id),  -- the settling label event
+    settled_reviewers TEXT NOT NULL     -- comma-separated reviewers whose labels disagreed
+);
 CREATE TABLE IF NOT EXISTS split_assignments (
     patch_id INTEGER PRIMARY KEY REFERENCES patches(id),
     subset TEXT NOT NULL CHECK (subset IN ('train', 'val', 'test'))
@@ -156,6 +171,8 @@ class Workspace:
             raise WorkspaceError(
                 f"workspace {ws.root} has schema version {version}, this kit reads {SCHEMA_VERSION}"
             )
+        with ws.connect() as con:  # tables added since version 1 (review state), idempotent
+            con.executescript(_SCHEMA)
         return ws
 
     @contextmanager
@@ -418,6 +435,112 @@ class Workspace:
             "splits": splits,
             "left_out_of_review": sum(r.review_skip for r in recs),
         }
+
+    # ----- review sessions (events one at a time, undo, skips, settlements) ------------
+    def add_label_event(
+        self,
+        patch_id: int,
+        label: str | None,
+        *,
+        reviewer: str,
+        source: str = "human",
+        settles: Iterable[str] | None = None,
+    ) -> int:
+        """Append one label event and return its id (for undo).
+
+        Args:
+            patch_id: the patch.
+            label: class name, or None for unsure.
+            reviewer: who answered.
+            source: one of :data:`LABEL_SOURCES`.
+            settles: reviewers whose disagreeing labels this event settles; the event is
+                then recorded in ``label_settlements`` in the same transaction.
+        """
+        if source not in LABEL_SOURCES:
+            raise ValueError(
+                f"invalid label source {source!r}; choose one of: {', '.join(LABEL_SOURCES)}"
+            )
+        if label is not None and label not in self.class_set.names:
+            raise ValueError(
+                f"unknown class {label!r}; choose one of: {', '.join(self.class_set.names)}"
+            )
+        with self.connect() as con:
+            cur = con.execute(
+                "INSERT INTO label_events(patch_id, label, reviewer, source, created_at)"
+                " VALUES (?, ?, ?, ?, ?)",
+                (int(patch_id), label, reviewer, source, time.time()),
+            )
+            event_id = int(cur.lastrowid)
+            if settles is not None:
+                con.execute(
+                    "INSERT INTO label_settlements(event_id, settled_reviewers) VALUES (?, ?)",
+                    (event_id, ",".join(sorted(settles))),
+                )
+        return event_id
+
+    def undo_label_event(self, event_id: int) -> dict | None:
+        """Take back a label event: it leaves the history and is kept in ``undone_label_events``.
+
+        Returns the undone event as a dict, or None when no such event exists (already undone).
+        """
+        with self.connect() as con:
+            row = con.execute(
+                "SELECT id, patch_id, label, reviewer, source, created_at FROM label_events"
+                " WHERE id = ?",
+                (int(event_id),),
+            ).fetchone()
+            if row is None:
+                return None
+            con.execute(
+                "INSERT INTO undone_label_events(id, patch_id, label, reviewer, source, created_at,"
+                " undone_at) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                (*row, time.time()),
+            )
+            con.execute("DELETE FROM label_settlements WHERE event_id = ?", (int(event_id),))
+            con.execute("DELETE FROM label_events WHERE id = ?", (int(event_id),))
+        keys = ("id", "patch_id", "label", "reviewer", "source", "created_at")
+        return dict(zip(keys, row, strict=True))
+
+    def undone_events(self) -> list[dict]:
+        """Every undone label event, oldest first (the audit trail of corrected slips)."""
+        keys = ("id", "patch_id", "label", "reviewer", "source", "created_at", "undone_at")
+        with self.connect() as con:
+            rows = con.execute(f"SELECT {', '.join(keys)} FROM undone_label_events ORDER BY id")
+            return [dict(zip(keys, r, strict=True)) for r in rows.fetchall()]
+
+    def label_events(self) -> list[dict]:
+        """Every label event, oldest first, with ``settles`` (reviewers settled, or None)."""
+        q = (
+            "SELECT e.id, e.patch_id, e.label, e.reviewer, e.source, e.created_at,"
+            " s.settled_reviewers FROM label_events e"
+            " LEFT JOIN label_settlements s ON s.event_id = e.id ORDER BY e.id"
+        )
+        keys = ("id", "patch_id", "label", "reviewer", "source", "created_at", "settles")
+        with self.connect() as con:
+            return [dict(zip(keys, r, strict=True)) for r in con.execute(q).fetchall()]
+
+    def set_review_skip(self, patch_id: int, reviewer: str, skipped: bool = True) -> None:
+        """Mark (or unmark) a patch as skipped by a reviewer: it moves to the end of their queue."""
+        with self.connect() as con:
+            if skipped:
+                con.execute(
+                    "INSERT OR REPLACE INTO review_skips(patch_id, reviewer, created_at)"
+                    " VALUES (?, ?, ?)",
+                    (int(patch_id), reviewer, time.time()),
+                )
+            else:
+                con.execute(
+                    "DELETE FROM review_skips WHERE patch_id = ? AND reviewer = ?",
+                    (int(patch_id), reviewer),
+                )
+
+    def review_skips(self, reviewer: str) -> dict[int, float]:
+        """Patch id -> time skipped, for one reviewer."""
+        with self.connect() as con:
+            rows = con.execute(
+                "SELECT patch_id, created_at FROM review_skips WHERE reviewer = ?", (reviewer,)
+            ).fetchall()
+        return {int(p): float(t) for p, t in rows}
 
 
 def import_labels_csv(

@@ -1,0 +1,92 @@
+"""The exported ONNX file: contract, folded BatchNorm, parity, a second runtime, int8 decision."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import pytest
+
+from trainkit.export import (
+    INT8_MAX_RECALL_DROP,
+    INT8_MIN_SPEEDUP,
+    ExportError,
+    quantize_experiment,
+    read_metadata,
+)
+
+
+@pytest.mark.parametrize("batch", [1, 17])
+def test_dynamic_batch(demo_run, batch):
+    out, _ = demo_run
+    sess = ort.InferenceSession(str(out / "model.onnx"), providers=["CPUExecutionProvider"])
+    x = np.random.default_rng(batch).integers(0, 256, (batch, 128, 128, 3), dtype=np.uint8)
+    probs = sess.run(["probabilities"], {"image": x})[0]
+    assert probs.shape == (batch, 6) and probs.dtype == np.float32
+    np.testing.assert_allclose(probs.sum(1), 1.0, atol=1e-5)
+
+
+def test_graph_is_checked_and_batchnorm_is_folded(demo_run):
+    out, _ = demo_run
+    model = onnx.load(str(out / "model.onnx"))
+    onnx.checker.check_model(model, full_check=True)
+    ops = {n.op_type for n in model.graph.node}
+    assert "BatchNormalization" not in ops and "Conv" in ops
+    assert read_metadata(out / "model.onnx")["trainkit.format"] == "trainkit-screener-1"
+
+
+def test_parity_with_pytorch_on_real_patches(demo_run):
+    """ONNX Runtime against the PyTorch checkpoint on the test patches (within 1e-4, same argmax)."""
+    import torch
+
+    from trainkit.data import load_patch_set
+    from trainkit.training import load_checkpoint
+    from trainkit.workspace import Workspace
+
+    out, _ = demo_run
+    model, ckpt, cs = load_checkpoint(out)
+    test = load_patch_set(Workspace.open(out / "workspace"), "test", cs)
+    with torch.no_grad():
+        ref = torch.softmax(model(torch.from_numpy(test.images)), 1).numpy()
+    got = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": test.images})[0]
+    assert np.max(np.abs(ref - got)) <= 1e-4
+    assert np.array_equal(ref.argmax(1), got.argmax(1))
+
+
+def test_opencv_dnn_reads_the_model_and_agrees_with_onnxruntime(demo_run):
+    """A second consumer: OpenCV's DNN module (cv2.dnn.readNetFromONNX) on the same file."""
+    import cv2
+
+    out, _ = demo_run
+    x = np.random.default_rng(0).integers(0, 256, (4, 128, 128, 3), dtype=np.uint8)
+    net = cv2.dnn.readNetFromONNX(str(out / "model.onnx"))
+    net.setInput(x, "image")
+    got = net.forward()
+    ref = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": x})[0]
+    np.testing.assert_allclose(got.reshape(ref.shape), ref, atol=1e-4)
+
+
+def test_int8_is_kept_only_when_recall_and_speed_hold(demo_run):
+    out, _ = demo_run
+    target = out / "model-int8.onnx"
+    try:
+        res = quantize_experiment(out, calibration_patches=64)
+    except ExportError as exc:
+        msg = str(exc)
+        assert msg.startswith("int8 model refused: float crack recall")
+        assert "per-tensor recall" in msg and "per-channel recall" in msg
+        assert not target.exists()
+    else:
+        assert res["float_recall"] - res["recall"] <= INT8_MAX_RECALL_DROP
+        assert res["speedup"] >= INT8_MIN_SPEEDUP
+        meta = read_metadata(target)
+        q = json.loads(meta["quantization"])
+        assert (
+            q["format"] == "QDQ"
+            and meta["class_names"] == read_metadata(out / "model.onnx")["class_names"]
+        )
+        ops = {n.op_type for n in onnx.load(str(target)).graph.node}
+        assert "QuantizeLinear" in ops and "DequantizeLinear" in ops
+    assert not (out / ".int8-work").exists()
