@@ -76,3 +76,24 @@ def test_list_images(tmp_path):
         (tmp_path / n).write_bytes(b"x")
     names = [p.name for p in list_images([tmp_path])]
     assert names == ["3.tif", "1.JPG", "2.png"]  # sorted by full path, suffix case-insensitive
+
+
+def test_webp_and_sixteen_bit_tiff(tmp_path):
+    rgb = np.random.default_rng(1).integers(0, 255, (16, 24, 3), dtype=np.uint8)
+    Image.fromarray(rgb).save(tmp_path / "x.webp", lossless=True)
+    np.testing.assert_array_equal(read_rgb(tmp_path / "x.webp"), rgb)
+    grey16 = (np.arange(16 * 24, dtype=np.uint16).reshape(16, 24) * 170).astype(np.uint16)
+    Image.fromarray(grey16).save(tmp_path / "g.tif")
+    out = read_rgb(tmp_path / "g.tif")
+    np.testing.assert_array_equal(out[..., 0], np.round(grey16 / 257.0).astype(np.uint8))
+
+
+def test_sixteen_bit_rgb_png_written_by_opencv(tmp_path):
+    """48-bit RGB PNG (written by OpenCV, a reference library) reduces to 8 bits per channel."""
+    import cv2
+
+    rgb16 = (np.random.default_rng(2).integers(0, 65535, (8, 8, 3))).astype(np.uint16)
+    cv2.imwrite(str(tmp_path / "c.png"), rgb16[..., ::-1])  # OpenCV writes BGR
+    out = read_rgb(tmp_path / "c.png")
+    assert out.dtype == np.uint8 and out.shape == (8, 8, 3)
+    assert np.max(np.abs(out.astype(int) - np.round(rgb16 / 257.0))) <= 1

@@ -75,8 +75,14 @@ def read_rgb(
             "raise the limit if the file is trusted"
         ) from None
     except UnidentifiedImageError:
-        what = "an empty file" if data == b"" or (data is None and _size(path) == 0) else "not an image"
-        raise PhotoError(f"photo {path.name} cannot be decoded ({what} in a format Pillow reads)") from None
+        what = (
+            "an empty file"
+            if data == b"" or (data is None and _size(path) == 0)
+            else "not an image"
+        )
+        raise PhotoError(
+            f"photo {path.name} cannot be decoded ({what} in a format Pillow reads)"
+        ) from None
     except (OSError, SyntaxError, ValueError) as exc:
         raise PhotoError(f"photo {path.name} cannot be decoded ({exc})") from None
     finally:

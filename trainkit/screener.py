@@ -181,13 +181,18 @@ class CrackMap:
                             [x0, y0, x1 - 1, y1 - 1], fill=(*_ramp(p * 0.5), int(60 * p))
                         )
                     continue
-                col = _ramp(0.5 + 0.5 * p)
+                col = self._flag_colour(p)
                 draw.rectangle(
                     [x0, y0, x1 - 1, y1 - 1], fill=(*col, 70), outline=(*col, 255), width=line_w
                 )
                 self._mark(draw, r, c, (x0, y0, x1, y1), line_w)
         out = Image.alpha_composite(frame, layer).convert("RGB")
         return self._with_legend(out)
+
+    def _flag_colour(self, p: float) -> tuple[int, int, int]:
+        """Amber at the threshold, red at probability 1."""
+        span = max(1e-6, 1.0 - self.threshold)
+        return _ramp(0.5 + 0.5 * min(1.0, max(0.0, (p - self.threshold) / span)))
 
     def _mark(self, draw, r: int, c: int, box: tuple[int, int, int, int], line_w: int) -> None:
         x0, y0, x1, y1 = box
@@ -219,7 +224,7 @@ class CrackMap:
         n_flag = int(self.flagged.sum())
         x = 8
         for i, p in enumerate(np.linspace(self.threshold, 1.0, 6)):
-            d.rectangle([x + 14 * i, h + 9, x + 14 * i + 12, h + 25], fill=_ramp(0.5 + 0.5 * p))
+            d.rectangle([x + 14 * i, h + 9, x + 14 * i + 12, h + 25], fill=self._flag_colour(p))
         x += 14 * 6 + 6
         text = (
             f"flagged: screening probability {self.threshold:.2f} (amber) to 1.00 (red); "
@@ -262,6 +267,11 @@ class Screener:
             raise ScreenerError(f"model file {self.path} does not exist")
         opts = ort.SessionOptions()
         opts.intra_op_num_threads = int(self.threads or usable_cores())
+        # No busy-waiting between runs: spinning threads would take the cores that decode
+        # the next frames while the model runs (measured in benchmarks/run.py scan).
+        opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
+        # The memory arena stays on: turning it off lowered a 12-megapixel scan's peak
+        # memory but cost about a quarter of the speed (measured, benchmarks/run.py scan).
         try:
             self._session = ort.InferenceSession(
                 str(self.path), opts, providers=["CPUExecutionProvider"]
@@ -309,7 +319,7 @@ class Screener:
             )
         return meta
 
-    def predict(self, patches: np.ndarray, *, batch_size: int = 64) -> np.ndarray:
+    def predict(self, patches: np.ndarray, *, batch_size: int = 16) -> np.ndarray:
         """Class probabilities (N, C) for uint8 patches (N, S, S, 3)."""
         patches = np.asarray(patches)
         s = self.patch_px

@@ -1,0 +1,164 @@
+"""A real `trainkit review` session driven through a pseudo-terminal (pexpect)."""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from trainkit.taxonomy import load_class_set
+from trainkit.workspace import Workspace
+
+pexpect = pytest.importorskip("pexpect")
+
+TIMEOUT = 20
+
+
+def make_ws(root: Path, n: int = 8, size: int = 32) -> Workspace:
+    """A workspace of n patches with real crops: a dark vertical line on odd patches."""
+    ws = Workspace.create(root, class_set=load_class_set("orientation"), tile_px=size)
+    rng = np.random.default_rng(0)
+    patches = []
+    for c in range(n):
+        img = np.clip(150 + 10 * rng.standard_normal((size, size, 3)), 0, 255).astype(np.uint8)
+        if c % 2:
+            img[:, size // 2] = 30
+        rel = f"patches/r000_c{c:03d}.png"
+        (ws.root / rel).parent.mkdir(parents=True, exist_ok=True)
+        Image.fromarray(img).save(ws.root / rel)
+        patches.append(
+            dict(row=0, col=c, x0=size * c, y0=0, x1=size * c + size, y1=size, crop=rel)
+            | dict(patch_mm=None, focus=1.0, clipped=0.0)
+        )
+    ws.add_photo_with_patches(
+        name="p.jpg",
+        source_path="/x/p.jpg",
+        width=size * n,
+        height=size,
+        gsd_mm=None,
+        group_id="g",
+        sha256="0" * 64,
+        patches=patches,
+    )
+    return ws
+
+
+def spawn(ws: Workspace, *args: str, rows: int = 45, cols: int = 100):
+    env = dict(os.environ, TERM="xterm-256color", COLORTERM="truecolor", OMP_NUM_THREADS="1")
+    for var in ("NO_COLOR", "COLUMNS", "LINES"):  # rich prefers these to the pty size
+        env.pop(var, None)
+    return pexpect.spawn(
+        sys.executable,
+        ["-m", "trainkit", "review", str(ws.root), *args],
+        env=env,
+        dimensions=(rows, cols),
+        timeout=TIMEOUT,
+        encoding="utf-8",
+    )
+
+
+def shown(child, patch_id: int, done: int, remaining: int) -> None:
+    """Wait for the screen showing this patch with this progress."""
+    child.expect(rf"done {done} \| remaining {remaining} \|")
+    child.expect(rf"patch {patch_id} ")
+
+
+def test_label_undo_skip_quit_and_resume(tmp_path):
+    ws = make_ws(tmp_path / "ws", n=6)
+    child = spawn(ws, "--reviewer", "ana")
+    shown(child, 1, 0, 6)
+    child.expect("0 none  1 horizontal  2 diagonal_rising  3 vertical")  # keys shown on screen
+    child.send("0")  # patch 1: none
+    shown(child, 2, 1, 5)
+    child.expect(r"orientation: 90 deg -> vertical")  # the drawn vertical line
+    child.send("4")  # patch 2: a slip...
+    shown(child, 3, 2, 4)
+    child.send("u")  # ...undone at once
+    shown(child, 2, 1, 5)
+    child.expect("undone: patch 2 again")
+    child.send("3")  # patch 2: vertical
+    shown(child, 3, 2, 4)
+    child.send("s")  # patch 3 skipped: to the end of the queue
+    shown(child, 4, 2, 4)
+    child.send("x")  # patch 4: unsure
+    shown(child, 5, 3, 3)
+    child.send("?")
+    child.expect("u       undo the last answer or skip")
+    child.send(" ")
+    shown(child, 5, 3, 3)
+    child.send("q")
+    child.expect(r"ana: 3 labels this session .* 3 left; run the same command to resume")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert child.exitstatus == 0
+
+    events = [(e["patch_id"], e["label"], e["reviewer"], e["source"]) for e in ws.label_events()]
+    assert events == [
+        (1, "none", "ana", "human"),
+        (2, "vertical", "ana", "human"),
+        (4, None, "ana", "human"),
+    ]
+    assert [(e["patch_id"], e["label"]) for e in ws.undone_events()] == [(2, "diagonal_falling")]
+    cur = {r.id: (r.labelled, r.label) for r in ws.patches()}
+    assert cur == {
+        1: (True, "none"),
+        2: (True, "vertical"),
+        3: (False, None),
+        4: (True, None),
+        5: (False, None),
+        6: (False, None),
+    }
+
+    # resume: starts at patch 5; the skipped patch 3 comes last
+    child = spawn(ws, "--reviewer", "ana")
+    shown(child, 5, 0, 3)
+    child.send("0")
+    shown(child, 6, 1, 2)
+    child.send("3")
+    shown(child, 3, 2, 1)
+    child.send("0")
+    child.expect("queue finished")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert [r.label for r in ws.patches()] == ["none", "vertical", "none", None, "none", "vertical"]
+    assert len(ws.label_events()) == 6
+
+
+def test_contact_sheet_answers_and_small_terminal_fallback(tmp_path):
+    ws = make_ws(tmp_path / "ws", n=8)
+    child = spawn(ws, "--reviewer", "ben", "--grid", "3x2", rows=20, cols=50)
+    child.expect("smaller than 60x34: using contact-sheet mode")
+    child.expect(r"\(6 patches, numbered 1-6\)")
+    child.expect("answer> ")
+    assert (ws.root / "review" / "sheet-ben.png").is_file()
+    child.sendline("all none except 4 2=3 6=vertical")
+    child.expect(r"\(3 patches, numbered 1-3\)")  # patch 4 and the last two remain
+    child.expect("saved 5 labels")
+    child.sendline("all zz")
+    child.expect("unknown class 'zz'")
+    child.sendline("u")
+    child.expect("undone: the last sheet answer")
+    child.sendline("q")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert ws.label_events() == []
+    child = spawn(ws, "--reviewer", "ben", "--sheet")
+    child.expect("answer> ")
+    child.sendline("all 0 2=v 4=v 6=v 8=v")
+    child.expect("queue finished")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert [r.label for r in ws.patches()] == ["none", "vertical"] * 4
+    assert {e["reviewer"] for e in ws.label_events()} == {"ben"}
+
+
+def test_not_a_workspace_is_one_clear_line(tmp_path):
+    child = spawn(Workspace(tmp_path / "nowhere"))
+    child.expect(r"trainkit: .*nowhere is not a trainkit workspace")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert child.exitstatus == 2

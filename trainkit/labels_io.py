@@ -1,0 +1,219 @@
+"""Import and export of a workspace's labels as CSV and as a folder-per-class copy of the crops.
+
+CSV export columns: ``patch_id, photo, x0, y0, x1, y1, label, reviewer, source,
+labelled_at`` (the current label; empty label = unsure). CSV import takes either
+``patch_id, label`` or ``photo, x0, y0, x1, y1, label`` (so an export reads back, and
+so does ``trainkit synth``'s labels.csv).
+
+Folder layout: ``ROOT/<class name>/<photo>@<x0>_<y0>_<x1>_<y1>.<ext>``, with ``/`` in a
+photo's relative name written as ``~``. Import matches a file by that name and, for
+files named otherwise (a layout made by another tool), by identical pixels.
+
+Every import is checked completely before anything is written and then added in one
+transaction: a bad row or file leaves the workspace untouched.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import os
+import re
+import shutil
+from pathlib import Path
+
+import numpy as np
+
+from .workspace import Workspace
+
+__all__ = [
+    "LabelsIOError",
+    "export_csv",
+    "export_folders",
+    "import_csv",
+    "import_folders",
+    "folder_file_name",
+]
+
+EXPORT_COLUMNS = (
+    "patch_id",
+    "photo",
+    "x0",
+    "y0",
+    "x1",
+    "y1",
+    "label",
+    "reviewer",
+    "source",
+    "labelled_at",
+)
+_IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".jpg", ".jpeg", ".bmp", ".webp"}
+_NAME_RE = re.compile(r"^(?P<photo>.+)@(?P<x0>\d+)_(?P<y0>\d+)_(?P<x1>\d+)_(?P<y1>\d+)$")
+
+
+class LabelsIOError(ValueError):
+    """An import or export that cannot be done; nothing was written."""
+
+
+def _current(ws: Workspace) -> list[tuple]:
+    """(record, latest event) for every labelled patch, in photo order."""
+    latest: dict[int, dict] = {}
+    for e in ws.label_events():
+        latest[e["patch_id"]] = e
+    return [(r, latest[r.id]) for r in ws.patches() if r.id in latest]
+
+
+def export_csv(ws: Workspace, path: str | Path) -> int:
+    """Write the current label of every labelled patch to CSV (atomically); returns rows."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".tmp")
+    rows = _current(ws)
+    with tmp.open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(EXPORT_COLUMNS)
+        for r, e in rows:
+            w.writerow(
+                [r.id, r.photo, *r.box, e["label"] or "", e["reviewer"], e["source"]]
+                + [f"{e['created_at']:.3f}"]
+            )
+    os.replace(tmp, path)
+    return len(rows)
+
+
+def folder_file_name(photo: str, box: tuple[int, int, int, int], suffix: str) -> str:
+    """File name of a patch in the folder layout (see the module docstring)."""
+    return f"{photo.replace('/', '~')}@{box[0]}_{box[1]}_{box[2]}_{box[3]}{suffix}"
+
+
+def export_folders(ws: Workspace, root: str | Path) -> dict[str, int]:
+    """Copy every labelled patch's crop into ``ROOT/<class>/``; returns counts per class.
+
+    Unsure patches go to ``ROOT/_unsure/``. Existing files of the same name are replaced.
+    """
+    root = Path(root)
+    counts: dict[str, int] = {}
+    for r, e in _current(ws):
+        cls = e["label"] or "_unsure"
+        src = ws.root / r.crop
+        dest = root / cls / folder_file_name(r.photo, r.box, src.suffix)
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copyfile(src, dest)
+        counts[cls] = counts.get(cls, 0) + 1
+    return counts
+
+
+def _check_label(raw: str, names: tuple[str, ...], where: str) -> str | None:
+    label = (raw or "").strip() or None
+    if label is not None and label not in names:
+        raise LabelsIOError(f"{where}: unknown class {label!r}; choose one of: {', '.join(names)}")
+    return label
+
+
+def import_csv(
+    ws: Workspace, path: str | Path, *, reviewer: str = "import", source: str = "imported"
+) -> int:
+    """Import labels from CSV keyed by ``patch_id`` or by ``photo, x0, y0, x1, y1``.
+
+    Returns:
+        The number of label events added (one transaction; nothing on error).
+
+    Raises:
+        LabelsIOError: missing columns, unknown patch ids or places, unknown classes.
+    """
+    path = Path(path)
+    names = ws.class_set.names
+    items: list[tuple[int, str | None]] = []
+    with path.open(newline="", encoding="utf-8") as fh:
+        reader = csv.DictReader(fh)
+        cols = set(reader.fieldnames or [])
+        by_id = {"patch_id", "label"} <= cols
+        by_place = {"photo", "x0", "y0", "x1", "y1", "label"} <= cols
+        if not (by_id or by_place):
+            raise LabelsIOError(
+                f"{path.name}: expected columns patch_id,label or photo,x0,y0,x1,y1,label; "
+                f"got {reader.fieldnames}"
+            )
+        ids = {r.id for r in ws.patches()}
+        lookup = ws.patch_lookup() if not by_id else {}
+        for line, row in enumerate(reader, start=2):
+            where = f"{path.name} line {line}"
+            try:
+                if by_id:
+                    pid = int(row["patch_id"])
+                else:
+                    box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
+            except (TypeError, ValueError):
+                raise LabelsIOError(f"{where}: patch id and box values must be integers") from None
+            if by_id and pid not in ids:
+                raise LabelsIOError(f"{where}: no patch with id {pid} in the workspace")
+            if not by_id:
+                pid = lookup.get((row["photo"], box))
+                if pid is None:
+                    raise LabelsIOError(
+                        f"{where}: no patch {box} of photo {row['photo']!r} in the workspace"
+                    )
+            items.append((pid, _check_label(row["label"], names, where)))
+    return ws.add_labels(items, reviewer=reviewer, source=source)
+
+
+def _pixel_digest(path: Path) -> str:
+    from PIL import Image
+
+    with Image.open(path) as im:
+        a = np.ascontiguousarray(np.asarray(im.convert("RGB")))
+    return hashlib.sha1(a.tobytes() + str(a.shape).encode()).hexdigest()
+
+
+def import_folders(
+    ws: Workspace, root: str | Path, *, reviewer: str = "import", source: str = "imported"
+) -> int:
+    """Import labels from ``ROOT/<class>/`` folders of patch images (``_unsure`` = unsure).
+
+    Files are matched by the export file name or, failing that, by identical pixels to a
+    workspace crop. Hidden files are ignored.
+
+    Returns:
+        The number of label events added (one transaction; nothing on error).
+
+    Raises:
+        LabelsIOError: unknown class folders, files matching no patch, loose files.
+    """
+    root = Path(root)
+    if not root.is_dir():
+        raise LabelsIOError(f"{root} is not a folder")
+    names = ws.class_set.names
+    lookup = {
+        (photo.replace("/", "~"), box): pid for (photo, box), pid in ws.patch_lookup().items()
+    }
+    by_pixels: dict[str, int] | None = None
+    items: list[tuple[int, str | None]] = []
+    for entry in sorted(root.iterdir()):
+        if entry.name.startswith("."):
+            continue
+        if not entry.is_dir():
+            raise LabelsIOError(
+                f"{entry}: expected only class folders in {root} ({', '.join(names)}, _unsure)"
+            )
+        if entry.name != "_unsure" and entry.name not in names:
+            raise LabelsIOError(
+                f"folder {entry.name!r} is not a class of this workspace; choose one of: "
+                f"{', '.join(names)} (or _unsure)"
+            )
+        label = None if entry.name == "_unsure" else entry.name
+        for f in sorted(entry.iterdir()):
+            if f.name.startswith(".") or f.suffix.lower() not in _IMAGE_SUFFIXES:
+                continue
+            m = _NAME_RE.match(f.stem)
+            pid = None
+            if m:
+                box = tuple(int(m[k]) for k in ("x0", "y0", "x1", "y1"))
+                pid = lookup.get((m["photo"], box))
+            if pid is None:
+                if by_pixels is None:
+                    by_pixels = {_pixel_digest(ws.root / r.crop): r.id for r in ws.patches()}
+                pid = by_pixels.get(_pixel_digest(f))
+            if pid is None:
+                raise LabelsIOError(f"{f}: matches no patch of the workspace by name or pixels")
+            items.append((pid, label))
+    return ws.add_labels(items, reviewer=reviewer, source=source)
