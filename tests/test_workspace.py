@@ -82,8 +82,9 @@ def test_import_labels_by_place(tmp_path):
     recs = ws.patches()
     assert recs[0].label == "vertical" and recs[1].labelled and recs[1].label is None
     for bad, match in [
-        ("photo,x0,y0,x1,y1,label\n../p0.jpg,0,0,32,32,none\n", "plain file name"),
-        ("photo,x0,y0,x1,y1,label\n/etc/p0.jpg,0,0,32,32,none\n", "plain file name"),
+        ("photo,x0,y0,x1,y1,label\n../p0.jpg,0,0,32,32,none\n", "relative name inside"),
+        ("photo,x0,y0,x1,y1,label\n/etc/p0.jpg,0,0,32,32,none\n", "relative name inside"),
+        ("photo,x0,y0,x1,y1,label\nsub/p0.jpg,0,0,32,32,none\n", "no patch"),
         ("photo,x0,y0,x1,y1,label\np0.jpg,1,0,33,32,none\n", "no patch"),
         ("photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,cracked\n", "unknown class"),
         ("photo,label\np0.jpg,none\n", "expected columns"),

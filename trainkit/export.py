@@ -151,7 +151,7 @@ def export_experiment(
         tmp.unlink(missing_ok=True)
         raise
     os.replace(tmp, target)
-    return {
+    summary = {
         "model": str(target),
         "opset": opset,
         "bytes": target.stat().st_size,
@@ -162,6 +162,10 @@ def export_experiment(
         "threshold": json.loads(meta["threshold"]),
         "evaluated": metrics is not None,
     }
+    from .model_card import write_model_card
+
+    summary["model_card"] = str(write_model_card(exp, ckpt, summary))
+    return summary
 
 
 def _headline(metrics: dict | None) -> dict | None:

@@ -566,14 +566,12 @@ def import_labels_csv(
             )
         for i, row in enumerate(reader, start=2):
             photo = row["photo"]
-            if (
-                Path(photo).is_absolute()
-                or ".." in Path(photo).parts
-                or "/" in photo
-                or "\\" in photo
-            ):
+            # Photos are named by their path relative to the folder they were tiled from
+            # ("site-a/img1.jpg"); anything that could point outside it is refused.
+            if Path(photo).is_absolute() or ".." in Path(photo).parts or "\\" in photo:
                 raise WorkspaceError(
-                    f"{path.name} line {i}: photo {photo!r} must be a plain file name"
+                    f"{path.name} line {i}: photo {photo!r} must be a relative name inside the "
+                    "photo folder (no absolute path, no '..')"
                 )
             try:
                 box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))

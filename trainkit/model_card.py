@@ -1,0 +1,469 @@
+"""Build the model card (``model-card.md``) that ``trainkit export`` writes next to the ONNX file.
+
+The card is plain Markdown made only from what the run recorded: the checkpoint
+(config, best epoch, the experiment's split information), ``experiment.json``,
+``evaluation/metrics.json`` (when the experiment was evaluated) and the export
+summary. It never invents a figure: without ``metrics.json`` it says plainly that
+the model was not evaluated and shows no metric numbers. Every number it prints
+is rounded to 3 decimals (rates, recalls, thresholds) or given as a count.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+__all__ = [
+    "CARD_NAME",
+    "NOT_EVALUATED",
+    "build_model_card",
+    "write_model_card",
+    "synthetic_training_data",
+]
+
+#: File name of the card inside the experiment folder.
+CARD_NAME = "model-card.md"
+#: The sentence a card carries when the experiment has no evaluation/metrics.json.
+NOT_EVALUATED = (
+    "**Not evaluated.** This model has no evaluation on held-out photos "
+    "(no `evaluation/metrics.json` when it was exported), so this card gives no recall, "
+    "false-alarm or accuracy figures. Run `trainkit evaluate EXP` and export again "
+    "before trusting it to pre-filter anything."
+)
+
+_CAUTION_FALLBACK = (
+    "This screener is a triage aid that decides which photos and regions a person looks at "
+    "first; it is not an inspection. Its figures hold only for photos like its test set "
+    "(same cameras, surfaces, lighting and scale). Defer to local codes and to licensed engineers "
+    "for any judgement about a structure."
+)
+
+
+def _caution() -> str:
+    try:
+        from .evaluation import CAUTION
+    except ImportError:  # pragma: no cover - evaluation always ships with the kit
+        return _CAUTION_FALLBACK
+    return CAUTION
+
+
+def _f(v: Any, digits: int = 3) -> str:
+    """A number with fixed decimals, or "n/a" for undefined (null) values."""
+    if v is None:
+        return "n/a"
+    return f"{float(v):.{digits}f}"
+
+
+def _pct(conf: Any) -> str:
+    return "n/a" if conf is None else f"{100 * float(conf):g}%"
+
+
+def _weights_source(weights: Any) -> str:
+    if weights is None:
+        return "random initialisation (no pretrained weights)"
+    if weights == "torchvision":
+        return "torchvision's default pretrained weights for the backbone (new classification head)"
+    return f"pretrained weights from the file `{weights}` (new classification head)"
+
+
+def synthetic_training_data(workspace: str | Path | None) -> bool | None:
+    """Whether the workspace's photos came from ``trainkit.synth``.
+
+    A photo counts as synthetic when a ``manifest.json`` whose ``generator`` starts with
+    ``trainkit.synth`` sits in its folder or the folder above (the layout
+    :func:`trainkit.synth.write_dataset` writes).
+
+    Args:
+        workspace: the workspace folder the model was trained on.
+
+    Returns:
+        True if every photo is synthetic, False if at least one is not, None when the
+        workspace cannot be read.
+    """
+    if workspace is None:
+        return None
+    try:
+        from .workspace import Workspace
+
+        photos = Workspace.open(workspace).photos()
+    except (ValueError, OSError):
+        return None
+    if not photos:
+        return None
+    seen: dict[Path, bool] = {}
+
+    def is_synth_dir(folder: Path) -> bool:
+        if folder not in seen:
+            manifest = folder / "manifest.json"
+            ok = False
+            if manifest.is_file():
+                try:
+                    gen = json.loads(manifest.read_text(encoding="utf-8")).get("generator", "")
+                    ok = isinstance(gen, str) and gen.startswith("trainkit.synth")
+                except (OSError, ValueError, AttributeError):
+                    ok = False
+            seen[folder] = ok
+        return seen[folder]
+
+    for ph in photos:
+        src = Path(ph["source_path"])
+        if not (is_synth_dir(src.parent) or is_synth_dir(src.parent.parent)):
+            return False
+    return True
+
+
+def _range(pair: Any, unit: str, digits: int = 3) -> str:
+    if not pair:
+        return "unknown (photos without scale)"
+    lo, hi = (float(v) for v in pair)
+    return f"{lo:.{digits}f} to {hi:.{digits}f} {unit}"
+
+
+def _training_data(experiment: dict, synthetic: bool | None) -> list[str]:
+    split = experiment.get("split") or {}
+    counts = split.get("class_counts") or {}
+    groups = split.get("groups") or {}
+    patches = split.get("patches") or {}
+    names = [c["name"] for c in (experiment.get("class_set") or {}).get("classes", [])]
+    if not names and counts:
+        names = list(next(iter(counts.values())).keys())
+    subsets = ("train", "val", "test")
+    lines = ["## Training data", ""]
+    if counts:
+        lines += [
+            "Labelled patches per class and subset (from the split recorded with the checkpoint; "
+            "patches marked unsure are left out):",
+            "",
+            "| class | train | val | test |",
+            "|---|---:|---:|---:|",
+        ]
+        for n in names:
+            lines.append(
+                f"| {n} | " + " | ".join(str(counts.get(s, {}).get(n, 0)) for s in subsets) + " |"
+            )
+        lines.append(
+            "| **all** | "
+            + " | ".join(str(patches.get(s, sum(counts.get(s, {}).values()))) for s in subsets)
+            + " |"
+        )
+        lines.append("")
+    else:
+        lines += ["No split information was recorded with the checkpoint.", ""]
+    if groups:
+        total = sum(int(v) for v in groups.values())
+        lines.append(
+            f"- Groups (photos or structures kept whole on one side of the split): {total} "
+            f"({', '.join(f'{s} {groups.get(s, 0)}' for s in subsets)})"
+        )
+    if split:
+        lines.append(
+            f"- Split: test fraction {split.get('test_fraction')}, validation fraction "
+            f"{split.get('val_fraction')}, seed {split.get('seed')}"
+        )
+    px = experiment.get("input_px")
+    lines.append(
+        f"- Scale of the training photos: {_range(experiment.get('gsd_mm_range'), 'mm/px', 4)}"
+    )
+    lines.append(
+        f"- Patch size: {px} px square, covering "
+        f"{_range(experiment.get('patch_mm_range'), 'mm of surface', 1)}"
+    )
+    lines.append(
+        f"- Data digest (SHA-256 of the training and validation data): `{experiment.get('data_digest')}`"
+    )
+    if synthetic:
+        lines.append(
+            "- The training photos are **synthetic** (procedural concrete made by `trainkit.synth`); "
+            "they show the workflow, not what the screener does on real photos."
+        )
+    lines.append("")
+    return lines
+
+
+def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
+    cfg = ckpt.get("config") or {}
+    best_val = ckpt.get("best_val") or {}
+    lines = ["## The model", ""]
+    lines.append(f"- Backbone: `{cfg.get('backbone')}`, class set `{cfg.get('class_set')}`")
+    lines.append(
+        f"- Input: uint8 RGB patches of {ckpt.get('input_px', experiment.get('input_px'))} x "
+        f"{ckpt.get('input_px', experiment.get('input_px'))} px (resizing is the caller's job; "
+        "normalisation is inside the graph)"
+    )
+    lines.append(
+        f"- Training: {cfg.get('epochs')} epochs planned, best epoch on validation "
+        f"{ckpt.get('best_epoch')} (this checkpoint), batch size {cfg.get('batch_size')}, "
+        f"peak learning rate {cfg.get('lr')}, seed {cfg.get('seed')}"
+    )
+    if "val_balanced_accuracy" in best_val:
+        lines.append(
+            f"- Validation balanced accuracy at the best epoch: "
+            f"{_f(best_val.get('val_balanced_accuracy'))}"
+        )
+    lines.append(f"- Weights: {_weights_source(cfg.get('weights'))}")
+    if export:
+        model = export.get("model")
+        lines.append(
+            f"- Exported: `{Path(model).name if model else 'model.onnx'}` "
+            f"({export.get('exporter', 'ONNX')}); parity with PyTorch on "
+            f"{export.get('parity_patches')} patches, max |dp| "
+            f"{float(export.get('parity_max_abs_diff', float('nan'))):.1e}"
+        )
+    lines.append("")
+    return lines
+
+
+def _metrics(metrics: dict | None) -> list[str]:
+    lines = ["## Test metrics", ""]
+    if metrics is None:
+        return [*lines, NOT_EVALUATED, ""]
+    s = metrics["screening"]
+    iv = s.get("recall_interval") or {}
+    lines.append(
+        f"Evaluated on the `{metrics.get('split')}` subset: {metrics.get('patches')} patches from "
+        f"{metrics.get('photos')} photos the model never saw in training."
+    )
+    lines.append("")
+    lines.append(
+        f"- Screening recall (crack vs no crack, at the threshold below): **{_f(s.get('recall'))}**, "
+        f"{_pct(iv.get('confidence'))} interval [{_f(iv.get('low'))}, {_f(iv.get('high'))}] "
+        f"({iv.get('method')}; {iv.get('k')} of {iv.get('n')} cracked patches found)"
+    )
+    clean = (s.get("fp") or 0) + (s.get("tn") or 0)
+    lines.append(
+        f"- False-alarm rate: {_f(s.get('false_alarm_rate'))} "
+        f"({s.get('fp')} of {clean} clean patches flagged)"
+    )
+    lines.append(f"- Accuracy over all classes: {_f(metrics.get('accuracy'))}")
+    lines.append("")
+    lines += [
+        "Per-class recall (intervals: "
+        f"{metrics.get('interval_method')}, {_pct(metrics.get('confidence'))}):",
+        "",
+        "| class | recall | interval low | interval high | found / patches |",
+        "|---|---:|---:|---:|---:|",
+    ]
+    for c in metrics.get("per_class", []):
+        ci = c.get("recall_interval") or {}
+        lines.append(
+            f"| {c['name']} | {_f(c.get('recall'))} | {_f(c.get('recall_ci_low'))} | "
+            f"{_f(c.get('recall_ci_high'))} | {ci.get('k', 'n/a')} / {ci.get('n', c.get('support'))} |"
+        )
+    lines.append("")
+    gate = metrics.get("gate")
+    if gate:
+        lines.append(
+            f"Acceptance gate (required lower bound of screening recall "
+            f"{_f(gate.get('required_recall'))}): "
+            f"**{'passed' if gate.get('passed') else 'failed'}**. {gate.get('verdict', '')}".rstrip()
+        )
+    else:
+        lines.append(
+            "Acceptance gate: none was recorded (`trainkit evaluate --require-recall` sets one)."
+        )
+    lines.append("")
+    return lines
+
+
+def _threshold(metrics: dict | None, export: dict) -> list[str]:
+    lines: list[str] = []  # one paragraph each
+    if metrics is None:
+        thr = export.get("threshold", 0.5)
+        lines.append(
+            f"The model file carries the default threshold {_f(thr)}, not one chosen on "
+            "validation; how many clean patches it flags is unknown until the model is evaluated."
+        )
+        return ["## Threshold", *[x for para in lines for x in ("", para)], ""]
+    s = metrics["screening"]
+    thr = s.get("threshold")
+    clean = (s.get("fp") or 0) + (s.get("tn") or 0)
+    cracked = (s.get("tp") or 0) + (s.get("fn") or 0)
+    lines.append(
+        f"A patch is flagged when its screening probability (1 - P(none)) is at least "
+        f"**{_f(thr)}** ({s.get('threshold_source')})."
+    )
+    text = (
+        f"At {_f(thr)}, {s.get('fp')} of {clean} clean test patches were flagged "
+        f"(false-alarm rate {_f(s.get('false_alarm_rate'))}) and {s.get('tp')} of {cracked} "
+        "cracked test patches were found"
+    )
+    v = s.get("validation")
+    if v:
+        text += (
+            f"; the validation set flagged {v.get('fp')} of "
+            f"{(v.get('fp') or 0) + (v.get('tn') or 0)} clean patches and found {v.get('tp')} of "
+            f"{(v.get('tp') or 0) + (v.get('fn') or 0)} cracked ones"
+        )
+    lines.append(text + ".")
+    d = s.get("at_default_threshold")
+    if d:
+        lines.append(
+            f"For comparison, at 0.500 the test set would have had {d.get('fp')} false alarms "
+            f"and screening recall {_f(d.get('recall'))}."
+        )
+    if s.get("threshold_independent") is False:
+        lines.append(
+            "The threshold was chosen on the evaluated patches themselves, so the test "
+            "figures above are optimistic."
+        )
+    return ["## Threshold", *[x for para in lines for x in ("", para)], ""]
+
+
+def _limits(experiment: dict, metrics: dict | None, synthetic: bool | None) -> list[str]:
+    lines = ["## Known limits", ""]
+    gsd = experiment.get("gsd_mm_range")
+    if gsd:
+        lines.append(
+            f"- Scale: trained on photos of {_range(gsd, 'mm/px', 4)}; closer or farther shots, "
+            "other lenses and resolutions are outside what it has seen."
+        )
+    else:
+        lines.append(
+            "- Scale: the training photos had no recorded scale; the working range is unknown."
+        )
+    lines.append(
+        "- Lighting, weather, wet or dirty surfaces, paint, graffiti, shadows and camera types "
+        "unlike the training photos are untested."
+    )
+    lines.append("- Surfaces other than concrete (masonry, steel, asphalt, timber) are untested.")
+    if synthetic:
+        lines.append(
+            "- The training and test photos are synthetic; no figure here says anything about "
+            "real photos."
+        )
+    if metrics is not None:
+        n = (metrics["screening"].get("recall_interval") or {}).get("n")
+        lines.append(
+            f"- Small test sets give wide intervals: screening recall rests on {n} cracked test "
+            "patches; classes with few test patches have intervals too wide to rely on."
+        )
+    else:
+        lines.append("- Not evaluated: nothing is known about its recall or false alarms.")
+    lines.append("")
+    return lines
+
+
+def build_model_card(
+    ckpt: dict,
+    *,
+    experiment: dict | None = None,
+    metrics: dict | None = None,
+    export: dict | None = None,
+    synthetic: bool | None = None,
+    name: str | None = None,
+    kit_version: str | None = None,
+    created: str | None = None,
+) -> str:
+    """The model card's Markdown text.
+
+    Args:
+        ckpt: the checkpoint dict (``config``, ``best_epoch``, ``input_px``, ``experiment``).
+        experiment: the contents of ``experiment.json`` (default: the checkpoint's copy).
+        metrics: the contents of ``evaluation/metrics.json``, or None when not evaluated.
+        export: the summary returned by :func:`trainkit.export.export_experiment`.
+        synthetic: whether the training photos came from ``trainkit.synth`` (None: unknown).
+        name: the experiment's name shown in the title.
+        kit_version: trainkit version (default: the installed one).
+        created: timestamp shown on the card (default: now, UTC).
+
+    Returns:
+        The card as Markdown text ending in a newline.
+    """
+    if kit_version is None:
+        from . import __version__ as kit_version
+    experiment = experiment if experiment is not None else (ckpt.get("experiment") or {})
+    export = export or {}
+    created = created or _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    caution = (metrics or {}).get("caution") or _caution()
+    title = f"# Model card: concrete-crack patch screener{f' `{name}`' if name else ''}"
+    lines = [
+        title,
+        "",
+        f"> **Caution.** {caution}",
+        "",
+        f"Written by trainkit {kit_version} at export ({created}) from the checkpoint, "
+        "`experiment.json`"
+        + (", `evaluation/metrics.json`" if metrics is not None else "")
+        + " and the export's checks; every figure below is what this run recorded or measured.",
+        "",
+        "## Intended use",
+        "",
+        "- Triage: decide which photos and which regions of them a qualified person looks at "
+        "first, on concrete surfaces photographed like the training and test photos.",
+        "- Each patch gets a screening probability (1 - P(none)) and an orientation class; a "
+        "patch at or above the threshold is flagged for a person to look at.",
+        "",
+        "## Out of scope",
+        "",
+        "- Deciding whether a structure is safe, or any structural judgement: that is the work "
+        "of a licensed engineer under local codes.",
+        "- Measuring crack width, length or depth: the model classifies patches, it measures "
+        "nothing.",
+        "- Surfaces other than concrete.",
+        "- Photos unlike the training and test photos (other cameras, distances, lighting, "
+        "surfaces); its figures do not hold there.",
+        "- Clearing a photo as crack-free: an unflagged patch has not been inspected.",
+        "",
+    ]
+    digest = (metrics or {}).get("data_digest")
+    if digest and experiment.get("data_digest") and digest != experiment["data_digest"]:
+        lines += [
+            "**Warning:** `evaluation/metrics.json` describes different training data (data "
+            "digest differs from the checkpoint's); evaluate again before relying on it.",
+            "",
+        ]
+    lines += _training_data(experiment, synthetic)
+    lines += _model(ckpt, experiment, export)
+    lines += _metrics(metrics)
+    lines += _threshold(metrics, export)
+    lines += _limits(experiment, metrics, synthetic)
+    lines += [
+        "## Cautions",
+        "",
+        f"{caution}",
+        "",
+        "The screener is a triage aid, not an inspection. Its figures hold only for photos "
+        "like its test set. Defer to local codes and licensed engineers.",
+        "",
+    ]
+    return "\n".join(lines)
+
+
+def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None) -> Path:
+    """Write ``EXP/model-card.md`` atomically (temporary file, then rename).
+
+    Args:
+        exp_dir: the experiment folder.
+        ckpt: the loaded checkpoint dict.
+        export: the export summary (model path, parity, threshold).
+
+    Returns:
+        The path of the card.
+    """
+    exp = Path(exp_dir)
+    exp_json = exp / "experiment.json"
+    experiment = (
+        json.loads(exp_json.read_text(encoding="utf-8"))
+        if exp_json.is_file()
+        else (ckpt.get("experiment") or {})
+    )
+    metrics_path = exp / "evaluation" / "metrics.json"
+    metrics = (
+        json.loads(metrics_path.read_text(encoding="utf-8")) if metrics_path.is_file() else None
+    )
+    text = build_model_card(
+        ckpt,
+        experiment=experiment,
+        metrics=metrics,
+        export=export,
+        synthetic=synthetic_training_data(experiment.get("workspace")),
+        name=exp.resolve().name,
+    )
+    target = exp / CARD_NAME
+    tmp = target.with_name(target.name + ".tmp")
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, target)
+    return target
