@@ -248,9 +248,11 @@ def _metrics(metrics: dict | None) -> list[str]:
     ]
     for c in metrics.get("per_class", []):
         ci = c.get("recall_interval") or {}
+        n = ci.get("n", c.get("support"))
+        recall = None if n == 0 else c.get("recall")  # no test patches: recall is undefined
         lines.append(
-            f"| {c['name']} | {_f(c.get('recall'))} | {_f(c.get('recall_ci_low'))} | "
-            f"{_f(c.get('recall_ci_high'))} | {ci.get('k', 'n/a')} / {ci.get('n', c.get('support'))} |"
+            f"| {c['name']} | {_f(recall)} | {_f(c.get('recall_ci_low'))} | "
+            f"{_f(c.get('recall_ci_high'))} | {ci.get('k', 'n/a')} / {n} |"
         )
     lines.append("")
     gate = metrics.get("gate")

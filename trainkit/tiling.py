@@ -474,6 +474,7 @@ def tile_into_workspace(
     skip_flagged: bool = False,
     crop_format: str = "tiff",
     workers: int | None = None,
+    parallel: str = "threads",
     max_pixels: int | None = None,
     roots: dict[Path, Path] | None = None,
     progress: Callable[[int, int, str], None] | None = None,
@@ -496,7 +497,8 @@ def tile_into_workspace(
         skip_flagged: leave patches with any quality flag out of the review queue.
         crop_format: "tiff" (uncompressed, fastest; about 150 KB per 224-px crop) or
             "png" (about 2.5x smaller, several times slower to write; see benchmarks).
-        workers: processes decoding and cropping in parallel (default: the usable cores).
+        workers: photos decoded and cropped in parallel (default: the usable cores).
+        parallel: "threads" (default) or "processes" (measured in benchmarks/run.py tiling).
 
     Returns:
         Counts (added, present, moved, skipped, patches, flagged, left out of review),
@@ -506,12 +508,14 @@ def tile_into_workspace(
     import os
     import re
     import time
-    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 
     from .imaging import DEFAULT_MAX_PIXELS
 
     if group_by not in ("sidecar", "photo"):
         raise ValueError(f"invalid group_by {group_by!r}; choose one of: sidecar, photo")
+    if parallel not in ("threads", "processes"):
+        raise ValueError(f"invalid parallel mode {parallel!r}; choose one of: threads, processes")
     if crop_format not in CROP_FORMATS:
         raise ValueError(
             f"invalid crop format {crop_format!r}; choose one of: {', '.join(CROP_FORMATS)}"
@@ -614,6 +618,12 @@ def tile_into_workspace(
     if n_workers <= 1 or len(jobs) <= 1:
         for i, job in enumerate(jobs, start=1):
             handle(_process(job), i)
+    elif parallel == "threads":
+        # Decoding (Pillow), hashing, quality measures (OpenCV) and file writes release the
+        # GIL, so threads share the cores without process start-up or pickling.
+        with ThreadPoolExecutor(min(n_workers, len(jobs))) as pool:
+            for i, res in enumerate(pool.map(_process, jobs), start=1):
+                handle(res, i)
     else:
         # forkserver, not fork: forking a process that already runs OpenMP/BLAS threads
         # (torch, OpenCV) can deadlock the child.
