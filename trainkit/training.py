@@ -309,7 +309,10 @@ def train(
     best = {"score": -math.inf, "epoch": 0, "state": None, "row": None}
     last_path = exp / "last.pt"
     if resume and last_path.exists():
-        state = torch.load(last_path, map_location="cpu", weights_only=True)
+        try:
+            state = torch.load(last_path, map_location="cpu", weights_only=True)
+        except Exception:  # a damaged last.pt (e.g. disk full): start over rather than fail
+            state = {}
         if (
             state.get("config") == cfg_dict
             and state.get("data_digest") == experiment["data_digest"]
@@ -414,8 +417,14 @@ def load_checkpoint(exp_or_file: str | Path) -> tuple[nn.Sequential, dict, Class
     if not path.is_file():
         raise TrainingError(f"no checkpoint at {path}; run `trainkit train` first")
     # The checkpoint holds tensors and plain containers only: weights_only loading runs no code.
-    ckpt = torch.load(path, map_location="cpu", weights_only=True)
-    if ckpt.get("format") != "trainkit-checkpoint-1":
+    try:
+        ckpt = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # refused pickle, truncated zip, not a torch file
+        raise TrainingError(
+            f"{path} cannot be loaded as a trainkit checkpoint ({type(exc).__name__}); "
+            "it may be damaged or not made by trainkit"
+        ) from None
+    if not isinstance(ckpt, dict) or ckpt.get("format") != "trainkit-checkpoint-1":
         raise TrainingError(f"{path} is not a trainkit checkpoint")
     cfg = TrainConfig.model_validate(ckpt["config"])
     class_set = class_set_from_dict(ckpt["class_set"])
