@@ -91,3 +91,12 @@ def test_synth_then_status(tmp_path, capsys):
     assert len(list((tmp_path / "s" / "photos").glob("*.jpg"))) == 2
     assert main(["-q", "synth", str(tmp_path / "t"), "--size", "big"]) == 2
     assert "--size must look like 768x512" in capsys.readouterr().err
+
+
+def test_damaged_database_is_one_line_not_a_traceback(tmp_path, capsys):
+    ws = tmp_path / "ws"
+    ws.mkdir()
+    (ws / "workspace.sqlite").write_bytes(b"this is not a database" * 100)
+    assert main(["status", str(ws)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("trainkit: the workspace database could not be used") and "Traceback" not in err

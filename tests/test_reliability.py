@@ -140,3 +140,80 @@ def test_scan_killed_mid_run_resumes_with_every_frame_exactly_once(tmp_path):
     names = sorted(r["frame"] for r in recs)
     assert names == sorted(str(p) for p in frames.iterdir())  # each exactly once
     assert first >= 10 and len(recs) == 150
+
+
+WRITER = """
+import sys
+from trainkit.workspace import Workspace
+ws = Workspace.open(sys.argv[1])
+ids = [r.id for r in ws.patches()][: int(sys.argv[3])]
+for i, pid in enumerate(ids):
+    ws.add_labels([(pid, "none" if i % 2 else "map")], reviewer=sys.argv[2])
+"""
+
+
+def test_two_labellers_and_a_status_reader_while_tile_adds_photos(tmp_path):
+    """WAL mode plus a busy timeout: no lost events and no 'database is locked' for the user."""
+    from trainkit.cli import main
+
+    rng = np.random.default_rng(0)
+    first, more = tmp_path / "first", tmp_path / "more"
+    for folder, n in ((first, 4), (more, 40)):
+        folder.mkdir()
+        for i in range(n):
+            Image.fromarray(rng.integers(0, 255, (128, 192, 3), dtype=np.uint8)).save(
+                folder / f"{folder.name}{i}.png"
+            )
+    ws = tmp_path / "ws"
+    assert main(["-q", "tile", str(first), "--workspace", str(ws), "--tile-px", "64"]) == 0
+    n_events = 24  # 4 photos x 6 patches
+    env = dict(os.environ, OMP_NUM_THREADS="1")
+    tile = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "trainkit",
+            "-q",
+            "tile",
+            str(more),
+            "--workspace",
+            str(ws),
+            "--tile-px",
+            "64",
+            "--workers",
+            "2",
+        ],
+        env=env,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    writers = [
+        subprocess.Popen(
+            [sys.executable, "-c", WRITER, str(ws), name, str(n_events)],
+            env=env,
+            stderr=subprocess.PIPE,
+            text=True,
+        )
+        for name in ("ana", "ben")
+    ]
+    status_runs = 0
+    while tile.poll() is None or any(w.poll() is None for w in writers):
+        res = subprocess.run(
+            [sys.executable, "-m", "trainkit", "-q", "status", str(ws), "--json"],
+            capture_output=True,
+            text=True,
+            env=env,
+        )
+        assert res.returncode == 0 and "locked" not in res.stderr, res.stderr
+        json.loads(res.stdout)
+        status_runs += 1
+    assert tile.returncode == 0 and "locked" not in tile.stderr.read()
+    for w in writers:
+        assert w.returncode == 0, w.stderr.read()
+    from trainkit.workspace import Workspace
+
+    store = Workspace.open(ws)
+    events = [e for r in store.patches() for e in store.label_history(r.id)]
+    assert len(events) == 2 * n_events  # every event kept, none duplicated
+    assert sorted({e["reviewer"] for e in events}) == ["ana", "ben"]
+    assert store.summary()["photos"] == 44 and status_runs >= 1

@@ -216,3 +216,24 @@ def test_model_queue_through_the_command(demo_run, tmp_path):
     expected = {recs[i].id for i in order[:24]}
     # ties at the cut could swap a patch; margins are continuous, so demand equality
     assert labelled == expected
+
+
+def test_session_killed_between_keystrokes_loses_nothing_finished(tmp_path):
+    """SIGKILL after three answers: the three events are stored, and a new session resumes at
+    the fourth patch with the right progress."""
+    import signal
+
+    ws = make_ws(tmp_path / "ws", n=6)
+    child = spawn(ws, "--reviewer", "ana")
+    shown(child, 1, 0, 6)
+    for pid, key in ((1, "0"), (2, "3"), (3, "0")):
+        child.send(key)
+        shown(child, pid + 1, pid, 6 - pid)
+    child.kill(signal.SIGKILL)
+    child.wait()
+    hist = {r.id: [e["label"] for e in ws.label_history(r.id)] for r in ws.patches()}
+    assert hist == {1: ["none"], 2: ["vertical"], 3: ["none"], 4: [], 5: [], 6: []}
+    again = spawn(ws, "--reviewer", "ana")
+    shown(again, 4, 0, 3)  # resumes with the unlabelled patches only
+    again.send("q")
+    again.expect(pexpect.EOF)

@@ -7,6 +7,7 @@ skipped; 2 usage error or nothing could be done; 3 an acceptance gate failed.
 from __future__ import annotations
 
 import json
+import sqlite3
 import sys
 import traceback
 from contextlib import contextmanager
@@ -47,6 +48,13 @@ def user_errors(ctx: Ctx):
         if ctx.debug:
             traceback.print_exc()
         _fail(str(exc))
+    except sqlite3.DatabaseError as exc:
+        if ctx.debug:
+            traceback.print_exc()
+        _fail(
+            f"the workspace database could not be used ({exc}); if it is damaged, restore it "
+            "from a copy (workspace.sqlite with its -wal file)"
+        )
     except KeyboardInterrupt:
         _fail(
             "interrupted; finished work is saved, run the same command again to continue",

@@ -10,6 +10,8 @@ import json
 import time
 from pathlib import Path
 
+from .fsutil import atomic_path, atomic_write_text
+
 __all__ = ["run_demo", "TINY_DATASET", "tiny_dataset_dir"]
 
 #: How tiny_dataset/ was made: `trainkit synth tiny_dataset --photos 40 --seed 2026 --size 768x512 --tile-px 128`.
@@ -143,7 +145,8 @@ def run_demo(
         path = frames_dir / f"frame-{seed}-{scene}.jpg"
         if not path.exists():
             ph = generate_photo(seed, SynthOptions(height=512, width=768, scene=scene))
-            Image.fromarray(ph.image).save(path, quality=90)
+            with atomic_path(path) as tmp:
+                Image.fromarray(ph.image).save(tmp, quality=90)
     with progress_bar(ctx, "scanning frames", len(FRAME_SEEDS)) as bar:
         scanned = scan_frames(
             exported["model"], [frames_dir], out / "scan", progress=lambda d, n: bar.update(d, n)
@@ -162,7 +165,7 @@ def run_demo(
         "train_images_per_second": trained["median_images_per_second"],
         "frames_flagged": f"{scanned['flagged']}/{scanned['frames']}",
     }
-    (out / "demo-summary.json").write_text(json.dumps(headline, indent=2), encoding="utf-8")
+    atomic_write_text(out / "demo-summary.json", json.dumps(headline, indent=2))
     ctx.console.rule("[bold]done")
 
     def f3(v) -> str:  # metrics.json writes undefined values as null

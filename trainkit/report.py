@@ -15,6 +15,7 @@ from typing import Any
 
 import numpy as np
 
+from .fsutil import atomic_path
 from .taxonomy import ClassSet
 
 __all__ = [
@@ -64,7 +65,8 @@ def plot_confusion(cm: np.ndarray, class_names: list[str], path: Path) -> None:
     ax.set_title("Confusion matrix (count and share of the true class)")
     fig.colorbar(im, ax=ax, fraction=0.046, pad=0.04)
     fig.tight_layout()
-    fig.savefig(path)
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp)
     plt.close(fig)
 
 
@@ -117,7 +119,8 @@ def plot_screening_curves(
         title="ROC, crack vs none",
     )
     fig.tight_layout()
-    fig.savefig(path)
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp)
     plt.close(fig)
 
 
@@ -146,7 +149,8 @@ def plot_reliability(
     ax.legend(loc="upper left", fontsize=8)
     axc.set(xlabel="confidence (largest class probability)", ylabel="patches")
     fig.tight_layout()
-    fig.savefig(path)
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp)
     plt.close(fig)
 
 
@@ -173,7 +177,8 @@ def contact_sheet(
             im = im.resize((s, s), Image.NEAREST)
         sheet.paste(im, (x, y))
         draw.text((x + 2, y + s + 1), captions[i][: max(8, s // 6)], fill=(20, 20, 20))
-    sheet.save(path)
+    with atomic_path(path) as tmp:
+        sheet.save(tmp)
 
 
 # --------------------------------------------------------------------------- HTML helpers

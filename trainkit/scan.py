@@ -26,6 +26,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .fsutil import atomic_path
 from .imaging import PhotoError, find_images, read_rgb
 from .screener import FramePatches, Screener, usable_cores
 
@@ -143,7 +144,8 @@ def _finish(
         if rgb is None:
             rgb = read_rgb(Path(rec["frame"]))
         name = f"{Path(rec['frame']).stem}-{rec['sha256'][:8]}-overlay.jpg"
-        cm.overlay(rgb).save(overlay_dir / name, quality=88)
+        with atomic_path(overlay_dir / name) as tmp:
+            cm.overlay(rgb).save(tmp, quality=88)
         rec["overlay"] = str(overlay_dir / name)
     return rec
 

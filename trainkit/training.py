@@ -24,6 +24,7 @@ from torch import nn
 
 from .config import TrainConfig
 from .data import Augmenter, PatchSet, batches, load_patch_set
+from .fsutil import atomic_write_text
 from .models import IMAGENET_MEAN, IMAGENET_STD, create_model
 from .splits import check_no_leak
 from .taxonomy import ClassSet, class_set_from_dict, load_class_set
@@ -288,7 +289,7 @@ def train(
     warmup_steps = int(round(cfg.warmup_epochs * steps_per_epoch))
 
     cfg_dict = cfg.model_dump(mode="json")
-    (exp / "config.yaml").write_text(yaml.safe_dump(cfg_dict, sort_keys=False), encoding="utf-8")
+    atomic_write_text(exp / "config.yaml", yaml.safe_dump(cfg_dict, sort_keys=False))
     gsds = [r.gsd_mm for r in records if r.subset == "train" and r.gsd_mm is not None]
     mms = [r.patch_mm for r in records if r.subset == "train" and r.patch_mm is not None]
     experiment = {
@@ -302,7 +303,7 @@ def train(
         "gsd_mm_range": [min(gsds), max(gsds)] if gsds else None,
         "patch_mm_range": [min(mms), max(mms)] if mms else None,
     }
-    (exp / "experiment.json").write_text(json.dumps(experiment, indent=2), encoding="utf-8")
+    atomic_write_text(exp / "experiment.json", json.dumps(experiment, indent=2))
 
     history: list[dict] = []
     start_epoch, step = 1, 0
