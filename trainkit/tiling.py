@@ -535,9 +535,19 @@ def tile_into_workspace(
     jobs = []
     seen_names: set[str] = set()
     problems: list[str] = []
+    bad_names = 0
     for path in photos:
         path = Path(path)
         name, rec, group, date = _name_and_group(path, roots.get(path), pattern, sidecar)
+        try:  # names are stored as UTF-8 text; a name that is not cannot be kept
+            f"{name}{path.resolve()}".encode()
+        except UnicodeEncodeError:
+            shown = os.fsencode(name).decode("utf-8", "backslashreplace")
+            problems.append(
+                f"photo {shown} has a file name that is not valid UTF-8; skipped (rename it)"
+            )
+            bad_names += 1
+            continue
         if name in seen_names:
             problems.append(f"photo {name} given twice; tiled once")
             continue
@@ -567,7 +577,7 @@ def tile_into_workspace(
         "photos_added": 0,
         "photos_already_present": 0,
         "photos_moved": 0,
-        "photos_skipped": 0,
+        "photos_skipped": bad_names,
         "patches_added": 0,
         "patches_flagged": 0,
         "patches_left_out_of_review": 0,

@@ -565,7 +565,7 @@ def import_labels_csv(
                 f"{path.name}: expected columns {sorted(need)}, got {reader.fieldnames}"
             )
         for i, row in enumerate(reader, start=2):
-            photo = row["photo"]
+            photo = row["photo"] or ""  # None when the row is too short
             # Photos are named by their path relative to the folder they were tiled from
             # ("site-a/img1.jpg"); anything that could point outside it is refused.
             if Path(photo).is_absolute() or ".." in Path(photo).parts or "\\" in photo:
