@@ -217,3 +217,22 @@ def test_two_labellers_and_a_status_reader_while_tile_adds_photos(tmp_path):
     assert len(events) == 2 * n_events  # every event kept, none duplicated
     assert sorted({e["reviewer"] for e in events}) == ["ana", "ben"]
     assert store.summary()["photos"] == 44 and status_runs >= 1
+
+
+def test_same_seed_same_training(demo_run, tmp_path):
+    """Two runs with one seed (one thread) give identical losses and weights."""
+    from trainkit.config import load_train_config
+    from trainkit.training import train
+    from trainkit.workspace import Workspace
+
+    out, _ = demo_run
+    ws = Workspace.open(out / "workspace")
+    cfg = load_train_config("demo", {"epochs": 1, "threads": 1, "seed": 3})
+    runs = []
+    for name in ("a", "b"):
+        train(ws, tmp_path / name, cfg, resume=False)
+        rows = list(csv.DictReader((tmp_path / name / "history.csv").open()))
+        state = torch.load(tmp_path / name / "checkpoint.pt", weights_only=True)["model"]
+        runs.append((rows[0]["train_loss"], state))
+    assert runs[0][0] == runs[1][0]
+    assert all(torch.equal(runs[0][1][k], runs[1][1][k]) for k in runs[0][1])

@@ -77,7 +77,7 @@ def load_patch_set(
     )
 
 
-def build_photometric(cfg: AugmentConfig):
+def build_photometric(cfg: AugmentConfig, seed: int | None = None):
     """The albumentations pipeline for photometric changes (and the optional small rotation)."""
     os.environ.setdefault("NO_ALBUMENTATIONS_UPDATE", "1")  # no network check at import
     import albumentations as A
@@ -103,10 +103,10 @@ def build_photometric(cfg: AugmentConfig):
         ops.append(A.GaussNoise(std_range=(0.01, 0.04), p=cfg.noise))
     if cfg.jpeg > 0:
         ops.append(A.ImageCompression(quality_range=(50, 95), p=cfg.jpeg))
-    block = A.Compose(ops, p=cfg.photometric)
+    block = A.Compose(ops, p=cfg.photometric, seed=seed)
     if cfg.small_rotation_deg > 0:
         rot = A.Rotate(limit=cfg.small_rotation_deg, border_mode=cv2.BORDER_REFLECT_101, p=0.5)
-        return A.Compose([rot, block])
+        return A.Compose([rot, block], seed=seed)
     return block
 
 
@@ -116,14 +116,15 @@ class Augmenter:
     Args:
         class_set: the class set, for label remapping under symmetries.
         cfg: augmentation settings.
+        seed: seed of the photometric pipeline (albumentations keeps its own generator).
     """
 
-    def __init__(self, class_set: ClassSet, cfg: AugmentConfig) -> None:
+    def __init__(self, class_set: ClassSet, cfg: AugmentConfig, seed: int | None = None) -> None:
         self.class_set = class_set
         self.cfg = cfg
         self.elements = class_set.allowed_d4_elements() if cfg.symmetries else [(0, False)]
         self.perms = {e: class_set.d4_permutation(*e) for e in self.elements}
-        self.photometric = build_photometric(cfg) if cfg.photometric > 0 else None
+        self.photometric = build_photometric(cfg, seed) if cfg.photometric > 0 else None
 
     def __call__(
         self, image: np.ndarray, label: int, rng: np.random.Generator

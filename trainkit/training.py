@@ -281,7 +281,7 @@ def train(
         label_smoothing=cfg.label_smoothing,
     )
     val_loss_fn = nn.NLLLoss()
-    augment = Augmenter(class_set, cfg.augment)
+    augment = Augmenter(class_set, cfg.augment, seed=cfg.seed)
     steps_per_epoch = max(
         1, len(train_set) // cfg.batch_size + (len(train_set) % cfg.batch_size >= 2)
     )
