@@ -90,3 +90,72 @@ def test_class_weights_match_sklearn_balanced():
     ref = compute_class_weight("balanced", classes=np.arange(3), y=y)
     np.testing.assert_allclose(ours / ours.sum(), ref / ref.sum(), rtol=1e-6)
     assert class_weights(y, 4, "sqrt").numpy()[3] == 0.0
+
+
+def _hub_copy(tmp_path, monkeypatch, name: str):
+    """Save a backbone's state dict in a temporary torch hub folder under torchvision's file
+    name, with the SHA-256 prefix that torch.hub's own check expects (computed with hashlib)."""
+    import hashlib
+    import re
+
+    from trainkit.models import imagenet_weights_path
+
+    monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch-home"))
+    monkeypatch.setattr(torch.hub, "_hub_dir", str(tmp_path / "torch-home" / "hub"))
+    target = imagenet_weights_path(name)
+    target.parent.mkdir(parents=True)
+    torch.manual_seed(5)
+    source = create_model(name, 1000)
+    tmp = tmp_path / "w.pth"
+    torch.save(source.state_dict(), tmp)
+    prefix = re.search(r"-([a-f0-9]+)\.", target.name).group(1)
+    digest = hashlib.sha256(tmp.read_bytes()).hexdigest()
+    # Name it with the prefix of its own hash, as a published file is named.
+    good_name = target.name.replace(prefix, digest[: len(prefix)])
+    final = target.parent / good_name
+    tmp.rename(final)
+    return source, final, target
+
+
+def test_imagenet_source_reads_the_hub_cache_without_network(tmp_path, monkeypatch):
+    from trainkit.models import load_backbone_weights
+
+    source, final, target = _hub_copy(tmp_path, monkeypatch, "shufflenet_v2_x1_0")
+    # Under torchvision's published name the hash prefix does not match our file: refused.
+    final.rename(target)
+    with pytest.raises(ValueError, match="damaged or not the published file"):
+        create_model("shufflenet_v2_x1_0", 6, weights="imagenet")
+    good = tmp_path / final.name  # a path source whose name carries its true hash prefix
+    target.rename(good)
+    model = create_model("shufflenet_v2_x1_0", 6)
+    info = load_backbone_weights(model, "shufflenet_v2_x1_0", good)
+    assert info["loaded"] > 0 and info["skipped_head"] == 2
+    assert torch.equal(model.state_dict()["conv1.0.weight"], source.state_dict()["conv1.0.weight"])
+
+
+def test_imagenet_source_with_matching_hash_in_the_cache(tmp_path, monkeypatch):
+    """When the cached file's name matches its content (as torchvision's download does)."""
+    import hashlib
+
+    from trainkit import models
+
+    source, final, target = _hub_copy(tmp_path, monkeypatch, "regnet_x_400mf")
+    monkeypatch.setattr(models, "imagenet_weights_path", lambda name: final)
+    assert hashlib.sha256(final.read_bytes()).hexdigest().startswith(final.stem.rsplit("-", 1)[1])
+    model = create_model("regnet_x_400mf", 6, weights="imagenet")
+    assert torch.equal(model.state_dict()["stem.0.weight"], source.state_dict()["stem.0.weight"])
+
+
+def test_missing_imagenet_file_names_where_to_put_it(tmp_path, monkeypatch):
+    from trainkit.models import imagenet_weights_path
+
+    monkeypatch.setenv("TORCH_HOME", str(tmp_path / "empty"))
+    monkeypatch.setattr(torch.hub, "_hub_dir", str(tmp_path / "empty" / "hub"))
+    expected = imagenet_weights_path("mobilenet_v3_small")
+    assert expected.name == "mobilenet_v3_small-047dcff4.pth"  # torchvision's published file name
+    with pytest.raises(
+        ValueError, match="ImageNet weights for 'mobilenet_v3_small' not found: expected"
+    ):
+        create_model("mobilenet_v3_small", 6, weights="imagenet")
+    with pytest.raises(ValueError, match="has no ImageNet weights in torchvision"):
+        create_model("tiny_cnn", 6, weights="imagenet")
