@@ -126,7 +126,7 @@ def cli(click_ctx: click.Context, quiet: bool, debug: bool) -> None:
     """trainkit: build, check and export a concrete-crack patch screener on CPU.
 
     \b
-    Workflow:  synth/photos -> tile -> split -> train -> evaluate -> export -> scan
+    Workflow:  synth/photos -> tile -> review -> split -> train -> evaluate -> export -> scan
     Try it:    trainkit demo --out demo-output
     """
     click_ctx.obj = Ctx(quiet, debug)
@@ -804,7 +804,7 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
     "--scheduler",
     default=None,
     metavar="ADDRESS",
-    help="Dask scheduler address for --engine dask, e.g. tcp://10.0.0.5:8786.",
+    help="Dask scheduler address for --engine dask, e.g. tcp://scheduler-host:8786.",
 )
 @click.pass_obj
 def scan(
