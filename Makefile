@@ -29,7 +29,7 @@ test: $(STAMP)
 	OMP_NUM_THREADS=1 MKL_NUM_THREADS=1 $(BIN)/python -m pytest -n $(TEST_WORKERS) --durations=15
 
 lint: $(STAMP)
-	$(BIN)/ruff check trainkit tests benchmarks
+	$(BIN)/ruff check trainkit tests benchmarks docs notebooks
 	$(BIN)/ruff format --check trainkit tests benchmarks
 
 format: $(STAMP)

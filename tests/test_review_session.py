@@ -8,13 +8,11 @@ import sys
 from pathlib import Path
 
 import numpy as np
-import pytest
+import pexpect
 from PIL import Image
 
 from trainkit.taxonomy import load_class_set
 from trainkit.workspace import Workspace
-
-pexpect = pytest.importorskip("pexpect")
 
 TIMEOUT = 20
 

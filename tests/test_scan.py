@@ -87,7 +87,8 @@ def test_process_pool_gives_the_same_lines(tmp_path):
 
 
 def test_dask_engine_on_a_local_cluster_gives_the_same_lines(tmp_path):
-    distributed = pytest.importorskip("distributed")
+    import distributed  # dev extra
+
     model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
     d = frames(tmp_path)
     scan_frames(model, [d], tmp_path / "a", overlays="none")
