@@ -68,28 +68,20 @@ def bench_memory_format(batch: int = 32, size: int = 128) -> dict:
 
 
 def bench_onnx_vs_torch(n: int = 256, size: int = 128) -> dict:
+    import onnx
     import onnxruntime as ort
 
     from trainkit.config import load_train_config
-    from trainkit.export import _wrapper
+    from trainkit.export import _wrapper, network_to_onnx
     from trainkit.training import build_network
 
     torch.manual_seed(0)
-    net = _wrapper(build_network(load_train_config("demo"), 6, load_weights=False).eval())
+    network = build_network(load_train_config("demo"), 6, load_weights=False).eval()
+    net = _wrapper(network)
     images = np.random.default_rng(0).integers(0, 256, (n, size, size, 3), dtype=np.uint8)
     with tempfile.TemporaryDirectory() as d:
         path = Path(d) / "m.onnx"
-        prog = torch.onnx.export(
-            net,
-            (torch.from_numpy(images[:2]),),
-            dynamo=True,
-            opset_version=18,
-            input_names=["image"],
-            output_names=["probabilities"],
-            dynamic_shapes=({0: torch.export.Dim("batch", min=1, max=4096)},),
-            verbose=False,
-        )
-        prog.save(str(path))
+        onnx.save(network_to_onnx(network, size), str(path))
         sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
 
         def run_torch():
@@ -170,31 +162,15 @@ def bench_tiling(n_photos: int = 12, rounds: int = 2) -> dict:
 
 def _random_screener(path: Path, backbone: str = "mobilenet_v3_small", px: int = 224) -> None:
     """A randomly initialised network exported with trainkit's contract (speed only, not accuracy)."""
-    import contextlib
-    import io
-
     import onnx
 
     from trainkit.config import load_train_config
-    from trainkit.export import _wrapper
+    from trainkit.export import network_to_onnx
     from trainkit.training import build_network
 
     torch.manual_seed(0)
-    net = _wrapper(
-        build_network(load_train_config("default", {"backbone": backbone}), 6, load_weights=False)
-    )
-    with contextlib.redirect_stdout(io.StringIO()):
-        prog = torch.onnx.export(
-            net.eval(),
-            (torch.zeros(2, px, px, 3, dtype=torch.uint8),),
-            dynamo=True,
-            opset_version=18,
-            input_names=["image"],
-            output_names=["probabilities"],
-            dynamic_shapes=({0: torch.export.Dim("batch", min=1, max=4096)},),
-            verbose=False,
-        )
-    model = prog.model_proto
+    cfg = load_train_config("default", {"backbone": backbone})
+    model = network_to_onnx(build_network(cfg, 6, load_weights=False).eval(), px)
     names = ["none", "horizontal", "diagonal_rising", "vertical", "diagonal_falling", "map"]
     onnx.helper.set_model_props(
         model,

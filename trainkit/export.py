@@ -44,6 +44,32 @@ def _wrapper(model):
     return WithSoftmax(model).eval()
 
 
+def network_to_onnx(network, input_px: int, *, opset: int = DEFAULT_OPSET):
+    """The graph of a trained network (Preprocess + backbone) with softmax, as an ONNX ModelProto.
+
+    Input ``image``: uint8 (N, S, S, 3) with a dynamic batch; output ``probabilities``.
+    The exporter's progress lines are kept off the console. No metadata is set here.
+    """
+    import torch
+
+    dummy = torch.zeros((2, input_px, input_px, 3), dtype=torch.uint8)
+    batch = torch.export.Dim("batch", min=1, max=4096)
+    log = io.StringIO()
+    with contextlib.redirect_stdout(log), contextlib.redirect_stderr(log):
+        program = torch.onnx.export(
+            _wrapper(network),
+            (dummy,),
+            dynamo=True,
+            opset_version=opset,
+            input_names=["image"],
+            output_names=["probabilities"],
+            dynamic_shapes=({0: batch},),
+            optimize=True,
+            verbose=False,
+        )
+    return program.model_proto
+
+
 def _sample_patches(ckpt: dict, input_px: int, n: int = 32) -> np.ndarray:
     """Real patches for the parity check: the workspace's test (else any) crops; noise if none."""
     from .workspace import Workspace, WorkspaceError
@@ -83,24 +109,9 @@ def export_experiment(
     model, ckpt, class_set = load_checkpoint(exp)
     input_px = int(ckpt["input_px"])
     wrapped = _wrapper(model)
-    dummy = torch.zeros((2, input_px, input_px, 3), dtype=torch.uint8)
     target = Path(out) if out else exp / "model.onnx"
     tmp = target.with_suffix(".onnx.tmp")
-    batch = torch.export.Dim("batch", min=1, max=4096)
-    log = io.StringIO()
-    with contextlib.redirect_stdout(log), contextlib.redirect_stderr(log):
-        program = torch.onnx.export(
-            wrapped,
-            (dummy,),
-            dynamo=True,
-            opset_version=opset,
-            input_names=["image"],
-            output_names=["probabilities"],
-            dynamic_shapes=({0: batch},),
-            optimize=True,
-            verbose=False,
-        )
-    proto = program.model_proto
+    proto = network_to_onnx(model, input_px, opset=opset)
     metrics_path = exp / "evaluation" / "metrics.json"
     metrics = json.loads(metrics_path.read_text()) if metrics_path.exists() else None
     experiment = ckpt["experiment"]

@@ -582,7 +582,7 @@ def tile_into_workspace(
         "patches_flagged": 0,
         "patches_left_out_of_review": 0,
     }
-    groups = {j.name: j.group for j in jobs}
+    by_name = {j.name: j for j in jobs}
     t0 = time.perf_counter()
     decode_s = total_s = 0.0
 
@@ -592,15 +592,13 @@ def tile_into_workspace(
         if st == "present":
             counts["photos_already_present"] += 1
         elif st == "moved":
-            workspace.set_source_path(
-                hash_to_name[res["sha256"]], next(j.path for j in jobs if j.name == res["name"])
-            )
+            workspace.set_source_path(hash_to_name[res["sha256"]], by_name[res["name"]].path)
             counts["photos_moved"] += 1
         elif st in ("error", "changed"):
             problems.append(res["error"])
             counts["photos_skipped"] += 1
         else:
-            job = next(j for j in jobs if j.name == res["name"])
+            job = by_name[res["name"]]
             workspace.add_photo_with_patches(
                 name=res["name"],
                 source_path=job.path,
@@ -609,7 +607,7 @@ def tile_into_workspace(
                 height=res["height"],
                 gsd_mm=res["gsd_mm"],
                 gsd_source=res["gsd_source"],
-                group_id=groups[res["name"]],
+                group_id=job.group,
                 capture_date=res["date"],
                 roi=res["roi"],
                 sha256=res["sha256"],
