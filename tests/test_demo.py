@@ -31,7 +31,7 @@ def test_demo_leaves_the_experiment_folder(demo_run):
         assert (out / rel).is_file(), rel
     assert (out / "workspace" / "workspace.sqlite").is_file()
     history = list(csv.DictReader((out / "history.csv").open()))
-    assert len(history) == 2 and float(history[0]["images_per_second"]) > 0
+    assert len(history) == 2 and float(history[0]["train_images_per_s"]) > 0
     assert 0.0 <= headline["screening_recall"] <= 1.0
 
 

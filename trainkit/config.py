@@ -7,7 +7,7 @@ from pathlib import Path
 from typing import Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 __all__ = ["AugmentConfig", "TrainConfig", "ConfigError", "load_train_config", "BUILTIN_RECIPES"]
 
@@ -51,8 +51,16 @@ class TrainConfig(_Strict):
     label_smoothing: float = Field(0.05, ge=0.0, lt=1.0)
     class_weighting: Literal["none", "balanced", "sqrt"] = "sqrt"
     early_stop_patience: int = Field(0, ge=0)
+    head_epochs: int = Field(0, ge=0)
+    cached_features: bool = False
+    sampling: Literal["shuffle", "balanced"] = "shuffle"
+    select_on: Literal["recall_at_fa", "macro_recall"] = "recall_at_fa"
+    false_alarm_budget: float = Field(0.05, gt=0.0, lt=1.0)
     seed: int = 0
     threads: int | None = Field(None, ge=1, le=512)
+    prefetch: bool = True
+    bf16: bool = False
+    compile: bool = False
     augment: AugmentConfig = AugmentConfig()
 
     @field_validator("backbone")
@@ -66,6 +74,24 @@ class TrainConfig(_Strict):
             )
         return v
 
+    @model_validator(mode="after")
+    def _consistent(self) -> TrainConfig:
+        if self.head_epochs > self.epochs:
+            raise ValueError(
+                f"head_epochs ({self.head_epochs}) cannot exceed epochs ({self.epochs})"
+            )
+        if self.cached_features and self.head_epochs == 0:
+            raise ValueError(
+                "cached_features trains the head on frozen features: set head_epochs > 0 "
+                "(head_epochs = epochs for a head-only run)"
+            )
+        if self.sampling == "balanced" and self.class_weighting != "none":
+            raise ValueError(
+                "sampling 'balanced' already evens out the classes; set class_weighting: none "
+                "(or keep sampling: shuffle with class weights)"
+            )
+        return self
+
 
 def _format_errors(exc: ValidationError, source: str) -> str:
     lines = []
@@ -74,6 +100,9 @@ def _format_errors(exc: ValidationError, source: str) -> str:
         msg = err["msg"]
         if err["type"] == "extra_forbidden":
             msg = "unknown key"
+        if not err["loc"]:  # a rule across fields: the message names them
+            lines.append(f"{source}: {msg.removeprefix('Value error, ')}")
+            continue
         lines.append(f"{source}: {field}: {msg} (got {err.get('input')!r})")
     return "\n".join(lines)
 

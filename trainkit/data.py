@@ -10,6 +10,7 @@ because it passes class labels through unchanged.
 
 from __future__ import annotations
 
+import hashlib
 import os
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -48,23 +49,28 @@ class PatchSet:
 
 
 def load_patch_set(
-    workspace, subset: str, class_set: ClassSet, *, input_px: int | None = None
+    workspace,
+    subset: str,
+    class_set: ClassSet,
+    *,
+    input_px: int | None = None,
+    cache: bool = True,
 ) -> PatchSet:
-    """Read the labelled crops of one split subset ('train', 'val', 'test') into memory.
+    """Read the labelled crops of one split subset ('train', 'val', 'test').
 
-    Patches whose current label is "unsure" are left out.
+    Patches whose current label is "unsure" are left out. With ``cache`` the decoded
+    uint8 crops are kept in ``WORKSPACE/cache/`` as one .npy file per subset, keyed by
+    the crops (path, size, modification time) and the input size, and opened
+    memory-mapped copy-on-write (writes never reach the file): later runs and epochs decode no image file at all, and a changed
+    crop or label set gives a new key (labels are not part of the cache).
     """
-    from PIL import Image
-
     recs = [r for r in workspace.patches() if r.subset == subset and r.label is not None]
     size = input_px or workspace.tile_px
-    imgs = np.empty((len(recs), size, size, 3), dtype=np.uint8)
-    for i, r in enumerate(recs):
-        with Image.open(Path(workspace.root) / r.crop) as im:
-            im = im.convert("RGB")
-            if im.size != (size, size):
-                im = im.resize((size, size), Image.BILINEAR)
-            imgs[i] = np.asarray(im)
+    root = Path(workspace.root)
+    if cache and recs:
+        imgs = _cached_crops(root, recs, size, subset)
+    else:
+        imgs = _decode_crops(root, recs, size)
     return PatchSet(
         images=imgs,
         labels=np.array([class_set.index(r.label) for r in recs], dtype=np.int64),
@@ -75,6 +81,53 @@ def load_patch_set(
             [np.nan if r.patch_mm is None else r.patch_mm for r in recs], dtype=float
         ),
     )
+
+
+def _decode_crops(root: Path, recs, size: int) -> np.ndarray:
+    from PIL import Image
+
+    imgs = np.empty((len(recs), size, size, 3), dtype=np.uint8)
+    for i, r in enumerate(recs):
+        with Image.open(root / r.crop) as im:
+            im = im.convert("RGB")
+            if im.size != (size, size):
+                im = im.resize((size, size), Image.BILINEAR)
+            imgs[i] = np.asarray(im)
+    return imgs
+
+
+def crop_cache_key(root: Path, recs, size: int) -> str:
+    """Digest of the crops' identity: patch id, crop path, file size and mtime, and the size."""
+    h = hashlib.sha256(f"trainkit-crops-1|{size}\n".encode())
+    for r in recs:
+        st = (root / r.crop).stat()
+        h.update(f"{r.id}|{r.crop}|{st.st_size}|{st.st_mtime_ns}\n".encode())
+    return h.hexdigest()[:20]
+
+
+def _cached_crops(root: Path, recs, size: int, subset: str) -> np.ndarray:
+    cache_dir = root / "cache"
+    key = crop_cache_key(root, recs, size)
+    path = cache_dir / f"crops-{subset}-{key}.npy"
+    if path.is_file():
+        try:
+            arr = np.load(path, mmap_mode="c")
+            if arr.shape == (len(recs), size, size, 3) and arr.dtype == np.uint8:
+                return arr
+        except (OSError, ValueError):  # a damaged cache file is rebuilt, never trusted
+            pass
+    imgs = _decode_crops(root, recs, size)
+    try:
+        cache_dir.mkdir(exist_ok=True)
+        for old in cache_dir.glob(f"crops-{subset}-*.npy"):
+            old.unlink(missing_ok=True)
+        tmp = path.with_name(path.name + f".{os.getpid()}.tmp")
+        with tmp.open("wb") as fh:
+            np.save(fh, imgs)
+        os.replace(tmp, path)
+    except OSError:  # a read-only or full disk: train from memory, just without the cache
+        return imgs
+    return np.load(path, mmap_mode="c")
 
 
 def build_photometric(cfg: AugmentConfig, seed: int | None = None):
@@ -125,6 +178,11 @@ class Augmenter:
         self.elements = class_set.allowed_d4_elements() if cfg.symmetries else [(0, False)]
         self.perms = {e: class_set.d4_permutation(*e) for e in self.elements}
         self.photometric = build_photometric(cfg, seed) if cfg.photometric > 0 else None
+
+    def reseed(self, seed: int) -> None:
+        """Restart the photometric pipeline's own generator (done at every epoch)."""
+        if self.photometric is not None:
+            self.photometric.set_random_seed(int(seed))
 
     def __call__(
         self, image: np.ndarray, label: int, rng: np.random.Generator

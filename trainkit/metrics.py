@@ -23,6 +23,7 @@ __all__ = [
     "mcnemar_test",
     "negative_log_likelihood",
     "per_class_report",
+    "recall_at_false_alarm",
     "recall_interval",
     "reliability_bins",
     "row_normalise",
@@ -468,6 +469,37 @@ def threshold_for_recall(
         m += 1
     pos_scores = np.sort(p[y])[::-1]
     return float(pos_scores[m - 1])
+
+
+def recall_at_false_alarm(y_true_crack: ArrayLike, p_crack: ArrayLike, *, budget: float) -> float:
+    """The highest recall any threshold reaches while its false-alarm rate stays within ``budget``.
+
+    With the non-crack scores sorted descending as v_0 >= v_1 >= ..., at most
+    k = floor(budget * #non-crack) false alarms are allowed, so the threshold must lie
+    just above v_k and the recall is ``#{crack: p > v_k} / #cracks`` (1.0 when k covers
+    every non-crack patch). This is the largest true-positive rate on the ROC curve whose
+    false-positive rate is <= budget. Used to select checkpoints at a fixed false-alarm cost.
+
+    Returns:
+        The recall, or nan when there are no crack patches.
+
+    Raises:
+        ValueError: on shape mismatch, probabilities outside [0, 1], budget outside [0, 1].
+    """
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    _same_length(y, p, "y_true_crack", "p_crack")
+    b = float(budget)
+    if not 0.0 <= b <= 1.0:
+        raise ValueError(f"expected budget in [0, 1], got {budget}")
+    pos, neg = p[y], p[~y]
+    if pos.size == 0:
+        return float("nan")
+    k = math.floor(b * neg.size + 1e-9)
+    if k >= neg.size:
+        return 1.0
+    v_k = np.sort(neg)[::-1][k]
+    return float(np.mean(pos > v_k))
 
 
 # --------------------------------------------------------------------------- calibration

@@ -13,6 +13,8 @@ import hashlib
 import json
 import math
 import os
+import queue
+import threading
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -24,10 +26,11 @@ from torch import nn
 
 from .config import TrainConfig
 from .data import Augmenter, PatchSet, batches, load_patch_set
+from .metrics import recall_at_false_alarm
 from .fsutil import atomic_write_text
-from .models import IMAGENET_MEAN, IMAGENET_STD, create_model
+from .models import HEADS, IMAGENET_MEAN, IMAGENET_STD, create_model
 from .splits import check_no_leak
-from .taxonomy import ClassSet, class_set_from_dict, load_class_set
+from .taxonomy import ClassSet, apply_d4, class_set_from_dict, load_class_set
 from .workspace import Workspace
 
 __all__ = [
@@ -42,6 +45,7 @@ __all__ = [
 
 HISTORY_FIELDS = (
     "epoch",
+    "stage",
     "lr",
     "train_loss",
     "train_accuracy",
@@ -49,7 +53,8 @@ HISTORY_FIELDS = (
     "val_accuracy",
     "val_balanced_accuracy",
     "val_crack_recall",
-    "images_per_second",
+    "val_recall_at_fa",
+    "train_images_per_s",
     "seconds",
 )
 
@@ -139,6 +144,119 @@ def predict_proba(
     return np.concatenate(out).astype(np.float32)
 
 
+def cpu_threads() -> int:
+    """Threads to use: OMP_NUM_THREADS when set, else the cores this process may run on."""
+    env = os.environ.get("OMP_NUM_THREADS", "")
+    if env.isdigit() and int(env) > 0:
+        return int(env)
+    try:
+        return len(os.sched_getaffinity(0))  # honours taskset, cgroups' cpusets
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
+
+
+def epoch_seed(seed: int, epoch: int) -> int:
+    """The seed of one epoch's randomness (order, sampling, augmentation, dropout).
+
+    Deriving every epoch's generators from (seed, epoch) makes a resumed run draw
+    exactly what an uninterrupted run draws, with no generator state to save.
+    """
+    return int(np.random.SeedSequence([seed % 2**32, epoch]).generate_state(1)[0])
+
+
+def epoch_order(labels: np.ndarray, rng: np.random.Generator, sampling: str) -> np.ndarray:
+    """Sample indices for one epoch: a permutation, or class-balanced draws with replacement.
+
+    Balanced: ``len(labels)`` draws, each class equally likely, patches within a class
+    uniformly (what torch's WeightedRandomSampler does with weights 1 / class count).
+    """
+    n = len(labels)
+    if sampling == "shuffle":
+        return rng.permutation(n)
+    counts = np.bincount(labels)
+    w = 1.0 / counts[labels]
+    return rng.choice(n, size=n, replace=True, p=w / w.sum())
+
+
+def stage_of(epoch: int, cfg: TrainConfig) -> str:
+    """'head' while only the classification head trains, then 'full'."""
+    return "head" if epoch <= cfg.head_epochs else "full"
+
+
+def head_module_name(backbone: str) -> str:
+    """Dotted name of the classification head inside the network (Preprocess is module 0)."""
+    return "1." + HEADS[backbone].rstrip(".")
+
+
+def set_stage(model: nn.Module, backbone: str, stage: str) -> None:
+    """Freeze all but the head ('head') or unfreeze all ('full'); frozen BatchNorm keeps its statistics."""
+    head = head_module_name(backbone)
+    for name, p in model.named_parameters():
+        p.requires_grad = stage == "full" or name.startswith(head + ".")
+    model.train()
+    if stage == "head":
+        model.eval()
+        model.get_submodule(head).train()
+
+
+class _Prefetcher:
+    """Builds the next batches (augment + stack) in a thread while the model runs on this one."""
+
+    _DONE = object()
+
+    def __init__(self, make_batches, depth: int = 2) -> None:
+        self._q: queue.Queue = queue.Queue(maxsize=depth)
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, args=(make_batches,), daemon=True)
+        self._thread.start()
+
+    def _put(self, item) -> bool:
+        while not self._stop.is_set():
+            try:
+                self._q.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def _run(self, make_batches) -> None:
+        try:
+            for item in make_batches():
+                if not self._put(item):
+                    return
+        except BaseException as exc:  # handed to the consumer, raised there
+            self._put(exc)
+            return
+        self._put(self._DONE)
+
+    def __iter__(self):
+        try:
+            while True:
+                item = self._q.get()
+                if item is self._DONE:
+                    return
+                if isinstance(item, BaseException):
+                    raise item
+                yield item
+        finally:
+            self._stop.set()
+            self._thread.join(timeout=5)
+
+
+def _augmented_batches(data: PatchSet, order: np.ndarray, augment: Augmenter, rng, batch_size: int):
+    for idx in batches(order, batch_size):
+        if len(idx) < 2:  # BatchNorm cannot train on a batch of one
+            continue
+        pairs = [augment(data.images[i], int(data.labels[i]), rng) for i in idx]
+        x = torch.from_numpy(np.stack([p[0] for p in pairs]))
+        y = torch.tensor([p[1] for p in pairs], dtype=torch.long)
+        yield x, y
+
+
+def _autocast(cfg: TrainConfig):
+    return torch.autocast("cpu", dtype=torch.bfloat16, enabled=cfg.bf16)
+
+
 def train_one_epoch(
     model: nn.Module,
     data: PatchSet,
@@ -148,55 +266,133 @@ def train_one_epoch(
     loss_fn: nn.Module,
     cfg: TrainConfig,
     rng: np.random.Generator,
+    lr_at: Callable[[int], float],
     step: int,
-    total_steps: int,
-    warmup_steps: int,
+    forward: Callable[[torch.Tensor], torch.Tensor] | None = None,
     on_batch: Callable[[int], None] | None = None,
 ) -> tuple[dict, int]:
-    """One pass over the training patches in random order; returns stats and the next step."""
-    model.train()
-    order = rng.permutation(len(data))
+    """One pass over the training patches (order from ``cfg.sampling``); returns stats and the next step."""
+    forward = forward or model
+    order = epoch_order(data.labels, rng, cfg.sampling)
     total_loss = correct = seen = 0
+    lr = 0.0
     t0 = time.perf_counter()
-    for idx in batches(order, cfg.batch_size):
-        if len(idx) < 2:  # BatchNorm cannot train on a batch of one
-            continue
-        pairs = [augment(data.images[i], int(data.labels[i]), rng) for i in idx]
-        x = torch.from_numpy(np.stack([p[0] for p in pairs]))
-        y = torch.tensor([p[1] for p in pairs], dtype=torch.long)
-        lr = get_lr(step, total_steps=total_steps, warmup_steps=warmup_steps, peak_lr=cfg.lr)
+    source = lambda: _augmented_batches(data, order, augment, rng, cfg.batch_size)  # noqa: E731
+    for x, y in _Prefetcher(source) if cfg.prefetch else source():
+        lr = lr_at(step)
         for group in optimizer.param_groups:
             group["lr"] = lr
-        logits = model(x)
-        loss = loss_fn(logits, y)
+        with _autocast(cfg):
+            logits = forward(x)
+        loss = loss_fn(logits.float(), y)
         optimizer.zero_grad(set_to_none=True)
         loss.backward()
         optimizer.step()
-        total_loss += float(loss.detach()) * len(idx)
+        total_loss += float(loss.detach()) * len(y)
         correct += int((logits.argmax(1) == y).sum())
-        seen += len(idx)
+        seen += len(y)
         step += 1
         if on_batch:
-            on_batch(len(idx))
+            on_batch(len(y))
     seconds = time.perf_counter() - t0
     return {
-        "lr": lr if seen else 0.0,
+        "lr": lr,
         "train_loss": total_loss / max(1, seen),
         "train_accuracy": correct / max(1, seen),
-        "images_per_second": seen / seconds if seconds > 0 else 0.0,
+        "train_images_per_s": seen / seconds if seconds > 0 else 0.0,
         "seconds": seconds,
     }, step
 
 
-def evaluate_split(model: nn.Module, data: PatchSet, loss_fn: nn.Module, num_classes: int) -> dict:
-    """Validation loss, accuracy, balanced accuracy and crack (non-zero class) recall."""
+@torch.no_grad()
+def frozen_features(
+    model: nn.Module, backbone: str, data: PatchSet, elements, batch_size: int = 64
+) -> torch.Tensor:
+    """Inputs of the head for every patch under every symmetry: (len(elements), N, ...).
+
+    The network runs in eval mode with a hook on the head that records its input,
+    so this works for every registered backbone without knowing its layout.
+    """
+    head = model.get_submodule(head_module_name(backbone))
+    captured: list[torch.Tensor] = []
+    hook = head.register_forward_pre_hook(lambda _m, args: captured.append(args[0].detach().clone()))
+    model.eval()
+    try:
+        per_element = []
+        for k, flip in elements:
+            captured.clear()
+            for idx in batches(np.arange(len(data)), batch_size):
+                x = np.stack([apply_d4(data.images[i], k, flip) for i in idx])
+                model(torch.from_numpy(np.ascontiguousarray(x)))
+            per_element.append(torch.cat(captured))
+    finally:
+        hook.remove()
+    return torch.stack(per_element)
+
+
+def train_head_on_features(
+    head: nn.Module,
+    features: torch.Tensor,
+    labels: np.ndarray,
+    *,
+    optimizer: torch.optim.Optimizer,
+    loss_fn: nn.Module,
+    cfg: TrainConfig,
+    rng: np.random.Generator,
+    lr_at: Callable[[int], float],
+    step: int,
+    on_batch: Callable[[int], None] | None = None,
+) -> tuple[dict, int]:
+    """One epoch of the head alone on cached features, one random symmetry per patch."""
+    head.train()
+    order = epoch_order(labels[0], rng, cfg.sampling)
+    elem = rng.integers(features.shape[0], size=len(order))
+    total_loss = correct = seen = 0
+    lr = 0.0
+    t0 = time.perf_counter()
+    for sl in batches(np.arange(len(order)), cfg.batch_size):
+        if len(sl) < 2:
+            continue
+        idx, e = order[sl], elem[sl]
+        x = features[torch.from_numpy(e), torch.from_numpy(idx)]
+        y = torch.from_numpy(labels[e, idx])
+        lr = lr_at(step)
+        for group in optimizer.param_groups:
+            group["lr"] = lr
+        logits = head(x)
+        loss = loss_fn(logits, y)
+        optimizer.zero_grad(set_to_none=True)
+        loss.backward()
+        optimizer.step()
+        total_loss += float(loss.detach()) * len(y)
+        correct += int((logits.argmax(1) == y).sum())
+        seen += len(y)
+        step += 1
+        if on_batch:
+            on_batch(len(y))
+    seconds = time.perf_counter() - t0
+    return {
+        "lr": lr,
+        "train_loss": total_loss / max(1, seen),
+        "train_accuracy": correct / max(1, seen),
+        "train_images_per_s": seen / seconds if seconds > 0 else 0.0,
+        "seconds": seconds,
+    }, step
+
+
+def evaluate_split(
+    model: nn.Module,
+    data: PatchSet,
+    loss_fn: nn.Module,
+    num_classes: int,
+    *,
+    false_alarm_budget: float = 0.05,
+) -> dict:
+    """Validation loss, accuracy, balanced accuracy (= macro recall), crack recall at argmax
+    and the best crack recall whose false-alarm rate stays within ``false_alarm_budget``."""
+    keys = ("val_loss", "val_accuracy", "val_balanced_accuracy", "val_crack_recall", "val_recall_at_fa")
     if len(data) == 0:
-        return {
-            "val_loss": float("nan"),
-            "val_accuracy": float("nan"),
-            "val_balanced_accuracy": float("nan"),
-            "val_crack_recall": float("nan"),
-        }
+        return dict.fromkeys(keys, float("nan"))
     probs = predict_proba(model, data.images, num_classes=num_classes)
     y = data.labels
     pred = probs.argmax(1)
@@ -204,12 +400,28 @@ def evaluate_split(model: nn.Module, data: PatchSet, loss_fn: nn.Module, num_cla
     recalls = [float(np.mean(pred[y == c] == c)) for c in range(num_classes) if np.any(y == c)]
     crack = y != 0
     crack_recall = float(np.mean(pred[crack] != 0)) if crack.any() else float("nan")
+    p_crack = np.clip(1.0 - probs[:, 0].astype(np.float64), 0.0, 1.0)
     return {
         "val_loss": loss,
         "val_accuracy": float(np.mean(pred == y)),
         "val_balanced_accuracy": float(np.mean(recalls)),
         "val_crack_recall": crack_recall,
+        "val_recall_at_fa": recall_at_false_alarm(crack, p_crack, budget=false_alarm_budget),
     }
+
+
+def selection_score(row: dict, cfg: TrainConfig, has_val: bool) -> list[float]:
+    """Checkpoint-selection key, compared lexicographically (higher is better).
+
+    recall_at_fa: validation crack recall at the false-alarm budget, ties broken by macro
+    recall then by lower validation loss; macro_recall: the other way round. Without a
+    validation subset, the lowest training loss wins. A nan (e.g. no crack in val) ranks lowest.
+    """
+    if not has_val:
+        return [-row["train_loss"]]
+    a, b = row["val_recall_at_fa"], row["val_balanced_accuracy"]
+    first, second = (a, b) if cfg.select_on == "recall_at_fa" else (b, a)
+    return [v if v == v else -math.inf for v in (first, second, -row["val_loss"])]
 
 
 # ----- the run ------------------------------------------------------------------------
@@ -221,6 +433,15 @@ def _save_atomic(obj: dict, path: Path) -> None:
     os.replace(tmp, path)
 
 
+def _check_bf16(cfg: TrainConfig) -> None:
+    if cfg.bf16 and not torch.ops.mkldnn._is_mkldnn_bf16_supported():
+        raise TrainingError(
+            "bf16: this CPU has no native bfloat16 arithmetic (AVX512-BF16 or AMX), so autocast "
+            "would emulate it and run several times slower (measured in benchmarks/run.py); "
+            "set bf16: false"
+        )
+
+
 def train(
     workspace: Workspace,
     exp_dir: str | Path,
@@ -230,6 +451,7 @@ def train(
     on_epoch: Callable[[dict], None] | None = None,
     on_batch: Callable[[int], None] | None = None,
     on_start: Callable[[int, int], None] | None = None,
+    on_note: Callable[[str], None] | None = None,
 ) -> dict:
     """Train on the workspace's train subset, select on val, write the experiment folder.
 
@@ -237,10 +459,11 @@ def train(
         workspace: the workspace with labels and a split.
         exp_dir: experiment folder (created).
         cfg: the resolved training config.
-        resume: continue from ``last.pt`` if it exists and matches the config.
+        resume: continue from ``last.pt`` if it exists and matches the config and data.
         on_epoch: called with each history row.
         on_batch: called with the batch size after every optimiser step.
         on_start: called with (total epochs, training patches per epoch) before training.
+        on_note: called with a line of text about slow preparation steps.
 
     Returns:
         A summary: best epoch and its validation scores, paths, throughput.
@@ -260,10 +483,10 @@ def train(
         raise TrainingError(
             f"workspace {workspace.root} has no split; run `trainkit split {workspace.root}` first"
         )
-    if cfg.threads:
-        torch.set_num_threads(cfg.threads)
+    _check_bf16(cfg)
+    note = on_note or (lambda _msg: None)
+    torch.set_num_threads(cfg.threads or cpu_threads())
     torch.manual_seed(cfg.seed)
-    rng = np.random.default_rng(cfg.seed)
 
     train_set = load_patch_set(workspace, "train", class_set)
     val_set = load_patch_set(workspace, "val", class_set)
@@ -275,6 +498,11 @@ def train(
     input_px = workspace.tile_px
 
     model = build_network(cfg, num_classes)
+    if cfg.weights is None and cfg.head_epochs:
+        note(
+            "note: head_epochs with weights: null trains a head on a randomly initialised "
+            "backbone; it is meant for pretrained weights"
+        )
     optimizer = torch.optim.AdamW(model.parameters(), lr=cfg.lr, weight_decay=cfg.weight_decay)
     loss_fn = nn.CrossEntropyLoss(
         weight=class_weights(train_set.labels, num_classes, cfg.class_weighting),
@@ -285,8 +513,22 @@ def train(
     steps_per_epoch = max(
         1, len(train_set) // cfg.batch_size + (len(train_set) % cfg.batch_size >= 2)
     )
-    total_steps = steps_per_epoch * cfg.epochs
     warmup_steps = int(round(cfg.warmup_epochs * steps_per_epoch))
+    head_steps = steps_per_epoch * cfg.head_epochs
+    full_steps = steps_per_epoch * (cfg.epochs - cfg.head_epochs)
+
+    def lr_at(step: int) -> float:
+        # Each stage has its own warm-up and cosine decay: unfreezing starts gently again.
+        if step < head_steps:
+            return get_lr(
+                step, total_steps=head_steps, warmup_steps=min(warmup_steps, head_steps // 2),
+                peak_lr=cfg.lr,
+            )
+        return get_lr(
+            step - head_steps, total_steps=full_steps, warmup_steps=warmup_steps, peak_lr=cfg.lr
+        )
+
+    forward = torch.compile(model) if cfg.compile else model
 
     cfg_dict = cfg.model_dump(mode="json")
     atomic_write_text(exp / "config.yaml", yaml.safe_dump(cfg_dict, sort_keys=False))
@@ -307,7 +549,7 @@ def train(
 
     history: list[dict] = []
     start_epoch, step = 1, 0
-    best = {"score": -math.inf, "epoch": 0, "state": None, "row": None}
+    best: dict = {"score": None, "epoch": 0, "state": None, "row": None}
     last_path = exp / "last.pt"
     if resume and last_path.exists():
         try:
@@ -315,67 +557,88 @@ def train(
         except Exception:  # a damaged last.pt (e.g. disk full): start over rather than fail
             state = {}
         if (
-            state.get("config") == cfg_dict
+            state.get("format") == "trainkit-last-2"
+            and state.get("config") == cfg_dict
             and state.get("data_digest") == experiment["data_digest"]
         ):
             model.load_state_dict(state["model"])
             optimizer.load_state_dict(state["optimizer"])
-            rng.bit_generator.state = state["rng"]
-            torch.set_rng_state(state["torch_rng"])
             start_epoch, step, history = state["epoch"] + 1, state["step"], state["history"]
             best = state["best"]
+            note(f"resuming after epoch {state['epoch']} from {last_path}")
     if on_start:
         on_start(cfg.epochs, len(train_set))
 
+    has_val = len(val_set) > 0
+    features = feature_labels = None
     patience_left = cfg.early_stop_patience
-    for epoch in range(start_epoch, cfg.epochs + 1):
-        stats, step = train_one_epoch(
-            model,
-            train_set,
-            augment=augment,
-            optimizer=optimizer,
-            loss_fn=loss_fn,
-            cfg=cfg,
-            rng=rng,
-            step=step,
-            total_steps=total_steps,
-            warmup_steps=warmup_steps,
-            on_batch=on_batch,
-        )
-        val = evaluate_split(model, val_set, val_loss_fn, num_classes)
-        row = {"epoch": epoch, **stats, **val}
-        history.append(row)
-        score = val["val_balanced_accuracy"] if len(val_set) else -row["train_loss"]
-        if score > best["score"]:
-            best = {
-                "score": score,
-                "epoch": epoch,
-                "state": {k: v.clone() for k, v in model.state_dict().items()},
-                "row": row,
-            }
-            patience_left = cfg.early_stop_patience
-        else:
-            patience_left -= 1
-        _write_history(exp / "history.csv", history)
-        _save_atomic(
-            {
-                "model": model.state_dict(),
-                "optimizer": optimizer.state_dict(),
-                "epoch": epoch,
-                "step": step,
-                "history": history,
-                "best": best,
-                "rng": rng.bit_generator.state,
-                "torch_rng": torch.get_rng_state(),
-                "config": cfg_dict,
-                "data_digest": experiment["data_digest"],
-            },
-            last_path,
-        )
-        if on_epoch:
-            on_epoch(row)
-        if cfg.early_stop_patience and patience_left <= 0:
-            break
+    cv2_threads = _cv2_threads(1)  # augmentation runs beside torch's threads: keep OpenCV to one
+    try:
+        for epoch in range(start_epoch, cfg.epochs + 1):
+            stage = stage_of(epoch, cfg)
+            seed = epoch_seed(cfg.seed, epoch)
+            rng = np.random.default_rng(seed)
+            torch.manual_seed(seed)
+            augment.reseed(seed)
+            set_stage(model, cfg.backbone, stage)
+            if stage == "head" and cfg.cached_features:
+                if features is None:
+                    note(
+                        f"computing frozen backbone features once: {len(train_set)} patches x "
+                        f"{len(augment.elements)} symmetries"
+                    )
+                    features = frozen_features(model, cfg.backbone, train_set, augment.elements)
+                    feature_labels = np.stack(
+                        [augment.perms[e][train_set.labels] for e in augment.elements]
+                    )
+                head = model.get_submodule(head_module_name(cfg.backbone))
+                stats, step = train_head_on_features(
+                    head, features, feature_labels, optimizer=optimizer, loss_fn=loss_fn,
+                    cfg=cfg, rng=rng, lr_at=lr_at, step=step, on_batch=on_batch,
+                )
+            else:
+                features = None  # free the cache once the whole network trains
+                stats, step = train_one_epoch(
+                    model, train_set, augment=augment, optimizer=optimizer, loss_fn=loss_fn,
+                    cfg=cfg, rng=rng, lr_at=lr_at, step=step, forward=forward, on_batch=on_batch,
+                )
+            val = evaluate_split(
+                model, val_set, val_loss_fn, num_classes, false_alarm_budget=cfg.false_alarm_budget
+            )
+            row = {"epoch": epoch, "stage": stage, **stats, **val}
+            history.append(row)
+            score = selection_score(row, cfg, has_val)
+            if best["score"] is None or score > best["score"]:
+                best = {
+                    "score": score,
+                    "epoch": epoch,
+                    "state": {k: v.clone() for k, v in model.state_dict().items()},
+                    "row": row,
+                }
+                patience_left = cfg.early_stop_patience
+            else:
+                patience_left -= 1
+            _write_history(exp / "history.csv", history)
+            _save_atomic(
+                {
+                    "format": "trainkit-last-2",
+                    "model": model.state_dict(),
+                    "optimizer": optimizer.state_dict(),
+                    "epoch": epoch,
+                    "step": step,
+                    "history": history,
+                    "best": best,
+                    "config": cfg_dict,
+                    "data_digest": experiment["data_digest"],
+                },
+                last_path,
+            )
+            if on_epoch:
+                on_epoch(row)
+            if cfg.early_stop_patience and patience_left <= 0:
+                break
+    finally:
+        _cv2_threads(cv2_threads)
 
     checkpoint = {
         "format": "trainkit-checkpoint-1",
@@ -385,10 +648,11 @@ def train(
         "input_px": input_px,
         "best_epoch": best["epoch"],
         "best_val": best["row"],
+        "selected_on": cfg.select_on if has_val else "train_loss",
         "experiment": experiment,
     }
     _save_atomic(checkpoint, exp / "checkpoint.pt")
-    ips = [h["images_per_second"] for h in history if h["images_per_second"] > 0]
+    ips = [h["train_images_per_s"] for h in history if h["train_images_per_s"] > 0]
     return {
         "experiment": str(exp),
         "epochs_run": len(history),
@@ -398,6 +662,15 @@ def train(
         "training_patches": len(train_set),
         "validation_patches": len(val_set),
     }
+
+
+def _cv2_threads(n: int) -> int:
+    """Set OpenCV's thread count; returns the previous one."""
+    import cv2
+
+    old = cv2.getNumThreads()
+    cv2.setNumThreads(n)
+    return old
 
 
 def _write_history(path: Path, history: list[dict]) -> None:

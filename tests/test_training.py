@@ -1,0 +1,284 @@
+"""The training loop: exact resume, head-only stage, cached features, sampling, selection, cache.
+
+Outside references: scikit-learn's ``roc_curve`` for the recall at a false-alarm budget,
+scipy's chi-square goodness-of-fit test for class-balanced sampling, and PyTorch itself
+(a forward pass computed by hand) for the cached head inputs.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+
+import numpy as np
+import pytest
+import torch
+from scipy import stats
+from sklearn.metrics import roc_curve
+
+from trainkit.config import ConfigError, load_train_config
+from trainkit.metrics import recall_at_false_alarm
+from trainkit.training import (
+    TrainingError,
+    build_network,
+    cpu_threads,
+    epoch_order,
+    frozen_features,
+    head_module_name,
+    selection_score,
+    train,
+)
+from trainkit.workspace import Workspace
+
+# history columns that measure time, not the computation
+_TIMING = {"train_images_per_s", "seconds"}
+
+
+def _rows(path):
+    return [
+        {k: v for k, v in r.items() if k not in _TIMING}
+        for r in csv.DictReader((path / "history.csv").open())
+    ]
+
+
+def _state(path, name="last.pt"):
+    return torch.load(path / name, weights_only=True)["model"]
+
+
+@pytest.fixture()
+def ws(demo_run):
+    out, _ = demo_run
+    return Workspace.open(out / "workspace")
+
+
+# ----- resume ------------------------------------------------------------------------
+
+
+class _Crash(RuntimeError):
+    pass
+
+
+def test_resume_after_a_crash_gives_the_same_weights_as_an_uninterrupted_run(ws, tmp_path):
+    """Kill after epoch 2 of 3, resume: weights, optimiser-driven history and choice all match."""
+    cfg = load_train_config("demo", {"epochs": 3, "threads": 1, "seed": 11})
+    train(ws, tmp_path / "whole", cfg, resume=False)
+
+    def crash_after_two(row):
+        if row["epoch"] == 2:
+            raise _Crash
+
+    with pytest.raises(_Crash):
+        train(ws, tmp_path / "cut", cfg, resume=False, on_epoch=crash_after_two)
+    assert len(_rows(tmp_path / "cut")) == 2
+    notes = []
+    train(ws, tmp_path / "cut", cfg, resume=True, on_note=notes.append)
+    assert any("resuming after epoch 2" in n for n in notes)
+
+    a, b = _state(tmp_path / "whole"), _state(tmp_path / "cut")
+    assert all(torch.equal(a[k], b[k]) for k in a)
+    assert _rows(tmp_path / "whole") == _rows(tmp_path / "cut")
+    ca = torch.load(tmp_path / "whole" / "checkpoint.pt", weights_only=True)
+    cb = torch.load(tmp_path / "cut" / "checkpoint.pt", weights_only=True)
+    assert ca["best_epoch"] == cb["best_epoch"]
+    assert all(torch.equal(ca["model"][k], cb["model"][k]) for k in ca["model"])
+
+
+def test_prefetch_thread_changes_nothing_but_speed(ws, tmp_path):
+    base = {"epochs": 1, "threads": 1, "seed": 5}
+    for name, prefetch in (("on", True), ("off", False)):
+        cfg = load_train_config("demo", {**base, "prefetch": prefetch})
+        train(ws, tmp_path / name, cfg, resume=False)
+    a, b = _state(tmp_path / "on"), _state(tmp_path / "off")
+    assert all(torch.equal(a[k], b[k]) for k in a)
+
+
+# ----- head-only stage and cached features --------------------------------------------
+
+
+def _fresh_network(cfg, num_classes=6):
+    torch.manual_seed(cfg.seed)
+    return build_network(cfg, num_classes)
+
+
+def test_head_stage_changes_only_the_head(ws, tmp_path):
+    cfg = load_train_config("demo", {"epochs": 1, "head_epochs": 1, "threads": 1, "seed": 2})
+    train(ws, tmp_path / "h", cfg, resume=False)
+    after = _state(tmp_path / "h")
+    before = _fresh_network(cfg).state_dict()
+    head = head_module_name(cfg.backbone) + "."
+    changed = {k for k in before if not torch.equal(before[k], after[k])}
+    assert changed, "the head did not train"
+    # Frozen backbone: weights and BatchNorm running statistics untouched.
+    assert all(k.startswith(head) for k in changed), sorted(changed)[:5]
+    rows = list(csv.DictReader((tmp_path / "h" / "history.csv").open()))
+    assert rows[0]["stage"] == "head"
+
+
+def test_head_then_full_stage_order(ws, tmp_path):
+    cfg = load_train_config("demo", {"epochs": 2, "head_epochs": 1, "threads": 1})
+    train(ws, tmp_path / "hf", cfg, resume=False)
+    rows = list(csv.DictReader((tmp_path / "hf" / "history.csv").open()))
+    assert [r["stage"] for r in rows] == ["head", "full"]
+    # The second stage starts its own warm-up: its first learning rate is below the peak.
+    assert float(rows[1]["lr"]) <= cfg.lr
+
+
+def test_frozen_features_are_the_head_inputs(ws):
+    """The hook-captured features equal the tiny CNN's pooled features computed by hand."""
+    from trainkit.data import load_patch_set
+    from trainkit.taxonomy import load_class_set
+
+    cfg = load_train_config("demo", {"seed": 1})
+    net = _fresh_network(cfg).eval()
+    data = load_patch_set(ws, "val", load_class_set("orientation"))
+    feats = frozen_features(net, cfg.backbone, data, [(0, False), (1, True)])
+    assert feats.shape[:2] == (2, len(data))
+    with torch.no_grad():
+        x = torch.from_numpy(np.ascontiguousarray(data.images))
+        body = net[1]
+        by_hand = body.pool(body.features(net[0](x)))
+        rotated = np.ascontiguousarray(np.rot90(data.images, 1, axes=(1, 2))[:, :, ::-1])
+        by_hand_rot = body.pool(body.features(net[0](torch.from_numpy(rotated))))
+    torch.testing.assert_close(feats[0], by_hand, rtol=1e-5, atol=1e-5)
+    # apply_d4(k=1, flip=True) is rot90 then a left-right mirror (taxonomy's definition).
+    from trainkit.taxonomy import apply_d4
+
+    assert np.array_equal(apply_d4(data.images[0], 1, True), rotated[0])
+    torch.testing.assert_close(feats[1], by_hand_rot, rtol=1e-5, atol=1e-5)
+
+
+def test_cached_feature_run_trains_the_head_and_keeps_the_backbone(ws, tmp_path):
+    cfg = load_train_config(
+        "demo",
+        {"epochs": 3, "head_epochs": 3, "cached_features": True, "threads": 1, "seed": 4},
+    )
+    notes = []
+    train(ws, tmp_path / "c", cfg, resume=False, on_note=notes.append)
+    assert any("computing frozen backbone features once" in n for n in notes)
+    after = _state(tmp_path / "c")
+    before = _fresh_network(cfg).state_dict()
+    head = head_module_name(cfg.backbone) + "."
+    changed = {k for k in before if not torch.equal(before[k], after[k])}
+    assert changed and all(k.startswith(head) for k in changed)
+    rows = list(csv.DictReader((tmp_path / "c" / "history.csv").open()))
+    assert len(rows) == 3 and all(r["stage"] == "head" for r in rows)
+    # Learning happened: the training loss fell from the first to the last epoch.
+    assert float(rows[-1]["train_loss"]) < float(rows[0]["train_loss"])
+
+
+# ----- sampling and selection ----------------------------------------------------------
+
+
+def test_balanced_sampling_draws_classes_equally():
+    """Chi-square goodness of fit (scipy.stats.chisquare) against equal class frequencies."""
+    labels = np.array([0] * 900 + [1] * 60 + [2] * 30 + [3] * 10)
+    rng = np.random.default_rng(0)
+    drawn = np.concatenate([labels[epoch_order(labels, rng, "balanced")] for _ in range(20)])
+    counts = np.bincount(drawn, minlength=4)
+    assert stats.chisquare(counts).pvalue > 1e-3, counts
+    # The shuffle order is a permutation: each patch once.
+    perm = epoch_order(labels, rng, "shuffle")
+    assert sorted(perm.tolist()) == list(range(len(labels)))
+
+
+@pytest.mark.parametrize("seed", range(25))
+def test_recall_at_false_alarm_matches_sklearn_roc_curve(seed):
+    """Best TPR with FPR <= budget on scikit-learn's ROC curve (ties included)."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(5, 80))
+    y = rng.random(n) < rng.uniform(0.2, 0.8)
+    if y.all() or not y.any():
+        y[0], y[-1] = True, False
+    p = np.round(rng.random(n) * y * 0.5 + rng.random(n) * 0.5, int(rng.integers(1, 3)))
+    budget = float(rng.choice([0.0, 0.05, 0.1, 0.25, 0.5]))
+    fpr, tpr, _ = roc_curve(y, p)
+    expected = float(tpr[fpr <= budget + 1e-12].max())
+    assert recall_at_false_alarm(y, p, budget=budget) == pytest.approx(expected, abs=1e-12)
+
+
+def test_recall_at_false_alarm_without_cracks_is_nan():
+    assert math.isnan(recall_at_false_alarm([0, 0], [0.1, 0.2], budget=0.05))
+
+
+def test_selection_key_follows_the_configured_metric():
+    a = {"val_recall_at_fa": 0.9, "val_balanced_accuracy": 0.6, "val_loss": 1.0, "train_loss": 1.0}
+    b = {"val_recall_at_fa": 0.8, "val_balanced_accuracy": 0.7, "val_loss": 1.0, "train_loss": 1.0}
+    at_fa = load_train_config("default")
+    macro = load_train_config("default", {"select_on": "macro_recall"})
+    assert selection_score(a, at_fa, True) > selection_score(b, at_fa, True)
+    assert selection_score(b, macro, True) > selection_score(a, macro, True)
+    nan_row = {**a, "val_recall_at_fa": float("nan")}
+    assert selection_score(nan_row, at_fa, True) < selection_score(b, at_fa, True)
+
+
+# ----- patch cache -----------------------------------------------------------------------
+
+
+def test_crop_cache_is_reused_and_follows_the_crops(ws, monkeypatch):
+    import os
+
+    from trainkit import data as data_mod
+    from trainkit.taxonomy import load_class_set
+
+    cs = load_class_set("orientation")
+    fresh = data_mod.load_patch_set(ws, "val", cs, cache=False)
+    first = data_mod.load_patch_set(ws, "val", cs)  # builds (or reuses) the cache
+    assert np.array_equal(np.asarray(first.images), fresh.images)
+    assert isinstance(first.images, np.memmap)
+
+    def no_decoding(*_a, **_k):
+        raise AssertionError("decoded image files although the cache was valid")
+
+    monkeypatch.setattr(data_mod, "_decode_crops", no_decoding)
+    again = data_mod.load_patch_set(ws, "val", cs)
+    assert np.array_equal(np.asarray(again.images), fresh.images)
+    # Copy-on-write: writing to the mapped array never reaches the cache file.
+    again.images[0, 0, 0] = 255 - again.images[0, 0, 0]
+    assert np.array_equal(np.asarray(data_mod.load_patch_set(ws, "val", cs).images), fresh.images)
+
+    # A crop rewritten on disk gives a new key, so the cache is rebuilt (decode is called).
+    rec = next(r for r in ws.patches() if r.subset == "val" and r.label is not None)
+    crop = ws.root / rec.crop
+    st = crop.stat()
+    os.utime(crop, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
+    try:
+        with pytest.raises(AssertionError, match="decoded image files"):
+            data_mod.load_patch_set(ws, "val", cs)
+    finally:
+        os.utime(crop, ns=(st.st_atime_ns, st.st_mtime_ns))
+
+
+# ----- settings ----------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("overrides", "needle"),
+    [
+        ({"head_epochs": 30, "epochs": 5}, "head_epochs (30) cannot exceed epochs (5)"),
+        ({"cached_features": True}, "cached_features trains the head"),
+        ({"sampling": "balanced"}, "set class_weighting: none"),
+        ({"false_alarm_budget": 1.5}, "false_alarm_budget"),
+    ],
+)
+def test_inconsistent_settings_give_one_line(overrides, needle):
+    with pytest.raises(ConfigError) as err:
+        load_train_config("default", overrides)
+    msg = str(err.value)
+    assert needle in msg and len(msg.splitlines()) == 1
+
+
+def test_bf16_is_refused_on_a_cpu_without_it(ws, tmp_path):
+    if torch.ops.mkldnn._is_mkldnn_bf16_supported():
+        pytest.skip("this CPU has native bf16")
+    cfg = load_train_config("demo", {"epochs": 1, "bf16": True})
+    with pytest.raises(TrainingError, match="no native bfloat16"):
+        train(ws, tmp_path / "bf", cfg)
+
+
+def test_thread_budget_follows_the_environment_and_affinity(monkeypatch):
+    import os
+
+    monkeypatch.setenv("OMP_NUM_THREADS", "3")
+    assert cpu_threads() == 3
+    monkeypatch.delenv("OMP_NUM_THREADS")
+    assert cpu_threads() == len(os.sched_getaffinity(0))
