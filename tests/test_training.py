@@ -282,3 +282,22 @@ def test_thread_budget_follows_the_environment_and_affinity(monkeypatch):
     assert cpu_threads() == 3
     monkeypatch.delenv("OMP_NUM_THREADS")
     assert cpu_threads() == len(os.sched_getaffinity(0))
+
+
+def test_frozen_recipe_keeps_the_pretrained_backbone(ws, tmp_path):
+    """The built-in 'frozen' recipe with a weights file: every backbone tensor equals the file's."""
+    from trainkit.models import create_model
+
+    torch.manual_seed(9)
+    pretrained = create_model("mobilenet_v3_small", 1000).state_dict()
+    wfile = tmp_path / "backbone.pth"
+    torch.save(pretrained, wfile)
+    cfg = load_train_config(
+        "frozen", {"weights": str(wfile), "epochs": 2, "head_epochs": 2, "threads": 1}
+    )
+    train(ws, tmp_path / "f", cfg, resume=False)
+    after = _state(tmp_path / "f", "checkpoint.pt")
+    head = head_module_name(cfg.backbone) + "."
+    for k, v in pretrained.items():
+        if not ("1." + k).startswith(head):
+            assert torch.equal(after["1." + k], v), k

@@ -11,7 +11,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 __all__ = ["AugmentConfig", "TrainConfig", "ConfigError", "load_train_config", "BUILTIN_RECIPES"]
 
-BUILTIN_RECIPES = ("default", "demo", "presence")
+BUILTIN_RECIPES = ("default", "demo", "presence", "frozen")
 
 
 class ConfigError(ValueError):
