@@ -415,20 +415,49 @@ def tile(
     help="Share held out for validation.",
 )
 @click.option("--seed", type=int, default=0, show_default=True, help="Random seed of the split.")
+@click.option(
+    "--near-duplicate-bits",
+    type=click.IntRange(0, 64),
+    default=6,
+    show_default=True,
+    help="Crops whose 64-bit perceptual hashes differ in at most this many bits are near-duplicates.",
+)
+@click.option(
+    "--drop-near-duplicates",
+    is_flag=True,
+    help="Take the val/test member of each near-duplicate pair across subsets out of the split.",
+)
 @click.pass_obj
-def split(ctx: Ctx, ws_dir: Path, test_fraction: float, val_fraction: float, seed: int) -> None:
-    """Split labelled patches into train/val/test by photo or structure, stratified by class."""
-    from .splits import split_workspace
+def split(
+    ctx: Ctx,
+    ws_dir: Path,
+    test_fraction: float,
+    val_fraction: float,
+    seed: int,
+    near_duplicate_bits: int,
+    drop_near_duplicates: bool,
+) -> None:
+    """Split labelled patches into train/val/test by photo or structure, stratified by class.
+
+    Then report patches in different subsets whose crops look alike (the same surface in
+    two photos); --drop-near-duplicates leaves their val/test member out.
+    """
+    from .splits import find_near_duplicates, near_duplicate_lines, split_workspace
     from .workspace import Workspace
 
     with user_errors(ctx):
-        rep = split_workspace(
-            Workspace.open(ws_dir),
-            test_fraction=test_fraction,
-            val_fraction=val_fraction,
-            seed=seed,
-        )
-        _print_split(ctx, rep)
+        ws = Workspace.open(ws_dir)
+        split_workspace(ws, test_fraction=test_fraction, val_fraction=val_fraction, seed=seed)
+        with progress_bar(ctx, "near-duplicate check") as bar:
+            near = find_near_duplicates(
+                ws,
+                max_distance=near_duplicate_bits,
+                drop=drop_near_duplicates,
+                progress=lambda done, total: bar.update(done, total),
+            )
+        _print_split(ctx, ws.split_info())  # counts after any drop
+        for line in near_duplicate_lines(near):
+            ctx.console.print(line, markup=False, soft_wrap=True)
 
 
 def _print_split(ctx: Ctx, rep: dict) -> None:
