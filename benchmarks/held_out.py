@@ -74,7 +74,9 @@ def build_workspace(out: Path, n_photos: int, seed: int):
     ws = Workspace.create(ws_dir, class_set=cs, tile_px=TINY_DATASET["tile_px"])
     for data in (tiny_dataset_dir(), extra):
         tile_into_workspace(
-            list_images([data / "photos"]), ws, sidecar=read_sidecar(data / "scale.csv"),
+            list_images([data / "photos"]),
+            ws,
+            sidecar=read_sidecar(data / "scale.csv"),
             group_by="photo",
         )
         import_labels_csv(ws, data / "labels.csv", reviewer="synth-ground-truth")

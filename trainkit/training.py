@@ -26,8 +26,8 @@ from torch import nn
 
 from .config import TrainConfig
 from .data import Augmenter, PatchSet, batches, load_patch_set
-from .metrics import recall_at_false_alarm
 from .fsutil import atomic_write_text
+from .metrics import recall_at_false_alarm
 from .models import HEADS, IMAGENET_MEAN, IMAGENET_STD, create_model
 from .splits import check_no_leak
 from .taxonomy import ClassSet, apply_d4, class_set_from_dict, load_class_set
@@ -315,7 +315,9 @@ def frozen_features(
     """
     head = model.get_submodule(head_module_name(backbone))
     captured: list[torch.Tensor] = []
-    hook = head.register_forward_pre_hook(lambda _m, args: captured.append(args[0].detach().clone()))
+    hook = head.register_forward_pre_hook(
+        lambda _m, args: captured.append(args[0].detach().clone())
+    )
     model.eval()
     try:
         per_element = []
@@ -390,7 +392,13 @@ def evaluate_split(
 ) -> dict:
     """Validation loss, accuracy, balanced accuracy (= macro recall), crack recall at argmax
     and the best crack recall whose false-alarm rate stays within ``false_alarm_budget``."""
-    keys = ("val_loss", "val_accuracy", "val_balanced_accuracy", "val_crack_recall", "val_recall_at_fa")
+    keys = (
+        "val_loss",
+        "val_accuracy",
+        "val_balanced_accuracy",
+        "val_crack_recall",
+        "val_recall_at_fa",
+    )
     if len(data) == 0:
         return dict.fromkeys(keys, float("nan"))
     probs = predict_proba(model, data.images, num_classes=num_classes)
@@ -521,7 +529,9 @@ def train(
         # Each stage has its own warm-up and cosine decay: unfreezing starts gently again.
         if step < head_steps:
             return get_lr(
-                step, total_steps=head_steps, warmup_steps=min(warmup_steps, head_steps // 2),
+                step,
+                total_steps=head_steps,
+                warmup_steps=min(warmup_steps, head_steps // 2),
                 peak_lr=cfg.lr,
             )
         return get_lr(
@@ -593,14 +603,31 @@ def train(
                     )
                 head = model.get_submodule(head_module_name(cfg.backbone))
                 stats, step = train_head_on_features(
-                    head, features, feature_labels, optimizer=optimizer, loss_fn=loss_fn,
-                    cfg=cfg, rng=rng, lr_at=lr_at, step=step, on_batch=on_batch,
+                    head,
+                    features,
+                    feature_labels,
+                    optimizer=optimizer,
+                    loss_fn=loss_fn,
+                    cfg=cfg,
+                    rng=rng,
+                    lr_at=lr_at,
+                    step=step,
+                    on_batch=on_batch,
                 )
             else:
                 features = None  # free the cache once the whole network trains
                 stats, step = train_one_epoch(
-                    model, train_set, augment=augment, optimizer=optimizer, loss_fn=loss_fn,
-                    cfg=cfg, rng=rng, lr_at=lr_at, step=step, forward=forward, on_batch=on_batch,
+                    model,
+                    train_set,
+                    augment=augment,
+                    optimizer=optimizer,
+                    loss_fn=loss_fn,
+                    cfg=cfg,
+                    rng=rng,
+                    lr_at=lr_at,
+                    step=step,
+                    forward=forward,
+                    on_batch=on_batch,
                 )
             val = evaluate_split(
                 model, val_set, val_loss_fn, num_classes, false_alarm_budget=cfg.false_alarm_budget
