@@ -11,9 +11,13 @@ vary from run to run, ratios much less.
    one worker per core, and the share of worker time spent decoding;
 4. scanning 12-megapixel JPEGs: `trainkit scan` as a whole command against the model-only
    bound (ONNX Runtime on patches already in memory) and against a plain PyTorch loop
-   (PIL decode, crop, torchvision transforms, eager model, one batch per frame).
+   (PIL decode, crop, torchvision transforms, eager model, one batch per frame);
+5. training (benchmarks/train_bench.py): `trainkit.training.train` against a plain
+   ImageFolder/DataLoader loop (2 workers and 0) on the same patches, both against the
+   model-only bound, with the held-out accuracy each reaches in the same wall time.
 
-`python benchmarks/run.py [memory_format|inference|tiling ...]` runs a subset.
+`python benchmarks/run.py [memory_format|inference|tiling|scan|training ...]` runs a subset;
+`--quick` runs the training subset at smoke-test size (under a minute).
 """
 
 from __future__ import annotations
@@ -27,6 +31,7 @@ from pathlib import Path
 
 import numpy as np
 import torch
+from train_bench import bench_training
 
 
 def alternate(fns: dict, rounds: int = 7) -> dict:
@@ -296,11 +301,15 @@ BENCHMARKS = {
     "inference": bench_onnx_vs_torch,
     "tiling": bench_tiling,
     "scan": bench_scan,
+    "training": bench_training,
 }
+#: Keyword arguments that `--quick` passes to the benchmarks that have a smoke-test size.
+QUICK = {"training": {"size": "quick"}}
 
 
 def main(argv: list[str]) -> int:
-    names = argv or list(BENCHMARKS)
+    quick = "--quick" in argv
+    names = [a for a in argv if a != "--quick"] or list(BENCHMARKS)
     unknown = [n for n in names if n not in BENCHMARKS]
     if unknown:
         print(
@@ -309,7 +318,7 @@ def main(argv: list[str]) -> int:
         return 2
     results: dict = {"torch_threads": torch.get_num_threads()}
     for n in names:
-        results[n] = BENCHMARKS[n]()
+        results[n] = BENCHMARKS[n](**(QUICK.get(n, {}) if quick else {}))
     print(json.dumps(results, indent=2))
     return 0
 
