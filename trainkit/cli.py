@@ -493,11 +493,13 @@ def _print_split(ctx: Ctx, rep: dict) -> None:
     "config",
     default="default",
     show_default=True,
-    help="Recipe name (default, demo, presence) or a YAML file.",
+    help="Recipe name (default, demo, presence, frozen) or a YAML file.",
 )
 @click.option("--backbone", default=None, help="Override the recipe's backbone.")
 @click.option(
-    "--weights", default=None, help="Pretrained backbone state dict (.pth) or 'torchvision'."
+    "--weights",
+    default=None,
+    help="imagenet (torch hub cache, no network), torchvision, or a .pth state dict.",
 )
 @click.option(
     "--epochs", type=click.IntRange(1, 1000), default=None, help="Override the number of epochs."
@@ -534,9 +536,11 @@ def train(
             },
         )
         res = run_training(ctx, Workspace.open(ws_dir), exp_dir, cfg, resume=not restart)
+        bv = res["best_val"]
         ctx.console.print(
-            f"best epoch {res['best_epoch']} (val balanced accuracy "
-            f"{res['best_val']['val_balanced_accuracy']:.3f}); {res['median_images_per_second']:.0f} images/s; "
+            f"best epoch {res['best_epoch']} (selected on {cfg.select_on}: val crack recall at "
+            f"{cfg.false_alarm_budget:.0%} false alarms {bv['val_recall_at_fa']:.3f}, macro recall "
+            f"{bv['val_balanced_accuracy']:.3f}); {res['median_images_per_second']:.0f} images/s; "
             f"checkpoint in {exp_dir}"
         )
 
@@ -553,8 +557,10 @@ def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> di
 
         def on_epoch(row: dict) -> None:
             bar.log(
-                f"epoch {row['epoch']:3d}  loss {row['train_loss']:.3f}  val acc {row['val_accuracy']:.3f}  "
-                f"val crack recall {row['val_crack_recall']:.3f}  {row['images_per_second']:.0f} img/s"
+                f"epoch {row['epoch']:3d} {row['stage']:4s}  loss {row['train_loss']:.3f}  "
+                f"val acc {row['val_accuracy']:.3f}  val crack recall {row['val_crack_recall']:.3f}  "
+                f"at {cfg.false_alarm_budget:.0%} false alarms {row['val_recall_at_fa']:.3f}  "
+                f"{row['train_images_per_s']:.0f} img/s"
             )
 
         state["bar"] = bar
@@ -566,6 +572,7 @@ def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> di
             on_start=on_start,
             on_epoch=on_epoch,
             on_batch=lambda n: bar.advance(n),
+            on_note=bar.log,
         )
 
 
