@@ -148,7 +148,7 @@ def main(argv: list[str]) -> int:
             opt.step()
         probe_ips = 12 * cfg.batch_size / (time.perf_counter() - tp)
         epoch_s = n_train / probe_ips * 1.15
-        epochs = max(1, int(args.minutes * 60 * 0.92 / epoch_s))
+        epochs = max(1, int(args.minutes * 60 * 0.85 / epoch_s))
     cfg = load_train_config(args.config, {"epochs": epochs})
     exp = args.out / "run"
     t1 = time.perf_counter()

@@ -185,3 +185,20 @@ def test_crackmap_is_reexported():
     import trainkit
 
     assert trainkit.CrackMap is CrackMap and trainkit.Screener is Screener
+
+
+@pytest.mark.parametrize("threads", [1, 2, 3])
+def test_concurrent_batches_give_onnxruntimes_answer_in_input_order(tmp_path, threads):
+    """Batches run on several threads come back in order, equal to one plain ONNX Runtime run."""
+    import onnxruntime as ort
+
+    path = brightness_model(tmp_path / "m.onnx")
+    rng = np.random.default_rng(threads)
+    patches = rng.integers(0, 256, (37, S, S, 3), dtype=np.uint8)  # 37: a ragged last batch
+    scr = Screener(path, threads=threads)
+    assert scr.workers == threads
+    got = scr.predict(patches, batch_size=4)
+    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    want = sess.run(None, {"image": patches})[0]
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-6)
+    assert got.shape == (37, 2) and scr.predict(patches[:0]).shape == (0, 2)
