@@ -233,7 +233,7 @@ def _model_only_bound(model: Path, patches: np.ndarray, per_frame: int) -> dict:
     return best
 
 
-def bench_scan(n_frames: int = 12) -> dict:
+def bench_scan(n_frames: int = 24) -> dict:
     """trainkit scan on 12-Mpx JPEGs against the model-only bound and a plain PyTorch loop."""
     import subprocess
 

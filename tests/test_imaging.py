@@ -97,3 +97,49 @@ def test_sixteen_bit_rgb_png_written_by_opencv(tmp_path):
     out = read_rgb(tmp_path / "c.png")
     assert out.dtype == np.uint8 and out.shape == (8, 8, 3)
     assert np.max(np.abs(out.astype(int) - np.round(rgb16 / 257.0))) <= 1
+
+
+def _jpeg_bytes(arr: np.ndarray, orientation: int = 1, mode: str = "RGB") -> bytes:
+    import io
+
+    im = Image.fromarray(arr).convert(mode)
+    exif = Image.Exif()
+    if orientation != 1:
+        exif[0x0112] = orientation
+    buf = io.BytesIO()
+    im.save(buf, format="JPEG", quality=92, exif=exif.tobytes())
+    return buf.getvalue()
+
+
+@pytest.mark.parametrize("orientation", range(1, 9))
+def test_fast_jpeg_path_matches_pillows_exif_transpose(tmp_path, orientation):
+    """OpenCV decode + our orientation steps against Pillow's decode + ImageOps.exif_transpose."""
+    from trainkit.imaging import read_rgb_fast
+
+    rng = np.random.default_rng(orientation)
+    base = (rng.random((48, 80, 3)) * 60 + np.linspace(0, 180, 80)[None, :, None]).astype(np.uint8)
+    data = _jpeg_bytes(base, orientation)
+    path = tmp_path / "f.jpg"
+    path.write_bytes(data)
+    want = read_rgb(path, data=data)
+    got = read_rgb_fast(path, data=data)
+    assert got.shape == want.shape and got.dtype == np.uint8
+    # Two builds of the JPEG decoder: a level or two apart at most, never a different layout.
+    assert np.abs(got.astype(int) - want.astype(int)).max() <= 3
+
+
+def test_fast_jpeg_path_falls_back_for_grey_truncated_and_other_files(tmp_path):
+    from trainkit.imaging import read_rgb_fast
+
+    arr = np.random.default_rng(0).integers(0, 255, (40, 40, 3), dtype=np.uint8)
+    grey = _jpeg_bytes(arr, mode="L")
+    p = tmp_path / "g.jpg"
+    p.write_bytes(grey)
+    assert np.array_equal(read_rgb_fast(p, data=grey), read_rgb(p, data=grey))
+    cut = _jpeg_bytes(arr)[:-400]  # truncated: no end-of-image marker
+    p.write_bytes(cut)
+    with pytest.raises(PhotoError, match="cannot be decoded"):
+        read_rgb_fast(p, data=cut)
+    png = tmp_path / "x.png"
+    Image.fromarray(arr).save(png)
+    assert np.array_equal(read_rgb_fast(png, data=png.read_bytes()), arr)

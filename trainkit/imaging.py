@@ -19,6 +19,7 @@ __all__ = [
     "PhotoError",
     "IMAGE_SUFFIXES",
     "read_rgb",
+    "read_rgb_fast",
     "gsd_mm_per_px",
     "FULL_FRAME_WIDTH_MM",
     "list_images",
@@ -87,6 +88,53 @@ def read_rgb(
         raise PhotoError(f"photo {path.name} cannot be decoded ({exc})") from None
     finally:
         Image.MAX_IMAGE_PIXELS = old_limit
+
+
+#: EXIF orientation -> numpy steps that make the pixels upright (what PIL's exif_transpose does).
+_ORIENT = {
+    2: lambda a: a[:, ::-1],
+    3: lambda a: a[::-1, ::-1],
+    4: lambda a: a[::-1],
+    5: lambda a: a.transpose(1, 0, 2),
+    6: lambda a: np.rot90(a, -1),
+    7: lambda a: a[::-1, ::-1].transpose(1, 0, 2),
+    8: lambda a: np.rot90(a, 1),
+}
+
+
+def read_rgb_fast(
+    path: str | Path, *, data: bytes, max_pixels: int = DEFAULT_MAX_PIXELS
+) -> np.ndarray:
+    """:func:`read_rgb` with OpenCV's JPEG decoder for complete 8-bit colour JPEGs.
+
+    About 2.5x faster than Pillow's path on 12-megapixel frames (benchmarks/run.py
+    scan); pixels may differ from Pillow's by a level or two (two builds of the JPEG
+    decoder). Anything else (other formats, greyscale or CMYK JPEG, a file without the
+    end-of-image marker, a decoder failure) goes through :func:`read_rgb`, so errors
+    and the colour rule stay the same.
+    """
+    import io
+
+    if data[:2] == b"\xff\xd8" and data.rstrip(b"\x00")[-2:] == b"\xff\xd9":
+        try:
+            with Image.open(io.BytesIO(data)) as im:  # reads the header only
+                plain = im.format == "JPEG" and im.mode == "RGB"
+                size = im.size
+                orientation = im.getexif().get(0x0112, 1) if plain else 1
+        except (OSError, SyntaxError, ValueError):
+            plain = False
+        if plain and size[0] * size[1] <= max_pixels:
+            import cv2
+
+            flags = cv2.IMREAD_COLOR | cv2.IMREAD_IGNORE_ORIENTATION
+            bgr = cv2.imdecode(np.frombuffer(data, np.uint8), flags)
+            if bgr is not None and bgr.shape[:2] == (size[1], size[0]):
+                rgb = cv2.cvtColor(
+                    bgr, cv2.COLOR_BGR2RGB, dst=bgr
+                )  # in place: one frame-sized buffer
+                step = _ORIENT.get(orientation)
+                return rgb if step is None else np.ascontiguousarray(step(rgb))
+    return read_rgb(path, data=data, max_pixels=max_pixels)
 
 
 def _size(path: Path) -> int:

@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from .fsutil import atomic_path
-from .imaging import PhotoError, find_images, read_rgb
+from .imaging import PhotoError, find_images, read_rgb_fast
 from .screener import FramePatches, Screener, usable_cores
 
 __all__ = ["scan_frames", "read_done", "FRAMES_FILE", "FLAGGED_FILE", "OVERLAY_CHOICES", "ENGINES"]
@@ -101,10 +101,10 @@ def _read_for_model(screener: Screener, path: Path, data: bytes, gsd_mm: float |
     decoder's reduced-size mode was used, k being full-size pixels per decoded pixel.
     """
     if gsd_mm is None or not screener.patch_mm or data[:2] != b"\xff\xd8":
-        return read_rgb(path, data=data), None
+        return read_rgb_fast(path, data=data), None
     factor = screener.patch_px / (screener.patch_mm / gsd_mm)  # model px per frame px
     if factor > 0.5:
-        return read_rgb(path, data=data), None
+        return read_rgb_fast(path, data=data), None
     import io
 
     from PIL import Image, ImageOps
@@ -142,7 +142,7 @@ def _finish(
     )
     if overlay_dir is not None and (overlays == "all" or (overlays == "flagged" and cells)):
         if rgb is None:
-            rgb = read_rgb(Path(rec["frame"]))
+            rgb = read_rgb_fast(Path(rec["frame"]), data=Path(rec["frame"]).read_bytes())
         name = f"{Path(rec['frame']).stem}-{rec['sha256'][:8]}-overlay.jpg"
         with atomic_path(overlay_dir / name) as tmp:
             cm.overlay(rgb).save(tmp, quality=88)
