@@ -327,6 +327,12 @@ class Screener:
             )
         return meta
 
+    @property
+    def executor(self) -> ThreadPoolExecutor | None:
+        """The worker threads that run batches (None with one worker); callers may queue
+        their own work there (e.g. decoding the next frame) to keep to one thread per core."""
+        return self._pool
+
     def predict(self, patches: np.ndarray, *, batch_size: int = 8) -> np.ndarray:
         """Class probabilities (N, C) for uint8 patches (N, S, S, 3).
 
