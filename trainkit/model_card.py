@@ -198,11 +198,21 @@ def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
         f"{ckpt.get('best_epoch')} (this checkpoint), batch size {cfg.get('batch_size')}, "
         f"peak learning rate {cfg.get('lr')}, seed {cfg.get('seed')}"
     )
+    if ckpt.get("selected_on"):
+        lines.append(f"- Epoch selected on: `{ckpt['selected_on']}`")
+    if "val_recall_at_fa" in best_val:
+        lines.append(
+            f"- Validation crack recall within a {float(cfg.get('false_alarm_budget', 0.05)):.0%} "
+            f"false-alarm budget at the best epoch: {_f(best_val.get('val_recall_at_fa'))}"
+        )
     if "val_balanced_accuracy" in best_val:
         lines.append(
             f"- Validation balanced accuracy at the best epoch: "
             f"{_f(best_val.get('val_balanced_accuracy'))}"
         )
+    if cfg.get("head_epochs"):
+        frozen = " on cached features" if cfg.get("cached_features") else ""
+        lines.append(f"- Head-only stage{frozen}: the first {cfg['head_epochs']} epochs")
     lines.append(f"- Weights: {_weights_source(cfg.get('weights'))}")
     if export:
         model = export.get("model")
