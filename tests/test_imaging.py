@@ -112,7 +112,7 @@ def _jpeg_bytes(arr: np.ndarray, orientation: int = 1, mode: str = "RGB") -> byt
 
 
 @pytest.mark.parametrize("orientation", range(1, 9))
-def test_fast_jpeg_path_matches_pillows_exif_transpose(tmp_path, orientation):
+def test_fast_jpeg_path_matches_pillows_exif_transpose(tmp_path, monkeypatch, orientation):
     """OpenCV decode + our orientation steps against Pillow's decode + ImageOps.exif_transpose."""
     from trainkit.imaging import read_rgb_fast
 
@@ -122,6 +122,12 @@ def test_fast_jpeg_path_matches_pillows_exif_transpose(tmp_path, orientation):
     path = tmp_path / "f.jpg"
     path.write_bytes(data)
     want = read_rgb(path, data=data)
+    import trainkit.imaging as imaging
+
+    def no_pillow(*_a, **_k):
+        raise AssertionError("fell back to Pillow: the OpenCV path was not taken")
+
+    monkeypatch.setattr(imaging, "read_rgb", no_pillow)
     got = read_rgb_fast(path, data=data)
     assert got.shape == want.shape and got.dtype == np.uint8
     # Two builds of the JPEG decoder: a level or two apart at most, never a different layout.
@@ -143,3 +149,23 @@ def test_fast_jpeg_path_falls_back_for_grey_truncated_and_other_files(tmp_path):
     png = tmp_path / "x.png"
     Image.fromarray(arr).save(png)
     assert np.array_equal(read_rgb_fast(png, data=png.read_bytes()), arr)
+
+
+def _with_header_size(data: bytes, width: int, height: int) -> bytes:
+    """The JPEG with the frame size in its SOF0 header replaced (ITU T.81 B.2.2 layout)."""
+    i = data.index(b"\xff\xc0")
+    return data[: i + 5] + height.to_bytes(2, "big") + width.to_bytes(2, "big") + data[i + 9 :]
+
+
+@pytest.mark.filterwarnings("ignore::PIL.Image.DecompressionBombWarning")
+def test_fast_jpeg_path_refuses_crafted_sizes_like_pillows_path(tmp_path):
+    """A header claiming 14000 x 14000 px (above Pillow's own bomb limit) in a few kB:
+    one PhotoError, as read_rgb gives, never Pillow's own DecompressionBombError."""
+    from trainkit.imaging import read_rgb_fast
+
+    arr = np.random.default_rng(1).integers(0, 255, (40, 40, 3), dtype=np.uint8)
+    data = _with_header_size(_jpeg_bytes(arr), 14000, 14000)
+    p = tmp_path / "bomb.jpg"
+    p.write_bytes(data)
+    with pytest.raises(PhotoError, match="larger than the limit"):
+        read_rgb_fast(p, data=data, max_pixels=100_000_000)

@@ -83,6 +83,56 @@ def test_resume_after_a_crash_gives_the_same_weights_as_an_uninterrupted_run(ws,
     assert all(torch.equal(ca["model"][k], cb["model"][k]) for k in ca["model"])
 
 
+def test_resume_is_exact_with_a_head_stage_cached_features_and_patience(ws, tmp_path):
+    cfg = load_train_config(
+        "demo",
+        {
+            "epochs": 4,
+            "head_epochs": 2,
+            "cached_features": True,
+            "early_stop_patience": 3,
+            "threads": 1,
+            "seed": 8,
+        },
+    )
+    train(ws, tmp_path / "whole", cfg, resume=False)
+
+    def crash_after(epoch):
+        def hook(row):
+            if row["epoch"] == epoch:
+                raise _Crash
+
+        return hook
+
+    with pytest.raises(_Crash):  # inside the head stage, on cached features
+        train(ws, tmp_path / "cut", cfg, resume=False, on_epoch=crash_after(1))
+    with pytest.raises(_Crash):  # right after unfreezing
+        train(ws, tmp_path / "cut", cfg, resume=True, on_epoch=crash_after(3))
+    train(ws, tmp_path / "cut", cfg, resume=True)
+    a, b = _state(tmp_path / "whole"), _state(tmp_path / "cut")
+    assert all(torch.equal(a[k], b[k]) for k in a)
+    assert _rows(tmp_path / "whole") == _rows(tmp_path / "cut")
+
+
+def test_early_stopping_counts_full_epochs_only_and_survives_resume(ws, tmp_path, monkeypatch):
+    """With a score that never improves, patience 2 and one head epoch: the head epoch and
+    the first full epoch reset the patience, so the run stops after epoch 4, and resuming
+    a stopped run trains nothing more."""
+    from trainkit import training as tr
+
+    monkeypatch.setattr(tr, "selection_score", lambda row, cfg, has_val: [0.0])
+    cfg = load_train_config(
+        "demo", {"epochs": 8, "head_epochs": 1, "early_stop_patience": 2, "threads": 1}
+    )
+    train(ws, tmp_path / "s", cfg, resume=False)
+    rows = list(csv.DictReader((tmp_path / "s" / "history.csv").open()))
+    assert [r["stage"] for r in rows] == ["head", "full", "full", "full"]
+    notes = []
+    train(ws, tmp_path / "s", cfg, resume=True, on_note=notes.append)
+    assert len(list(csv.DictReader((tmp_path / "s" / "history.csv").open()))) == 4
+    assert any("stopped early at epoch 4" in n for n in notes)
+
+
 def test_prefetch_thread_changes_nothing_but_speed(ws, tmp_path):
     base = {"epochs": 1, "threads": 1, "seed": 5}
     for name, prefetch in (("on", True), ("off", False)):
@@ -119,8 +169,26 @@ def test_head_then_full_stage_order(ws, tmp_path):
     train(ws, tmp_path / "hf", cfg, resume=False)
     rows = list(csv.DictReader((tmp_path / "hf" / "history.csv").open()))
     assert [r["stage"] for r in rows] == ["head", "full"]
-    # The second stage starts its own warm-up: its first learning rate is below the peak.
-    assert float(rows[1]["lr"]) <= cfg.lr
+
+
+def test_each_stage_has_its_own_warm_up_and_cosine():
+    """lr_schedule against get_lr's documented shape, restarted at the unfreeze."""
+    from trainkit.training import get_lr, lr_schedule
+
+    cfg = load_train_config("default", {"epochs": 10, "head_epochs": 4, "warmup_epochs": 1})
+    lr = lr_schedule(cfg, steps_per_epoch=10)
+    head_steps, full_steps = 40, 60
+    assert lr(0) == pytest.approx(cfg.lr / 10)  # warm-up step 1 of 10
+    assert lr(9) == pytest.approx(cfg.lr)  # warm-up done: the peak
+    assert lr(head_steps - 1) < 0.05 * cfg.lr  # the head stage has decayed
+    assert lr(head_steps) == pytest.approx(cfg.lr / 10)  # unfreeze: warm-up again
+    assert lr(head_steps + 9) == pytest.approx(cfg.lr)
+    mid = head_steps + 10 + (full_steps - 10) // 2
+    assert lr(mid) == pytest.approx(
+        get_lr(mid - head_steps, total_steps=full_steps, warmup_steps=10, peak_lr=cfg.lr)
+    )
+    # Cosine half-way between peak and 1 % floor: (1 + 0.01) / 2 of the peak.
+    assert lr(mid) == pytest.approx(cfg.lr * 0.505, rel=1e-6)
 
 
 def test_frozen_features_are_the_head_inputs(ws):

@@ -62,7 +62,9 @@ def load_patch_set(
     uint8 crops are kept in ``WORKSPACE/cache/`` as one .npy file per subset, keyed by
     the crops (path, size, modification time) and the input size, and opened
     memory-mapped copy-on-write (writes never reach the file): later runs and epochs decode no image file at all, and a changed
-    crop or label set gives a new key (labels are not part of the cache).
+    crop or label set gives a new key (labels are not part of the cache). Crops are
+    written once by ``trainkit tile``; one edited by hand with its size and modification
+    time preserved would not be noticed: delete ``WORKSPACE/cache/`` after such edits.
     """
     recs = [r for r in workspace.patches() if r.subset == subset and r.label is not None]
     size = input_px or workspace.tile_px
@@ -117,17 +119,18 @@ def _cached_crops(root: Path, recs, size: int, subset: str) -> np.ndarray:
         except (OSError, ValueError):  # a damaged cache file is rebuilt, never trusted
             pass
     imgs = _decode_crops(root, recs, size)
+    tmp = path.with_name(path.name + f".{os.getpid()}.tmp")
     try:
         cache_dir.mkdir(exist_ok=True)
         for old in cache_dir.glob(f"crops-{subset}-*.npy"):
             old.unlink(missing_ok=True)
-        tmp = path.with_name(path.name + f".{os.getpid()}.tmp")
         with tmp.open("wb") as fh:
             np.save(fh, imgs)
         os.replace(tmp, path)
-    except OSError:  # a read-only or full disk: train from memory, just without the cache
+        return np.load(path, mmap_mode="c")
+    except OSError:  # read-only or full disk, or another run replaced the file: use memory
+        tmp.unlink(missing_ok=True)
         return imgs
-    return np.load(path, mmap_mode="c")
 
 
 def build_photometric(cfg: AugmentConfig, seed: int | None = None):

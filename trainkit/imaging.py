@@ -116,13 +116,17 @@ def read_rgb_fast(
     import io
 
     if data[:2] == b"\xff\xd8" and data.rstrip(b"\x00")[-2:] == b"\xff\xd9":
+        old_limit = Image.MAX_IMAGE_PIXELS
+        Image.MAX_IMAGE_PIXELS = None  # the size is checked below against max_pixels
         try:
             with Image.open(io.BytesIO(data)) as im:  # reads the header only
                 plain = im.format == "JPEG" and im.mode == "RGB"
                 size = im.size
                 orientation = im.getexif().get(0x0112, 1) if plain else 1
-        except (OSError, SyntaxError, ValueError):
+        except Exception:  # anything odd: Pillow's path decides and words the error
             plain = False
+        finally:
+            Image.MAX_IMAGE_PIXELS = old_limit
         if plain and size[0] * size[1] <= max_pixels:
             import cv2
 

@@ -202,8 +202,9 @@ def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
         lines.append(f"- Epoch selected on: `{ckpt['selected_on']}`")
     if "val_recall_at_fa" in best_val:
         lines.append(
-            f"- Validation crack recall within a {float(cfg.get('false_alarm_budget', 0.05)):.0%} "
-            f"false-alarm budget at the best epoch: {_f(best_val.get('val_recall_at_fa'))}"
+            f"- Selection score at the best epoch (optimistic: the epoch was chosen on it): "
+            f"validation crack recall within a {float(cfg.get('false_alarm_budget', 0.05)):.0%} "
+            f"false-alarm budget {_f(best_val.get('val_recall_at_fa'))}"
         )
     if "val_balanced_accuracy" in best_val:
         lines.append(

@@ -341,14 +341,18 @@ def model_probabilities(
     Raises:
         ReviewError: when the model's classes are not the workspace's classes.
     """
-    from PIL import Image
-
     from .screener import Screener
 
     path = Path(model)
     if path.is_dir():
         path = path / "model.onnx"
-    scr = Screener(path)
+    with Screener(path) as scr:
+        return _predict_records(ws, records, scr, path, progress)
+
+
+def _predict_records(ws, records, scr, path: Path, progress) -> dict[int, np.ndarray]:
+    from PIL import Image
+
     if tuple(scr.class_names) != tuple(ws.class_set.names):
         raise ReviewError(
             f"model {path} predicts classes {scr.class_names}, the workspace uses "

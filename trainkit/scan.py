@@ -328,7 +328,7 @@ def scan_frames(
         "errors": 0,
     }
     t0 = time.perf_counter()
-    with frames_path.open("a", encoding="utf-8") as fh:
+    with screener, frames_path.open("a", encoding="utf-8") as fh:
 
         def write(rec: dict) -> None:
             fh.write(json.dumps(rec) + "\n")

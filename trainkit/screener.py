@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 import os
+import threading
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -38,6 +39,14 @@ _RAMP = np.array([[70, 110, 160], [250, 190, 40], [215, 40, 30]], dtype=float)
 
 class ScreenerError(ValueError):
     """The model file or the input frame cannot be used; the message says why."""
+
+
+_local = threading.local()
+
+
+def _mark_worker() -> None:
+    """Runs once in each Screener worker thread: predict() there must not wait on its own pool."""
+    _local.worker = True
 
 
 def usable_cores() -> int:
@@ -252,7 +261,9 @@ class Screener:
 
     Args:
         path: the ``model.onnx`` written by ``trainkit export``.
-        threads: ONNX Runtime intra-op threads (None = the cores this process may use).
+        threads: how many batches run at once, each on a one-thread ONNX Runtime run
+            (None = the cores this process may use). Call :meth:`close` (or use the
+            Screener in a ``with`` block) to stop these threads when done.
     """
 
     def __init__(self, path: str | Path, threads: int | None = None) -> None:
@@ -268,16 +279,22 @@ class Screener:
             raise ScreenerError(f"model file {self.path} does not exist")
         opts = ort.SessionOptions()
         # Parallel over batches, not inside each operator: one intra-op thread per session
-        # run, and as many runs at once as there are cores. On a 2-core CPU this ran
-        # MobileNetV3-Small 1.2-1.6x faster than one run with 2 intra-op threads, whose
-        # small depthwise layers leave the second thread waiting (benchmarks/run.py inference).
+        # run, and as many runs at once as there are cores. On the 2-core test machine this
+        # ran MobileNetV3-Small 1.09-1.49x faster than one run with 2 intra-op threads
+        # (benchmarks/run.py scan, model-only bound; 1.17-1.61x in a separate side-by-side
+        # study of ONNX Runtime settings): the small depthwise layers leave a second
+        # intra-op thread waiting.
         self.workers = int(self.threads or usable_cores())
         opts.intra_op_num_threads = 1
         opts.inter_op_num_threads = 1
         # No busy-waiting between runs: spinning threads would take the cores that decode
         # the next frames while the model runs (measured in benchmarks/run.py scan).
         opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
-        self._pool = ThreadPoolExecutor(self.workers, "screener") if self.workers > 1 else None
+        self._pool = (
+            ThreadPoolExecutor(self.workers, "screener", initializer=_mark_worker)
+            if self.workers > 1
+            else None
+        )
         # The memory arena stays on: turning it off lowered a 12-megapixel scan's peak
         # memory but cost about a quarter of the speed (measured, benchmarks/run.py scan).
         try:
@@ -329,9 +346,23 @@ class Screener:
 
     @property
     def executor(self) -> ThreadPoolExecutor | None:
-        """The worker threads that run batches (None with one worker); callers may queue
-        their own work there (e.g. decoding the next frame) to keep to one thread per core."""
+        """The worker threads that run batches (None with one worker). Callers may queue
+        their own work there (e.g. decoding the next frame) to keep to one thread per core;
+        a :meth:`predict` called from such a task runs its batches in that thread."""
         return self._pool
+
+    def close(self) -> None:
+        """Stop the worker threads (the Screener cannot predict afterwards)."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+        self._closed = True
+
+    def __enter__(self) -> Screener:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
 
     def predict(self, patches: np.ndarray, *, batch_size: int = 8) -> np.ndarray:
         """Class probabilities (N, C) for uint8 patches (N, S, S, 3).
@@ -345,15 +376,18 @@ class Screener:
             raise ScreenerError(
                 f"expected uint8 patches of shape (n, {s}, {s}, 3), got {patches.dtype} {patches.shape}"
             )
+        if getattr(self, "_closed", False):
+            raise ScreenerError("this Screener was closed; create a new one")
+        parallel = self._pool is not None and not getattr(_local, "worker", False)
+        if parallel:  # small inputs still use every core: at most ceil(n / workers) per batch
+            batch_size = max(1, min(batch_size, -(-len(patches) // self.workers)))
         chunks = [patches[i : i + batch_size] for i in range(0, len(patches), batch_size)]
 
         def run(chunk: np.ndarray) -> np.ndarray:
             return self._session.run(["probabilities"], {"image": chunk})[0]
 
         outs = (
-            list(self._pool.map(run, chunks))
-            if self._pool and len(chunks) > 1
-            else map(run, chunks)
+            list(self._pool.map(run, chunks)) if parallel and len(chunks) > 1 else map(run, chunks)
         )
         return np.concatenate([np.zeros((0, len(self.class_names)), dtype=np.float32), *outs])
 

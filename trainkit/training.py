@@ -110,6 +110,31 @@ def get_lr(step: int, *, total_steps: int, warmup_steps: int, peak_lr: float) ->
     return floor + 0.5 * (peak_lr - floor) * (1.0 + math.cos(math.pi * progress))
 
 
+def lr_schedule(cfg: TrainConfig, steps_per_epoch: int) -> Callable[[int], float]:
+    """Learning rate per optimiser step over the whole run.
+
+    Each stage (head-only, then full) has its own linear warm-up and cosine decay
+    (:func:`get_lr`), so unfreezing the backbone starts gently again.
+    """
+    warmup_steps = int(round(cfg.warmup_epochs * steps_per_epoch))
+    head_steps = steps_per_epoch * cfg.head_epochs
+    full_steps = steps_per_epoch * (cfg.epochs - cfg.head_epochs)
+
+    def lr_at(step: int) -> float:
+        if step < head_steps:
+            return get_lr(
+                step,
+                total_steps=head_steps,
+                warmup_steps=min(warmup_steps, head_steps // 2),
+                peak_lr=cfg.lr,
+            )
+        return get_lr(
+            step - head_steps, total_steps=full_steps, warmup_steps=warmup_steps, peak_lr=cfg.lr
+        )
+
+    return lr_at
+
+
 def class_weights(labels: np.ndarray, num_classes: int, mode: str) -> torch.Tensor | None:
     """Loss weights per class: none, balanced (1/count) or sqrt (1/sqrt(count)), mean 1 over present classes."""
     if mode == "none":
@@ -521,22 +546,7 @@ def train(
     steps_per_epoch = max(
         1, len(train_set) // cfg.batch_size + (len(train_set) % cfg.batch_size >= 2)
     )
-    warmup_steps = int(round(cfg.warmup_epochs * steps_per_epoch))
-    head_steps = steps_per_epoch * cfg.head_epochs
-    full_steps = steps_per_epoch * (cfg.epochs - cfg.head_epochs)
-
-    def lr_at(step: int) -> float:
-        # Each stage has its own warm-up and cosine decay: unfreezing starts gently again.
-        if step < head_steps:
-            return get_lr(
-                step,
-                total_steps=head_steps,
-                warmup_steps=min(warmup_steps, head_steps // 2),
-                peak_lr=cfg.lr,
-            )
-        return get_lr(
-            step - head_steps, total_steps=full_steps, warmup_steps=warmup_steps, peak_lr=cfg.lr
-        )
+    lr_at = lr_schedule(cfg, steps_per_epoch)
 
     forward = torch.compile(model) if cfg.compile else model
 
@@ -560,6 +570,9 @@ def train(
     history: list[dict] = []
     start_epoch, step = 1, 0
     best: dict = {"score": None, "epoch": 0, "state": None, "row": None}
+    # Early stopping counts full-network epochs only: a plateau while only the head
+    # trains never ends the run, and unfreezing starts with the whole patience.
+    patience_left = cfg.early_stop_patience
     last_path = exp / "last.pt"
     if resume and last_path.exists():
         try:
@@ -567,7 +580,7 @@ def train(
         except Exception:  # a damaged last.pt (e.g. disk full): start over rather than fail
             state = {}
         if (
-            state.get("format") == "trainkit-last-2"
+            state.get("format") == "trainkit-last-3"
             and state.get("config") == cfg_dict
             and state.get("data_digest") == experiment["data_digest"]
         ):
@@ -575,13 +588,22 @@ def train(
             optimizer.load_state_dict(state["optimizer"])
             start_epoch, step, history = state["epoch"] + 1, state["step"], state["history"]
             best = state["best"]
-            note(f"resuming after epoch {state['epoch']} from {last_path}")
+            patience_left = int(state["patience_left"])
+            if state["stopped_early"]:
+                start_epoch = cfg.epochs + 1  # the run had ended: rewrite its checkpoint only
+                note(f"{last_path} is a run that stopped early at epoch {state['epoch']}")
+            else:
+                note(f"resuming after epoch {state['epoch']} from {last_path}")
+        else:
+            note(
+                f"{last_path} cannot be resumed (another config, data set or kit version, "
+                "or a damaged file); starting from epoch 1"
+            )
     if on_start:
         on_start(cfg.epochs, len(train_set))
 
     has_val = len(val_set) > 0
     features = feature_labels = None
-    patience_left = cfg.early_stop_patience
     cv2_threads = _cv2_threads(1)  # augmentation runs beside torch's threads: keep OpenCV to one
     try:
         for epoch in range(start_epoch, cfg.epochs + 1):
@@ -635,26 +657,31 @@ def train(
             row = {"epoch": epoch, "stage": stage, **stats, **val}
             history.append(row)
             score = selection_score(row, cfg, has_val)
-            if best["score"] is None or score > best["score"]:
+            improved = best["score"] is None or score > best["score"]
+            if improved:
                 best = {
                     "score": score,
                     "epoch": epoch,
                     "state": {k: v.clone() for k, v in model.state_dict().items()},
                     "row": row,
                 }
+            if stage == "head" or epoch == cfg.head_epochs + 1 or improved:
                 patience_left = cfg.early_stop_patience
             else:
                 patience_left -= 1
+            stop = bool(cfg.early_stop_patience) and patience_left <= 0
             _write_history(exp / "history.csv", history)
             _save_atomic(
                 {
-                    "format": "trainkit-last-2",
+                    "format": "trainkit-last-3",
                     "model": model.state_dict(),
                     "optimizer": optimizer.state_dict(),
                     "epoch": epoch,
                     "step": step,
                     "history": history,
                     "best": best,
+                    "patience_left": patience_left,
+                    "stopped_early": stop,
                     "config": cfg_dict,
                     "data_digest": experiment["data_digest"],
                 },
@@ -662,7 +689,7 @@ def train(
             )
             if on_epoch:
                 on_epoch(row)
-            if cfg.early_stop_patience and patience_left <= 0:
+            if stop:
                 break
     finally:
         _cv2_threads(cv2_threads)
