@@ -233,7 +233,7 @@ def _model_only_bound(model: Path, patches: np.ndarray, per_frame: int) -> dict:
     return best
 
 
-def bench_scan(n_frames: int = 24) -> dict:
+def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
     """trainkit scan on 12-Mpx JPEGs against the model-only bound and a plain PyTorch loop."""
     import subprocess
 
@@ -259,39 +259,44 @@ def bench_scan(n_frames: int = 24) -> dict:
         # 1) model-only bound: patches already in memory, the best of several ways to run
         # ONNX Runtime (one session with intra-op threads on all cores, or batches run
         # concurrently on one-thread sessions as the Screener does) and batch sizes.
-        patches = rng.integers(0, 256, (per_frame * 2, 224, 224, 3), dtype=np.uint8)
-        bound = _model_only_bound(model, patches, per_frame)
-        best_cfg = max(bound, key=bound.get)
-
         # 2) the whole command, in a child process. Peak memory is the child's own VmHWM
         # (ru_maxrss of children would include the pages of this large parent at fork).
+        # The two alternate over `rounds`, and each keeps its best: the same statistic for both.
+        patches = rng.integers(0, 256, (per_frame * 2, 224, 224, 3), dtype=np.uint8)
         wrapper = (
             "import sys; from trainkit.cli import main; code = main(sys.argv[1:]); "
             "hwm = [ln for ln in open('/proc/self/status') if ln.startswith('VmHWM')][0]; "
             "print(hwm.split()[1], file=sys.stderr); sys.exit(code)"
         )
-        t0 = time.perf_counter()
-        child = subprocess.run(
-            [
-                sys.executable,
-                "-c",
-                wrapper,
-                "-q",
-                "scan",
-                str(frames),
-                "--model",
-                str(model),
-                "--out",
-                str(root / "out"),
-                "--overlays",
-                "none",
-            ],
-            check=True,
-            capture_output=True,
-            text=True,
-        )
-        scan_fps = n_frames / (time.perf_counter() - t0)
-        peak_mb = int(child.stderr.strip().splitlines()[-1]) / 1024
+        bound: dict[str, float] = {}
+        scan_runs, peak_mb = [], 0.0
+        for r in range(rounds):
+            for name, fps in _model_only_bound(model, patches, per_frame).items():
+                bound[name] = max(bound.get(name, 0.0), fps)
+            t0 = time.perf_counter()
+            child = subprocess.run(
+                [
+                    sys.executable,
+                    "-c",
+                    wrapper,
+                    "-q",
+                    "scan",
+                    str(frames),
+                    "--model",
+                    str(model),
+                    "--out",
+                    str(root / f"out-{r}"),
+                    "--overlays",
+                    "none",
+                ],
+                check=True,
+                capture_output=True,
+                text=True,
+            )
+            scan_runs.append(n_frames / (time.perf_counter() - t0))
+            peak_mb = max(peak_mb, int(child.stderr.strip().splitlines()[-1]) / 1024)
+        best_cfg = max(bound, key=bound.get)
+        scan_fps = max(scan_runs)
 
         # 3) plain reference: PIL decode, crop each patch, torchvision transforms, eager model
         from torchvision import transforms
@@ -326,6 +331,7 @@ def bench_scan(n_frames: int = 24) -> dict:
         "bound_configuration": best_cfg,
         "bound_by_configuration": {k: round(v, 3) for k, v in bound.items()},
         "scan_frames_per_second": round(scan_fps, 3),
+        "scan_frames_per_second_each_round": [round(v, 3) for v in scan_runs],
         "scan_share_of_bound": round(scan_fps / bound[best_cfg], 3),
         "reference_frames_per_second": round(ref_fps, 3),
         "speedup_over_reference": round(scan_fps / ref_fps, 2),
