@@ -232,6 +232,20 @@ def test_cached_feature_run_trains_the_head_and_keeps_the_backbone(ws, tmp_path)
     assert len(rows) == 3 and all(r["stage"] == "head" for r in rows)
     # Learning happened: the training loss fell from the first to the last epoch.
     assert float(rows[-1]["train_loss"]) < float(rows[0]["train_loss"])
+    # Validation in that stage runs the head on cached inputs: the same figures as the
+    # whole network gives for the chosen epoch's weights.
+    from torch import nn
+
+    from trainkit.data import load_patch_set
+    from trainkit.taxonomy import load_class_set
+    from trainkit.training import evaluate_split, load_checkpoint
+
+    model, ckpt, _ = load_checkpoint(tmp_path / "c")
+    val = load_patch_set(ws, "val", load_class_set("orientation"))
+    direct = evaluate_split(model, val, nn.NLLLoss(), 6)
+    logged = rows[ckpt["best_epoch"] - 1]
+    for k, v in direct.items():
+        assert float(logged[k]) == pytest.approx(v, rel=1e-4, abs=1e-5), k
 
 
 # ----- sampling and selection ----------------------------------------------------------

@@ -414,9 +414,14 @@ def evaluate_split(
     num_classes: int,
     *,
     false_alarm_budget: float = 0.05,
+    probs: np.ndarray | None = None,
 ) -> dict:
     """Validation loss, accuracy, balanced accuracy (= macro recall), crack recall at argmax
-    and the best crack recall whose false-alarm rate stays within ``false_alarm_budget``."""
+    and the best crack recall whose false-alarm rate stays within ``false_alarm_budget``.
+
+    ``probs`` (N, C), when given, are used instead of running ``model`` on the images
+    (the head-only stage on cached features computes them from cached inputs).
+    """
     keys = (
         "val_loss",
         "val_accuracy",
@@ -426,7 +431,8 @@ def evaluate_split(
     )
     if len(data) == 0:
         return dict.fromkeys(keys, float("nan"))
-    probs = predict_proba(model, data.images, num_classes=num_classes)
+    if probs is None:
+        probs = predict_proba(model, data.images, num_classes=num_classes)
     y = data.labels
     pred = probs.argmax(1)
     loss = float(loss_fn(torch.log(torch.from_numpy(probs).clamp_min(1e-12)), torch.from_numpy(y)))
@@ -603,7 +609,7 @@ def train(
         on_start(cfg.epochs, len(train_set))
 
     has_val = len(val_set) > 0
-    features = feature_labels = None
+    features = feature_labels = val_features = None
     cv2_threads = _cv2_threads(1)  # augmentation runs beside torch's threads: keep OpenCV to one
     try:
         for epoch in range(start_epoch, cfg.epochs + 1):
@@ -637,7 +643,7 @@ def train(
                     on_batch=on_batch,
                 )
             else:
-                features = None  # free the cache once the whole network trains
+                features = val_features = None  # free the caches once the whole network trains
                 stats, step = train_one_epoch(
                     model,
                     train_set,
@@ -651,8 +657,21 @@ def train(
                     forward=forward,
                     on_batch=on_batch,
                 )
+            val_probs = None
+            if stage == "head" and cfg.cached_features and has_val:
+                # The frozen backbone gives the same head inputs every epoch: run the head only.
+                if val_features is None:
+                    val_features = frozen_features(model, cfg.backbone, val_set, [(0, False)])[0]
+                head = model.get_submodule(head_module_name(cfg.backbone)).eval()
+                with torch.no_grad():
+                    val_probs = torch.softmax(head(val_features), dim=1).numpy()
             val = evaluate_split(
-                model, val_set, val_loss_fn, num_classes, false_alarm_budget=cfg.false_alarm_budget
+                model,
+                val_set,
+                val_loss_fn,
+                num_classes,
+                false_alarm_budget=cfg.false_alarm_budget,
+                probs=val_probs,
             )
             row = {"epoch": epoch, "stage": stage, **stats, **val}
             history.append(row)
