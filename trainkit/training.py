@@ -501,7 +501,7 @@ def train(
         resume: continue from ``last.pt`` if it exists and matches the config and data.
         on_epoch: called with each history row.
         on_batch: called with the batch size after every optimiser step.
-        on_start: called with (total epochs, training patches per epoch) before training.
+        on_start: called with (epochs still to run, training patches per epoch) before training.
         on_note: called with a line of text about slow preparation steps.
 
     Returns:
@@ -598,6 +598,11 @@ def train(
             if state["stopped_early"]:
                 start_epoch = cfg.epochs + 1  # the run had ended: rewrite its checkpoint only
                 note(f"{last_path} is a run that stopped early at epoch {state['epoch']}")
+            elif start_epoch > cfg.epochs:
+                note(
+                    f"{last_path} is a finished run of {state['epoch']} epochs "
+                    "(--restart trains again from epoch 1)"
+                )
             else:
                 note(f"resuming after epoch {state['epoch']} from {last_path}")
         else:
@@ -605,8 +610,8 @@ def train(
                 f"{last_path} cannot be resumed (another config, data set or kit version, "
                 "or a damaged file); starting from epoch 1"
             )
-    if on_start:
-        on_start(cfg.epochs, len(train_set))
+    if on_start:  # the epochs still to run (all of them unless resuming)
+        on_start(max(0, cfg.epochs - start_epoch + 1), len(train_set))
 
     has_val = len(val_set) > 0
     features = feature_labels = val_features = None
