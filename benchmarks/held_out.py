@@ -22,7 +22,6 @@ from __future__ import annotations
 import argparse
 import csv
 import json
-import math
 import shutil
 import sys
 import time
@@ -93,15 +92,6 @@ def _wilson(k: int, n: int) -> list[float]:
     return [round(float(lo), 4), round(float(hi), 4)]
 
 
-def threshold_at_budget(is_crack: np.ndarray, p: np.ndarray, budget: float) -> float:
-    """Smallest threshold (flag when p >= t) whose false-alarm rate on these data is <= budget."""
-    neg = np.sort(p[~is_crack])[::-1]
-    k = math.floor(budget * len(neg) + 1e-9)
-    if k >= len(neg):
-        return 0.0
-    return float(np.nextafter(neg[k], 1.0))
-
-
 def main(argv: list[str]) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("out", type=Path)
@@ -155,18 +145,20 @@ def main(argv: list[str]) -> int:
     summary = train(ws, exp, cfg, resume=False)
     t_train = time.perf_counter() - t1
 
+    from trainkit.metrics import recall_at_false_alarm, threshold_for_false_alarms
+
     model, _, _ = load_checkpoint(exp)
     val = load_patch_set(ws, "val", cs)
     test = load_patch_set(ws, "test", cs)
     pv = predict_proba(model, np.asarray(val.images), num_classes=cs.num_classes)
     pt = predict_proba(model, np.asarray(test.images), num_classes=cs.num_classes)
     crack_v, crack_t = val.labels != 0, test.labels != 0
-    thr = threshold_at_budget(crack_v, 1.0 - pv[:, 0], args.budget)
+    thr = threshold_for_false_alarms(
+        crack_v, np.clip(1.0 - pv[:, 0], 0, 1), max_false_alarm_rate=args.budget
+    )
     flagged = (1.0 - pt[:, 0]) >= thr
     tp, n_pos = int((flagged & crack_t).sum()), int(crack_t.sum())
     fp, n_neg = int((flagged & ~crack_t).sum()), int((~crack_t).sum())
-
-    from trainkit.metrics import recall_at_false_alarm
 
     linear = [i for i, c in enumerate(cs.names) if cs.angle_centres[i] is not None]
     sel = flagged & np.isin(test.labels, linear)

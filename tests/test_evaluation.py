@@ -25,7 +25,8 @@ TOP_LEVEL_KEYS = {
     "checkpoint_epoch", "data_digest", "evaluated_digest", "kit_version", "created", "caution",
 }  # fmt: skip
 SCREENING_KEYS = {
-    "threshold", "threshold_source", "threshold_independent", "target_recall", "tp", "fn", "fp",
+    "threshold", "threshold_source", "threshold_independent", "target_recall", "max_false_alarms",
+    "tp", "fn", "fp",
     "tn", "recall", "recall_ci_low", "recall_ci_high", "recall_interval", "specificity",
     "false_alarm_rate", "precision", "flagged_share", "validation", "at_default_threshold",
 }  # fmt: skip
@@ -330,3 +331,26 @@ def test_report_renders_in_chromium_with_the_numbers_of_metrics_json(evaluated, 
     for src in dom.images:
         assert src.startswith("data:image/png;base64,")
         Image.open(io.BytesIO(base64.b64decode(src.split(",", 1)[1]))).verify()
+
+
+def test_threshold_from_a_false_alarm_budget_on_validation(evaluated, tmp_path):
+    """--max-false-alarms: the validation false-alarm rate at the chosen threshold is within
+    the budget, and the threshold is the lowest such (recomputed from the validation scores
+    with scikit-learn's roc_curve: the best TPR with FPR <= budget is reached)."""
+    from sklearn.metrics import roc_curve
+
+    from trainkit.evaluation import _run_experiment, screening_probability
+
+    a, _, _ = evaluated
+    c = _clone_experiment(a, tmp_path / "c")
+    res = evaluate_experiment(c, max_false_alarms=0.05)
+    s = res["screening"]
+    assert s["max_false_alarms"] == 0.05 and s["target_recall"] is None
+    assert "false-alarm rate at most 0.05" in s["threshold_source"]
+    assert s["validation"]["false_alarm_rate"] <= 0.05
+    run = _run_experiment(c, "test", 0.95, None)
+    y, p = run.val.labels != 0, screening_probability(run.val_probs)
+    fpr, tpr, _ = roc_curve(y, p)
+    assert s["validation"]["recall"] == pytest.approx(tpr[fpr <= 0.05 + 1e-12].max())
+    html = (c / "evaluation" / "report.html").read_text(encoding="utf-8")
+    assert "Allowing at most 5% false alarms on validation" in html

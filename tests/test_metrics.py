@@ -662,3 +662,30 @@ def test_breakdown_matches_sklearn_per_group():
 def test_breakdown_order_must_cover_every_key():
     with pytest.raises(ValueError, match=r"keys missing from it: \['b'\]"):
         M.breakdown(["a", "b"], [1, 0], [1, 0], [1, 1], order=["a"])
+
+
+@pytest.mark.parametrize("seed", range(20))
+def test_threshold_for_false_alarms_is_the_roc_point_within_budget(seed):
+    """Checked against scikit-learn's roc_curve: the false-alarm rate at the threshold is
+    within the budget and its recall is the best any threshold within the budget reaches."""
+    from sklearn.metrics import roc_curve
+
+    from trainkit.metrics import recall_at_false_alarm, threshold_for_false_alarms
+
+    rng = np.random.default_rng(100 + seed)
+    n = int(rng.integers(6, 90))
+    y = rng.random(n) < 0.4
+    y[0], y[-1] = True, False
+    p = np.round(rng.random(n) * 0.5 + y * rng.random(n) * 0.5, int(rng.integers(1, 4)))
+    budget = float(rng.choice([0.0, 0.05, 0.1, 0.3]))
+    t = threshold_for_false_alarms(y, p, max_false_alarm_rate=budget)
+    flagged = p >= t
+    assert flagged[~y].mean() <= budget + 1e-12
+    fpr, tpr, _ = roc_curve(y, p)
+    best = tpr[fpr <= budget + 1e-12].max()
+    assert flagged[y].mean() == pytest.approx(best)
+    assert recall_at_false_alarm(y, p, budget=budget) == pytest.approx(best)
+    # Lowest such threshold: lowering it to the next non-crack score breaks the budget.
+    below = p[~y][p[~y] < t]
+    if below.size:
+        assert (p[~y] >= below.max()).mean() > budget

@@ -594,6 +594,12 @@ def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> di
     help="Screening recall the threshold must reach on validation.",
 )
 @click.option(
+    "--max-false-alarms",
+    type=click.FloatRange(0, 1, max_open=True),
+    default=None,
+    help="Instead of --target-recall: the lowest threshold whose validation false-alarm rate is at most this.",
+)
+@click.option(
     "--require-recall",
     type=click.FloatRange(0, 1),
     default=None,
@@ -633,6 +639,7 @@ def evaluate(
     exp_dir,
     subset,
     target_recall,
+    max_false_alarms,
     require_recall,
     confidence,
     interval,
@@ -654,6 +661,7 @@ def evaluate(
             exp_dir,
             split=subset,
             target_recall=target_recall,
+            max_false_alarms=max_false_alarms,
             require_recall=require_recall,
             confidence=confidence,
             interval_method=interval,

@@ -27,7 +27,9 @@ key                                    meaning
 ``screening``                          crack vs none, flagged when ``1 - P(none) >= threshold``:
                                        ``threshold``, ``threshold_source``,
                                        ``threshold_independent`` (false when chosen on the
-                                       evaluated patches), ``target_recall``, ``tp``, ``fn``,
+                                       evaluated patches), ``target_recall`` and
+                                       ``max_false_alarms`` (the rule used; the other is
+                                       null), ``tp``, ``fn``,
                                        ``fp``, ``tn``, ``recall``, ``recall_ci_low``,
                                        ``recall_ci_high``, ``recall_interval``, ``specificity``,
                                        ``false_alarm_rate`` (= fp / (fp + tn)), ``precision``,
@@ -177,7 +179,11 @@ def _predict_logits(model, images: np.ndarray, num_classes: int, batch_size: int
 
 
 def _run_experiment(
-    exp_dir: str | Path, split: str, target_recall: float, workspace: str | Path | None
+    exp_dir: str | Path,
+    split: str,
+    target_recall: float,
+    workspace: str | Path | None,
+    max_false_alarms: float | None = None,
 ) -> _Run:
     from .training import load_checkpoint
 
@@ -203,7 +209,17 @@ def _run_experiment(
 
     # Operating threshold: chosen on validation for the target recall, reported on `split`.
     threshold, source = 0.5, "default 0.5 (validation has no crack patches)"
-    if len(val) and np.any(val.labels != 0):
+    if max_false_alarms is not None:
+        if len(val) and np.any(val.labels == 0):
+            threshold = M.threshold_for_false_alarms(
+                val.labels != 0,
+                screening_probability(val_probs),
+                max_false_alarm_rate=max_false_alarms,
+            )
+            source = f"validation subset, false-alarm rate at most {max_false_alarms:g}"
+        else:
+            source = "default 0.5 (validation has no clean patches)"
+    elif len(val) and np.any(val.labels != 0):
         threshold = M.threshold_for_recall(
             val.labels != 0, screening_probability(val_probs), target_recall=target_recall
         )
@@ -337,6 +353,7 @@ def evaluate_experiment(
     workspace: str | Path | None = None,
     against: str | Path | None = None,
     temperature_scaling: bool = False,
+    max_false_alarms: float | None = None,
 ) -> dict:
     """Evaluate an experiment's checkpoint on one subset; write the evaluation folder.
 
@@ -354,6 +371,8 @@ def evaluate_experiment(
             ``workspace`` when given, else the workspace it was trained on.
         temperature_scaling: fit one temperature on validation and report the calibration
             before and after. Report only: predictions, threshold and export are unchanged.
+        max_false_alarms: instead of a target recall, choose the operating threshold on
+            validation as the lowest one whose false-alarm rate there is at most this.
 
     Returns:
         The metrics dictionary that was written to metrics.json (keys: module docstring).
@@ -372,8 +391,10 @@ def evaluate_experiment(
     method = M.recall_interval(0, 1, method=interval_method).method  # validates, canonical name
     if require_recall is not None and not 0.0 <= float(require_recall) <= 1.0:
         raise EvaluationError(f"expected require_recall in [0, 1], got {require_recall}")
+    if max_false_alarms is not None and not 0.0 <= float(max_false_alarms) < 1.0:
+        raise EvaluationError(f"expected max_false_alarms in [0, 1), got {max_false_alarms}")
 
-    run = _run_experiment(exp_dir, split, target_recall, workspace)
+    run = _run_experiment(exp_dir, split, target_recall, workspace, max_false_alarms)
     data, probs, class_set, ckpt = run.data, run.probs, run.class_set, run.ckpt
     names = list(class_set.names)
     threshold = run.threshold
@@ -454,7 +475,7 @@ def evaluate_experiment(
     comparison, compare_extra, run_b = None, None, None
     if against is not None:
         # The second experiment reads the same workspace when one was given (it moved).
-        run_b = _run_experiment(against, split, target_recall, workspace)
+        run_b = _run_experiment(against, split, target_recall, workspace, max_false_alarms)
         comparison, compare_extra = _compare(run, run_b, out)
 
     gate = None
@@ -502,7 +523,8 @@ def evaluate_experiment(
             "threshold": threshold,
             "threshold_source": run.threshold_source,
             "threshold_independent": split != "val",
-            "target_recall": float(target_recall),
+            "target_recall": None if max_false_alarms is not None else float(target_recall),
+            "max_false_alarms": None if max_false_alarms is None else float(max_false_alarms),
             "recall_ci_low": recall_ci.low,
             "recall_ci_high": recall_ci.high,
             "recall_interval": recall_ci.to_dict(),

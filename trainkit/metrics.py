@@ -30,6 +30,7 @@ __all__ = [
     "scale_bands",
     "screening_scores",
     "softmax",
+    "threshold_for_false_alarms",
     "threshold_for_recall",
 ]
 
@@ -469,6 +470,34 @@ def threshold_for_recall(
         m += 1
     pos_scores = np.sort(p[y])[::-1]
     return float(pos_scores[m - 1])
+
+
+def threshold_for_false_alarms(
+    y_true_crack: ArrayLike, p_crack: ArrayLike, *, max_false_alarm_rate: float
+) -> float:
+    """The smallest threshold whose false-alarm rate on these data is at most the budget.
+
+    With the non-crack scores sorted descending as v_0 >= v_1 >= ..., at most
+    k = floor(budget * #non-crack) of them may be flagged, so the threshold is the
+    smallest float above v_k (flagging uses ``>=``); the recall there is
+    :func:`recall_at_false_alarm`. A budget covering every non-crack patch gives 0.0.
+
+    Raises:
+        ValueError: without non-crack patches, or a budget outside [0, 1].
+    """
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    _same_length(y, p, "y_true_crack", "p_crack")
+    b = float(max_false_alarm_rate)
+    if not 0.0 <= b <= 1.0:
+        raise ValueError(f"expected max_false_alarm_rate in [0, 1], got {max_false_alarm_rate}")
+    neg = np.sort(p[~y])[::-1]
+    if neg.size == 0:
+        raise ValueError("expected at least one non-crack patch to set a false-alarm threshold")
+    k = math.floor(b * neg.size + 1e-9)
+    if k >= neg.size:
+        return 0.0
+    return float(np.nextafter(neg[k], np.inf))
 
 
 def recall_at_false_alarm(y_true_crack: ArrayLike, p_crack: ArrayLike, *, budget: float) -> float:

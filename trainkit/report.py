@@ -400,8 +400,13 @@ photo scale {scale_txt}</td></tr>
 
     # ---- screening table
     cost = s["fp"] - s["at_default_threshold"]["fp"]
+    aim = (
+        f"Allowing at most {s['max_false_alarms']:.0%} false alarms on validation"
+        if s.get("max_false_alarms") is not None
+        else f"Reaching the target recall {s['target_recall']:g} (set on validation)"
+    )
     cost_txt = (
-        f"Reaching the target recall {s['target_recall']:g} (set on validation) flags "
+        f"{aim} flags "
         f"{_m(R, 'screening.fp')} of {s['fp'] + s['tn']} clean {_e(R['split'])} patches as "
         f"cracks, {abs(cost)} {'more' if cost >= 0 else 'fewer'} than the default threshold "
         f"0.5, and sends {_m(R, 'screening.flagged_share')} of all patches to a person."
