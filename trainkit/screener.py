@@ -280,10 +280,10 @@ class Screener:
         opts = ort.SessionOptions()
         # Parallel over batches, not inside each operator: one intra-op thread per session
         # run, and as many runs at once as there are cores. On the 2-core test machine this
-        # ran MobileNetV3-Small 1.09-1.49x faster than one run with 2 intra-op threads
-        # (benchmarks/run.py scan, model-only bound; 1.17-1.61x in a separate side-by-side
-        # study of ONNX Runtime settings): the small depthwise layers leave a second
-        # intra-op thread waiting.
+        # ran MobileNetV3-Small 1.0-1.4x as fast as one run with 2 intra-op threads over
+        # five runs of benchmarks/run.py scan (model-only bound; never slower), and
+        # 1.17-1.61x in a separate side-by-side study of ONNX Runtime settings: the small
+        # depthwise layers leave a second intra-op thread waiting.
         self.workers = int(self.threads or usable_cores())
         opts.intra_op_num_threads = 1
         opts.inter_op_num_threads = 1
