@@ -472,6 +472,13 @@ def threshold_for_recall(
     return float(pos_scores[m - 1])
 
 
+def _check_budget(budget: float) -> float:
+    b = float(budget)
+    if not 0.0 <= b <= 1.0:
+        raise ValueError(f"expected a false-alarm budget in [0, 1], got {budget}")
+    return b
+
+
 def threshold_for_false_alarms(
     y_true_crack: ArrayLike, p_crack: ArrayLike, *, max_false_alarm_rate: float
 ) -> float:
@@ -488,9 +495,7 @@ def threshold_for_false_alarms(
     y = _as_bool(y_true_crack, "y_true_crack")
     p = _as_unit_float(p_crack, "p_crack")
     _same_length(y, p, "y_true_crack", "p_crack")
-    b = float(max_false_alarm_rate)
-    if not 0.0 <= b <= 1.0:
-        raise ValueError(f"expected max_false_alarm_rate in [0, 1], got {max_false_alarm_rate}")
+    b = _check_budget(max_false_alarm_rate)
     neg = np.sort(p[~y])[::-1]
     if neg.size == 0:
         raise ValueError("expected at least one non-crack patch to set a false-alarm threshold")
@@ -503,14 +508,13 @@ def threshold_for_false_alarms(
 def recall_at_false_alarm(y_true_crack: ArrayLike, p_crack: ArrayLike, *, budget: float) -> float:
     """The highest recall any threshold reaches while its false-alarm rate stays within ``budget``.
 
-    With the non-crack scores sorted descending as v_0 >= v_1 >= ..., at most
-    k = floor(budget * #non-crack) false alarms are allowed, so the threshold must lie
-    just above v_k and the recall is ``#{crack: p > v_k} / #cracks`` (1.0 when k covers
-    every non-crack patch). This is the largest true-positive rate on the ROC curve whose
-    false-positive rate is <= budget. Used to select checkpoints at a fixed false-alarm cost.
+    This is the recall at :func:`threshold_for_false_alarms` (the threshold just above
+    the k-th highest non-crack score, k = floor(budget * #non-crack)), i.e. the largest
+    true-positive rate on the ROC curve whose false-positive rate is <= budget. Used to
+    select checkpoints at a fixed false-alarm cost.
 
     Returns:
-        The recall, or nan when there are no crack patches.
+        The recall; nan when there are no crack patches, 1.0 when there are no others.
 
     Raises:
         ValueError: on shape mismatch, probabilities outside [0, 1], budget outside [0, 1].
@@ -518,17 +522,14 @@ def recall_at_false_alarm(y_true_crack: ArrayLike, p_crack: ArrayLike, *, budget
     y = _as_bool(y_true_crack, "y_true_crack")
     p = _as_unit_float(p_crack, "p_crack")
     _same_length(y, p, "y_true_crack", "p_crack")
-    b = float(budget)
-    if not 0.0 <= b <= 1.0:
-        raise ValueError(f"expected budget in [0, 1], got {budget}")
-    pos, neg = p[y], p[~y]
-    if pos.size == 0:
+    if not y.any():
+        _check_budget(budget)
         return float("nan")
-    k = math.floor(b * neg.size + 1e-9)
-    if k >= neg.size:
+    if y.all():
+        _check_budget(budget)
         return 1.0
-    v_k = np.sort(neg)[::-1][k]
-    return float(np.mean(pos > v_k))
+    t = threshold_for_false_alarms(y, p, max_false_alarm_rate=budget)
+    return float(np.mean(p[y] >= t))
 
 
 # --------------------------------------------------------------------------- calibration

@@ -278,36 +278,26 @@ def _augmented_batches(data: PatchSet, order: np.ndarray, augment: Augmenter, rn
         yield x, y
 
 
-def _autocast(cfg: TrainConfig):
-    return torch.autocast("cpu", dtype=torch.bfloat16, enabled=cfg.bf16)
-
-
-def train_one_epoch(
-    model: nn.Module,
-    data: PatchSet,
+def _fit(
+    pairs,
+    forward: Callable[[torch.Tensor], torch.Tensor],
     *,
-    augment: Augmenter,
     optimizer: torch.optim.Optimizer,
     loss_fn: nn.Module,
-    cfg: TrainConfig,
-    rng: np.random.Generator,
     lr_at: Callable[[int], float],
     step: int,
-    forward: Callable[[torch.Tensor], torch.Tensor] | None = None,
+    bf16: bool = False,
     on_batch: Callable[[int], None] | None = None,
 ) -> tuple[dict, int]:
-    """One pass over the training patches (order from ``cfg.sampling``); returns stats and the next step."""
-    forward = forward or model
-    order = epoch_order(data.labels, rng, cfg.sampling)
+    """Optimiser steps over (x, y) batches; returns the epoch's stats and the next step."""
     total_loss = correct = seen = 0
     lr = 0.0
     t0 = time.perf_counter()
-    source = lambda: _augmented_batches(data, order, augment, rng, cfg.batch_size)  # noqa: E731
-    for x, y in _Prefetcher(source) if cfg.prefetch else source():
+    for x, y in pairs:
         lr = lr_at(step)
         for group in optimizer.param_groups:
             group["lr"] = lr
-        with _autocast(cfg):
+        with torch.autocast("cpu", dtype=torch.bfloat16, enabled=bf16):
             logits = forward(x)
         loss = loss_fn(logits.float(), y)
         optimizer.zero_grad(set_to_none=True)
@@ -327,6 +317,35 @@ def train_one_epoch(
         "train_images_per_s": seen / seconds if seconds > 0 else 0.0,
         "seconds": seconds,
     }, step
+
+
+def train_one_epoch(
+    model: nn.Module,
+    data: PatchSet,
+    *,
+    augment: Augmenter,
+    optimizer: torch.optim.Optimizer,
+    loss_fn: nn.Module,
+    cfg: TrainConfig,
+    rng: np.random.Generator,
+    lr_at: Callable[[int], float],
+    step: int,
+    forward: Callable[[torch.Tensor], torch.Tensor] | None = None,
+    on_batch: Callable[[int], None] | None = None,
+) -> tuple[dict, int]:
+    """One pass over the training patches (order from ``cfg.sampling``); returns stats and the next step."""
+    order = epoch_order(data.labels, rng, cfg.sampling)
+    source = lambda: _augmented_batches(data, order, augment, rng, cfg.batch_size)  # noqa: E731
+    return _fit(
+        _Prefetcher(source) if cfg.prefetch else source(),
+        forward or model,
+        optimizer=optimizer,
+        loss_fn=loss_fn,
+        lr_at=lr_at,
+        step=step,
+        bf16=cfg.bf16,
+        on_batch=on_batch,
+    )
 
 
 @torch.no_grad()
@@ -374,37 +393,26 @@ def train_head_on_features(
     head.train()
     order = epoch_order(labels[0], rng, cfg.sampling)
     elem = rng.integers(features.shape[0], size=len(order))
-    total_loss = correct = seen = 0
-    lr = 0.0
-    t0 = time.perf_counter()
-    for sl in batches(np.arange(len(order)), cfg.batch_size):
-        if len(sl) < 2:
-            continue
-        idx, e = order[sl], elem[sl]
-        x = features[torch.from_numpy(e), torch.from_numpy(idx)]
-        y = torch.from_numpy(labels[e, idx])
-        lr = lr_at(step)
-        for group in optimizer.param_groups:
-            group["lr"] = lr
-        logits = head(x)
-        loss = loss_fn(logits, y)
-        optimizer.zero_grad(set_to_none=True)
-        loss.backward()
-        optimizer.step()
-        total_loss += float(loss.detach()) * len(y)
-        correct += int((logits.argmax(1) == y).sum())
-        seen += len(y)
-        step += 1
-        if on_batch:
-            on_batch(len(y))
-    seconds = time.perf_counter() - t0
-    return {
-        "lr": lr,
-        "train_loss": total_loss / max(1, seen),
-        "train_accuracy": correct / max(1, seen),
-        "train_images_per_s": seen / seconds if seconds > 0 else 0.0,
-        "seconds": seconds,
-    }, step
+
+    def pairs():
+        for sl in batches(np.arange(len(order)), cfg.batch_size):
+            if len(sl) < 2:
+                continue
+            idx, e = order[sl], elem[sl]
+            yield (
+                features[torch.from_numpy(e), torch.from_numpy(idx)],
+                torch.from_numpy(labels[e, idx]),
+            )
+
+    return _fit(
+        pairs(),
+        head,
+        optimizer=optimizer,
+        loss_fn=loss_fn,
+        lr_at=lr_at,
+        step=step,
+        on_batch=on_batch,
+    )
 
 
 def evaluate_split(
@@ -472,8 +480,13 @@ def _save_atomic(obj: dict, path: Path) -> None:
     os.replace(tmp, path)
 
 
+def native_bf16() -> bool:
+    """Whether this CPU does bfloat16 arithmetic natively (oneDNN's own check)."""
+    return bool(torch.ops.mkldnn._is_mkldnn_bf16_supported())
+
+
 def _check_bf16(cfg: TrainConfig) -> None:
-    if cfg.bf16 and not torch.ops.mkldnn._is_mkldnn_bf16_supported():
+    if cfg.bf16 and not native_bf16():
         raise TrainingError(
             "bf16: this CPU has no native bfloat16 arithmetic (AVX512-BF16 or AMX), so autocast "
             "would emulate it and run several times slower (measured in benchmarks/run.py); "
