@@ -349,12 +349,17 @@ def test_inconsistent_settings_give_one_line(overrides, needle):
     assert needle in msg and len(msg.splitlines()) == 1
 
 
-def test_bf16_is_refused_on_a_cpu_without_it(ws, tmp_path):
-    if torch.ops.mkldnn._is_mkldnn_bf16_supported():
-        pytest.skip("this CPU has native bf16")
+def test_bf16_is_refused_on_a_cpu_without_it_and_allowed_with_it(ws, tmp_path, monkeypatch):
+    """The refusal follows the CPU check, whatever CPU runs the test."""
+    from trainkit import training as tr
+
     cfg = load_train_config("demo", {"epochs": 1, "bf16": True})
+    monkeypatch.setattr(tr, "native_bf16", lambda: False)
     with pytest.raises(TrainingError, match="no native bfloat16"):
         train(ws, tmp_path / "bf", cfg)
+    assert not (tmp_path / "bf" / "history.csv").exists()  # refused before any training
+    monkeypatch.setattr(tr, "native_bf16", lambda: True)
+    tr._check_bf16(cfg)  # accepted: no error
 
 
 def test_thread_budget_follows_the_environment_and_affinity(monkeypatch):
