@@ -8,6 +8,7 @@ import sys
 
 import numpy as np
 import pytest
+from _crops import workspace_of_crops
 from PIL import Image
 
 from trainkit.review import (
@@ -28,27 +29,8 @@ CS = load_class_set("orientation")
 
 def make_ws(root, n=6, size=16, skip=()):
     """One photo with n patches and real PNG crops; patches at indices in ``skip`` have review_skip."""
-    ws = Workspace.create(root, class_set=CS, tile_px=size)
-    patches = []
-    for c in range(n):
-        rel = f"patches/r000_c{c:03d}.png"
-        (ws.root / rel).parent.mkdir(parents=True, exist_ok=True)
-        Image.fromarray(np.full((size, size, 3), 10 * c, np.uint8)).save(ws.root / rel)
-        patches.append(
-            dict(row=0, col=c, x0=size * c, y0=0, x1=size * c + size, y1=size, crop=rel)
-            | dict(patch_mm=None, focus=1.0, clipped=0.0, review_skip=int(c in skip))
-        )
-    ws.add_photo_with_patches(
-        name="p.jpg",
-        source_path="/x/p.jpg",
-        width=size * n,
-        height=size,
-        gsd_mm=None,
-        group_id="g",
-        sha256="0" * 64,
-        patches=patches,
-    )
-    return ws
+    images = [np.full((size, size, 3), 10 * c, np.uint8) for c in range(n)]
+    return workspace_of_crops(root, images, skip=skip)
 
 
 def events_from_table(table, labels):

@@ -9,7 +9,7 @@ from pathlib import Path
 
 import numpy as np
 import pexpect
-from PIL import Image
+from _crops import workspace_of_crops
 
 from trainkit.taxonomy import load_class_set
 from trainkit.workspace import Workspace
@@ -19,31 +19,14 @@ TIMEOUT = 20
 
 def make_ws(root: Path, n: int = 8, size: int = 32) -> Workspace:
     """A workspace of n patches with real crops: a dark vertical line on odd patches."""
-    ws = Workspace.create(root, class_set=load_class_set("orientation"), tile_px=size)
     rng = np.random.default_rng(0)
-    patches = []
+    images = []
     for c in range(n):
         img = np.clip(150 + 10 * rng.standard_normal((size, size, 3)), 0, 255).astype(np.uint8)
         if c % 2:
             img[:, size // 2] = 30
-        rel = f"patches/r000_c{c:03d}.png"
-        (ws.root / rel).parent.mkdir(parents=True, exist_ok=True)
-        Image.fromarray(img).save(ws.root / rel)
-        patches.append(
-            dict(row=0, col=c, x0=size * c, y0=0, x1=size * c + size, y1=size, crop=rel)
-            | dict(patch_mm=None, focus=1.0, clipped=0.0)
-        )
-    ws.add_photo_with_patches(
-        name="p.jpg",
-        source_path="/x/p.jpg",
-        width=size * n,
-        height=size,
-        gsd_mm=None,
-        group_id="g",
-        sha256="0" * 64,
-        patches=patches,
-    )
-    return ws
+        images.append(img)
+    return workspace_of_crops(root, images)
 
 
 def spawn(ws: Workspace, *args: str, rows: int = 45, cols: int = 100):
@@ -170,7 +153,6 @@ def test_model_queue_through_the_command(demo_run, tmp_path):
     from PIL import Image as PILImage
 
     from trainkit.synth import SynthOptions, generate_photo
-    from trainkit.taxonomy import load_class_set
     from trainkit.tiling import tile_into_workspace
 
     out, _ = demo_run
