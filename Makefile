@@ -1,6 +1,6 @@
 # Two commands do all the set-up: `make demo` and `make test`.
 # Both create .venv when it is missing or stale (pyproject.toml changed, or the
-# interpreter no longer runs) and install the kit with its dev extra into it.
+# interpreter no longer runs) and install the kit with its train and dev extras into it.
 
 PYTHON ?= python3
 VENV   := .venv
@@ -19,7 +19,9 @@ $(STAMP): pyproject.toml
 		echo "creating $(VENV)"; rm -rf $(VENV); $(PYTHON) -m venv $(VENV); \
 	fi
 	$(BIN)/python -m pip install --upgrade --quiet pip
-	$(BIN)/python -m pip install --quiet -e '.[dev]'
+	@# the distribution was called trainkit before it was renamed; drop a stale install of it
+	@$(BIN)/python -m pip uninstall --yes --quiet trainkit 2>/dev/null || true
+	$(BIN)/python -m pip install --quiet -e '.[train,dev]'
 	@touch $(STAMP)
 
 demo: $(STAMP)

@@ -29,6 +29,8 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.contract import screening_probability
+
 REPO = Path(__file__).resolve().parents[1]
 
 
@@ -47,13 +49,13 @@ def _renamed_copy(src: Path, dst: Path, prefix: str) -> None:
 
 
 def build_workspace(out: Path, n_photos: int, seed: int):
+    from trainkit.core.decode import list_images
+    from trainkit.core.taxonomy import load_class_set
     from trainkit.demo import TINY_DATASET, tiny_dataset_dir
-    from trainkit.imaging import list_images
-    from trainkit.splits import split_workspace
+    from trainkit.intake.tiling import read_sidecar, tile_into_workspace
+    from trainkit.labels.splits import split_workspace
+    from trainkit.labels.workspace import Workspace, import_labels_csv
     from trainkit.synth import SynthOptions, write_dataset
-    from trainkit.taxonomy import load_class_set
-    from trainkit.tiling import read_sidecar, tile_into_workspace
-    from trainkit.workspace import Workspace, import_labels_csv
 
     cs = load_class_set("orientation")
     ws_dir = out / "workspace"
@@ -105,9 +107,10 @@ def main(argv: list[str]) -> int:
 
     import torch
 
-    from trainkit.config import load_train_config
-    from trainkit.data import load_patch_set
-    from trainkit.training import build_network, cpu_threads, load_checkpoint, predict_proba, train
+    from trainkit.learning.config import load_train_config
+    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.network import build_network, load_checkpoint
+    from trainkit.learning.training import cpu_threads, predict_proba, train
 
     t0 = time.perf_counter()
     args.out.mkdir(parents=True, exist_ok=True)
@@ -145,7 +148,7 @@ def main(argv: list[str]) -> int:
     summary = train(ws, exp, cfg, resume=False)
     t_train = time.perf_counter() - t1
 
-    from trainkit.metrics import recall_at_false_alarm, threshold_for_false_alarms
+    from trainkit.judging.metrics import recall_at_false_alarm, threshold_for_false_alarms
 
     model, _, _ = load_checkpoint(exp)
     val = load_patch_set(ws, "val", cs)
@@ -154,9 +157,9 @@ def main(argv: list[str]) -> int:
     pt = predict_proba(model, np.asarray(test.images), num_classes=cs.num_classes)
     crack_v, crack_t = val.labels != 0, test.labels != 0
     thr = threshold_for_false_alarms(
-        crack_v, np.clip(1.0 - pv[:, 0], 0, 1), max_false_alarm_rate=args.budget
+        crack_v, screening_probability(pv), max_false_alarm_rate=args.budget
     )
-    flagged = (1.0 - pt[:, 0]) >= thr
+    flagged = screening_probability(pt) >= thr
     tp, n_pos = int((flagged & crack_t).sum()), int(crack_t.sum())
     fp, n_neg = int((flagged & ~crack_t).sum()), int((~crack_t).sum())
 
@@ -198,7 +201,7 @@ def main(argv: list[str]) -> int:
             "false_alarm_k_n": [fp, n_neg],
             "false_alarm_wilson95": _wilson(fp, n_neg),
             "oracle_recall_at_budget_on_test": round(
-                recall_at_false_alarm(crack_t, np.clip(1.0 - pt[:, 0], 0, 1), budget=args.budget), 4
+                recall_at_false_alarm(crack_t, screening_probability(pt), budget=args.budget), 4
             ),
             "orientation_accuracy_flagged_linear": round(k_or / n_or, 4) if n_or else None,
             "orientation_k_n": [k_or, n_or],

@@ -12,7 +12,7 @@ vary from run to run, ratios much less.
 4. scanning 12-megapixel JPEGs: `trainkit scan` as a whole command against the model-only
    bound (ONNX Runtime on patches already in memory) and against a plain PyTorch loop
    (PIL decode, crop, torchvision transforms, eager model, one batch per frame);
-5. training (benchmarks/train_bench.py): `trainkit.training.train` against a plain
+5. training (benchmarks/train_bench.py): `trainkit.learning.training.train` against a plain
    ImageFolder/DataLoader loop (2 workers and 0) on the same patches, both against the
    model-only bound, with the held-out accuracy each reaches in the same wall time.
 
@@ -45,7 +45,7 @@ def alternate(fns: dict, rounds: int = 7) -> dict:
 
 
 def bench_memory_format(batch: int = 32, size: int = 128) -> dict:
-    from trainkit.models import create_model
+    from trainkit.learning.models import create_model
 
     torch.manual_seed(0)
     model = create_model("tiny_cnn", 6)
@@ -76,9 +76,9 @@ def bench_onnx_vs_torch(n: int = 256, size: int = 128) -> dict:
     import onnx
     import onnxruntime as ort
 
-    from trainkit.config import load_train_config
-    from trainkit.export import _wrapper, network_to_onnx
-    from trainkit.training import build_network
+    from trainkit.judging.export import _wrapper, network_to_onnx
+    from trainkit.learning.config import load_train_config
+    from trainkit.learning.network import build_network
 
     torch.manual_seed(0)
     network = build_network(load_train_config("demo"), 6, load_weights=False).eval()
@@ -114,10 +114,10 @@ def bench_tiling(n_photos: int = 12, rounds: int = 2) -> dict:
     import cv2
     from PIL import Image
 
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.intake.tiling import tile_into_workspace
+    from trainkit.labels.workspace import Workspace
     from trainkit.synth import SynthOptions, generate_photo
-    from trainkit.taxonomy import load_class_set
-    from trainkit.tiling import tile_into_workspace
-    from trainkit.workspace import Workspace
 
     cores = len(os.sched_getaffinity(0))
     with tempfile.TemporaryDirectory() as d:
@@ -169,9 +169,9 @@ def _random_screener(path: Path, backbone: str = "mobilenet_v3_small", px: int =
     """A randomly initialised network exported with trainkit's contract (speed only, not accuracy)."""
     import onnx
 
-    from trainkit.config import load_train_config
-    from trainkit.export import network_to_onnx
-    from trainkit.training import build_network
+    from trainkit.judging.export import network_to_onnx
+    from trainkit.learning.config import load_train_config
+    from trainkit.learning.network import build_network
 
     torch.manual_seed(0)
     cfg = load_train_config("default", {"backbone": backbone})
@@ -202,7 +202,7 @@ def _model_only_bound(model: Path, patches: np.ndarray, per_frame: int) -> dict:
 
     import onnxruntime as ort
 
-    from trainkit.screener import usable_cores
+    from trainkit.core.cores import usable_cores
 
     cores = usable_cores()
     single = ort.InferenceSession(str(model), providers=["CPUExecutionProvider"])
@@ -301,8 +301,8 @@ def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
         # 3) plain reference: PIL decode, crop each patch, torchvision transforms, eager model
         from torchvision import transforms
 
-        from trainkit.config import load_train_config
-        from trainkit.models import create_model
+        from trainkit.learning.config import load_train_config
+        from trainkit.learning.models import create_model
 
         torch.manual_seed(0)
         net = create_model(load_train_config("default").backbone, 6).eval()
@@ -347,8 +347,8 @@ def bench_train_step(batch: int = 32, size: int = 224, rounds: int = 5) -> dict:
     bf16 autocast is measured only where the CPU has native bfloat16 (it is emulated,
     and refused by the kit, elsewhere).
     """
-    from trainkit.config import TrainConfig
-    from trainkit.training import build_network
+    from trainkit.learning.config import TrainConfig
+    from trainkit.learning.network import build_network
 
     x = torch.randint(0, 256, (batch, size, size, 3), dtype=torch.uint8)
     y = torch.randint(0, 6, (batch,))

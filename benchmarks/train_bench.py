@@ -1,4 +1,4 @@
-"""Training throughput: ``trainkit.training.train`` against a plain torchvision loop, side by side.
+"""Training throughput: ``trainkit.learning.training.train`` against a plain torchvision loop, side by side.
 
 Both train MobileNetV3-Small from random initialisation at 224 px, batch 32, with
 torch's default thread count, on the same labelled patches of a synthetic
@@ -65,11 +65,11 @@ def _log(msg: str) -> None:
 
 def build_workspace(root: Path, *, n_photos: int, tile_px: int = 224):
     """A labelled, split workspace of synthetic photos of 3 x 2 tiles, made as the demo makes one."""
-    from trainkit.splits import split_workspace
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.intake.tiling import read_sidecar, tile_into_workspace
+    from trainkit.labels.splits import split_workspace
+    from trainkit.labels.workspace import Workspace, import_labels_csv
     from trainkit.synth import SynthOptions, write_dataset
-    from trainkit.taxonomy import load_class_set
-    from trainkit.tiling import read_sidecar, tile_into_workspace
-    from trainkit.workspace import Workspace, import_labels_csv
 
     class_set = load_class_set("orientation")
     data = root / "synth"
@@ -151,8 +151,9 @@ def _accuracy(pred_names: list[str], true_names: list[str]) -> float:
 
 
 def run_kit(workspace, exp_dir: Path, cfg, held_out: tuple[list, list[str]]) -> dict:
-    """trainkit.training.train as a user calls it; wall time, throughput, held-out accuracy."""
-    from trainkit.training import load_checkpoint, train
+    """trainkit.learning.training.train as a user calls it; wall time, throughput, held-out accuracy."""
+    from trainkit.learning.network import load_checkpoint
+    from trainkit.learning.training import train
 
     t0 = time.perf_counter()
     summary = train(workspace, exp_dir, cfg, resume=False)
@@ -248,7 +249,7 @@ def model_only_bound(cfg, *, tile_px: int, steps: int) -> dict[str, float]:
     """Images/s of the training step alone, batch in memory, kit and reference networks alternately."""
     from torchvision.models import mobilenet_v3_small
 
-    from trainkit.training import build_network
+    from trainkit.learning.network import build_network
 
     torch.manual_seed(SEED)
     rng = np.random.default_rng(SEED)
@@ -290,7 +291,7 @@ def model_only_bound(cfg, *, tile_px: int, steps: int) -> dict[str, float]:
 
 def bench_training(size: str = "full") -> dict:
     """Run the rounds and return the JSON-ready result (see the module docstring)."""
-    from trainkit.config import load_train_config
+    from trainkit.learning.config import load_train_config
 
     if size not in SIZES:
         raise ValueError(f"unknown size {size!r}; choose one of: {', '.join(SIZES)}")

@@ -16,7 +16,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from PIL import Image  # noqa: E402
 
-from trainkit.taxonomy import load_class_set  # noqa: E402
+from trainkit.core.taxonomy import load_class_set
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -42,11 +42,23 @@ def main() -> None:
             ax.add_patch(wedge)
         t = np.radians(centre)
         ax.plot([-np.cos(t), np.cos(t)], [-np.sin(t), np.sin(t)], color=colours[i], lw=2.5)
-        ax.text(1.18 * np.cos(t), 1.18 * np.sin(t), f"{cs.names[c]}\n{centre:.0f}°", ha="center",
-                va="center", fontsize=8)
+        ax.text(
+            1.18 * np.cos(t),
+            1.18 * np.sin(t),
+            f"{cs.names[c]}\n{centre:.0f}°",
+            ha="center",
+            va="center",
+            fontsize=8,
+        )
     ax.annotate("", xy=(1.05, 0), xytext=(0, 0), arrowprops={"arrowstyle": "->"})
-    ax.text(0.0, -1.45, "angle: counter-clockwise from +x as seen on screen,\nundirected, 0-180°; "
-            "class = nearest centre (±22.5°)", ha="center", fontsize=8)
+    ax.text(
+        0.0,
+        -1.45,
+        "angle: counter-clockwise from +x as seen on screen,\nundirected, 0-180°; "
+        "class = nearest centre (±22.5°)",
+        ha="center",
+        fontsize=8,
+    )
     ax.set_xlim(-1.6, 1.6)
     ax.set_ylim(-1.7, 1.5)
     for j, name in enumerate(cs.names):
@@ -55,7 +67,13 @@ def main() -> None:
         if name in examples:
             sub.imshow(examples[name])
         sub.set_title(f"{j} {name}", fontsize=8)
-    fig.text(0.66, 0.06, "examples from the synthetic tiny_dataset (invented photos)", ha="center", fontsize=8)
+    fig.text(
+        0.66,
+        0.06,
+        "examples from the synthetic tiny_dataset (invented photos)",
+        ha="center",
+        fontsize=8,
+    )
     fig.savefig(ROOT / "docs" / "angle-convention.png")
 
 

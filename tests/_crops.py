@@ -7,8 +7,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from trainkit.taxonomy import load_class_set
-from trainkit.workspace import Workspace
+from trainkit.core.taxonomy import load_class_set
+from trainkit.labels.workspace import Workspace
 
 
 def workspace_of_crops(root: Path, images: list[np.ndarray], *, skip=()) -> Workspace:

@@ -22,9 +22,9 @@ from hypothesis import strategies as st
 from PIL import Image
 
 from trainkit.cli import main
-from trainkit.taxonomy import load_class_set
-from trainkit.tiling import tile_into_workspace
-from trainkit.workspace import Workspace, WorkspaceError, import_labels_csv
+from trainkit.core.taxonomy import load_class_set
+from trainkit.intake.tiling import tile_into_workspace
+from trainkit.labels.workspace import Workspace, WorkspaceError, import_labels_csv
 
 TILE = 64
 

@@ -6,7 +6,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from trainkit.config import BUILTIN_RECIPES, ConfigError, TrainConfig, load_train_config
+from trainkit.learning.config import BUILTIN_RECIPES, ConfigError, TrainConfig, load_train_config
 
 
 @pytest.mark.parametrize("name", BUILTIN_RECIPES)

@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from trainkit.config import AugmentConfig
-from trainkit.data import Augmenter, build_photometric, build_transform
+from trainkit.core.taxonomy import D4_ELEMENTS, apply_d4, load_class_set
+from trainkit.learning.config import AugmentConfig
+from trainkit.learning.data import Augmenter, build_photometric, build_transform
 from trainkit.synth import Crack, render_cracks
-from trainkit.taxonomy import D4_ELEMENTS, apply_d4, load_class_set
 
 
 def crack_patch(angle_deg: float, size: int = 96) -> np.ndarray:

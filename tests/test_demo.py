@@ -11,8 +11,8 @@ import pytest
 from click.testing import CliRunner
 
 from trainkit.cli import cli
-from trainkit.export import read_metadata
-from trainkit.workspace import Workspace
+from trainkit.judging.export import read_metadata
+from trainkit.labels.workspace import Workspace
 
 
 def test_demo_leaves_the_experiment_folder(demo_run):

@@ -1,4 +1,4 @@
-"""Tests for trainkit.evaluation: metrics.json recomputed from predictions.csv, comparison, gate."""
+"""Tests for trainkit.judging.evaluation: metrics.json recomputed from predictions.csv, comparison, gate."""
 
 from __future__ import annotations
 
@@ -12,10 +12,10 @@ import pytest
 from scipy import stats
 from sklearn import metrics as skm
 
-from trainkit.evaluation import CAUTION, EvaluationError, evaluate_experiment
-from trainkit.workspace import Workspace
+from trainkit.judging.evaluation import CAUTION, EvaluationError, evaluate_experiment
+from trainkit.labels.workspace import Workspace
 
-# The metrics.json contract documented in the trainkit.evaluation module docstring.
+# The metrics.json contract documented in the trainkit.judging.evaluation module docstring.
 TOP_LEVEL_KEYS = {
     "metrics_version", "split", "patches", "photos", "class_names", "accuracy",
     "confusion_matrix", "confusion_matrix_row_normalised", "per_class", "screening",
@@ -55,8 +55,8 @@ def _rows(path: Path) -> list[dict]:
 @pytest.fixture(scope="module")
 def evaluated(demo_run, tmp_path_factory):
     """Experiment A (the demo's checkpoint) evaluated against B (1 epoch on the same data)."""
-    from trainkit.config import load_train_config
-    from trainkit.training import train
+    from trainkit.learning.config import load_train_config
+    from trainkit.learning.training import train
 
     out, _ = demo_run
     root = tmp_path_factory.mktemp("evaluation")
@@ -336,7 +336,8 @@ def test_threshold_from_a_false_alarm_budget_on_validation(evaluated, tmp_path):
     with scikit-learn's roc_curve: the best TPR with FPR <= budget is reached)."""
     from sklearn.metrics import roc_curve
 
-    from trainkit.evaluation import _run_experiment, screening_probability
+    from trainkit.core.contract import screening_probability
+    from trainkit.judging.evaluation import _run_experiment
 
     a, _, _ = evaluated
     c = _clone_experiment(a, tmp_path / "c")

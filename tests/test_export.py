@@ -9,7 +9,7 @@ import onnx
 import onnxruntime as ort
 import pytest
 
-from trainkit.export import (
+from trainkit.judging.export import (
     INT8_MAX_RECALL_DROP,
     INT8_MIN_SPEEDUP,
     ExportError,
@@ -41,9 +41,9 @@ def test_parity_with_pytorch_on_real_patches(demo_run):
     """ONNX Runtime against the PyTorch checkpoint on the test patches (within 1e-4, same argmax)."""
     import torch
 
-    from trainkit.data import load_patch_set
-    from trainkit.training import load_checkpoint
-    from trainkit.workspace import Workspace
+    from trainkit.labels.workspace import Workspace
+    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.network import load_checkpoint
 
     out, _ = demo_run
     model, ckpt, cs = load_checkpoint(out)

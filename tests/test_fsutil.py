@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from trainkit.fsutil import atomic_path, atomic_write_text
+from trainkit.core.fsutil import atomic_path, atomic_write_text
 
 
 def test_replace_on_success_and_keep_old_on_failure(tmp_path):

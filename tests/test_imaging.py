@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from trainkit.imaging import FULL_FRAME_WIDTH_MM, PhotoError, gsd_mm_per_px, list_images, read_rgb
+from trainkit.core.decode import PhotoError, list_images, read_rgb
+from trainkit.intake.scale import FULL_FRAME_WIDTH_MM, gsd_mm_per_px
 
 
 def test_gsd_worked_examples():
@@ -114,7 +115,7 @@ def _jpeg_bytes(arr: np.ndarray, orientation: int = 1, mode: str = "RGB") -> byt
 @pytest.mark.parametrize("orientation", range(1, 9))
 def test_fast_jpeg_path_matches_pillows_exif_transpose(tmp_path, monkeypatch, orientation):
     """OpenCV decode + our orientation steps against Pillow's decode + ImageOps.exif_transpose."""
-    from trainkit.imaging import read_rgb_fast
+    from trainkit.core.decode import read_rgb_fast
 
     rng = np.random.default_rng(orientation)
     base = (rng.random((48, 80, 3)) * 60 + np.linspace(0, 180, 80)[None, :, None]).astype(np.uint8)
@@ -122,7 +123,7 @@ def test_fast_jpeg_path_matches_pillows_exif_transpose(tmp_path, monkeypatch, or
     path = tmp_path / "f.jpg"
     path.write_bytes(data)
     want = read_rgb(path, data=data)
-    import trainkit.imaging as imaging
+    import trainkit.core.decode as imaging
 
     def no_pillow(*_a, **_k):
         raise AssertionError("fell back to Pillow: the OpenCV path was not taken")
@@ -135,7 +136,7 @@ def test_fast_jpeg_path_matches_pillows_exif_transpose(tmp_path, monkeypatch, or
 
 
 def test_fast_jpeg_path_falls_back_for_grey_truncated_and_other_files(tmp_path):
-    from trainkit.imaging import read_rgb_fast
+    from trainkit.core.decode import read_rgb_fast
 
     arr = np.random.default_rng(0).integers(0, 255, (40, 40, 3), dtype=np.uint8)
     grey = _jpeg_bytes(arr, mode="L")
@@ -161,7 +162,7 @@ def _with_header_size(data: bytes, width: int, height: int) -> bytes:
 def test_fast_jpeg_path_refuses_crafted_sizes_like_pillows_path(tmp_path):
     """A header claiming 14000 x 14000 px (above Pillow's own bomb limit) in a few kB:
     one PhotoError, as read_rgb gives, never Pillow's own DecompressionBombError."""
-    from trainkit.imaging import read_rgb_fast
+    from trainkit.core.decode import read_rgb_fast
 
     arr = np.random.default_rng(1).integers(0, 255, (40, 40, 3), dtype=np.uint8)
     data = _with_header_size(_jpeg_bytes(arr), 14000, 14000)

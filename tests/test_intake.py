@@ -8,9 +8,10 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from trainkit.imaging import ExifInfo, gsd_from_exif, gsd_mm_per_px, read_exif, read_rgb
-from trainkit.taxonomy import load_class_set
-from trainkit.tiling import (
+from trainkit.core.decode import read_rgb
+from trainkit.core.taxonomy import load_class_set
+from trainkit.intake.scale import ExifInfo, gsd_from_exif, gsd_mm_per_px, read_exif
+from trainkit.intake.tiling import (
     ScaleOptions,
     parse_roi,
     read_sidecar,
@@ -18,7 +19,7 @@ from trainkit.tiling import (
     tile_into_workspace,
     tile_photo,
 )
-from trainkit.workspace import Workspace
+from trainkit.labels.workspace import Workspace
 
 
 def textured(h, w, seed=0):
@@ -154,7 +155,7 @@ def test_focus_ranks_blurred_below_sharp():
     """Variance of the Laplacian (Pech-Pacheco et al. 2000) against cv2.Laplacian directly."""
     import cv2
 
-    from trainkit.tiling import quality_measures
+    from trainkit.intake.tiling import quality_measures
 
     sharp = textured(64, 64, seed=4)
     blurred = cv2.GaussianBlur(sharp, (0, 0), 2.0)

@@ -9,7 +9,8 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from trainkit.labels_io import (
+from trainkit.core.taxonomy import load_class_set
+from trainkit.labels.labels_io import (
     LabelsIOError,
     export_csv,
     export_folders,
@@ -17,8 +18,7 @@ from trainkit.labels_io import (
     import_csv,
     import_folders,
 )
-from trainkit.taxonomy import load_class_set
-from trainkit.workspace import Workspace
+from trainkit.labels.workspace import Workspace
 
 
 def make_ws(root, n_photos=2, per_photo=3, size=32):

@@ -8,7 +8,7 @@ import shutil
 
 import pytest
 
-from trainkit.model_card import NOT_EVALUATED, build_model_card, write_model_card
+from trainkit.judging.model_card import NOT_EVALUATED, build_model_card, write_model_card
 
 
 def _section(card: str, heading: str) -> str:

@@ -5,8 +5,9 @@ from __future__ import annotations
 import pytest
 import torch
 
-from trainkit.models import BACKBONES, HEADS, create_model
-from trainkit.training import Preprocess, class_weights, get_lr
+from trainkit.learning.models import BACKBONES, HEADS, create_model
+from trainkit.learning.network import Preprocess
+from trainkit.learning.training import class_weights, get_lr
 
 
 @pytest.mark.parametrize("name", sorted(BACKBONES))
@@ -98,7 +99,7 @@ def _hub_copy(tmp_path, monkeypatch, name: str):
     import hashlib
     import re
 
-    from trainkit.models import imagenet_weights_path
+    from trainkit.learning.models import imagenet_weights_path
 
     monkeypatch.setenv("TORCH_HOME", str(tmp_path / "torch-home"))
     monkeypatch.setattr(torch.hub, "_hub_dir", str(tmp_path / "torch-home" / "hub"))
@@ -118,7 +119,7 @@ def _hub_copy(tmp_path, monkeypatch, name: str):
 
 
 def test_imagenet_source_reads_the_hub_cache_without_network(tmp_path, monkeypatch):
-    from trainkit.models import load_backbone_weights
+    from trainkit.learning.models import load_backbone_weights
 
     source, final, target = _hub_copy(tmp_path, monkeypatch, "shufflenet_v2_x1_0")
     # Under torchvision's published name the hash prefix does not match our file: refused.
@@ -137,7 +138,7 @@ def test_imagenet_source_with_matching_hash_in_the_cache(tmp_path, monkeypatch):
     """When the cached file's name matches its content (as torchvision's download does)."""
     import hashlib
 
-    from trainkit import models
+    from trainkit.learning import models
 
     source, final, target = _hub_copy(tmp_path, monkeypatch, "regnet_x_400mf")
     monkeypatch.setattr(models, "imagenet_weights_path", lambda name: final)
@@ -147,7 +148,7 @@ def test_imagenet_source_with_matching_hash_in_the_cache(tmp_path, monkeypatch):
 
 
 def test_missing_imagenet_file_names_where_to_put_it(tmp_path, monkeypatch):
-    from trainkit.models import imagenet_weights_path
+    from trainkit.learning.models import imagenet_weights_path
 
     monkeypatch.setenv("TORCH_HOME", str(tmp_path / "empty"))
     monkeypatch.setattr(torch.hub, "_hub_dir", str(tmp_path / "empty" / "hub"))

@@ -13,8 +13,8 @@ from PIL import Image
 from scipy.fft import dctn
 from scipy.spatial.distance import cdist
 
-from trainkit import neardup
-from trainkit.neardup import (
+from trainkit.labels import neardup
+from trainkit.labels.neardup import (
     DEFAULT_MAX_DISTANCE,
     crop_hash,
     hamming_distances,

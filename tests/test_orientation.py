@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from trainkit.orientation import (
+from trainkit.core.taxonomy import angle_difference, load_class_set
+from trainkit.labels.orientation import (
     OrientationError,
     dominant_orientation,
     ridge_response,
@@ -13,7 +14,6 @@ from trainkit.orientation import (
     tensor_angle,
 )
 from trainkit.synth import Crack, render_cracks
-from trainkit.taxonomy import angle_difference, load_class_set
 
 
 def crack_patch(angle_deg: float, size: int = 96, width: float = 2.0, seed: int = 0) -> np.ndarray:

@@ -11,7 +11,8 @@ import pytest
 from _crops import workspace_of_crops
 from PIL import Image
 
-from trainkit.review import (
+from trainkit.core.taxonomy import load_class_set
+from trainkit.labels.review import (
     ReviewError,
     Session,
     SheetAnswerError,
@@ -21,8 +22,7 @@ from trainkit.review import (
     margins,
     parse_sheet_answer,
 )
-from trainkit.taxonomy import load_class_set
-from trainkit.workspace import Workspace, WorkspaceError
+from trainkit.labels.workspace import Workspace, WorkspaceError
 
 CS = load_class_set("orientation")
 
@@ -260,7 +260,7 @@ def test_empty_reviewer_is_refused(tmp_path):
 
 _WRITER = """
 import sys
-from trainkit.workspace import Workspace
+from trainkit.labels.workspace import Workspace
 ws = Workspace.open(sys.argv[1])
 for i in range(int(sys.argv[3])):
     ws.add_label_event(1 + i % 6, "none" if i % 2 else "map", reviewer=sys.argv[2])
@@ -298,7 +298,7 @@ def test_open_adds_review_tables_to_an_older_workspace_and_refuses_newer(tmp_pat
 def test_mode_falls_back_to_contact_sheets_without_colour_or_room():
     from rich.console import Console
 
-    from trainkit.review_ui import choose_mode
+    from trainkit.labels.review_ui import choose_mode
 
     big = dict(force_terminal=True, width=120, height=50)
     assert choose_mode(False, Console(color_system="truecolor", **big), num_classes=6) == (
@@ -313,7 +313,7 @@ def test_mode_falls_back_to_contact_sheets_without_colour_or_room():
 
 
 def test_shrunk_preview_keeps_a_hairline_and_half_blocks_pair_rows():
-    from trainkit.review_ui import contact_sheet, downsample, halfblock_rows
+    from trainkit.labels.review_ui import contact_sheet, downsample, halfblock_rows
 
     img = np.full((128, 128, 3), 180, np.uint8)
     img[:, 64] = 40  # a 1-pixel dark line

@@ -11,8 +11,8 @@ import numpy as np
 import pexpect
 from _crops import workspace_of_crops
 
-from trainkit.taxonomy import load_class_set
-from trainkit.workspace import Workspace
+from trainkit.core.taxonomy import load_class_set
+from trainkit.labels.workspace import Workspace
 
 TIMEOUT = 20
 
@@ -152,8 +152,8 @@ def test_model_queue_through_the_command(demo_run, tmp_path):
     import onnxruntime as ort
     from PIL import Image as PILImage
 
+    from trainkit.intake.tiling import tile_into_workspace
     from trainkit.synth import SynthOptions, generate_photo
-    from trainkit.tiling import tile_into_workspace
 
     out, _ = demo_run
     photos = tmp_path / "photos"

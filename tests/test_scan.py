@@ -10,7 +10,7 @@ import pytest
 from PIL import Image
 from test_screener import brightness_model
 
-from trainkit.scan import read_done, scan_frames
+from trainkit.screener.scan import read_done, scan_frames
 
 
 def frames(tmp_path, n=5):

@@ -11,7 +11,8 @@ import onnx
 import pytest
 from onnx import TensorProto, helper
 
-from trainkit.screener import CrackMap, Screener, ScreenerError
+from trainkit.screener.crackmap import CrackMap
+from trainkit.screener.model import Screener, ScreenerError
 
 S = 32
 
@@ -173,7 +174,7 @@ def test_scale_warning_flagged_cells_raster_and_overlay(tmp_path):
 
 def test_screener_module_does_not_import_torch():
     code = (
-        "import sys; import trainkit; from trainkit import Screener, CrackMap; import trainkit.scan; "
+        "import sys; import trainkit; from trainkit import Screener, CrackMap; import trainkit.screener.scan; "
         "bad = [m for m in ('torch', 'torchvision', 'sklearn', 'albumentations', 'cv2') if m in sys.modules]; "
         "print(bad); sys.exit(1 if bad else 0)"
     )

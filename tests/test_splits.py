@@ -14,8 +14,9 @@ from hypothesis import strategies as st
 from PIL import Image
 
 from trainkit.cli import cli
-from trainkit.neardup import crop_hash
-from trainkit.splits import (
+from trainkit.core.taxonomy import load_class_set
+from trainkit.labels.neardup import crop_hash
+from trainkit.labels.splits import (
     SUBSETS,
     SplitError,
     _patch_subsets,
@@ -24,9 +25,8 @@ from trainkit.splits import (
     find_near_duplicates,
     split_workspace,
 )
+from trainkit.labels.workspace import Workspace
 from trainkit.synth import SynthOptions, generate_photo
-from trainkit.taxonomy import load_class_set
-from trainkit.workspace import Workspace
 
 TILE = 128
 

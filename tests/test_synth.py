@@ -21,6 +21,8 @@ from skimage.filters import gaussian
 from skimage.measure import label as cc_label
 from skimage.measure import regionprops
 
+from trainkit.core.grid import grid_boxes
+from trainkit.core.taxonomy import angle_difference, load_class_set
 from trainkit.synth import (
     Crack,
     LabelRules,
@@ -30,8 +32,6 @@ from trainkit.synth import (
     render_cracks,
     write_dataset,
 )
-from trainkit.taxonomy import angle_difference, load_class_set
-from trainkit.tiling import grid_boxes
 
 ORIENT = load_class_set("orientation")
 PRESENCE = load_class_set("presence")

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from trainkit.taxonomy import (
+from trainkit.core.taxonomy import (
     D4_ELEMENTS,
     ClassSet,
     angle_difference,

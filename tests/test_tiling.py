@@ -7,14 +7,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from trainkit.tiling import (
-    axis_starts,
-    crop,
-    grid_boxes,
-    overlap_to_stride,
-    quality_measures,
-    tile_photo,
-)
+from trainkit.core.grid import axis_starts, crop, grid_boxes, overlap_to_stride
+from trainkit.intake.tiling import quality_measures, tile_photo
 
 
 @settings(max_examples=300, deadline=None)

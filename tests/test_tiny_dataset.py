@@ -8,8 +8,8 @@ import json
 from pathlib import Path
 
 from trainkit.cli import main
+from trainkit.core.grid import grid_boxes
 from trainkit.demo import TINY_DATASET
-from trainkit.tiling import grid_boxes
 
 TINY = Path(__file__).resolve().parents[1] / "tiny_dataset"
 

@@ -16,11 +16,11 @@ import torch
 from scipy import stats
 from sklearn.metrics import roc_curve
 
-from trainkit.config import ConfigError, load_train_config
-from trainkit.metrics import recall_at_false_alarm
-from trainkit.training import (
-    TrainingError,
-    build_network,
+from trainkit.judging.metrics import recall_at_false_alarm
+from trainkit.labels.workspace import Workspace
+from trainkit.learning.config import ConfigError, load_train_config
+from trainkit.learning.network import TrainingError, build_network
+from trainkit.learning.training import (
     cpu_threads,
     epoch_order,
     frozen_features,
@@ -28,7 +28,6 @@ from trainkit.training import (
     selection_score,
     train,
 )
-from trainkit.workspace import Workspace
 
 # history columns that measure time, not the computation
 _TIMING = {"train_images_per_s", "seconds"}
@@ -118,7 +117,7 @@ def test_early_stopping_counts_full_epochs_only_and_survives_resume(ws, tmp_path
     """With a score that never improves, patience 2 and one head epoch: the head epoch and
     the first full epoch reset the patience, so the run stops after epoch 4, and resuming
     a stopped run trains nothing more."""
-    from trainkit import training as tr
+    from trainkit.learning import training as tr
 
     monkeypatch.setattr(tr, "selection_score", lambda row, cfg, has_val: [0.0])
     cfg = load_train_config(
@@ -173,7 +172,7 @@ def test_head_then_full_stage_order(ws, tmp_path):
 
 def test_each_stage_has_its_own_warm_up_and_cosine():
     """lr_schedule against get_lr's documented shape, restarted at the unfreeze."""
-    from trainkit.training import get_lr, lr_schedule
+    from trainkit.learning.training import get_lr, lr_schedule
 
     cfg = load_train_config("default", {"epochs": 10, "head_epochs": 4, "warmup_epochs": 1})
     lr = lr_schedule(cfg, steps_per_epoch=10)
@@ -193,8 +192,8 @@ def test_each_stage_has_its_own_warm_up_and_cosine():
 
 def test_frozen_features_are_the_head_inputs(ws):
     """The hook-captured features equal the tiny CNN's pooled features computed by hand."""
-    from trainkit.data import load_patch_set
-    from trainkit.taxonomy import load_class_set
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.learning.data import load_patch_set
 
     cfg = load_train_config("demo", {"seed": 1})
     net = _fresh_network(cfg).eval()
@@ -209,7 +208,7 @@ def test_frozen_features_are_the_head_inputs(ws):
         by_hand_rot = body.pool(body.features(net[0](torch.from_numpy(rotated))))
     torch.testing.assert_close(feats[0], by_hand, rtol=1e-5, atol=1e-5)
     # apply_d4(k=1, flip=True) is rot90 then a left-right mirror (taxonomy's definition).
-    from trainkit.taxonomy import apply_d4
+    from trainkit.core.taxonomy import apply_d4
 
     assert np.array_equal(apply_d4(data.images[0], 1, True), rotated[0])
     torch.testing.assert_close(feats[1], by_hand_rot, rtol=1e-5, atol=1e-5)
@@ -236,9 +235,10 @@ def test_cached_feature_run_trains_the_head_and_keeps_the_backbone(ws, tmp_path)
     # whole network gives for the chosen epoch's weights.
     from torch import nn
 
-    from trainkit.data import load_patch_set
-    from trainkit.taxonomy import load_class_set
-    from trainkit.training import evaluate_split, load_checkpoint
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.network import load_checkpoint
+    from trainkit.learning.training import evaluate_split
 
     model, ckpt, _ = load_checkpoint(tmp_path / "c")
     val = load_patch_set(ws, "val", load_class_set("orientation"))
@@ -299,8 +299,8 @@ def test_selection_key_follows_the_configured_metric():
 def test_crop_cache_is_reused_and_follows_the_crops(ws, monkeypatch):
     import os
 
-    from trainkit import data as data_mod
-    from trainkit.taxonomy import load_class_set
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.learning import data as data_mod
 
     cs = load_class_set("orientation")
     fresh = data_mod.load_patch_set(ws, "val", cs, cache=False)
@@ -351,7 +351,7 @@ def test_inconsistent_settings_give_one_line(overrides, needle):
 
 def test_bf16_is_refused_on_a_cpu_without_it_and_allowed_with_it(ws, tmp_path, monkeypatch):
     """The refusal follows the CPU check, whatever CPU runs the test."""
-    from trainkit import training as tr
+    from trainkit.learning import training as tr
 
     cfg = load_train_config("demo", {"epochs": 1, "bf16": True})
     monkeypatch.setattr(tr, "native_bf16", lambda: False)
@@ -373,7 +373,7 @@ def test_thread_budget_follows_the_environment_and_affinity(monkeypatch):
 
 def test_frozen_recipe_keeps_the_pretrained_backbone(ws, tmp_path):
     """The built-in 'frozen' recipe with a weights file: every backbone tensor equals the file's."""
-    from trainkit.models import create_model
+    from trainkit.learning.models import create_model
 
     torch.manual_seed(9)
     pretrained = create_model("mobilenet_v3_small", 1000).state_dict()

@@ -6,9 +6,9 @@ import sqlite3
 
 import pytest
 
-from trainkit.splits import SplitError, assign_groups, check_no_leak, split_workspace
-from trainkit.taxonomy import load_class_set
-from trainkit.workspace import Workspace, WorkspaceError, import_labels_csv
+from trainkit.core.taxonomy import load_class_set
+from trainkit.labels.splits import SplitError, assign_groups, check_no_leak, split_workspace
+from trainkit.labels.workspace import Workspace, WorkspaceError, import_labels_csv
 
 
 def make_ws(tmp_path, n_photos=3, per_photo=4):

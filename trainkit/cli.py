@@ -174,8 +174,8 @@ def synth(
     OUT/labels.csv (one row per patch of a TILE_PX grid), OUT/scale.csv and
     OUT/manifest.json. Everything is invented: no real photo is involved.
     """
-    from .synth import SynthOptions, write_dataset
-    from .taxonomy import load_class_set
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.synth import SynthOptions, write_dataset
 
     with user_errors(ctx):
         try:
@@ -338,10 +338,10 @@ def tile(
     --gsd-mm; --distance-m with --focal-mm and --sensor-width-mm; EXIF focal length
     with a distance. Re-running on the same photos adds only what is new.
     """
-    from .imaging import find_images
-    from .taxonomy import load_class_set
-    from .tiling import ScaleOptions, read_sidecar, tile_into_workspace
-    from .workspace import Workspace, import_labels_csv
+    from trainkit.core.decode import find_images
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.intake.tiling import ScaleOptions, read_sidecar, tile_into_workspace
+    from trainkit.labels.workspace import Workspace, import_labels_csv
 
     with user_errors(ctx):
         found = find_images(list(photos))
@@ -442,8 +442,8 @@ def split(
     Then report patches in different subsets whose crops look alike (the same surface in
     two photos); --drop-near-duplicates leaves their val/test member out.
     """
-    from .splits import find_near_duplicates, near_duplicate_lines, split_workspace
-    from .workspace import Workspace
+    from trainkit.labels.splits import find_near_duplicates, near_duplicate_lines, split_workspace
+    from trainkit.labels.workspace import Workspace
 
     with user_errors(ctx):
         ws = Workspace.open(ws_dir)
@@ -520,8 +520,8 @@ def train(
 
     Resumes from EXP/last.pt after an interruption unless --restart is given.
     """
-    from .config import load_train_config
-    from .workspace import Workspace
+    from trainkit.labels.workspace import Workspace
+    from trainkit.learning.config import load_train_config
 
     with user_errors(ctx):
         cfg = load_train_config(
@@ -547,7 +547,7 @@ def train(
 
 def run_training(ctx: Ctx, ws, exp_dir: Path, cfg, *, resume: bool = True) -> dict:
     """Shared by `train` and `demo`: train with a progress bar and one line per epoch."""
-    from .training import train as train_fn
+    from trainkit.learning.training import train as train_fn
 
     state = {"bar": None}
     with progress_bar(ctx, "training") as bar:
@@ -654,7 +654,7 @@ def evaluate(
     (with --against also disagreements.csv). With --require-recall the exit code is
     3 unless the lower confidence bound of screening recall reaches the value.
     """
-    from .evaluation import evaluate_experiment
+    from trainkit.judging.evaluation import evaluate_experiment
 
     with user_errors(ctx):
         res = evaluate_experiment(
@@ -773,7 +773,7 @@ def print_evaluation(ctx: Ctx, res: dict, out: Path) -> None:
 @click.pass_obj
 def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
     """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
-    from .export import export_experiment, quantize_experiment
+    from trainkit.judging.export import export_experiment, quantize_experiment
 
     with user_errors(ctx):
         with ctx.console.status("exporting to ONNX and checking parity"):
@@ -863,7 +863,7 @@ def scan(
     scheduler,
 ) -> None:
     """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl."""
-    from .scan import scan_frames
+    from trainkit.screener.scan import scan_frames
 
     if model.is_dir():
         model = model / "model.onnx"
@@ -998,7 +998,7 @@ def review(
     Every answer is saved at once with your name; run the same command to resume.
     With --import-*/--export-*/--agreement it does that and exits.
     """
-    from .workspace import Workspace
+    from trainkit.labels.workspace import Workspace
 
     reviewer = reviewer or _default_reviewer()
     with user_errors(ctx):
@@ -1022,7 +1022,7 @@ def review(
 def _review_io(
     ctx: Ctx, ws, reviewer, import_csv, import_folder, export_csv, export_folder
 ) -> None:
-    from . import labels_io
+    from trainkit.labels import labels_io
 
     if import_csv:
         n = labels_io.import_csv(ws, import_csv, reviewer=reviewer)
@@ -1041,7 +1041,7 @@ def _review_io(
 def _print_agreement(ctx: Ctx, ws, as_json: bool) -> None:
     from rich.table import Table
 
-    from .review import agreement, find_conflicts
+    from trainkit.labels.review import agreement, find_conflicts
 
     events = ws.label_events()
     pairs = agreement(events, ws.class_set)
@@ -1085,8 +1085,8 @@ def _run_review(
 
     from rich.console import Console
 
-    from .review import Session, build_queue, find_conflicts, model_probabilities
-    from .review_ui import choose_mode, run_keys, run_sheet
+    from trainkit.labels.review import Session, build_queue, find_conflicts, model_probabilities
+    from trainkit.labels.review_ui import choose_mode, run_keys, run_sheet
 
     records = ws.patches()
     events = ws.label_events() if queue_kind != "unlabelled" else []
@@ -1153,7 +1153,7 @@ def _run_review(
 @click.pass_obj
 def status(ctx: Ctx, path: Path, as_json: bool) -> None:
     """Summarise a workspace (photos, patches, labels, split) or an experiment folder."""
-    from .workspace import DB_NAME, Workspace
+    from trainkit.labels.workspace import DB_NAME, Workspace
 
     with user_errors(ctx):
         if (path / DB_NAME).exists():

@@ -10,7 +10,7 @@ import json
 import time
 from pathlib import Path
 
-from .fsutil import atomic_path, atomic_write_text
+from trainkit.core.fsutil import atomic_path, atomic_write_text
 
 __all__ = ["run_demo", "TINY_DATASET", "tiny_dataset_dir"]
 
@@ -30,8 +30,8 @@ def _ensure_dataset(ctx, out: Path) -> Path:
     found = tiny_dataset_dir()
     if found is not None:
         return found
-    from .synth import SynthOptions, write_dataset
-    from .taxonomy import load_class_set
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.synth import SynthOptions, write_dataset
 
     target = out / "tiny_dataset"
     if not (target / "labels.csv").is_file():
@@ -59,17 +59,18 @@ def run_demo(
     """Run tile -> labels -> split -> train -> evaluate -> export -> scan; returns the headline figures."""
     from PIL import Image
 
+    from trainkit.core.decode import list_images
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.intake.tiling import read_sidecar, tile_into_workspace
+    from trainkit.judging.evaluation import evaluate_experiment
+    from trainkit.judging.export import export_experiment
+    from trainkit.labels.splits import split_workspace
+    from trainkit.labels.workspace import Workspace, import_labels_csv
+    from trainkit.learning.config import load_train_config
+    from trainkit.screener.scan import scan_frames
+    from trainkit.synth import SynthOptions, generate_photo
+
     from .cli import print_evaluation, progress_bar, run_training
-    from .config import load_train_config
-    from .evaluation import evaluate_experiment
-    from .export import export_experiment
-    from .imaging import list_images
-    from .scan import scan_frames
-    from .splits import split_workspace
-    from .synth import SynthOptions, generate_photo
-    from .taxonomy import load_class_set
-    from .tiling import read_sidecar, tile_into_workspace
-    from .workspace import Workspace, import_labels_csv
 
     t_start = time.perf_counter()
     out = Path(out_dir)

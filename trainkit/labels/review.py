@@ -1,6 +1,6 @@
 """Review session logic: queue order, model pre-labels, answers with undo and skip, agreement.
 
-Nothing here draws on a terminal; :mod:`trainkit.review_ui` shows patches and reads keys
+Nothing here draws on a terminal; :mod:`trainkit.labels.review_ui` shows patches and reads keys
 and calls into this module, so every rule below is testable without a screen.
 
 Queues (which patches a session asks about, in which order):
@@ -27,8 +27,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .taxonomy import ClassSet
-from .workspace import PatchRecord, Workspace
+from trainkit.core.taxonomy import ClassSet
+from trainkit.labels.workspace import PatchRecord, Workspace
 
 __all__ = [
     "QUEUES",
@@ -172,7 +172,7 @@ def agreement(events: list[dict], class_set: ClassSet) -> list[dict]:
         ``kappa``, ``kappa_crack_vs_none``, ``observed_agreement``, ``labels`` and
         ``confusion`` (rows: reviewer a, columns: reviewer b).
     """
-    from .metrics import cohen_kappa, confusion_matrix
+    from trainkit.judging.metrics import cohen_kappa, confusion_matrix
 
     latest = latest_by_reviewer(events)
     per: dict[str, dict[int, str]] = defaultdict(dict)
@@ -341,7 +341,7 @@ def model_probabilities(
     Raises:
         ReviewError: when the model's classes are not the workspace's classes.
     """
-    from .screener import Screener
+    from trainkit.screener import Screener
 
     path = Path(model)
     if path.is_dir():

@@ -18,8 +18,8 @@ from collections.abc import Callable, Iterable, Sequence
 import numpy as np
 from sklearn.model_selection import StratifiedGroupKFold
 
-from . import neardup
-from .workspace import PatchRecord, Workspace
+from trainkit.labels import neardup
+from trainkit.labels.workspace import PatchRecord, Workspace
 
 __all__ = [
     "SplitError",
@@ -200,7 +200,7 @@ def find_near_duplicates(
 ) -> dict:
     """Find labelled patches in different subsets whose crops are near-duplicates.
 
-    Each crop's perceptual hash (:mod:`trainkit.neardup`) is compared with those of
+    Each crop's perceptual hash (:mod:`trainkit.labels.neardup`) is compared with those of
     every other subset; pairs within ``max_distance`` bits are reported. With ``drop``,
     the val or test member of each pair loses its subset assignment, so training,
     validation and evaluation leave it out (train keeps its member; re-running

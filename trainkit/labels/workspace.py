@@ -16,7 +16,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
-from .taxonomy import ClassSet, class_set_from_dict
+from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 
 __all__ = ["Workspace", "WorkspaceError", "PatchRecord", "DB_NAME", "LABEL_SOURCES"]
 

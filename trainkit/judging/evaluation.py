@@ -79,13 +79,14 @@ from typing import Any
 
 import numpy as np
 
-from . import metrics as M
-from .data import PatchSet, load_patch_set
-from .splits import check_no_leak
-from .taxonomy import ClassSet
-from .workspace import Workspace
+from trainkit.core.contract import screening_probability
+from trainkit.core.taxonomy import ClassSet
+from trainkit.judging import metrics as M
+from trainkit.labels.splits import check_no_leak
+from trainkit.labels.workspace import Workspace
+from trainkit.learning.data import PatchSet, load_patch_set
 
-__all__ = ["evaluate_experiment", "EvaluationError", "screening_probability", "CAUTION"]
+__all__ = ["evaluate_experiment", "EvaluationError", "CAUTION"]
 
 METRICS_VERSION = 1
 
@@ -99,11 +100,6 @@ CAUTION = (
 
 class EvaluationError(ValueError):
     """Evaluation cannot run; the message says why and what to do."""
-
-
-def screening_probability(probs: np.ndarray) -> np.ndarray:
-    """Screening probability of each patch: 1 - P(none) (class 0 is always no-crack)."""
-    return np.clip(1.0 - probs[:, 0].astype(np.float64), 0.0, 1.0)
 
 
 def _write_predictions(path: Path, data: PatchSet, probs: np.ndarray, class_set: ClassSet) -> None:
@@ -125,7 +121,7 @@ def _write_predictions(path: Path, data: PatchSet, probs: np.ndarray, class_set:
             ]
         )
         pred = probs.argmax(1)
-        scr = screening_probability(probs)
+        scr = screening_probability(probs.astype(np.float64))
         for i in range(len(data)):
             w.writerow(
                 [
@@ -185,7 +181,7 @@ def _run_experiment(
     workspace: str | Path | None,
     max_false_alarms: float | None = None,
 ) -> _Run:
-    from .training import load_checkpoint
+    from trainkit.learning.network import load_checkpoint
 
     exp = Path(exp_dir).resolve()
     model, ckpt, class_set = load_checkpoint(exp)
@@ -213,7 +209,7 @@ def _run_experiment(
         if len(val) and np.any(val.labels == 0):
             threshold = M.threshold_for_false_alarms(
                 val.labels != 0,
-                screening_probability(val_probs),
+                screening_probability(val_probs.astype(np.float64)),
                 max_false_alarm_rate=max_false_alarms,
             )
             source = f"validation subset, false-alarm rate at most {max_false_alarms:g}"
@@ -221,7 +217,9 @@ def _run_experiment(
             source = "default 0.5 (validation has no clean patches)"
     elif len(val) and np.any(val.labels != 0):
         threshold = M.threshold_for_recall(
-            val.labels != 0, screening_probability(val_probs), target_recall=target_recall
+            val.labels != 0,
+            screening_probability(val_probs.astype(np.float64)),
+            target_recall=target_recall,
         )
         source = f"validation subset, target screening recall {target_recall:g}"
     return _Run(
@@ -273,7 +271,10 @@ def _compare(a: _Run, b: _Run, out: Path) -> tuple[dict, np.ndarray]:
     order = np.array([pos_b[k] for k in a.keys], dtype=np.int64)
     y = a.data.labels
     crack = y != 0
-    pa, pb = screening_probability(a.probs), screening_probability(b.probs)[order]
+    pa, pb = (
+        screening_probability(a.probs.astype(np.float64)),
+        screening_probability(b.probs.astype(np.float64))[order],
+    )
     fa, fb = pa >= a.threshold, pb >= b.threshold
     ca_cls, cb_cls = a.probs.argmax(1), b.probs.argmax(1)[order]
     mc_recall = M.mcnemar_test(fa[crack], fb[crack])
@@ -381,8 +382,8 @@ def evaluate_experiment(
         EvaluationError: on bad options, an empty subset, or experiments that cannot be
             compared.
     """
-    from . import __version__
-    from .report import write_report
+    from trainkit import __version__
+    from trainkit.judging.report import write_report
 
     if split not in ("test", "val"):
         raise EvaluationError(f"expected split 'test' or 'val', got {split!r}")
@@ -408,7 +409,7 @@ def evaluate_experiment(
     per_class = M.per_class_report(
         y, pred, labels=labels, class_names=names, confidence=confidence, method=method
     )
-    p_crack = screening_probability(probs)
+    p_crack = screening_probability(probs.astype(np.float64))
     is_crack = y != 0
     screen = _screen_block(is_crack, p_crack, threshold)
     recall_ci = M.recall_interval(
@@ -417,7 +418,7 @@ def evaluate_experiment(
     val_screen = None
     if len(run.val):
         val_screen = _screen_block(
-            run.val.labels != 0, screening_probability(run.val_probs), threshold
+            run.val.labels != 0, screening_probability(run.val_probs.astype(np.float64)), threshold
         )
 
     # Calibration of the argmax confidence; optional temperature fitted on validation.

@@ -3,7 +3,7 @@
 # Coordinates: continuous pixel coordinates; pixel (row r, col c) covers [c, c+1) x [r, r+1),
 # so its centre is (x, y) = (c + 0.5, r + 0.5) and the frame is [0, W] x [0, H]. A box
 # (x0, y0, x1, y1) (x1/y1 exclusive as pixel bounds) is the rectangle [x0, x1] x [y0, y1].
-# Angles follow trainkit.taxonomy: undirected, [0, 180) degrees, counter-clockwise from +x as
+# Angles follow trainkit.core.taxonomy: undirected, [0, 180) degrees, counter-clockwise from +x as
 # seen on screen, so the pixel-space direction of angle a is (cos a, -sin a).
 
 from __future__ import annotations
@@ -23,8 +23,8 @@ from scipy import ndimage
 from scipy.signal import lfilter
 from scipy.spatial import Voronoi
 
-from trainkit.taxonomy import ClassSet
-from trainkit.tiling import grid_boxes
+from trainkit.core.grid import grid_boxes
+from trainkit.core.taxonomy import ClassSet
 
 __all__ = [
     "GENERATOR_VERSION",

@@ -15,8 +15,9 @@ from typing import Any
 
 import numpy as np
 
-from .fsutil import atomic_path
-from .taxonomy import ClassSet
+from trainkit.core.contract import screening_probability
+from trainkit.core.fsutil import atomic_path
+from trainkit.core.taxonomy import ClassSet
 
 __all__ = [
     "write_report",
@@ -313,7 +314,7 @@ def write_report(
     cm = np.array(result["confusion_matrix"])
     plot_confusion(cm, names, out / "confusion_matrix.png")
     is_crack = data.labels != 0
-    p_crack = np.clip(1.0 - probs[:, 0].astype(np.float64), 0, 1)
+    p_crack = screening_probability(probs.astype(np.float64))
     thr = result["screening"]["threshold"]
     plot_screening_curves(is_crack, p_crack, thr, out / "screening_curves.png")
     cal = result["calibration"]
@@ -595,7 +596,7 @@ is in predictions.csv.</p>
 <p class="dim">Every figure recomputes from <code>predictions.csv</code> (one row per patch: true
 and predicted class, every class probability, the screening probability). The numbers on
 this page are those of <code>metrics.json</code>, whose keys are documented in
-<code>trainkit.evaluation</code>.</p>
+<code>trainkit.judging.evaluation</code>.</p>
 <p class="caution">{_e(R["caution"])}</p>
 </body></html>
 """

@@ -66,7 +66,7 @@ class TrainConfig(_Strict):
     @field_validator("backbone")
     @classmethod
     def _known_backbone(cls, v: str) -> str:
-        from .models import BACKBONES
+        from trainkit.learning.models import BACKBONES
 
         if v not in BACKBONES:
             raise ValueError(

@@ -18,8 +18,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import AugmentConfig
-from .taxonomy import ClassSet, apply_d4
+from trainkit.core.taxonomy import ClassSet, apply_d4
+from trainkit.learning.config import AugmentConfig
 
 __all__ = ["PatchSet", "load_patch_set", "build_photometric", "Augmenter", "build_transform"]
 
@@ -201,7 +201,7 @@ class Augmenter:
 def build_transform(input_px: int):
     """The evaluation preset: resize an RGB uint8 patch to the model's input size, nothing else.
 
-    Normalisation happens inside the model (trainkit.training.Preprocess), so
+    Normalisation happens inside the model (trainkit.learning.network.Preprocess), so
     evaluation, export and scanning share one definition.
     """
     import cv2

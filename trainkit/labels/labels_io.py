@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .workspace import Workspace
+from trainkit.labels.workspace import Workspace
 
 __all__ = [
     "LabelsIOError",

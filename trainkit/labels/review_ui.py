@@ -1,6 +1,6 @@
 """Terminal review screens: half-block patch previews, contact-sheet PNGs and key handling.
 
-All decisions (queue, answers, undo, skip) live in :mod:`trainkit.review`; this module
+All decisions (queue, answers, undo, skip) live in :mod:`trainkit.labels.review`; this module
 only draws and reads keys. Two modes:
 
 - key mode: one patch at a time drawn with upper-half-block characters, each character
@@ -25,8 +25,8 @@ import click
 import numpy as np
 from PIL import Image, ImageDraw, ImageFilter, ImageFont
 
-from .orientation import dominant_orientation
-from .review import (
+from trainkit.labels.orientation import dominant_orientation
+from trainkit.labels.review import (
     ReviewError,
     Session,
     SheetAnswerError,

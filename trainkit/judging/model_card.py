@@ -44,7 +44,7 @@ _CAUTION_FALLBACK = (
 
 def _caution() -> str:
     try:
-        from .evaluation import CAUTION
+        from trainkit.judging.evaluation import CAUTION
     except ImportError:  # pragma: no cover - evaluation always ships with the kit
         return _CAUTION_FALLBACK
     return CAUTION
@@ -86,7 +86,7 @@ def synthetic_training_data(workspace: str | Path | None) -> bool | None:
     if workspace is None:
         return None
     try:
-        from .workspace import Workspace
+        from trainkit.labels.workspace import Workspace
 
         photos = Workspace.open(workspace).photos()
     except (ValueError, OSError):
@@ -376,7 +376,7 @@ def build_model_card(
         ckpt: the checkpoint dict (``config``, ``best_epoch``, ``input_px``, ``experiment``).
         experiment: the contents of ``experiment.json`` (default: the checkpoint's copy).
         metrics: the contents of ``evaluation/metrics.json``, or None when not evaluated.
-        export: the summary returned by :func:`trainkit.export.export_experiment`.
+        export: the summary returned by :func:`trainkit.judging.export.export_experiment`.
         synthetic: whether the training photos came from ``trainkit.synth`` (None: unknown).
         name: the experiment's name shown in the title.
         kit_version: trainkit version (default: the installed one).
@@ -386,7 +386,7 @@ def build_model_card(
         The card as Markdown text ending in a newline.
     """
     if kit_version is None:
-        from . import __version__ as kit_version
+        from trainkit import __version__ as kit_version
     experiment = experiment if experiment is not None else (ckpt.get("experiment") or {})
     export = export or {}
     created = created or _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")

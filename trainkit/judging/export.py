@@ -18,6 +18,14 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.contract import (
+    INPUT_NAME,
+    OUTPUT_NAME,
+    ModelInfo,
+    encode_metadata,
+    screening_probability,
+)
+
 __all__ = ["export_experiment", "ExportError", "DEFAULT_OPSET", "PARITY_ATOL", "read_metadata"]
 
 DEFAULT_OPSET = 18
@@ -61,8 +69,8 @@ def network_to_onnx(network, input_px: int, *, opset: int = DEFAULT_OPSET):
             (dummy,),
             dynamo=True,
             opset_version=opset,
-            input_names=["image"],
-            output_names=["probabilities"],
+            input_names=[INPUT_NAME],
+            output_names=[OUTPUT_NAME],
             dynamic_shapes=({0: batch},),
             optimize=True,
             verbose=False,
@@ -72,12 +80,12 @@ def network_to_onnx(network, input_px: int, *, opset: int = DEFAULT_OPSET):
 
 def _sample_patches(ckpt: dict, input_px: int, n: int = 32) -> np.ndarray:
     """Real patches for the parity check: the workspace's test (else any) crops; noise if none."""
-    from .workspace import Workspace, WorkspaceError
+    from trainkit.labels.workspace import Workspace, WorkspaceError
 
     try:
         ws = Workspace.open(ckpt["experiment"]["workspace"])
-        from .data import load_patch_set
-        from .taxonomy import class_set_from_dict
+        from trainkit.core.taxonomy import class_set_from_dict
+        from trainkit.learning.data import load_patch_set
 
         cs = class_set_from_dict(ckpt["class_set"])
         for subset in ("test", "val", "train"):
@@ -102,8 +110,8 @@ def export_experiment(
     import onnxruntime as ort
     import torch
 
-    from . import __version__
-    from .training import load_checkpoint
+    from trainkit import __version__
+    from trainkit.learning.network import load_checkpoint
 
     exp = Path(exp_dir)
     model, ckpt, class_set = load_checkpoint(exp)
@@ -116,24 +124,23 @@ def export_experiment(
     metrics = json.loads(metrics_path.read_text()) if metrics_path.exists() else None
     experiment = ckpt["experiment"]
     pmm = experiment.get("patch_mm_range")
-    meta = {
-        "trainkit.format": "trainkit-screener-1",
-        "class_names": json.dumps(list(class_set.names)),
-        "angle_centres": json.dumps(list(class_set.angle_centres)),
-        "patch_px": str(input_px),
-        "patch_mm": json.dumps(None if not pmm else round(float(np.mean(pmm)), 3)),
-        "threshold": json.dumps(metrics["screening"]["threshold"] if metrics else 0.5),
-        "threshold_source": metrics["screening"]["threshold_source"]
-        if metrics
-        else "default 0.5 (not evaluated)",
-        "gsd_mm_range": json.dumps(experiment.get("gsd_mm_range")),
-        "patch_mm_range": json.dumps(pmm),
-        "kit_version": __version__,
-        "data_digest": str(experiment.get("data_digest")),
-        "test_metrics": json.dumps(_headline(metrics)),
-        "input": "image: uint8 (N, S, S, 3) RGB, S = patch_px; resize is the caller's job",
-        "output": "probabilities: float32 (N, C) softmax; screening probability = 1 - p[none]",
-    }
+    meta = encode_metadata(
+        ModelInfo(
+            class_names=list(class_set.names),
+            angle_centres=list(class_set.angle_centres),
+            patch_px=input_px,
+            patch_mm=None if not pmm else round(float(np.mean(pmm)), 3),
+            threshold=metrics["screening"]["threshold"] if metrics else 0.5,
+            threshold_source=metrics["screening"]["threshold_source"]
+            if metrics
+            else "default 0.5 (not evaluated)",
+            gsd_mm_range=experiment.get("gsd_mm_range"),
+            patch_mm_range=pmm,
+            kit_version=__version__,
+            data_digest=str(experiment.get("data_digest")),
+            test_metrics=_headline(metrics),
+        )
+    )
     onnx.helper.set_model_props(proto, meta)
     proto.producer_name = "trainkit"
     proto.producer_version = __version__
@@ -150,7 +157,7 @@ def export_experiment(
         with torch.no_grad():
             ref = wrapped(torch.from_numpy(images)).numpy()
         sess = ort.InferenceSession(str(tmp), providers=["CPUExecutionProvider"])
-        got = sess.run(["probabilities"], {"image": images})[0]
+        got = sess.run([OUTPUT_NAME], {INPUT_NAME: images})[0]
         max_diff = float(np.max(np.abs(ref - got)))
         same_argmax = bool(np.array_equal(ref.argmax(1), got.argmax(1)))
         if max_diff > PARITY_ATOL or not same_argmax:
@@ -173,7 +180,7 @@ def export_experiment(
         "threshold": json.loads(meta["threshold"]),
         "evaluated": metrics is not None,
     }
-    from .model_card import write_model_card
+    from trainkit.judging.model_card import write_model_card
 
     summary["model_card"] = str(write_model_card(exp, ckpt, summary))
     return summary
@@ -220,7 +227,7 @@ def _time_session(sess, images: np.ndarray, rounds: int = 5) -> float:
     for _ in range(rounds):
         t0 = time.perf_counter()
         for i in range(0, len(images), 64):
-            sess.run(["probabilities"], {"image": images[i : i + 64]})
+            sess.run([OUTPUT_NAME], {INPUT_NAME: images[i : i + 64]})
         times.append(time.perf_counter() - t0)
     return statistics.median(times)
 
@@ -249,10 +256,10 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
     )
     from onnxruntime.quantization.shape_inference import quant_pre_process
 
-    from .data import load_patch_set
-    from .taxonomy import class_set_from_dict
-    from .training import load_checkpoint
-    from .workspace import Workspace
+    from trainkit.core.taxonomy import class_set_from_dict
+    from trainkit.labels.workspace import Workspace
+    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.network import load_checkpoint
 
     exp = Path(exp_dir)
     fp32 = exp / "model.onnx"
@@ -275,7 +282,7 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
 
     class Reader(CalibrationDataReader):
         def __init__(self) -> None:
-            self.batches = iter([{"image": calib[i : i + 16]} for i in range(0, len(calib), 16)])
+            self.batches = iter([{INPUT_NAME: calib[i : i + 16]} for i in range(0, len(calib), 16)])
 
         def get_next(self):
             return next(self.batches, None)
@@ -283,12 +290,12 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
     def recall(sess) -> float:
         probs = np.concatenate(
             [
-                sess.run(["probabilities"], {"image": test.images[i : i + 64]})[0]
+                sess.run([OUTPUT_NAME], {INPUT_NAME: test.images[i : i + 64]})[0]
                 for i in range(0, len(test), 64)
             ]
         )
         crack = test.labels != 0
-        return float(np.mean((1.0 - probs[crack, 0]) >= threshold))
+        return float(np.mean(screening_probability(probs[crack]) >= threshold))
 
     opts = ort.SessionOptions()
     base = ort.InferenceSession(str(fp32), opts, providers=["CPUExecutionProvider"])

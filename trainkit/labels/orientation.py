@@ -7,7 +7,7 @@ y = rows pointing down) are summed over the patch; the line direction is
     theta = 0.5 * atan2(2 J_xy, J_yy - J_xx)  mod 180 degrees,
 
 counter-clockwise from +x as seen on screen (the kit's angle convention, see
-:mod:`trainkit.taxonomy`), and the coherency (l1 - l2) / (l1 + l2) of the tensor's
+:mod:`trainkit.core.taxonomy`), and the coherency (l1 - l2) / (l1 + l2) of the tensor's
 eigenvalues says how clearly one direction dominates (1: a single straight line,
 0: no preferred direction).
 
@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
-from .taxonomy import ClassSet
+from trainkit.core.taxonomy import ClassSet
 
 __all__ = ["Orientation", "dominant_orientation", "structure_tensor_sums", "ridge_response"]
 

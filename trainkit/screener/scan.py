@@ -26,9 +26,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .fsutil import atomic_path
-from .imaging import PhotoError, find_images, read_rgb_fast
-from .screener import FramePatches, Screener, usable_cores
+from trainkit.core.cores import usable_cores
+from trainkit.core.decode import PhotoError, find_images, read_rgb_fast
+from trainkit.core.fsutil import atomic_path
+from trainkit.screener.model import FramePatches, Screener
 
 __all__ = ["scan_frames", "read_done", "FRAMES_FILE", "FLAGGED_FILE", "OVERLAY_CHOICES", "ENGINES"]
 

@@ -1,0 +1,199 @@
+"""The ONNX screener contract: its version, input and output names, metadata keys, and their encoding.
+
+One module, used by export (writing) and by the Screener (reading), so the two can
+never drift apart. Metadata values are strings in the ONNX file; structured values
+are JSON. A change to anything here that an older reader cannot ignore bumps
+:data:`CONTRACT_VERSION`; readers keep accepting every version in
+:data:`READABLE_VERSIONS`.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+__all__ = [
+    "CONTRACT_VERSION",
+    "READABLE_VERSIONS",
+    "FORMAT_KEY",
+    "INPUT_NAME",
+    "OUTPUT_NAME",
+    "REQUIRED_KEYS",
+    "ContractError",
+    "ModelInfo",
+    "encode_metadata",
+    "decode_metadata",
+    "screening_probability",
+]
+
+#: Metadata key holding the contract version.
+FORMAT_KEY = "trainkit.format"
+#: The version this kit writes.
+CONTRACT_VERSION = "trainkit-screener-1"
+#: Versions this kit reads.
+READABLE_VERSIONS = ("trainkit-screener-1",)
+#: The graph's one input: uint8 (N, S, S, 3) RGB, N dynamic.
+INPUT_NAME = "image"
+#: The graph's output: float32 (N, C) softmax over the class set.
+OUTPUT_NAME = "probabilities"
+#: Keys every readable model carries.
+REQUIRED_KEYS = (FORMAT_KEY, "class_names", "patch_px", "threshold")
+
+_INPUT_TEXT = "image: uint8 (N, S, S, 3) RGB, S = patch_px; resize is the caller's job"
+_OUTPUT_TEXT = "probabilities: float32 (N, C) softmax; screening probability = 1 - p[none]"
+
+
+class ContractError(ValueError):
+    """Metadata that does not follow the contract; the message says which key and why."""
+
+
+def screening_probability(probabilities: np.ndarray) -> np.ndarray:
+    """The screening probability of each patch: ``1 - P(none)``, clipped to [0, 1].
+
+    Class 0 is always the no-crack class (a fixed contract), so this holds for every
+    class set. Works on any array whose last axis is the class axis; keeps its dtype.
+    """
+    p = np.asarray(probabilities)
+    return np.clip(1.0 - p[..., 0], 0.0, 1.0)
+
+
+@dataclass(frozen=True)
+class ModelInfo:
+    """What the metadata of an exported screener says, as Python values.
+
+    Attributes:
+        class_names: class names in index order; ``class_names[0] == "none"``.
+        patch_px: the model's input size S in pixels.
+        threshold: screening threshold on ``1 - P(none)``.
+        angle_centres: angle centre per class in degrees (None where a class has none).
+        patch_mm: surface covered by one patch in mm, when the training data had a scale.
+        threshold_source: how the threshold was chosen, in words.
+        gsd_mm_range: (low, high) mm per pixel seen in training, when known.
+        patch_mm_range: (low, high) patch coverage in mm seen in training, when known.
+        kit_version: the kit version that exported the model.
+        data_digest: digest of the training data.
+        test_metrics: headline test figures, when the model was evaluated.
+        version: the contract version.
+        extra: any further keys, as stored (strings).
+    """
+
+    class_names: list[str]
+    patch_px: int
+    threshold: float
+    angle_centres: list[float | None] = field(default_factory=list)
+    patch_mm: float | None = None
+    threshold_source: str = ""
+    gsd_mm_range: tuple[float, float] | None = None
+    patch_mm_range: tuple[float, float] | None = None
+    kit_version: str = ""
+    data_digest: str = ""
+    test_metrics: dict | None = None
+    version: str = CONTRACT_VERSION
+    extra: dict[str, str] = field(default_factory=dict)
+
+
+_KNOWN = (
+    FORMAT_KEY,
+    "class_names",
+    "angle_centres",
+    "patch_px",
+    "patch_mm",
+    "threshold",
+    "threshold_source",
+    "gsd_mm_range",
+    "patch_mm_range",
+    "kit_version",
+    "data_digest",
+    "test_metrics",
+    "input",
+    "output",
+)
+
+
+def encode_metadata(info: ModelInfo) -> dict[str, str]:
+    """The metadata_props (string -> string) that describe ``info`` under the contract."""
+    if not info.class_names or info.class_names[0] != "none":
+        raise ContractError(f"class 0 must be 'none', got {info.class_names[:1]}")
+    meta = {
+        FORMAT_KEY: info.version,
+        "class_names": json.dumps(list(info.class_names)),
+        "angle_centres": json.dumps(list(info.angle_centres)),
+        "patch_px": str(int(info.patch_px)),
+        "patch_mm": json.dumps(info.patch_mm),
+        "threshold": json.dumps(float(info.threshold)),
+        "threshold_source": info.threshold_source,
+        "gsd_mm_range": json.dumps(_pair(info.gsd_mm_range)),
+        "patch_mm_range": json.dumps(_pair(info.patch_mm_range)),
+        "kit_version": info.kit_version,
+        "data_digest": str(info.data_digest),
+        "test_metrics": json.dumps(info.test_metrics),
+        "input": _INPUT_TEXT,
+        "output": _OUTPUT_TEXT,
+    }
+    meta.update(info.extra)
+    return meta
+
+
+def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
+    """Read metadata_props back into a :class:`ModelInfo`.
+
+    Args:
+        meta: the model's metadata_props as a dict of strings.
+        name: the model's file name, used in error messages.
+
+    Raises:
+        ContractError: a required key is missing, the version is unknown, or a value
+            is malformed.
+    """
+    missing = [k for k in REQUIRED_KEYS if k not in meta]
+    if missing:
+        raise ContractError(
+            f"{name} lacks trainkit metadata {missing}: not a model made by `trainkit export`"
+        )
+    version = meta[FORMAT_KEY]
+    if version not in READABLE_VERSIONS:
+        raise ContractError(
+            f"{name} uses contract {version!r}; this kit reads "
+            f"{', '.join(READABLE_VERSIONS)} (update trainkit)"
+        )
+    try:
+        class_names = [str(c) for c in json.loads(meta["class_names"])]
+        centres = json.loads(meta.get("angle_centres", "null")) or [None] * len(class_names)
+        pmm = json.loads(meta.get("patch_mm", "null"))
+        info = ModelInfo(
+            class_names=class_names,
+            patch_px=int(meta["patch_px"]),
+            threshold=float(json.loads(meta["threshold"])),
+            angle_centres=[None if c is None else float(c) for c in centres],
+            patch_mm=None if pmm is None else float(pmm),
+            threshold_source=meta.get("threshold_source", ""),
+            gsd_mm_range=_read_pair(meta.get("gsd_mm_range")),
+            patch_mm_range=_read_pair(meta.get("patch_mm_range")),
+            kit_version=meta.get("kit_version", ""),
+            data_digest=meta.get("data_digest", ""),
+            test_metrics=json.loads(meta.get("test_metrics", "null")),
+            version=version,
+            extra={k: v for k, v in meta.items() if k not in _KNOWN},
+        )
+    except (ValueError, TypeError) as exc:
+        raise ContractError(f"{name}: malformed trainkit metadata ({exc})") from None
+    if not info.class_names or info.class_names[0] != "none":
+        raise ContractError(f"{name}: class 0 must be 'none', got {info.class_names[:1]}")
+    if len(info.angle_centres) != len(info.class_names):
+        raise ContractError(
+            f"{name}: {len(info.angle_centres)} angle centres for {len(info.class_names)} classes"
+        )
+    return info
+
+
+def _pair(v: Any) -> list[float] | None:
+    return None if not v else [float(v[0]), float(v[1])]
+
+
+def _read_pair(text: str | None) -> tuple[float, float] | None:
+    v = json.loads(text) if text else None
+    return None if not v else (float(v[0]), float(v[1]))

@@ -1,0 +1,1 @@
+"""Intake: photos into a workspace (scale, quality, tiling)."""

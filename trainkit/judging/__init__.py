@@ -1,0 +1,1 @@
+"""Judging: metrics, evaluation, report, model card and export."""

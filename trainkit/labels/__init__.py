@@ -1,0 +1,1 @@
+"""Labels: the workspace store, review, label import and export, splits."""

@@ -1,0 +1,1 @@
+"""Learning: training configs, backbones, patch data, the network and the training loop."""
