@@ -24,7 +24,7 @@ def test_demo_leaves_the_experiment_folder(demo_run):
         "evaluation/predictions.csv",
         "checkpoint.pt",
         "history.csv",
-        "config.yaml",
+        "recipe.yaml",
         "scan/frames.jsonl",
         "demo-summary.json",
     ):

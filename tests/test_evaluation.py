@@ -42,7 +42,7 @@ BREAKDOWN_KEYS = {
 def _clone_experiment(src: Path, dst: Path) -> Path:
     """A new experiment folder with the same checkpoint, so evaluations do not clobber src."""
     dst.mkdir(parents=True)
-    for name in ("checkpoint.pt", "experiment.json", "config.yaml"):
+    for name in ("checkpoint.pt", "experiment.json", "recipe.yaml"):
         shutil.copy2(src / name, dst / name)
     return dst
 

@@ -40,7 +40,7 @@ def _rows(path):
     ]
 
 
-def _state(path, name="last.pt"):
+def _state(path, name="resume.pt"):
     return torch.load(path / name, weights_only=True)["model"]
 
 

@@ -511,14 +511,14 @@ def _print_split(ctx: Ctx, rep: dict) -> None:
 @click.option(
     "--threads", type=click.IntRange(1, 512), default=None, help="CPU threads for PyTorch."
 )
-@click.option("--restart", is_flag=True, help="Ignore last.pt and start from epoch 1.")
+@click.option("--restart", is_flag=True, help="Ignore resume.pt and start from epoch 1.")
 @click.pass_obj
 def train(
     ctx: Ctx, ws_dir, exp_dir, config, backbone, weights, epochs, batch_size, seed, threads, restart
 ) -> None:
     """Train a screener on the workspace's train subset, selecting on val.
 
-    Resumes from EXP/last.pt after an interruption unless --restart is given.
+    Resumes from EXP/resume.pt after an interruption unless --restart is given.
     """
     from trainkit.labels.workspace import Workspace
     from trainkit.learning.config import load_train_config

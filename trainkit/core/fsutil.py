@@ -1,13 +1,16 @@
-"""Crash-safe file writing: write to a temporary name in the same folder, then rename."""
+"""Crash-safe file writing: write to a unique temporary name in the same folder, then rename."""
 
 from __future__ import annotations
 
+import json
 import os
+import tempfile
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
-__all__ = ["atomic_path", "atomic_write_text"]
+__all__ = ["atomic_path", "atomic_write_text", "atomic_write_bytes", "atomic_write_json"]
 
 
 @contextmanager
@@ -16,11 +19,18 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
 
     A reader sees either the old file or the complete new one, never a half-written
     file; on an exception the temporary file is removed and ``path`` is untouched.
-    The temporary name keeps the suffix so that writers choosing a format by suffix
-    (Pillow, matplotlib) still work.
+    The temporary name is unique (created with :func:`tempfile.mkstemp` in the
+    target's folder), so two processes or threads writing the same file at once never
+    share a temporary file: the last rename wins and each result is whole. The name
+    keeps the suffix so that writers choosing a format by suffix (Pillow, matplotlib,
+    torch) still work.
     """
     path = Path(path)
-    tmp = path.with_name(f".{path.stem}.tmp-{os.getpid()}{path.suffix}")
+    fd, name = tempfile.mkstemp(
+        prefix=f".{path.stem}.", suffix=f".tmp{path.suffix}", dir=path.parent
+    )
+    os.close(fd)
+    tmp = Path(name)
     try:
         yield tmp
         os.replace(tmp, path)
@@ -33,3 +43,15 @@ def atomic_write_text(path: str | Path, text: str) -> None:
     """Write text (UTF-8) to ``path`` atomically."""
     with atomic_path(path) as tmp:
         tmp.write_text(text, encoding="utf-8")
+
+
+def atomic_write_bytes(path: str | Path, data: bytes) -> None:
+    """Write bytes to ``path`` atomically."""
+    with atomic_path(path) as tmp:
+        tmp.write_bytes(data)
+
+
+def atomic_write_json(path: str | Path, obj: Any, **dump_kwargs: Any) -> None:
+    """Write ``obj`` as JSON (UTF-8, indent 2 unless given) to ``path`` atomically."""
+    dump_kwargs.setdefault("indent", 2)
+    atomic_write_text(path, json.dumps(obj, **dump_kwargs))

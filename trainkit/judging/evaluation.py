@@ -72,7 +72,6 @@ import datetime as _dt
 import hashlib
 import json
 import math
-import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -80,11 +79,13 @@ from typing import Any
 import numpy as np
 
 from trainkit.core.contract import screening_probability
+from trainkit.core.fsutil import atomic_path, atomic_write_json
 from trainkit.core.taxonomy import ClassSet
 from trainkit.judging import metrics as M
 from trainkit.labels.splits import check_no_leak
 from trainkit.labels.workspace import Workspace
 from trainkit.learning.data import PatchSet, load_patch_set
+from trainkit.learning.experiment import Experiment
 
 __all__ = ["evaluate_experiment", "EvaluationError", "CAUTION"]
 
@@ -105,36 +106,35 @@ class EvaluationError(ValueError):
 def _write_predictions(path: Path, data: PatchSet, probs: np.ndarray, class_set: ClassSet) -> None:
     # float32 probabilities with 9 significant digits and the float64 screening
     # probability in round-trip form, so thresholds recompute exactly.
-    tmp = path.with_suffix(".csv.tmp")
-    names = class_set.names
-    with tmp.open("w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(
-            [
-                "patch_id",
-                "photo",
-                "group",
-                "true",
-                "predicted",
-                *[f"p_{n}" for n in names],
-                "screening_probability",
-            ]
-        )
-        pred = probs.argmax(1)
-        scr = screening_probability(probs.astype(np.float64))
-        for i in range(len(data)):
+    with atomic_path(path) as tmp:
+        names = class_set.names
+        with tmp.open("w", newline="", encoding="utf-8") as fh:
+            w = csv.writer(fh)
             w.writerow(
                 [
-                    int(data.patch_ids[i]),
-                    data.photos[i],
-                    data.groups[i],
-                    names[data.labels[i]],
-                    names[pred[i]],
-                    *[f"{p:.9g}" for p in probs[i]],
-                    repr(float(scr[i])),
+                    "patch_id",
+                    "photo",
+                    "group",
+                    "true",
+                    "predicted",
+                    *[f"p_{n}" for n in names],
+                    "screening_probability",
                 ]
             )
-    os.replace(tmp, path)
+            pred = probs.argmax(1)
+            scr = screening_probability(probs.astype(np.float64))
+            for i in range(len(data)):
+                w.writerow(
+                    [
+                        int(data.patch_ids[i]),
+                        data.photos[i],
+                        data.groups[i],
+                        names[data.labels[i]],
+                        names[pred[i]],
+                        *[f"{p:.9g}" for p in probs[i]],
+                        repr(float(scr[i])),
+                    ]
+                )
 
 
 # --------------------------------------------------------------------------- running a model
@@ -301,27 +301,26 @@ def _compare(a: _Run, b: _Run, out: Path) -> tuple[dict, np.ndarray]:
     sa = side(pa, ca_cls, a)
     sb = side(pb, cb_cls, b)
     csv_path = out / "disagreements.csv"
-    tmp = csv_path.with_suffix(".csv.tmp")
-    with tmp.open("w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(
-            [
-                "patch_id", "photo", "group", "true", "predicted_a", "predicted_b",
-                "screening_probability_a", "screening_probability_b", "flagged_a", "flagged_b",
-                "screening_right",
-            ]
-        )  # fmt: skip
-        for i in disagree:
-            right_a, right_b = fa[i] == crack[i], fb[i] == crack[i]
-            who = {(1, 1): "both", (1, 0): "a", (0, 1): "b", (0, 0): "neither"}
+    with atomic_path(csv_path) as tmp:
+        with tmp.open("w", newline="", encoding="utf-8") as fh:
+            w = csv.writer(fh)
             w.writerow(
                 [
-                    int(a.data.patch_ids[i]), a.data.photos[i], a.data.groups[i], names[y[i]],
-                    names[ca_cls[i]], names[cb_cls[i]], repr(float(pa[i])), repr(float(pb[i])),
-                    int(fa[i]), int(fb[i]), who[(int(right_a), int(right_b))],
+                    "patch_id", "photo", "group", "true", "predicted_a", "predicted_b",
+                    "screening_probability_a", "screening_probability_b", "flagged_a", "flagged_b",
+                    "screening_right",
                 ]
             )  # fmt: skip
-    os.replace(tmp, csv_path)
+            for i in disagree:
+                right_a, right_b = fa[i] == crack[i], fb[i] == crack[i]
+                who = {(1, 1): "both", (1, 0): "a", (0, 1): "b", (0, 0): "neither"}
+                w.writerow(
+                    [
+                        int(a.data.patch_ids[i]), a.data.photos[i], a.data.groups[i], names[y[i]],
+                        names[ca_cls[i]], names[cb_cls[i]], repr(float(pa[i])), repr(float(pb[i])),
+                        int(fa[i]), int(fb[i]), who[(int(right_a), int(right_b))],
+                    ]
+                )  # fmt: skip
     result = {
         "experiment_b": str(b.exp),
         "patches": int(y.size),
@@ -555,9 +554,7 @@ def evaluate_experiment(
     }
     # Undefined ratios (nan) are written as JSON null, so any JSON reader can load the file.
     result = _nan_to_none(json.loads(json.dumps(result, default=_json_default)))
-    tmp = out / "metrics.json.tmp"
-    tmp.write_text(json.dumps(result, indent=2, allow_nan=False), encoding="utf-8")
-    os.replace(tmp, out / "metrics.json")
+    atomic_write_json(out / Experiment.METRICS, result, allow_nan=False)
     write_report(
         out,
         result,

@@ -13,7 +13,6 @@ from __future__ import annotations
 import contextlib
 import io
 import json
-import os
 from pathlib import Path
 
 import numpy as np
@@ -25,6 +24,8 @@ from trainkit.core.contract import (
     encode_metadata,
     screening_probability,
 )
+from trainkit.core.fsutil import atomic_path
+from trainkit.learning.experiment import Experiment
 
 __all__ = ["export_experiment", "ExportError", "DEFAULT_OPSET", "PARITY_ATOL", "read_metadata"]
 
@@ -113,15 +114,15 @@ def export_experiment(
     from trainkit import __version__
     from trainkit.learning.network import load_checkpoint
 
-    exp = Path(exp_dir)
+    folder = Experiment(exp_dir)
+    folder.migrate()
+    exp = folder.path
     model, ckpt, class_set = load_checkpoint(exp)
     input_px = int(ckpt["input_px"])
     wrapped = _wrapper(model)
-    target = Path(out) if out else exp / "model.onnx"
-    tmp = target.with_suffix(".onnx.tmp")
+    target = Path(out) if out else folder.model_path
     proto = network_to_onnx(model, input_px, opset=opset)
-    metrics_path = exp / "evaluation" / "metrics.json"
-    metrics = json.loads(metrics_path.read_text()) if metrics_path.exists() else None
+    metrics = folder.read_metrics()
     experiment = ckpt["experiment"]
     pmm = experiment.get("patch_mm_range")
     meta = encode_metadata(
@@ -144,8 +145,8 @@ def export_experiment(
     onnx.helper.set_model_props(proto, meta)
     proto.producer_name = "trainkit"
     proto.producer_version = __version__
-    onnx.save(proto, tmp)
-    try:
+    with atomic_path(target) as tmp:
+        onnx.save(proto, tmp)
         onnx.checker.check_model(str(tmp), full_check=True)
         left = [n.name for n in proto.graph.node if n.op_type == "BatchNormalization"]
         if left:
@@ -165,17 +166,13 @@ def export_experiment(
                 f"ONNX output differs from PyTorch on {len(images)} patches: max |dp| = {max_diff:.2e} "
                 f"(allowed {PARITY_ATOL:.0e}), identical argmax: {same_argmax}; model not written"
             )
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    os.replace(tmp, target)
     summary = {
         "model": str(target),
         "opset": opset,
         "bytes": target.stat().st_size,
         "parity_max_abs_diff": max_diff,
         "parity_patches": int(len(images)),
-        "batchnorm_nodes": 0,
+        "batchnorm_nodes": len(left),
         "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
         "threshold": json.loads(meta["threshold"]),
         "evaluated": metrics is not None,
@@ -261,8 +258,9 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
 
-    exp = Path(exp_dir)
-    fp32 = exp / "model.onnx"
+    folder = Experiment(exp_dir)
+    exp = folder.path
+    fp32 = folder.model_path
     if not fp32.is_file():
         raise ExportError(f"{fp32} does not exist; export the float model first")
     _, ckpt, _ = load_checkpoint(exp)
@@ -371,11 +369,10 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
     )
     del model.metadata_props[:]
     onnx.helper.set_model_props(model, props)
-    target = exp / "model-int8.onnx"
-    tmp = target.with_suffix(".onnx.tmp")
-    onnx.save(model, str(tmp))
-    onnx.checker.check_model(str(tmp), full_check=True)
-    os.replace(tmp, target)
+    target = folder.int8_model_path
+    with atomic_path(target) as tmp:
+        onnx.save(model, str(tmp))
+        onnx.checker.check_model(str(tmp), full_check=True)
     import shutil
 
     shutil.rmtree(work, ignore_errors=True)

@@ -12,9 +12,11 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import os
 from pathlib import Path
 from typing import Any
+
+from trainkit.core.fsutil import atomic_write_text
+from trainkit.learning.experiment import Experiment
 
 __all__ = [
     "CARD_NAME",
@@ -25,7 +27,7 @@ __all__ = [
 ]
 
 #: File name of the card inside the experiment folder.
-CARD_NAME = "model-card.md"
+CARD_NAME = Experiment.CARD
 #: The sentence a card carries when the experiment has no evaluation/metrics.json.
 NOT_EVALUATED = (
     "**Not evaluated.** This model has no evaluation on held-out photos "
@@ -456,17 +458,10 @@ def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None
     Returns:
         The path of the card.
     """
-    exp = Path(exp_dir)
-    exp_json = exp / "experiment.json"
-    experiment = (
-        json.loads(exp_json.read_text(encoding="utf-8"))
-        if exp_json.is_file()
-        else (ckpt.get("experiment") or {})
-    )
-    metrics_path = exp / "evaluation" / "metrics.json"
-    metrics = (
-        json.loads(metrics_path.read_text(encoding="utf-8")) if metrics_path.is_file() else None
-    )
+    folder = Experiment(exp_dir)
+    exp = folder.path
+    experiment = folder.read_provenance() or ckpt.get("experiment") or {}
+    metrics = folder.read_metrics()
     text = build_model_card(
         ckpt,
         experiment=experiment,
@@ -475,8 +470,6 @@ def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None
         synthetic=synthetic_training_data(experiment.get("workspace")),
         name=exp.resolve().name,
     )
-    target = exp / CARD_NAME
-    tmp = target.with_name(target.name + ".tmp")
-    tmp.write_text(text, encoding="utf-8")
-    os.replace(tmp, target)
+    target = folder.card_path
+    atomic_write_text(target, text)
     return target

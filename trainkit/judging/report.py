@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 
 from trainkit.core.contract import screening_probability
-from trainkit.core.fsutil import atomic_path
+from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.core.taxonomy import ClassSet
 
 __all__ = [
@@ -601,7 +601,5 @@ this page are those of <code>metrics.json</code>, whose keys are documented in
 </body></html>
 """
     path = out / "report.html"
-    tmp = path.with_suffix(".html.tmp")
-    tmp.write_text(page, encoding="utf-8")
-    tmp.replace(path)
+    atomic_write_text(path, page)
     return path

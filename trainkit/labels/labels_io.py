@@ -17,13 +17,13 @@ from __future__ import annotations
 
 import csv
 import hashlib
-import os
 import re
 import shutil
 from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.fsutil import atomic_path
 from trainkit.labels.workspace import Workspace
 
 __all__ = [
@@ -67,17 +67,16 @@ def export_csv(ws: Workspace, path: str | Path) -> int:
     """Write the current label of every labelled patch to CSV (atomically); returns rows."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(path.name + ".tmp")
-    rows = _current(ws)
-    with tmp.open("w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(EXPORT_COLUMNS)
-        for r, e in rows:
-            w.writerow(
-                [r.id, r.photo, *r.box, e["label"] or "", e["reviewer"], e["source"]]
-                + [f"{e['created_at']:.3f}"]
-            )
-    os.replace(tmp, path)
+    with atomic_path(path) as tmp:
+        rows = _current(ws)
+        with tmp.open("w", newline="", encoding="utf-8") as fh:
+            w = csv.writer(fh)
+            w.writerow(EXPORT_COLUMNS)
+            for r, e in rows:
+                w.writerow(
+                    [r.id, r.photo, *r.box, e["label"] or "", e["reviewer"], e["source"]]
+                    + [f"{e['created_at']:.3f}"]
+                )
     return len(rows)
 
 

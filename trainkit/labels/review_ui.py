@@ -15,7 +15,6 @@ has no colour or is not a terminal at all.
 
 from __future__ import annotations
 
-import os
 import shlex
 import subprocess
 import tempfile
@@ -25,6 +24,7 @@ import click
 import numpy as np
 from PIL import Image, ImageDraw, ImageFilter, ImageFont
 
+from trainkit.core.fsutil import atomic_path
 from trainkit.labels.orientation import dominant_orientation
 from trainkit.labels.review import (
     ReviewError,
@@ -201,9 +201,8 @@ def _open_viewer(viewer: str | None, path: Path) -> None:
 
 def _save_png(img: Image.Image, path: Path) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_suffix(".tmp.png")
-    img.save(tmp)
-    os.replace(tmp, path)
+    with atomic_path(path) as tmp:
+        img.save(tmp)
 
 
 def _patch_lines(session: Session, rec, img: np.ndarray) -> list[str]:

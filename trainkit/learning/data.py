@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.fsutil import atomic_path
 from trainkit.core.taxonomy import ClassSet, apply_d4
 from trainkit.learning.config import AugmentConfig
 
@@ -119,17 +120,14 @@ def _cached_crops(root: Path, recs, size: int, subset: str) -> np.ndarray:
         except (OSError, ValueError):  # a damaged cache file is rebuilt, never trusted
             pass
     imgs = _decode_crops(root, recs, size)
-    tmp = path.with_name(path.name + f".{os.getpid()}.tmp")
     try:
         cache_dir.mkdir(exist_ok=True)
         for old in cache_dir.glob(f"crops-{subset}-*.npy"):
             old.unlink(missing_ok=True)
-        with tmp.open("wb") as fh:
+        with atomic_path(path) as tmp, tmp.open("wb") as fh:
             np.save(fh, imgs)
-        os.replace(tmp, path)
         return np.load(path, mmap_mode="c")
     except OSError:  # read-only or full disk, or another run replaced the file: use memory
-        tmp.unlink(missing_ok=True)
         return imgs
 
 

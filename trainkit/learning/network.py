@@ -9,6 +9,7 @@ from torch import nn
 
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.learning.config import TrainConfig
+from trainkit.learning.experiment import Experiment
 from trainkit.learning.models import IMAGENET_MEAN, IMAGENET_STD, create_model
 
 
@@ -51,7 +52,7 @@ def load_checkpoint(exp_or_file: str | Path) -> tuple[nn.Sequential, dict, Class
     """Load an experiment's best checkpoint; returns (network in eval mode, checkpoint dict, class set)."""
     path = Path(exp_or_file)
     if path.is_dir():
-        path = path / "checkpoint.pt"
+        path = Experiment(path).checkpoint_path
     if not path.is_file():
         raise TrainingError(f"no checkpoint at {path}; run `trainkit train` first")
     # The checkpoint holds tensors and plain containers only: weights_only loading runs no code.

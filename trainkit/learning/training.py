@@ -1,8 +1,8 @@
 """The training loop: fine-tune a backbone on a workspace's split, with checkpoints and resume.
 
-An experiment folder receives ``config.yaml`` (the resolved config),
+An experiment folder (see :mod:`trainkit.learning.experiment`) receives ``recipe.yaml`` (the resolved recipe),
 ``experiment.json`` (which workspace and split it used), ``history.csv`` (one row
-per epoch, with throughput in images per second), ``last.pt`` (for resuming after
+per epoch, with throughput in images per second), ``resume.pt`` (for resuming after
 a crash) and ``checkpoint.pt`` (the epoch with the best validation score).
 """
 
@@ -25,13 +25,14 @@ import yaml
 from torch import nn
 
 from trainkit.core.contract import screening_probability
-from trainkit.core.fsutil import atomic_write_text
+from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.core.taxonomy import apply_d4, load_class_set
 from trainkit.judging.metrics import recall_at_false_alarm
 from trainkit.labels.splits import check_no_leak
 from trainkit.labels.workspace import Workspace
 from trainkit.learning.config import TrainConfig
 from trainkit.learning.data import Augmenter, PatchSet, batches, load_patch_set
+from trainkit.learning.experiment import Experiment
 from trainkit.learning.models import HEADS
 from trainkit.learning.network import TrainingError, build_network
 
@@ -434,9 +435,8 @@ def selection_score(row: dict, cfg: TrainConfig, has_val: bool) -> list[float]:
 
 
 def _save_atomic(obj: dict, path: Path) -> None:
-    tmp = path.with_suffix(path.suffix + ".tmp")
-    torch.save(obj, tmp)
-    os.replace(tmp, path)
+    with atomic_path(path) as tmp:
+        torch.save(obj, tmp)
 
 
 def native_bf16() -> bool:
@@ -470,7 +470,7 @@ def train(
         workspace: the workspace with labels and a split.
         exp_dir: experiment folder (created).
         cfg: the resolved training config.
-        resume: continue from ``last.pt`` if it exists and matches the config and data.
+        resume: continue from ``resume.pt`` if it exists and matches the config and data.
         on_epoch: called with each history row.
         on_batch: called with the batch size after every optimiser step.
         on_start: called with (epochs still to run, training patches per epoch) before training.
@@ -479,8 +479,10 @@ def train(
     Returns:
         A summary: best epoch and its validation scores, paths, throughput.
     """
-    exp = Path(exp_dir)
+    experiment_folder = Experiment(exp_dir)
+    exp = experiment_folder.path
     exp.mkdir(parents=True, exist_ok=True)
+    experiment_folder.migrate()  # folders from before the rename keep resuming
     class_set = load_class_set(cfg.class_set)
     ws_classes = workspace.class_set
     if ws_classes.names != class_set.names:
@@ -529,7 +531,7 @@ def train(
     forward = torch.compile(model) if cfg.compile else model
 
     cfg_dict = cfg.model_dump(mode="json")
-    atomic_write_text(exp / "config.yaml", yaml.safe_dump(cfg_dict, sort_keys=False))
+    atomic_write_text(experiment_folder.recipe_path, yaml.safe_dump(cfg_dict, sort_keys=False))
     gsds = [r.gsd_mm for r in records if r.subset == "train" and r.gsd_mm is not None]
     mms = [r.patch_mm for r in records if r.subset == "train" and r.patch_mm is not None]
     experiment = {
@@ -543,7 +545,7 @@ def train(
         "gsd_mm_range": [min(gsds), max(gsds)] if gsds else None,
         "patch_mm_range": [min(mms), max(mms)] if mms else None,
     }
-    atomic_write_text(exp / "experiment.json", json.dumps(experiment, indent=2))
+    atomic_write_text(experiment_folder.provenance_path, json.dumps(experiment, indent=2))
 
     history: list[dict] = []
     start_epoch, step = 1, 0
@@ -551,11 +553,11 @@ def train(
     # Early stopping counts full-network epochs only: a plateau while only the head
     # trains never ends the run, and unfreezing starts with the whole patience.
     patience_left = cfg.early_stop_patience
-    last_path = exp / "last.pt"
+    last_path = experiment_folder.resume_path
     if resume and last_path.exists():
         try:
             state = torch.load(last_path, map_location="cpu", weights_only=True)
-        except Exception:  # a damaged last.pt (e.g. disk full): start over rather than fail
+        except Exception:  # a damaged resume.pt (e.g. disk full): start over rather than fail
             state = {}
         if (
             state.get("format") == "trainkit-last-3"
@@ -666,7 +668,7 @@ def train(
             else:
                 patience_left -= 1
             stop = bool(cfg.early_stop_patience) and patience_left <= 0
-            _write_history(exp / "history.csv", history)
+            _write_history(experiment_folder.history_path, history)
             _save_atomic(
                 {
                     "format": "trainkit-last-3",
@@ -701,7 +703,7 @@ def train(
         "selected_on": cfg.select_on if has_val else "train_loss",
         "experiment": experiment,
     }
-    _save_atomic(checkpoint, exp / "checkpoint.pt")
+    _save_atomic(checkpoint, experiment_folder.checkpoint_path)
     ips = [h["train_images_per_s"] for h in history if h["train_images_per_s"] > 0]
     return {
         "experiment": str(exp),
@@ -724,10 +726,9 @@ def _cv2_threads(n: int) -> int:
 
 
 def _write_history(path: Path, history: list[dict]) -> None:
-    tmp = path.with_suffix(".csv.tmp")
-    with tmp.open("w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, fieldnames=HISTORY_FIELDS, extrasaction="ignore")
-        w.writeheader()
-        for row in history:
-            w.writerow({k: (f"{v:.6g}" if isinstance(v, float) else v) for k, v in row.items()})
-    os.replace(tmp, path)
+    with atomic_path(path) as tmp:
+        with tmp.open("w", newline="", encoding="utf-8") as fh:
+            w = csv.DictWriter(fh, fieldnames=HISTORY_FIELDS, extrasaction="ignore")
+            w.writeheader()
+            for row in history:
+                w.writerow({k: (f"{v:.6g}" if isinstance(v, float) else v) for k, v in row.items()})

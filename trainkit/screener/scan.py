@@ -28,7 +28,7 @@ import numpy as np
 
 from trainkit.core.cores import usable_cores
 from trainkit.core.decode import PhotoError, find_images, read_rgb_fast
-from trainkit.core.fsutil import atomic_path
+from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.screener.model import FramePatches, Screener
 
 __all__ = ["scan_frames", "read_done", "FRAMES_FILE", "FLAGGED_FILE", "OVERLAY_CHOICES", "ENGINES"]
@@ -364,6 +364,4 @@ def _write_flagged(frames_path: Path, target: Path) -> None:
         rec = json.loads(line)
         if rec.get("flagged"):
             flagged.append(rec["frame"])
-    tmp = target.with_suffix(".txt.tmp")
-    tmp.write_text("".join(f"{f}\n" for f in sorted(set(flagged))), encoding="utf-8")
-    os.replace(tmp, target)
+    atomic_write_text(target, "".join(f"{f}\n" for f in sorted(set(flagged))))

@@ -1,0 +1,184 @@
+"""The experiment folder: its file names, its readers and the migration of older names.
+
+An :class:`Experiment` owns an experiment folder as :class:`~trainkit.labels.workspace.Workspace`
+owns a workspace: every module that reads or writes a file of the folder asks it for
+the path. It imports nothing heavy (no torch), so ``trainkit status`` stays quick.
+
+Layout::
+
+    EXP/
+      recipe.yaml            the resolved training recipe (was config.yaml)
+      experiment.json        which workspace, split, data digest and scale the run used
+      history.csv            one row per epoch, with training throughput in images per second
+      resume.pt              state for resuming after an interruption (was last.pt)
+      checkpoint.pt          the chosen epoch's weights, recipe and class set
+      evaluation/            metrics.json, predictions.csv, report.html, plots
+      model.onnx             the exported screener; model-int8.onnx when kept
+      model-card.md          written beside every export
+
+Migration: folders written before the rename hold ``config.yaml``, ``last.pt`` and
+``evaluation/confusion_matrix.png``; :meth:`Experiment.migrate` renames them once,
+and every command that opens an experiment calls it.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+__all__ = ["Experiment", "LEGACY_NAMES"]
+
+#: Old file name -> new file name, for folders written before the rename.
+LEGACY_NAMES = {
+    "config.yaml": "recipe.yaml",
+    "last.pt": "resume.pt",
+    "evaluation/confusion_matrix.png": "evaluation/confusion.png",
+}
+
+
+class Experiment:
+    """One experiment folder (it need not exist yet).
+
+    Args:
+        path: the folder.
+    """
+
+    RECIPE = "recipe.yaml"
+    PROVENANCE = "experiment.json"
+    HISTORY = "history.csv"
+    RESUME = "resume.pt"
+    CHECKPOINT = "checkpoint.pt"
+    MODEL = "model.onnx"
+    MODEL_INT8 = "model-int8.onnx"
+    CARD = "model-card.md"
+    EVALUATION = "evaluation"
+    METRICS = "metrics.json"
+    PREDICTIONS = "predictions.csv"
+    REPORT = "report.html"
+    DISAGREEMENTS = "disagreements.csv"
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = Path(path)
+
+    def __repr__(self) -> str:
+        return f"Experiment({str(self.path)!r})"
+
+    # ----- paths ------------------------------------------------------------------
+
+    @property
+    def recipe_path(self) -> Path:
+        return self.path / self.RECIPE
+
+    @property
+    def provenance_path(self) -> Path:
+        return self.path / self.PROVENANCE
+
+    @property
+    def history_path(self) -> Path:
+        return self.path / self.HISTORY
+
+    @property
+    def resume_path(self) -> Path:
+        return self.path / self.RESUME
+
+    @property
+    def checkpoint_path(self) -> Path:
+        return self.path / self.CHECKPOINT
+
+    @property
+    def model_path(self) -> Path:
+        return self.path / self.MODEL
+
+    @property
+    def int8_model_path(self) -> Path:
+        return self.path / self.MODEL_INT8
+
+    @property
+    def card_path(self) -> Path:
+        return self.path / self.CARD
+
+    @property
+    def evaluation_dir(self) -> Path:
+        return self.path / self.EVALUATION
+
+    @property
+    def metrics_path(self) -> Path:
+        return self.evaluation_dir / self.METRICS
+
+    @property
+    def predictions_path(self) -> Path:
+        return self.evaluation_dir / self.PREDICTIONS
+
+    @property
+    def report_path(self) -> Path:
+        return self.evaluation_dir / self.REPORT
+
+    # ----- state ------------------------------------------------------------------
+
+    def is_experiment(self) -> bool:
+        """True when the folder holds an experiment (its provenance or a checkpoint)."""
+        return self.provenance_path.exists() or self.checkpoint_path.exists()
+
+    def migrate(self) -> list[str]:
+        """Rename files written under older names (see :data:`LEGACY_NAMES`).
+
+        Returns:
+            One line per renamed file (empty when nothing needed renaming). A legacy
+            file is left alone when a file of the new name already exists.
+        """
+        done = []
+        for old, new in LEGACY_NAMES.items():
+            src, dst = self.path / old, self.path / new
+            if src.exists() and not dst.exists():
+                os.replace(src, dst)
+                done.append(f"{old} -> {new}")
+        return done
+
+    # ----- readers ----------------------------------------------------------------
+
+    def read_provenance(self) -> dict | None:
+        """The contents of ``experiment.json``, or None before training wrote it."""
+        return _read_json(self.provenance_path)
+
+    def read_metrics(self) -> dict | None:
+        """The contents of ``evaluation/metrics.json``, or None before evaluation."""
+        return _read_json(self.metrics_path)
+
+    def read_history(self) -> list[dict[str, str]]:
+        """The rows of ``history.csv`` as dicts of strings (empty before training)."""
+        if not self.history_path.exists():
+            return []
+        with self.history_path.open(newline="", encoding="utf-8") as fh:
+            return list(csv.DictReader(fh))
+
+    def status(self) -> dict[str, Any]:
+        """A short summary for ``trainkit status``: which files exist and the headline figures."""
+        info: dict[str, Any] = {"experiment": str(self.path)}
+        for label, path in (
+            (self.CHECKPOINT, self.checkpoint_path),
+            (self.HISTORY, self.history_path),
+            (f"{self.EVALUATION}/{self.METRICS}", self.metrics_path),
+            (f"{self.EVALUATION}/{self.REPORT}", self.report_path),
+            (self.MODEL, self.model_path),
+        ):
+            info[label] = "present" if path.exists() else "missing"
+        prov = self.read_provenance()
+        if prov:
+            info["workspace"] = prov.get("workspace")
+            info["training_patches"] = prov.get("training_patches")
+        metrics = self.read_metrics()
+        if metrics:
+            s = metrics["screening"]
+            ci = s["recall_interval"]
+            info["screening_recall"] = f"{s['recall']:.3f} [{ci['low']:.3f}, {ci['high']:.3f}]"
+            info["threshold"] = s["threshold"]
+        return info
+
+
+def _read_json(path: Path) -> dict | None:
+    if not path.exists():
+        return None
+    return json.loads(path.read_text(encoding="utf-8"))
