@@ -52,7 +52,8 @@ def build_workspace(out: Path, n_photos: int, seed: int):
     from trainkit.core.decode import list_images
     from trainkit.core.taxonomy import load_class_set
     from trainkit.demo import TINY_DATASET, tiny_dataset_dir
-    from trainkit.intake.tiling import read_sidecar, tile_into_workspace
+    from trainkit.intake.sidecar import read_sidecar
+    from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.splits import split_workspace
     from trainkit.labels.workspace import Workspace, import_labels_csv
     from trainkit.synth import SynthOptions, write_dataset

@@ -108,18 +108,18 @@ def bench_onnx_vs_torch(n: int = 256, size: int = 128) -> dict:
 
 def bench_tiling(n_photos: int = 12, rounds: int = 2) -> dict:
     """12-Mpx JPEGs (synthetic concrete upscaled to 4000 x 3000 plus noise) tiled at 224 px."""
-    import os
     import shutil
 
     import cv2
     from PIL import Image
 
+    from trainkit.core.cores import usable_cores
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.workspace import Workspace
     from trainkit.synth import SynthOptions, generate_photo
 
-    cores = len(os.sched_getaffinity(0))
+    cores = usable_cores()
     with tempfile.TemporaryDirectory() as d:
         root = Path(d)
         photos = []

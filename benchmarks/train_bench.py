@@ -66,7 +66,8 @@ def _log(msg: str) -> None:
 def build_workspace(root: Path, *, n_photos: int, tile_px: int = 224):
     """A labelled, split workspace of synthetic photos of 3 x 2 tiles, made as the demo makes one."""
     from trainkit.core.taxonomy import load_class_set
-    from trainkit.intake.tiling import read_sidecar, tile_into_workspace
+    from trainkit.intake.sidecar import read_sidecar
+    from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.splits import split_workspace
     from trainkit.labels.workspace import Workspace, import_labels_csv
     from trainkit.synth import SynthOptions, write_dataset

@@ -7,7 +7,7 @@ import pytest
 
 from trainkit.core.taxonomy import D4_ELEMENTS, apply_d4, load_class_set
 from trainkit.learning.config import AugmentConfig
-from trainkit.learning.data import Augmenter, build_photometric, build_transform
+from trainkit.learning.data import Augmenter, build_photometric
 from trainkit.synth import Crack, render_cracks
 
 
@@ -79,10 +79,14 @@ def test_photometric_keeps_shape_and_dtype():
     assert out.shape == rng_img.shape and out.dtype == np.uint8
 
 
-def test_eval_transform_resizes_only():
-    t = build_transform(64)
-    img = np.full((128, 128, 3), 77, np.uint8)
-    out = t(img)
-    assert out.shape == (64, 64, 3) and np.all(out == 77)
+def test_resize_patch_matches_pillow_bilinear():
+    # Reference: Pillow's own bilinear resize (the filter the Screener uses on frames).
+    from PIL import Image
+
+    from trainkit.core.grid import resize_patch
+
+    img = np.random.default_rng(3).integers(0, 256, (96, 80, 3), dtype=np.uint8)
+    want = np.asarray(Image.fromarray(img).resize((64, 64), Image.BILINEAR))
+    assert np.array_equal(resize_patch(img, 64), want)
     same = np.zeros((64, 64, 3), np.uint8)
-    assert t(same) is not None and t(same).shape == (64, 64, 3)
+    assert resize_patch(same, 64) is same

@@ -10,15 +10,16 @@ from PIL import Image
 
 from trainkit.core.decode import read_rgb
 from trainkit.core.taxonomy import load_class_set
-from trainkit.intake.scale import ExifInfo, gsd_from_exif, gsd_mm_per_px, read_exif
-from trainkit.intake.tiling import (
+from trainkit.intake.scale import (
+    ExifInfo,
     ScaleOptions,
-    parse_roi,
-    read_sidecar,
+    gsd_from_exif,
+    gsd_mm_per_px,
+    read_exif,
     resolve_scale,
-    tile_into_workspace,
-    tile_photo,
 )
+from trainkit.intake.sidecar import parse_roi, read_sidecar
+from trainkit.intake.tiling import tile_into_workspace, tile_photo
 from trainkit.labels.workspace import Workspace
 
 
@@ -155,7 +156,7 @@ def test_focus_ranks_blurred_below_sharp():
     """Variance of the Laplacian (Pech-Pacheco et al. 2000) against cv2.Laplacian directly."""
     import cv2
 
-    from trainkit.intake.tiling import quality_measures
+    from trainkit.intake.quality import quality_measures
 
     sharp = textured(64, 64, seed=4)
     blurred = cv2.GaussianBlur(sharp, (0, 0), 2.0)

@@ -8,7 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from trainkit.core.grid import axis_starts, crop, grid_boxes, overlap_to_stride
-from trainkit.intake.tiling import quality_measures, tile_photo
+from trainkit.intake.quality import quality_measures
+from trainkit.intake.tiling import tile_photo
 
 
 @settings(max_examples=300, deadline=None)

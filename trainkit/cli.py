@@ -340,7 +340,9 @@ def tile(
     """
     from trainkit.core.decode import find_images
     from trainkit.core.taxonomy import load_class_set
-    from trainkit.intake.tiling import ScaleOptions, read_sidecar, tile_into_workspace
+    from trainkit.intake.scale import ScaleOptions
+    from trainkit.intake.sidecar import read_sidecar
+    from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.workspace import Workspace, import_labels_csv
 
     with user_errors(ctx):

@@ -61,7 +61,8 @@ def run_demo(
 
     from trainkit.core.decode import list_images
     from trainkit.core.taxonomy import load_class_set
-    from trainkit.intake.tiling import read_sidecar, tile_into_workspace
+    from trainkit.intake.sidecar import read_sidecar
+    from trainkit.intake.tiling import tile_into_workspace
     from trainkit.judging.evaluation import evaluate_experiment
     from trainkit.judging.export import export_experiment
     from trainkit.labels.splits import split_workspace

@@ -90,3 +90,17 @@ def crop(image: np.ndarray, box: Box, tile_px: int) -> np.ndarray:
         pad = [(0, tile_px - ph), (0, tile_px - pw)] + [(0, 0)] * (image.ndim - 2)
         patch = np.pad(patch, pad, mode="edge")
     return np.ascontiguousarray(patch)
+
+
+def resize_patch(rgb: np.ndarray, size: int) -> np.ndarray:
+    """An (h, w, 3) uint8 patch resampled to (size, size, 3) with Pillow's bilinear filter.
+
+    The one resize used wherever a stored crop meets a model (training data, the review
+    queue's model suggestions); the Screener resamples whole frames with the same filter.
+    A patch already of that size is returned as it is.
+    """
+    if rgb.shape[:2] == (size, size):
+        return rgb
+    from PIL import Image
+
+    return np.asarray(Image.fromarray(rgb).resize((size, size), Image.BILINEAR))

@@ -1,4 +1,4 @@
-"""Photo scale: ground sampling distance from camera geometry or EXIF."""
+"""Photo scale: ground sampling distance from camera geometry or EXIF, and which source wins."""
 
 from __future__ import annotations
 
@@ -7,7 +7,15 @@ from pathlib import Path
 
 from PIL import Image
 
-__all__ = ["gsd_mm_per_px", "FULL_FRAME_WIDTH_MM", "ExifInfo", "read_exif", "gsd_from_exif"]
+__all__ = [
+    "gsd_mm_per_px",
+    "FULL_FRAME_WIDTH_MM",
+    "ExifInfo",
+    "read_exif",
+    "gsd_from_exif",
+    "ScaleOptions",
+    "resolve_scale",
+]
 
 
 #: Width of a 35 mm full-frame sensor, used with a 35 mm-equivalent focal length.
@@ -112,3 +120,54 @@ def gsd_from_exif(
             image_width_px=image_width_px,
         )
     return None
+
+
+@dataclass(frozen=True)
+class ScaleOptions:
+    """Command-line scale settings, used when the sidecar does not give a photo's scale."""
+
+    gsd_mm: float | None = None
+    distance_m: float | None = None
+    focal_mm: float | None = None
+    sensor_width_mm: float | None = None
+
+
+def resolve_scale(
+    rec: dict, image_width_px: int, options: ScaleOptions | float | None = None, exif=None
+) -> tuple[float | None, str]:
+    """Scale of one photo and where it came from, in order of precedence.
+
+    1. sidecar ``gsd_mm`` ("sidecar"); 2. sidecar camera geometry ("sidecar-camera");
+    3. option ``--gsd-mm`` ("option"); 4. option camera geometry ("option-camera");
+    5. EXIF focal length with a distance from the sidecar or the options ("exif");
+    otherwise no scale ("none").
+    """
+    if not isinstance(options, ScaleOptions):
+        options = ScaleOptions(gsd_mm=options)
+    if "gsd_mm" in rec:
+        return float(rec["gsd_mm"]), "sidecar"
+    if {"distance_m", "focal_mm", "sensor_width_mm"} <= rec.keys():
+        return gsd_mm_per_px(
+            sensor_width_mm=rec["sensor_width_mm"],
+            distance_m=rec["distance_m"],
+            focal_mm=rec["focal_mm"],
+            image_width_px=image_width_px,
+        ), "sidecar-camera"
+    if options.gsd_mm:
+        return float(options.gsd_mm), "option"
+    distance = rec.get("distance_m", options.distance_m)
+    sensor = rec.get("sensor_width_mm", options.sensor_width_mm)
+    if distance and options.focal_mm and sensor:
+        return gsd_mm_per_px(
+            sensor_width_mm=sensor,
+            distance_m=distance,
+            focal_mm=options.focal_mm,
+            image_width_px=image_width_px,
+        ), "option-camera"
+    if distance and exif is not None:
+        g = gsd_from_exif(
+            exif, distance_m=distance, image_width_px=image_width_px, sensor_width_mm=sensor
+        )
+        if g is not None:
+            return g, "exif"
+    return None, "none"

@@ -10,44 +10,23 @@ extent.
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-from trainkit.core.grid import Box, PatchBox, crop, iter_patch_boxes, overlap_to_stride
+from trainkit.core.cores import usable_cores
+from trainkit.core.grid import PatchBox, crop, iter_patch_boxes, overlap_to_stride
+from trainkit.intake.quality import quality_measures
+from trainkit.intake.scale import ScaleOptions, resolve_scale
+from trainkit.intake.sidecar import _check_date, parse_roi, roi_fraction
 
 if TYPE_CHECKING:
     from trainkit.labels.workspace import Workspace
 
 __all__ = []
-
-
-# ----- quality measures ------------------------------------------------------------
-
-#: Quality thresholds (common practice, tuned on the synthetic set; adjust per camera).
-FOCUS_MIN = 20.0  # variance of the Laplacian of the grey patch below this -> "blurred"
-CLIPPED_MAX = 0.25  # fraction of grey pixels at <= 2 or >= 253 above this -> "exposure"
-TEXTURE_MIN_STD = 2.0  # grey standard deviation below this -> "low_texture"
-
-
-def quality_measures(patch_rgb: np.ndarray) -> dict:
-    """Focus (variance of the Laplacian), clipped fraction and quality flags of a patch."""
-    import cv2
-
-    grey = cv2.cvtColor(patch_rgb, cv2.COLOR_RGB2GRAY)
-    focus = float(cv2.Laplacian(grey, cv2.CV_64F).var())
-    clipped = float(np.mean((grey <= 2) | (grey >= 253)))
-    flags = []
-    if focus < FOCUS_MIN:
-        flags.append("blurred")
-    if clipped > CLIPPED_MAX:
-        flags.append("exposure")
-    if float(grey.std()) < TEXTURE_MIN_STD:
-        flags.append("low_texture")
-    return {"focus": focus, "clipped": clipped, "flags": ",".join(flags)}
 
 
 # ----- photos into a workspace -------------------------------------------------------
@@ -88,172 +67,6 @@ def tile_photo(
 
 #: Lossless formats for the stored crops (measured in benchmarks/run.py tiling).
 CROP_FORMATS = ("tiff", "png")
-
-SIDECAR_COLUMNS = (
-    "photo",
-    "gsd_mm",
-    "distance_m",
-    "focal_mm",
-    "sensor_width_mm",
-    "structure",
-    "group",
-    "site",
-    "date",
-    "roi",
-)
-
-
-def read_sidecar(path: str | Path) -> dict[str, dict]:
-    """Read a sidecar CSV keyed by photo (file name, or path relative to the input folder).
-
-    Columns (all but ``photo`` optional): ``gsd_mm``; or ``distance_m``, ``focal_mm``,
-    ``sensor_width_mm`` (scale by the pinhole relation; ``distance_m`` alone is used with
-    EXIF focal lengths); ``structure``, ``group`` or ``site`` (split group); ``date``
-    (capture date, YYYY-MM-DD); ``roi`` (region of interest: ``x0 y0 x1 y1`` for a box or
-    ``x,y x,y x,y ...`` for a polygon, in upright photo pixels).
-    """
-    import csv
-
-    path = Path(path)
-    out: dict[str, dict] = {}
-    with path.open(newline="", encoding="utf-8") as fh:
-        reader = csv.DictReader(fh)
-        if reader.fieldnames is None or "photo" not in reader.fieldnames:
-            raise ValueError(
-                f"sidecar {path.name}: expected a header with a 'photo' column, got {reader.fieldnames}"
-            )
-        unknown = [c for c in reader.fieldnames if c not in SIDECAR_COLUMNS]
-        if unknown:
-            raise ValueError(
-                f"sidecar {path.name}: unknown columns {unknown}; valid: {', '.join(SIDECAR_COLUMNS)}"
-            )
-        for i, row in enumerate(reader, start=2):
-            name = (row.get("photo") or "").strip()
-            if not name:
-                raise ValueError(f"sidecar {path.name} line {i}: empty 'photo'")
-            if Path(name).is_absolute() or ".." in Path(name).parts:
-                raise ValueError(
-                    f"sidecar {path.name} line {i}: photo {name!r} must be a relative name"
-                )
-            rec: dict = {}
-            for key in ("gsd_mm", "distance_m", "focal_mm", "sensor_width_mm"):
-                v = (row.get(key) or "").strip()
-                if v:
-                    try:
-                        rec[key] = float(v)
-                    except ValueError:
-                        raise ValueError(
-                            f"sidecar {path.name} line {i}: {key} {v!r} is not a number"
-                        ) from None
-                    if not rec[key] > 0:
-                        raise ValueError(
-                            f"sidecar {path.name} line {i}: {key} must be positive, got {v}"
-                        )
-            grp = (row.get("structure") or row.get("group") or row.get("site") or "").strip()
-            if grp:
-                rec["group"] = grp
-            date = (row.get("date") or "").strip()
-            if date:
-                rec["date"] = _check_date(date, f"sidecar {path.name} line {i}")
-            roi = (row.get("roi") or "").strip()
-            if roi:
-                parse_roi(roi, f"sidecar {path.name} line {i}")  # validate now, use later
-                rec["roi"] = roi
-            out[name] = rec
-    return out
-
-
-def _check_date(text: str, where: str) -> str:
-    import datetime as dt
-
-    try:
-        return dt.date.fromisoformat(text).isoformat()
-    except ValueError:
-        raise ValueError(f"{where}: date {text!r} is not YYYY-MM-DD") from None
-
-
-def parse_roi(text: str, where: str = "roi") -> np.ndarray:
-    """Polygon vertices (K, 2) as x, y from ``x0 y0 x1 y1`` (a box) or ``x,y x,y x,y ...``."""
-    try:
-        if "," in text:
-            pts = [
-                tuple(float(v) for v in tok.split(",")) for tok in text.replace(";", " ").split()
-            ]
-            if len(pts) < 3 or any(len(p) != 2 for p in pts):
-                raise ValueError
-            return np.array(pts, dtype=float)
-        x0, y0, x1, y1 = (float(v) for v in text.split())
-    except ValueError:
-        raise ValueError(
-            f"{where}: region of interest {text!r} must be 'x0 y0 x1 y1' or at least three 'x,y' points"
-        ) from None
-    if not (x1 > x0 and y1 > y0):
-        raise ValueError(f"{where}: box {text!r} needs x1 > x0 and y1 > y0")
-    return np.array([[x0, y0], [x1, y0], [x1, y1], [x0, y1]], dtype=float)
-
-
-def roi_fraction(roi: np.ndarray, box: Box, height: int, width: int) -> float:
-    """Share of a box's pixels inside the region of interest polygon (rasterised with OpenCV)."""
-    import cv2
-
-    x0, y0, x1, y1 = box
-    mask = np.zeros((y1 - y0, x1 - x0), np.uint8)
-    pts = np.round((roi - [x0, y0]) * 16).astype(np.int32)  # 4 fractional bits
-    cv2.fillPoly(mask, [pts], 1, lineType=cv2.LINE_8, shift=4)
-    return float(mask.mean())
-
-
-@dataclass(frozen=True)
-class ScaleOptions:
-    """Command-line scale settings, used when the sidecar does not give a photo's scale."""
-
-    gsd_mm: float | None = None
-    distance_m: float | None = None
-    focal_mm: float | None = None
-    sensor_width_mm: float | None = None
-
-
-def resolve_scale(
-    rec: dict, image_width_px: int, options: ScaleOptions | float | None = None, exif=None
-) -> tuple[float | None, str]:
-    """Scale of one photo and where it came from, in order of precedence.
-
-    1. sidecar ``gsd_mm`` ("sidecar"); 2. sidecar camera geometry ("sidecar-camera");
-    3. option ``--gsd-mm`` ("option"); 4. option camera geometry ("option-camera");
-    5. EXIF focal length with a distance from the sidecar or the options ("exif");
-    otherwise no scale ("none").
-    """
-    from trainkit.intake.scale import gsd_from_exif, gsd_mm_per_px
-
-    if not isinstance(options, ScaleOptions):
-        options = ScaleOptions(gsd_mm=options)
-    if "gsd_mm" in rec:
-        return float(rec["gsd_mm"]), "sidecar"
-    if {"distance_m", "focal_mm", "sensor_width_mm"} <= rec.keys():
-        return gsd_mm_per_px(
-            sensor_width_mm=rec["sensor_width_mm"],
-            distance_m=rec["distance_m"],
-            focal_mm=rec["focal_mm"],
-            image_width_px=image_width_px,
-        ), "sidecar-camera"
-    if options.gsd_mm:
-        return float(options.gsd_mm), "option"
-    distance = rec.get("distance_m", options.distance_m)
-    sensor = rec.get("sensor_width_mm", options.sensor_width_mm)
-    if distance and options.focal_mm and sensor:
-        return gsd_mm_per_px(
-            sensor_width_mm=sensor,
-            distance_m=distance,
-            focal_mm=options.focal_mm,
-            image_width_px=image_width_px,
-        ), "option-camera"
-    if distance and exif is not None:
-        g = gsd_from_exif(
-            exif, distance_m=distance, image_width_px=image_width_px, sensor_width_mm=sensor
-        )
-        if g is not None:
-            return g, "exif"
-    return None, "none"
 
 
 @dataclass(frozen=True)
@@ -394,7 +207,6 @@ def tile_into_workspace(
     overlap: float = 0.0,
     tile_mm: float | None = None,
     sidecar: dict[str, dict] | None = None,
-    default_gsd_mm: float | None = None,
     scale: ScaleOptions | None = None,
     group_by: str = "sidecar",
     group_pattern: str | None = None,
@@ -431,13 +243,53 @@ def tile_into_workspace(
         Counts (added, present, moved, skipped, patches, flagged, left out of review),
         the problems as one line each, and timing (photos per second, decode share).
     """
-    import multiprocessing
-    import os
-    import re
     import time
-    from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 
     from trainkit.core.decode import DEFAULT_MAX_PIXELS
+
+    pattern = _check_options(group_by, parallel, crop_format, group_pattern)
+    template = IntakeJob(
+        path="",
+        name="",
+        root=str(workspace.root),
+        tile_px=workspace.tile_px,
+        overlap=overlap,
+        tile_mm=tile_mm,
+        rec={},
+        scale=scale or ScaleOptions(),
+        group="",
+        date=None,
+        known_hash=None,
+        known_hashes=frozenset(),
+        max_pixels=max_pixels or DEFAULT_MAX_PIXELS,
+        skip_flagged=skip_flagged,
+        crop_format=crop_format,
+    )
+    jobs, problems, skipped = _plan_jobs(
+        photos, workspace, template, sidecar or {}, roots or {}, pattern, group_by
+    )
+    tally = _Tally(workspace, jobs, problems, skipped)
+    n_workers = workers or usable_cores()
+    t0 = time.perf_counter()
+    for i, res in enumerate(_run_jobs(jobs, n_workers, parallel), start=1):
+        tally.record(res)
+        if progress:
+            progress(i, len(jobs), res["name"])
+    wall = time.perf_counter() - t0
+    added = tally.counts["photos_added"]
+    return {
+        **tally.counts,
+        "problems": problems,
+        "seconds": round(wall, 3),
+        "photos_per_second": round(added / wall, 3) if wall > 0 and added else 0.0,
+        "decode_share": round(tally.decode_s / tally.total_s, 3) if tally.total_s > 0 else None,
+        "workers": n_workers,
+    }
+
+
+def _check_options(group_by: str, parallel: str, crop_format: str, group_pattern: str | None):
+    """Validate the choices of :func:`tile_into_workspace`; returns the compiled group pattern."""
+    import re
 
     if group_by not in ("sidecar", "photo"):
         raise ValueError(f"invalid group_by {group_by!r}; choose one of: sidecar, photo")
@@ -448,21 +300,33 @@ def tile_into_workspace(
             f"invalid crop format {crop_format!r}; choose one of: {', '.join(CROP_FORMATS)}"
         )
     try:
-        pattern = re.compile(group_pattern) if group_pattern else None
+        return re.compile(group_pattern) if group_pattern else None
     except re.error as exc:
         raise ValueError(
             f"--group-pattern {group_pattern!r} is not a valid regular expression ({exc})"
         ) from None
-    sidecar = sidecar or {}
-    scale = scale or ScaleOptions(gsd_mm=default_gsd_mm)
-    roots = roots or {}
+
+
+def _plan_jobs(
+    photos: list[Path],
+    workspace: Workspace,
+    template: IntakeJob,
+    sidecar: dict[str, dict],
+    roots: dict[Path, Path],
+    pattern,
+    group_by: str,
+) -> tuple[list[IntakeJob], list[str], int]:
+    """One :class:`IntakeJob` per distinct, UTF-8-named photo; problems as one line each, and
+    the number of photos skipped for their names."""
+    import os
+    from dataclasses import replace
+
     known = workspace.photo_hashes()
     known_hashes = frozenset(known.values())
-    hash_to_name = {v: k for k, v in known.items()}
-    jobs = []
+    jobs: list[IntakeJob] = []
     seen_names: set[str] = set()
     problems: list[str] = []
-    bad_names = 0
+    skipped = 0
     for path in photos:
         path = Path(path)
         name, rec, group, date = _name_and_group(path, roots.get(path), pattern, sidecar)
@@ -473,7 +337,7 @@ def tile_into_workspace(
             problems.append(
                 f"photo {shown} has a file name that is not valid UTF-8; skipped (rename it)"
             )
-            bad_names += 1
+            skipped += 1
             continue
         if name in seen_names:
             problems.append(f"photo {name} given twice; tiled once")
@@ -482,51 +346,75 @@ def tile_into_workspace(
         if group_by == "photo":
             group = Path(name).with_suffix("").as_posix()
         jobs.append(
-            IntakeJob(
+            replace(
+                template,
                 path=str(path.resolve()),
                 name=name,
-                root=str(workspace.root),
-                tile_px=workspace.tile_px,
-                overlap=overlap,
-                tile_mm=tile_mm,
                 rec=rec,
-                scale=scale,
                 group=group,
                 date=date,
                 known_hash=known.get(name),
                 known_hashes=known_hashes,
-                max_pixels=max_pixels or DEFAULT_MAX_PIXELS,
-                skip_flagged=skip_flagged,
-                crop_format=crop_format,
             )
         )
-    counts = {
-        "photos_added": 0,
-        "photos_already_present": 0,
-        "photos_moved": 0,
-        "photos_skipped": bad_names,
-        "patches_added": 0,
-        "patches_flagged": 0,
-        "patches_left_out_of_review": 0,
-    }
-    by_name = {j.name: j for j in jobs}
-    t0 = time.perf_counter()
-    decode_s = total_s = 0.0
+    return jobs, problems, skipped
 
-    def handle(res: dict, i: int) -> None:
-        nonlocal decode_s, total_s
-        st = res["status"]
+
+def _run_jobs(jobs: list[IntakeJob], n_workers: int, parallel: str) -> Iterator[dict]:
+    """Results of :func:`_process` for each job, in job order."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
+
+    if n_workers <= 1 or len(jobs) <= 1:
+        yield from map(_process, jobs)
+    elif parallel == "threads":
+        # Decoding (Pillow), hashing, quality measures (OpenCV) and file writes release the
+        # GIL, so threads share the cores without process start-up or pickling.
+        with ThreadPoolExecutor(min(n_workers, len(jobs))) as pool:
+            yield from pool.map(_process, jobs)
+    else:
+        # forkserver, not fork: forking a process that already runs OpenMP/BLAS threads
+        # (torch, OpenCV) can deadlock the child.
+        ctx = multiprocessing.get_context("forkserver")
+        with ProcessPoolExecutor(min(n_workers, len(jobs)), mp_context=ctx) as pool:
+            yield from pool.map(_process, jobs)
+
+
+class _Tally:
+    """Stores each photo's result in the workspace and keeps the run's counts."""
+
+    def __init__(
+        self, workspace: Workspace, jobs: list[IntakeJob], problems: list[str], skipped: int
+    ) -> None:
+        self.workspace = workspace
+        self.by_name = {j.name: j for j in jobs}
+        self.hash_to_name = {v: k for k, v in workspace.photo_hashes().items()}
+        self.problems = problems
+        self.decode_s = self.total_s = 0.0
+        self.counts = {
+            "photos_added": 0,
+            "photos_already_present": 0,
+            "photos_moved": 0,
+            "photos_skipped": skipped,
+            "patches_added": 0,
+            "patches_flagged": 0,
+            "patches_left_out_of_review": 0,
+        }
+
+    def record(self, res: dict) -> None:
+        counts, st = self.counts, res["status"]
         if st == "present":
             counts["photos_already_present"] += 1
         elif st == "moved":
-            workspace.set_source_path(hash_to_name[res["sha256"]], by_name[res["name"]].path)
+            job = self.by_name[res["name"]]
+            self.workspace.set_source_path(self.hash_to_name[res["sha256"]], job.path)
             counts["photos_moved"] += 1
         elif st in ("error", "changed"):
-            problems.append(res["error"])
+            self.problems.append(res["error"])
             counts["photos_skipped"] += 1
         else:
-            job = by_name[res["name"]]
-            workspace.add_photo_with_patches(
+            job = self.by_name[res["name"]]
+            self.workspace.add_photo_with_patches(
                 name=res["name"],
                 source_path=job.path,
                 size_bytes=res["size_bytes"],
@@ -544,36 +432,5 @@ def tile_into_workspace(
             counts["patches_added"] += len(res["patches"])
             counts["patches_flagged"] += sum(bool(p["flags"]) for p in res["patches"])
             counts["patches_left_out_of_review"] += sum(p["review_skip"] for p in res["patches"])
-            decode_s += res["seconds_decode"]
-            total_s += res["seconds_total"]
-        if progress:
-            progress(i, len(jobs), res["name"])
-
-    n_workers = workers or max(1, len(os.sched_getaffinity(0)))
-    if n_workers <= 1 or len(jobs) <= 1:
-        for i, job in enumerate(jobs, start=1):
-            handle(_process(job), i)
-    elif parallel == "threads":
-        # Decoding (Pillow), hashing, quality measures (OpenCV) and file writes release the
-        # GIL, so threads share the cores without process start-up or pickling.
-        with ThreadPoolExecutor(min(n_workers, len(jobs))) as pool:
-            for i, res in enumerate(pool.map(_process, jobs), start=1):
-                handle(res, i)
-    else:
-        # forkserver, not fork: forking a process that already runs OpenMP/BLAS threads
-        # (torch, OpenCV) can deadlock the child.
-        ctx = multiprocessing.get_context("forkserver")
-        with ProcessPoolExecutor(min(n_workers, len(jobs)), mp_context=ctx) as pool:
-            for i, res in enumerate(pool.map(_process, jobs), start=1):
-                handle(res, i)
-    wall = time.perf_counter() - t0
-    return {
-        **counts,
-        "problems": problems,
-        "seconds": round(wall, 3),
-        "photos_per_second": round(counts["photos_added"] / wall, 3)
-        if wall > 0 and counts["photos_added"]
-        else 0.0,
-        "decode_share": round(decode_s / total_s, 3) if total_s > 0 else None,
-        "workers": n_workers,
-    }
+            self.decode_s += res["seconds_decode"]
+            self.total_s += res["seconds_total"]

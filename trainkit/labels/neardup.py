@@ -11,12 +11,13 @@ over all pairs is one XOR and one popcount per pair, vectorised with numpy.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
+
+from trainkit.core.cores import usable_cores
 
 __all__ = [
     "DEFAULT_MAX_DISTANCE",
@@ -82,7 +83,7 @@ def hash_files(
     n = len(paths)
     hashes = np.zeros(n, dtype=np.uint64)
     ok = np.zeros(n, dtype=bool)
-    workers = workers or min(8, os.cpu_count() or 1)
+    workers = workers or min(8, usable_cores())
     with ThreadPoolExecutor(max_workers=workers) as pool:
         for i, h in enumerate(pool.map(one, paths)):
             if h is not None:

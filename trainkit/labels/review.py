@@ -27,6 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.grid import resize_patch
 from trainkit.core.taxonomy import ClassSet
 from trainkit.labels.workspace import PatchRecord, Workspace
 
@@ -351,7 +352,6 @@ def model_probabilities(
 
 
 def _predict_records(ws, records, scr, path: Path, progress) -> dict[int, np.ndarray]:
-    from PIL import Image
 
     if tuple(scr.class_names) != tuple(ws.class_set.names):
         raise ReviewError(
@@ -364,12 +364,7 @@ def _predict_records(ws, records, scr, path: Path, progress) -> dict[int, np.nda
         chunk = records[start : start + step]
         imgs = []
         for r in chunk:
-            img = load_patch(ws, r)
-            if img.shape[:2] != (scr.patch_px, scr.patch_px):
-                img = np.asarray(
-                    Image.fromarray(img).resize((scr.patch_px, scr.patch_px), Image.BILINEAR)
-                )
-            imgs.append(img)
+            imgs.append(resize_patch(load_patch(ws, r), scr.patch_px))
         if imgs:
             probs = scr.predict(np.stack(imgs))
             out.update({r.id: p for r, p in zip(chunk, probs, strict=True)})

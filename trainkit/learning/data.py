@@ -19,10 +19,11 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.fsutil import atomic_path
+from trainkit.core.grid import resize_patch
 from trainkit.core.taxonomy import ClassSet, apply_d4
 from trainkit.learning.config import AugmentConfig
 
-__all__ = ["PatchSet", "load_patch_set", "build_photometric", "Augmenter", "build_transform"]
+__all__ = ["PatchSet", "load_patch_set", "build_photometric", "Augmenter"]
 
 
 @dataclass
@@ -92,10 +93,7 @@ def _decode_crops(root: Path, recs, size: int) -> np.ndarray:
     imgs = np.empty((len(recs), size, size, 3), dtype=np.uint8)
     for i, r in enumerate(recs):
         with Image.open(root / r.crop) as im:
-            im = im.convert("RGB")
-            if im.size != (size, size):
-                im = im.resize((size, size), Image.BILINEAR)
-            imgs[i] = np.asarray(im)
+            imgs[i] = resize_patch(np.asarray(im.convert("RGB")), size)
     return imgs
 
 
@@ -194,23 +192,6 @@ class Augmenter:
         if self.photometric is not None:
             out = self.photometric(image=out)["image"]
         return np.ascontiguousarray(out), new_label
-
-
-def build_transform(input_px: int):
-    """The evaluation preset: resize an RGB uint8 patch to the model's input size, nothing else.
-
-    Normalisation happens inside the model (trainkit.learning.network.Preprocess), so
-    evaluation, export and scanning share one definition.
-    """
-    import cv2
-
-    def transform(image: np.ndarray) -> np.ndarray:
-        if image.shape[:2] != (input_px, input_px):
-            interp = cv2.INTER_AREA if image.shape[0] > input_px else cv2.INTER_LINEAR
-            image = cv2.resize(image, (input_px, input_px), interpolation=interp)
-        return np.ascontiguousarray(image)
-
-    return transform
 
 
 def batches(indices: Sequence[int], batch_size: int):

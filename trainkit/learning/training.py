@@ -25,6 +25,7 @@ import yaml
 from torch import nn
 
 from trainkit.core.contract import screening_probability
+from trainkit.core.cores import usable_cores
 from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.core.taxonomy import apply_d4, load_class_set
 from trainkit.judging.metrics import recall_at_false_alarm
@@ -134,10 +135,7 @@ def cpu_threads() -> int:
     env = os.environ.get("OMP_NUM_THREADS", "")
     if env.isdigit() and int(env) > 0:
         return int(env)
-    try:
-        return len(os.sched_getaffinity(0))  # honours taskset, cgroups' cpusets
-    except AttributeError:  # not on Linux
-        return os.cpu_count() or 1
+    return usable_cores()
 
 
 def epoch_seed(seed: int, epoch: int) -> int:
