@@ -54,8 +54,9 @@ def build_workspace(out: Path, n_photos: int, seed: int):
     from trainkit.demo import TINY_DATASET, tiny_dataset_dir
     from trainkit.intake.sidecar import read_sidecar
     from trainkit.intake.tiling import tile_into_workspace
+    from trainkit.labels.labels_io import import_csv
     from trainkit.labels.splits import split_workspace
-    from trainkit.labels.workspace import Workspace, import_labels_csv
+    from trainkit.labels.workspace import Workspace
     from trainkit.synth import SynthOptions, write_dataset
 
     cs = load_class_set("orientation")
@@ -81,7 +82,7 @@ def build_workspace(out: Path, n_photos: int, seed: int):
             sidecar=read_sidecar(data / "scale.csv"),
             group_by="photo",
         )
-        import_labels_csv(ws, data / "labels.csv", reviewer="synth-ground-truth")
+        import_csv(ws, data / "labels.csv", reviewer="synth-ground-truth")
     split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0)
     return ws
 

@@ -68,8 +68,9 @@ def build_workspace(root: Path, *, n_photos: int, tile_px: int = 224):
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.sidecar import read_sidecar
     from trainkit.intake.tiling import tile_into_workspace
+    from trainkit.labels.labels_io import import_csv
     from trainkit.labels.splits import split_workspace
-    from trainkit.labels.workspace import Workspace, import_labels_csv
+    from trainkit.labels.workspace import Workspace
     from trainkit.synth import SynthOptions, write_dataset
 
     class_set = load_class_set("orientation")
@@ -85,7 +86,7 @@ def build_workspace(root: Path, *, n_photos: int, tile_px: int = 224):
     ws = Workspace.create(root / "workspace", class_set=class_set, tile_px=tile_px)
     photos = sorted((data / "photos").glob("*.jpg"))
     tile_into_workspace(photos, ws, sidecar=read_sidecar(data / "scale.csv"), group_by="photo")
-    import_labels_csv(ws, data / "labels.csv", reviewer="synth-ground-truth")
+    import_csv(ws, data / "labels.csv", reviewer="synth-ground-truth")
     split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0)
     return ws
 

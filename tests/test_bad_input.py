@@ -24,7 +24,8 @@ from PIL import Image
 from trainkit.cli import main
 from trainkit.core.taxonomy import load_class_set
 from trainkit.intake.tiling import tile_into_workspace
-from trainkit.labels.workspace import Workspace, WorkspaceError, import_labels_csv
+from trainkit.labels.labels_io import LabelsIOError, import_csv
+from trainkit.labels.workspace import Workspace
 
 TILE = 64
 
@@ -291,7 +292,7 @@ def test_label_import_is_all_or_nothing_with_the_line_number(
         expected_ok.append(ok and not (missing - {"label"}) and ("label" in missing or label_ok))
     before = label_ws.label_events()
     if all(expected_ok):
-        n = import_labels_csv(label_ws, path)
+        n = import_csv(label_ws, path)
         after = label_ws.label_events()
         assert n == len(rows) and len(after) == len(before) + n
         lookup = label_ws.patch_lookup()
@@ -303,6 +304,6 @@ def test_label_import_is_all_or_nothing_with_the_line_number(
         assert [(e["patch_id"], e["label"]) for e in after[len(before) :]] == want
     else:
         first_bad = expected_ok.index(False) + 2  # line 1 is the header
-        with pytest.raises(WorkspaceError, match=rf"^labels\.csv line {first_bad}: "):
-            import_labels_csv(label_ws, path)
+        with pytest.raises(LabelsIOError, match=rf"^labels\.csv line {first_bad}: "):
+            import_csv(label_ws, path)
         assert label_ws.label_events() == before  # nothing from a failed import

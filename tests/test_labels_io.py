@@ -70,7 +70,7 @@ def test_csv_export_reads_back_into_a_fresh_workspace(tmp_path):
     fresh = make_ws(tmp_path / "b")
     assert import_csv(fresh, tmp_path / "labels.csv", reviewer="copy") == 3
     assert current(fresh) == current(ws)
-    assert {e["source"] for e in fresh.label_events()} == {"imported"}
+    assert {e["origin"] for e in fresh.label_events()} == {"file"}
 
 
 def test_csv_by_patch_id(tmp_path):
@@ -100,7 +100,7 @@ def test_csv_by_patch_id(tmp_path):
             "photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,none\np0.jpg,1,0,33,32,none\n",
             r"no patch \(1, 0, 33, 32\)",
         ),
-        ("patch_id,label\nabc,none\n", "must be integers"),
+        ("patch_id,label\nabc,none\n", "must be an integer"),
     ],
 )
 def test_bad_csv_imports_nothing(tmp_path, text, match):
@@ -155,3 +155,28 @@ def test_bad_folder_imports_nothing(tmp_path):
     with pytest.raises(LabelsIOError, match="stray.png: matches no patch"):
         import_folders(fresh, export_root)
     assert fresh.label_events() == []
+
+
+def test_one_importer_one_set_of_path_rules(tmp_path):
+    # Both key styles go through one importer with one error class; a photo name that
+    # could point outside the photo folder is refused whichever way the file is keyed.
+    ws = make_ws(tmp_path / "ws")
+    csv_path = tmp_path / "labels.csv"
+    csv_path.write_text("photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,vertical\np0.jpg,32,0,64,32,\n")
+    assert import_csv(ws, csv_path) == 2
+    recs = ws.patches()
+    assert recs[0].label == "vertical" and recs[1].labelled and recs[1].label is None
+    for bad, match in [
+        ("photo,x0,y0,x1,y1,label\n../p0.jpg,0,0,32,32,none\n", "relative name inside"),
+        ("photo,x0,y0,x1,y1,label\n/etc/p0.jpg,0,0,32,32,none\n", "relative name inside"),
+        ("photo,x0,y0,x1,y1,label\nsub/p0.jpg,0,0,32,32,none\n", "no patch"),
+        ("photo,x0,y0,x1,y1,label\np0.jpg,1,0,33,32,none\n", "no patch"),
+        ("photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,cracked\n", "unknown class"),
+        ("photo,x0,y0,x1,y1,label\nsub\\p0.jpg,0,0,32,32,none\n", "relative name inside"),
+        ("photo,label\np0.jpg,none\n", "expected columns"),
+    ]:
+        csv_path.write_text(bad)
+        with pytest.raises(LabelsIOError, match=match):
+            import_csv(ws, csv_path)
+    # refused files add nothing
+    assert sum(len(ws.label_history(r.id)) for r in ws.patches()) == 2

@@ -239,7 +239,7 @@ def test_model_suggestion_accepted_with_its_source(tmp_path):
     s = Session(ws, "ana", [1, 2], suggestions=probs)
     assert s.suggestion(1) == ("vertical", pytest.approx(0.6))
     s.accept_suggestion()
-    assert ws.label_events()[0]["source"] == "model-accepted"
+    assert ws.label_events()[0]["origin"] == "suggestion"
     with pytest.raises(ReviewError, match="no model suggestion"):
         Session(ws, "ana", [2]).accept_suggestion()
 
@@ -287,8 +287,8 @@ def test_open_adds_review_tables_to_an_older_workspace_and_refuses_newer(tmp_pat
     con.commit()
     con.close()
     Workspace.open(ws.root).set_review_skip(1, "ana")  # table recreated on open
-    ws.set_meta("schema_version", "2")
-    with pytest.raises(WorkspaceError, match="has schema version 2, this kit reads 1"):
+    ws.set_meta("schema_version", "3")
+    with pytest.raises(WorkspaceError, match="has schema version 3, this kit reads 2"):
         Workspace.open(ws.root)
 
 

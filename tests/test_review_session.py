@@ -78,11 +78,11 @@ def test_label_undo_skip_quit_and_resume(tmp_path):
     child.close()
     assert child.exitstatus == 0
 
-    events = [(e["patch_id"], e["label"], e["reviewer"], e["source"]) for e in ws.label_events()]
+    events = [(e["patch_id"], e["label"], e["reviewer"], e["origin"]) for e in ws.label_events()]
     assert events == [
-        (1, "none", "ana", "human"),
-        (2, "vertical", "ana", "human"),
-        (4, None, "ana", "human"),
+        (1, "none", "ana", "reviewer"),
+        (2, "vertical", "ana", "reviewer"),
+        (4, None, "ana", "reviewer"),
     ]
     assert [(e["patch_id"], e["label"]) for e in ws.undone_events()] == [(2, "diagonal_falling")]
     cur = {r.id: (r.labelled, r.label) for r in ws.patches()}

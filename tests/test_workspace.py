@@ -8,7 +8,7 @@ import pytest
 
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import SplitError, assign_groups, check_no_leak, split_workspace
-from trainkit.labels.workspace import Workspace, WorkspaceError, import_labels_csv
+from trainkit.labels.workspace import Workspace, WorkspaceError
 
 
 def make_ws(tmp_path, n_photos=3, per_photo=4):
@@ -66,34 +66,12 @@ def test_bad_labels_and_mismatched_workspace(tmp_path):
     ws = make_ws(tmp_path)
     with pytest.raises(ValueError, match="unknown class 'crack'; choose one of: none, horizontal"):
         ws.add_labels([(1, "crack")], reviewer="x")
-    with pytest.raises(ValueError, match="invalid label source"):
-        ws.add_labels([(1, "map")], reviewer="x", source="guess")
+    with pytest.raises(ValueError, match="invalid label origin"):
+        ws.add_labels([(1, "map")], reviewer="x", origin="guess")
     with pytest.raises(WorkspaceError, match="holds 32-px patches"):
         Workspace.create(ws.root, class_set=load_class_set("orientation"), tile_px=64)
     with pytest.raises(WorkspaceError, match="not a trainkit workspace"):
         Workspace.open(tmp_path / "nowhere")
-
-
-def test_import_labels_by_place(tmp_path):
-    ws = make_ws(tmp_path)
-    csv_path = tmp_path / "labels.csv"
-    csv_path.write_text("photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,vertical\np0.jpg,32,0,64,32,\n")
-    assert import_labels_csv(ws, csv_path) == 2
-    recs = ws.patches()
-    assert recs[0].label == "vertical" and recs[1].labelled and recs[1].label is None
-    for bad, match in [
-        ("photo,x0,y0,x1,y1,label\n../p0.jpg,0,0,32,32,none\n", "relative name inside"),
-        ("photo,x0,y0,x1,y1,label\n/etc/p0.jpg,0,0,32,32,none\n", "relative name inside"),
-        ("photo,x0,y0,x1,y1,label\nsub/p0.jpg,0,0,32,32,none\n", "no patch"),
-        ("photo,x0,y0,x1,y1,label\np0.jpg,1,0,33,32,none\n", "no patch"),
-        ("photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,cracked\n", "unknown class"),
-        ("photo,label\np0.jpg,none\n", "expected columns"),
-    ]:
-        csv_path.write_text(bad)
-        with pytest.raises(WorkspaceError, match=match):
-            import_labels_csv(ws, csv_path)
-    # refused files add nothing
-    assert sum(len(ws.label_history(r.id)) for r in ws.patches()) == 2
 
 
 def test_split_keeps_groups_together_and_is_seeded(tmp_path):
@@ -143,3 +121,29 @@ def test_assign_groups_matches_sklearn_group_rule():
     out = assign_groups(labels, groups, seed=1)
     assert set(out) == {f"g{i}" for i in range(10)}
     assert set(out.values()) <= {"train", "val", "test"}
+
+
+def test_version_1_workspace_is_migrated_to_the_new_origin_words(tmp_path):
+    # A version-1 workspace stored label origins in a `source` column with other words;
+    # build one by hand from a new one (SQLite's own ALTER TABLE ... RENAME COLUMN).
+    import sqlite3
+
+    ws = make_ws(tmp_path)
+    ids = [r.id for r in ws.patches()]
+    ws.add_labels([(ids[0], "none")], reviewer="ana")
+    ws.add_labels([(ids[1], "map")], reviewer="ana", origin="file")
+    ws.undo_label_event(ws.add_label_event(ids[2], "vertical", reviewer="ana", origin="suggestion"))
+    con = sqlite3.connect(ws.db_path)
+    with con:
+        for table in ("label_events", "undone_label_events"):
+            con.execute(f"ALTER TABLE {table} RENAME COLUMN origin TO source")
+            con.execute(
+                f"UPDATE {table} SET source = CASE source WHEN 'reviewer' THEN 'human' "
+                "WHEN 'file' THEN 'imported' WHEN 'suggestion' THEN 'model-accepted' END"
+            )
+        con.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
+    con.close()
+    again = Workspace.open(ws.root)
+    assert [e["origin"] for e in again.label_events()] == ["reviewer", "file"]
+    assert [e["origin"] for e in again.undone_events()] == ["suggestion"]
+    assert again.meta("schema_version") == "2"

@@ -343,7 +343,8 @@ def tile(
     from trainkit.intake.scale import ScaleOptions
     from trainkit.intake.sidecar import read_sidecar
     from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.labels.workspace import Workspace, import_labels_csv
+    from trainkit.labels.labels_io import import_csv
+    from trainkit.labels.workspace import Workspace
 
     with user_errors(ctx):
         found = find_images(list(photos))
@@ -383,7 +384,7 @@ def tile(
             + f" -> {ws.root}"
         )
         if import_labels:
-            n = import_labels_csv(ws, import_labels)
+            n = import_csv(ws, import_labels)
             ctx.console.print(f"imported {n} labels from {import_labels}")
     if res["photos_skipped"] and not (
         res["photos_added"] or res["photos_already_present"] or res["photos_moved"]

@@ -65,8 +65,9 @@ def run_demo(
     from trainkit.intake.tiling import tile_into_workspace
     from trainkit.judging.evaluation import evaluate_experiment
     from trainkit.judging.export import export_experiment
+    from trainkit.labels.labels_io import import_csv
     from trainkit.labels.splits import split_workspace
-    from trainkit.labels.workspace import Workspace, import_labels_csv
+    from trainkit.labels.workspace import Workspace
     from trainkit.learning.config import load_train_config
     from trainkit.screener.scan import scan_frames
     from trainkit.synth import SynthOptions, generate_photo
@@ -114,7 +115,7 @@ def run_demo(
             encoding="utf-8",
         )
     if not any(r.labelled for r in ws.patches()):
-        n = import_labels_csv(ws, labels_csv, reviewer="synth-ground-truth")
+        n = import_csv(ws, labels_csv, reviewer="synth-ground-truth")
         ctx.console.print(
             f"{n} labels loaded (ambiguous patches are stored as 'unsure' and kept out of training)"
         )

@@ -1,9 +1,12 @@
 """Import and export of a workspace's labels as CSV and as a folder-per-class copy of the crops.
 
-CSV export columns: ``patch_id, photo, x0, y0, x1, y1, label, reviewer, source,
-labelled_at`` (the current label; empty label = unsure). CSV import takes either
-``patch_id, label`` or ``photo, x0, y0, x1, y1, label`` (so an export reads back, and
-so does ``trainkit synth``'s labels.csv).
+CSV export columns: ``patch_id, photo, x0, y0, x1, y1, label, reviewer, origin,
+labelled_at`` (the current label; empty label = unsure). CSV import — the kit's one
+label importer, used by ``tile --labels``, ``review --import-csv``, the demo and the
+job samples — takes either ``patch_id, label`` or ``photo, x0, y0, x1, y1, label`` (so
+an export reads back, and so does ``trainkit synth``'s labels.csv). Photo names are
+relative names inside the photo folder: absolute paths, ``..`` and backslashes are
+refused.
 
 Folder layout: ``ROOT/<class name>/<photo>@<x0>_<y0>_<x1>_<y1>.<ext>``, with ``/`` in a
 photo's relative name written as ``~``. Import matches a file by that name and, for
@@ -44,7 +47,7 @@ EXPORT_COLUMNS = (
     "y1",
     "label",
     "reviewer",
-    "source",
+    "origin",
     "labelled_at",
 )
 _IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".jpg", ".jpeg", ".bmp", ".webp"}
@@ -74,7 +77,7 @@ def export_csv(ws: Workspace, path: str | Path) -> int:
             w.writerow(EXPORT_COLUMNS)
             for r, e in rows:
                 w.writerow(
-                    [r.id, r.photo, *r.box, e["label"] or "", e["reviewer"], e["source"]]
+                    [r.id, r.photo, *r.box, e["label"] or "", e["reviewer"], e["origin"]]
                     + [f"{e['created_at']:.3f}"]
                 )
     return len(rows)
@@ -110,50 +113,84 @@ def _check_label(raw: str, names: tuple[str, ...], where: str) -> str | None:
 
 
 def import_csv(
-    ws: Workspace, path: str | Path, *, reviewer: str = "import", source: str = "imported"
+    ws: Workspace, path: str | Path, *, reviewer: str = "import", origin: str = "file"
 ) -> int:
     """Import labels from CSV keyed by ``patch_id`` or by ``photo, x0, y0, x1, y1``.
+
+    An empty label means unsure. When both keys are present the patch id is used.
 
     Returns:
         The number of label events added (one transaction; nothing on error).
 
     Raises:
-        LabelsIOError: missing columns, unknown patch ids or places, unknown classes.
+        LabelsIOError: missing columns, a photo name outside the photo folder, unknown
+            patch ids or places, unknown classes; the message names the line.
     """
     path = Path(path)
     names = ws.class_set.names
     items: list[tuple[int, str | None]] = []
-    with path.open(newline="", encoding="utf-8") as fh:
+    try:
+        fh = path.open(newline="", encoding="utf-8")
+    except OSError as exc:
+        raise LabelsIOError(f"cannot read label file {path} ({exc.strerror or exc})") from None
+    with fh:
         reader = csv.DictReader(fh)
         cols = set(reader.fieldnames or [])
         by_id = {"patch_id", "label"} <= cols
-        by_place = {"photo", "x0", "y0", "x1", "y1", "label"} <= cols
-        if not (by_id or by_place):
+        if not (by_id or {"photo", "x0", "y0", "x1", "y1", "label"} <= cols):
             raise LabelsIOError(
                 f"{path.name}: expected columns patch_id,label or photo,x0,y0,x1,y1,label; "
                 f"got {reader.fieldnames}"
             )
-        ids = {r.id for r in ws.patches()}
-        lookup = ws.patch_lookup() if not by_id else {}
+        find = _by_id(ws) if by_id else _by_place(ws)
         for line, row in enumerate(reader, start=2):
             where = f"{path.name} line {line}"
-            try:
-                if by_id:
-                    pid = int(row["patch_id"])
-                else:
-                    box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
-            except (TypeError, ValueError):
-                raise LabelsIOError(f"{where}: patch id and box values must be integers") from None
-            if by_id and pid not in ids:
-                raise LabelsIOError(f"{where}: no patch with id {pid} in the workspace")
-            if not by_id:
-                pid = lookup.get((row["photo"], box))
-                if pid is None:
-                    raise LabelsIOError(
-                        f"{where}: no patch {box} of photo {row['photo']!r} in the workspace"
-                    )
-            items.append((pid, _check_label(row["label"], names, where)))
-    return ws.add_labels(items, reviewer=reviewer, source=source)
+            items.append((find(row, where), _check_label(row["label"], names, where)))
+    return ws.add_labels(items, reviewer=reviewer, origin=origin)
+
+
+def _by_id(ws: Workspace):
+    ids = {r.id for r in ws.patches()}
+
+    def find(row: dict, where: str) -> int:
+        try:
+            pid = int(row["patch_id"])
+        except (TypeError, ValueError):
+            raise LabelsIOError(
+                f"{where}: patch id {row['patch_id']!r} must be an integer"
+            ) from None
+        if pid not in ids:
+            raise LabelsIOError(f"{where}: no patch with id {pid} in the workspace")
+        return pid
+
+    return find
+
+
+def _by_place(ws: Workspace):
+    lookup = ws.patch_lookup()
+
+    def find(row: dict, where: str) -> int:
+        photo = row["photo"] or ""  # None when the row is too short
+        # Photos are named by their path relative to the folder they were tiled from
+        # ("site-a/img1.jpg"); anything that could point outside it is refused.
+        if Path(photo).is_absolute() or ".." in Path(photo).parts or "\\" in photo:
+            raise LabelsIOError(
+                f"{where}: photo {photo!r} must be a relative name inside the photo folder "
+                "(no absolute path, no '..', no backslash)"
+            )
+        try:
+            box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
+        except (TypeError, ValueError):
+            raise LabelsIOError(f"{where}: box values must be integers") from None
+        pid = lookup.get((photo, box))
+        if pid is None:
+            raise LabelsIOError(
+                f"{where}: no patch {box} of photo {photo!r} in the workspace "
+                "(tile the photos first, with the same tile size)"
+            )
+        return pid
+
+    return find
 
 
 def _pixel_digest(path: Path) -> str:
@@ -165,7 +202,7 @@ def _pixel_digest(path: Path) -> str:
 
 
 def import_folders(
-    ws: Workspace, root: str | Path, *, reviewer: str = "import", source: str = "imported"
+    ws: Workspace, root: str | Path, *, reviewer: str = "import", origin: str = "file"
 ) -> int:
     """Import labels from ``ROOT/<class>/`` folders of patch images (``_unsure`` = unsure).
 
@@ -215,4 +252,4 @@ def import_folders(
             if pid is None:
                 raise LabelsIOError(f"{f}: matches no patch of the workspace by name or pixels")
             items.append((pid, label))
-    return ws.add_labels(items, reviewer=reviewer, source=source)
+    return ws.add_labels(items, reviewer=reviewer, origin=origin)

@@ -474,26 +474,26 @@ class Session:
         }
 
     # ----- answers ------------------------------------------------------------
-    def answer(self, label: str | None, *, source: str = "human") -> int:
+    def answer(self, label: str | None, *, origin: str = "reviewer") -> int:
         """Label the current patch (None = unsure) and move on; returns the event id."""
         cur = self.current()
         if cur is None:
             raise ReviewError("the queue is finished; nothing to label")
-        ev = self._store(cur.id, label, source)
+        ev = self._store(cur.id, label, origin)
         self._history.append(_Action("label", self.pos, [cur.id], [ev]))
         self.pos += 1
         self.answered += 1
         return ev
 
     def accept_suggestion(self) -> int:
-        """Label the current patch with the model's suggestion (source model-accepted)."""
+        """Label the current patch with the model's suggestion (origin "suggestion")."""
         cur = self.current()
         if cur is None:
             raise ReviewError("the queue is finished; nothing to label")
         sug = self.suggestion(cur.id)
         if sug is None:
             raise ReviewError("no model suggestion for this patch; start with --model EXP_OR_ONNX")
-        return self.answer(sug[0], source="model-accepted")
+        return self.answer(sug[0], origin="suggestion")
 
     def answer_many(self, answers: dict[int, str | None]) -> list[int]:
         """Label several patches of the upcoming run at once (a contact sheet).
@@ -508,7 +508,7 @@ class Session:
         run = self.upcoming(max(answers) + 1 if answers else 0)
         if any(k >= len(run) or k < 0 for k in answers):
             raise ReviewError(f"only {len(run)} patches are left in the queue")
-        events = [self._store(run[k].id, answers[k], "human") for k in sorted(answers)]
+        events = [self._store(run[k].id, answers[k], "reviewer") for k in sorted(answers)]
         start = self.pos
         answered = [run[k].id for k in sorted(answers)]
         rest = [r.id for k, r in enumerate(run) if k not in answers]
@@ -518,10 +518,10 @@ class Session:
         self.answered += len(answered)
         return events
 
-    def _store(self, pid: int, label: str | None, source: str) -> int:
+    def _store(self, pid: int, label: str | None, origin: str) -> int:
         settles = self.settles.get(pid)
         return self.ws.add_label_event(
-            pid, label, reviewer=self.reviewer, source=source, settles=settles
+            pid, label, reviewer=self.reviewer, origin=origin, settles=settles
         )
 
     def skip(self, n: int = 1) -> None:

@@ -18,12 +18,15 @@ from pathlib import Path
 
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 
-__all__ = ["Workspace", "WorkspaceError", "PatchRecord", "DB_NAME", "LABEL_SOURCES"]
+__all__ = ["Workspace", "WorkspaceError", "PatchRecord", "DB_NAME", "LABEL_ORIGINS"]
 
 DB_NAME = "workspace.sqlite"
-SCHEMA_VERSION = 1
-#: Where a label event came from.
-LABEL_SOURCES = ("human", "imported", "model-accepted")
+SCHEMA_VERSION = 2
+#: Where a label event came from: a reviewer's own answer, a label file, or a reviewer
+#: confirming the model's suggestion with one key.
+LABEL_ORIGINS = ("reviewer", "file", "suggestion")
+#: Version-1 workspaces named the origins otherwise (column ``source``); opened, they are migrated.
+_V1_ORIGINS = {"human": "reviewer", "imported": "file", "model-accepted": "suggestion"}
 #: Label value meaning "looked at, unsure": kept out of training and evaluation.
 UNSURE = None
 
@@ -62,7 +65,7 @@ CREATE TABLE IF NOT EXISTS label_events (
     patch_id INTEGER NOT NULL REFERENCES patches(id),
     label TEXT,                         -- class name; NULL = unsure (kept out of training)
     reviewer TEXT NOT NULL,
-    source TEXT NOT NULL,
+    origin TEXT NOT NULL,               -- reviewer | file | suggestion (LABEL_ORIGINS)
     created_at REAL NOT NULL
 );
 CREATE INDEX IF NOT EXISTS label_events_patch ON label_events(patch_id, id);
@@ -74,7 +77,7 @@ CREATE TABLE IF NOT EXISTS review_skips (
 );
 CREATE TABLE IF NOT EXISTS undone_label_events (
     id INTEGER PRIMARY KEY,             -- the label_events id the undo removed
-    patch_id INTEGER NOT NULL, label TEXT, reviewer TEXT NOT NULL, source TEXT NOT NULL,
+    patch_id INTEGER NOT NULL, label TEXT, reviewer TEXT NOT NULL, origin TEXT NOT NULL,
     created_at REAL NOT NULL, undone_at REAL NOT NULL
 );
 CREATE TABLE IF NOT EXISTS label_settlements (
@@ -167,6 +170,9 @@ class Workspace:
                 f"{ws.root} is not a trainkit workspace (no {DB_NAME}); create it with `trainkit tile`"
             )
         version = ws.meta("schema_version")
+        if version == "1":
+            ws._migrate_from_v1()
+            version = ws.meta("schema_version")
         if version != str(SCHEMA_VERSION):
             raise WorkspaceError(
                 f"workspace {ws.root} has schema version {version}, this kit reads {SCHEMA_VERSION}"
@@ -174,6 +180,19 @@ class Workspace:
         with ws.connect() as con:  # tables added since version 1 (review state), idempotent
             con.executescript(_SCHEMA)
         return ws
+
+    def _migrate_from_v1(self) -> None:
+        """Version 1 -> 2: label-event column ``source`` becomes ``origin`` with new words."""
+        case = " ".join(f"WHEN '{old}' THEN '{new}'" for old, new in _V1_ORIGINS.items())
+        with self.connect() as con:
+            for table in ("label_events", "undone_label_events"):
+                cols = [r[1] for r in con.execute(f"PRAGMA table_info({table})")]
+                if "source" in cols:
+                    con.execute(f"ALTER TABLE {table} RENAME COLUMN source TO origin")
+                    con.execute(f"UPDATE {table} SET origin = CASE origin {case} ELSE origin END")
+            con.execute(
+                "UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION),)
+            )
 
     @contextmanager
     def connect(self) -> Iterator[sqlite3.Connection]:
@@ -344,12 +363,12 @@ class Workspace:
 
     # ----- labels ------------------------------------------------------------------
     def add_labels(
-        self, items: Iterable[tuple[int, str | None]], *, reviewer: str, source: str = "human"
+        self, items: Iterable[tuple[int, str | None]], *, reviewer: str, origin: str = "reviewer"
     ) -> int:
         """Append label events (patch id, class name or None for unsure); returns the count."""
-        if source not in LABEL_SOURCES:
+        if origin not in LABEL_ORIGINS:
             raise ValueError(
-                f"invalid label source {source!r}; choose one of: {', '.join(LABEL_SOURCES)}"
+                f"invalid label origin {origin!r}; choose one of: {', '.join(LABEL_ORIGINS)}"
             )
         names = set(self.class_set.names)
         rows = []
@@ -359,10 +378,10 @@ class Workspace:
                 raise ValueError(
                     f"unknown class {label!r}; choose one of: {', '.join(self.class_set.names)}"
                 )
-            rows.append((int(patch_id), label, reviewer, source, now))
+            rows.append((int(patch_id), label, reviewer, origin, now))
         with self.connect() as con:
             con.executemany(
-                "INSERT INTO label_events(patch_id, label, reviewer, source, created_at) VALUES (?, ?, ?, ?, ?)",
+                "INSERT INTO label_events(patch_id, label, reviewer, origin, created_at) VALUES (?, ?, ?, ?, ?)",
                 rows,
             )
         return len(rows)
@@ -370,11 +389,11 @@ class Workspace:
     def label_history(self, patch_id: int) -> list[dict]:
         with self.connect() as con:
             rows = con.execute(
-                "SELECT id, label, reviewer, source, created_at FROM label_events WHERE patch_id = ? ORDER BY id",
+                "SELECT id, label, reviewer, origin, created_at FROM label_events WHERE patch_id = ? ORDER BY id",
                 (patch_id,),
             ).fetchall()
         return [
-            dict(zip(("id", "label", "reviewer", "source", "created_at"), r, strict=True))
+            dict(zip(("id", "label", "reviewer", "origin", "created_at"), r, strict=True))
             for r in rows
         ]
 
@@ -443,7 +462,7 @@ class Workspace:
         label: str | None,
         *,
         reviewer: str,
-        source: str = "human",
+        origin: str = "reviewer",
         settles: Iterable[str] | None = None,
     ) -> int:
         """Append one label event and return its id (for undo).
@@ -452,13 +471,13 @@ class Workspace:
             patch_id: the patch.
             label: class name, or None for unsure.
             reviewer: who answered.
-            source: one of :data:`LABEL_SOURCES`.
+            origin: one of :data:`LABEL_ORIGINS`.
             settles: reviewers whose disagreeing labels this event settles; the event is
                 then recorded in ``label_settlements`` in the same transaction.
         """
-        if source not in LABEL_SOURCES:
+        if origin not in LABEL_ORIGINS:
             raise ValueError(
-                f"invalid label source {source!r}; choose one of: {', '.join(LABEL_SOURCES)}"
+                f"invalid label origin {origin!r}; choose one of: {', '.join(LABEL_ORIGINS)}"
             )
         if label is not None and label not in self.class_set.names:
             raise ValueError(
@@ -466,9 +485,9 @@ class Workspace:
             )
         with self.connect() as con:
             cur = con.execute(
-                "INSERT INTO label_events(patch_id, label, reviewer, source, created_at)"
+                "INSERT INTO label_events(patch_id, label, reviewer, origin, created_at)"
                 " VALUES (?, ?, ?, ?, ?)",
-                (int(patch_id), label, reviewer, source, time.time()),
+                (int(patch_id), label, reviewer, origin, time.time()),
             )
             event_id = int(cur.lastrowid)
             if settles is not None:
@@ -485,25 +504,25 @@ class Workspace:
         """
         with self.connect() as con:
             row = con.execute(
-                "SELECT id, patch_id, label, reviewer, source, created_at FROM label_events"
+                "SELECT id, patch_id, label, reviewer, origin, created_at FROM label_events"
                 " WHERE id = ?",
                 (int(event_id),),
             ).fetchone()
             if row is None:
                 return None
             con.execute(
-                "INSERT INTO undone_label_events(id, patch_id, label, reviewer, source, created_at,"
+                "INSERT INTO undone_label_events(id, patch_id, label, reviewer, origin, created_at,"
                 " undone_at) VALUES (?, ?, ?, ?, ?, ?, ?)",
                 (*row, time.time()),
             )
             con.execute("DELETE FROM label_settlements WHERE event_id = ?", (int(event_id),))
             con.execute("DELETE FROM label_events WHERE id = ?", (int(event_id),))
-        keys = ("id", "patch_id", "label", "reviewer", "source", "created_at")
+        keys = ("id", "patch_id", "label", "reviewer", "origin", "created_at")
         return dict(zip(keys, row, strict=True))
 
     def undone_events(self) -> list[dict]:
         """Every undone label event, oldest first (the audit trail of corrected slips)."""
-        keys = ("id", "patch_id", "label", "reviewer", "source", "created_at", "undone_at")
+        keys = ("id", "patch_id", "label", "reviewer", "origin", "created_at", "undone_at")
         with self.connect() as con:
             rows = con.execute(f"SELECT {', '.join(keys)} FROM undone_label_events ORDER BY id")
             return [dict(zip(keys, r, strict=True)) for r in rows.fetchall()]
@@ -511,11 +530,11 @@ class Workspace:
     def label_events(self) -> list[dict]:
         """Every label event, oldest first, with ``settles`` (reviewers settled, or None)."""
         q = (
-            "SELECT e.id, e.patch_id, e.label, e.reviewer, e.source, e.created_at,"
+            "SELECT e.id, e.patch_id, e.label, e.reviewer, e.origin, e.created_at,"
             " s.settled_reviewers FROM label_events e"
             " LEFT JOIN label_settlements s ON s.event_id = e.id ORDER BY e.id"
         )
-        keys = ("id", "patch_id", "label", "reviewer", "source", "created_at", "settles")
+        keys = ("id", "patch_id", "label", "reviewer", "origin", "created_at", "settles")
         with self.connect() as con:
             return [dict(zip(keys, r, strict=True)) for r in con.execute(q).fetchall()]
 
@@ -541,52 +560,3 @@ class Workspace:
                 "SELECT patch_id, created_at FROM review_skips WHERE reviewer = ?", (reviewer,)
             ).fetchall()
         return {int(p): float(t) for p, t in rows}
-
-
-def import_labels_csv(
-    workspace: Workspace, path: str | Path, *, reviewer: str = "import", source: str = "imported"
-) -> int:
-    """Load labels keyed by place: CSV columns photo,x0,y0,x1,y1,label (empty label = unsure).
-
-    Rows whose photo or box is not in the workspace are refused with the line number.
-    Returns the number of label events added.
-    """
-    import csv
-
-    path = Path(path)
-    lookup = workspace.patch_lookup()
-    names = set(workspace.class_set.names)
-    items: list[tuple[int, str | None]] = []
-    with path.open(newline="", encoding="utf-8") as fh:
-        reader = csv.DictReader(fh)
-        need = {"photo", "x0", "y0", "x1", "y1", "label"}
-        if reader.fieldnames is None or not need <= set(reader.fieldnames):
-            raise WorkspaceError(
-                f"{path.name}: expected columns {sorted(need)}, got {reader.fieldnames}"
-            )
-        for i, row in enumerate(reader, start=2):
-            photo = row["photo"] or ""  # None when the row is too short
-            # Photos are named by their path relative to the folder they were tiled from
-            # ("site-a/img1.jpg"); anything that could point outside it is refused.
-            if Path(photo).is_absolute() or ".." in Path(photo).parts or "\\" in photo:
-                raise WorkspaceError(
-                    f"{path.name} line {i}: photo {photo!r} must be a relative name inside the "
-                    "photo folder (no absolute path, no '..')"
-                )
-            try:
-                box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
-            except (TypeError, ValueError):
-                raise WorkspaceError(f"{path.name} line {i}: box values must be integers") from None
-            pid = lookup.get((photo, box))
-            if pid is None:
-                raise WorkspaceError(
-                    f"{path.name} line {i}: no patch {box} of photo {photo!r} in the workspace "
-                    "(tile the photos first, with the same tile size)"
-                )
-            label = (row["label"] or "").strip() or None
-            if label is not None and label not in names:
-                raise WorkspaceError(
-                    f"{path.name} line {i}: unknown class {label!r}; choose one of: {', '.join(workspace.class_set.names)}"
-                )
-            items.append((pid, label))
-    return workspace.add_labels(items, reviewer=reviewer, source=source)
