@@ -1,0 +1,174 @@
+"""The screening view (crack vs no crack): scores at a threshold and threshold choices."""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+from trainkit.judging.metrics._checks import _as_bool, _as_unit_float, _ratio, _same_length
+from trainkit.judging.metrics.classification import confusion_matrix
+
+
+def _check_threshold(threshold: float) -> float:
+    if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)):
+        raise TypeError(
+            f"expected threshold to be a float in [0, 1], got {type(threshold).__name__}"
+        )
+    t = float(threshold)
+    if not 0.0 <= t <= 1.0:
+        raise ValueError(f"expected threshold in [0, 1], got {threshold}")
+    return t
+
+
+def screening_scores(
+    y_true_crack: ArrayLike, p_crack: ArrayLike, *, threshold: float
+) -> dict[str, Any]:
+    """Binary crack-vs-no-crack counts and rates at a probability threshold.
+
+    A patch is flagged when ``p_crack >= threshold``. Ratios whose denominator is zero
+    (e.g. recall with no true cracks) are nan rather than 0.
+
+    Args:
+        y_true_crack: whether each patch truly shows a crack (bool or 0/1), shape (n,).
+        p_crack: predicted crack probability per patch in [0, 1], shape (n,).
+        threshold: flagging threshold in [0, 1].
+
+    Returns:
+        Dict with threshold, tp, fn, fp, tn (ints) and recall, specificity,
+        false_alarm_rate (= fp / (fp + tn)), precision (floats).
+
+    Raises:
+        ValueError: on shape mismatch, non-binary truth, probabilities outside [0, 1].
+    """
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    _same_length(y, p, "y_true_crack", "p_crack")
+    t = _check_threshold(threshold)
+    flagged = p >= t
+    cm = confusion_matrix(y.astype(int), flagged.astype(int), labels=[0, 1])
+    tn, fp, fn, tp = (int(v) for v in cm.ravel())
+    return {
+        "threshold": t,
+        "tp": tp,
+        "fn": fn,
+        "fp": fp,
+        "tn": tn,
+        "recall": _ratio(tp, tp + fn),
+        "specificity": _ratio(tn, tn + fp),
+        "false_alarm_rate": _ratio(fp, fp + tn),
+        "precision": _ratio(tp, tp + fp),
+    }
+
+
+def threshold_for_recall(
+    y_true_crack: ArrayLike, p_crack: ArrayLike, *, target_recall: float
+) -> float:
+    """The largest threshold whose recall on these data is at least ``target_recall``.
+
+    Recall at threshold t is ``#{crack: p >= t} / #cracks``, non-increasing in t, and
+    false alarms are non-increasing in t too, so the largest such t gives the fewest false
+    alarms. The answer is always a crack patch's score: with the crack scores sorted
+    descending, it is the m-th one, m the smallest count with ``m / #cracks >= target``.
+
+    Ties: flagging uses ``>=``, so every patch (crack or not) whose score equals the
+    returned threshold is flagged. A threshold cannot split tied scores, so the achieved
+    recall may exceed the target, and tied non-crack patches are counted as false alarms.
+
+    Args:
+        y_true_crack: whether each patch truly shows a crack (bool or 0/1), shape (n,).
+        p_crack: predicted crack probability per patch in [0, 1], shape (n,).
+        target_recall: required recall in (0, 1].
+
+    Returns:
+        The threshold, as a float.
+
+    Raises:
+        ValueError: if there are no crack patches, or target_recall is outside (0, 1].
+    """
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    _same_length(y, p, "y_true_crack", "p_crack")
+    if isinstance(target_recall, bool) or not isinstance(target_recall, (int, float, np.number)):
+        raise TypeError(
+            f"expected target_recall to be a float in (0, 1], got {type(target_recall).__name__}"
+        )
+    target = float(target_recall)
+    if not 0.0 < target <= 1.0:
+        raise ValueError(f"expected target_recall in (0, 1], got {target_recall}")
+    n_pos = int(y.sum())
+    if n_pos == 0:
+        raise ValueError(
+            "expected at least one crack patch (y_true_crack true) to set a recall threshold, "
+            f"got 0 of {y.size}"
+        )
+    # Smallest m with m / n_pos >= target, using the same float division as the recall.
+    m = max(1, math.ceil(target * n_pos))
+    while m > 1 and (m - 1) / n_pos >= target:
+        m -= 1
+    while m < n_pos and m / n_pos < target:
+        m += 1
+    pos_scores = np.sort(p[y])[::-1]
+    return float(pos_scores[m - 1])
+
+
+def _check_budget(budget: float) -> float:
+    b = float(budget)
+    if not 0.0 <= b <= 1.0:
+        raise ValueError(f"expected a false-alarm budget in [0, 1], got {budget}")
+    return b
+
+
+def threshold_for_false_alarms(
+    y_true_crack: ArrayLike, p_crack: ArrayLike, *, max_false_alarm_rate: float
+) -> float:
+    """The smallest threshold whose false-alarm rate on these data is at most the budget.
+
+    With the non-crack scores sorted descending as v_0 >= v_1 >= ..., at most
+    k = floor(budget * #non-crack) of them may be flagged, so the threshold is the
+    smallest float above v_k (flagging uses ``>=``); the recall there is
+    :func:`recall_at_false_alarm`. A budget covering every non-crack patch gives 0.0.
+
+    Raises:
+        ValueError: without non-crack patches, or a budget outside [0, 1].
+    """
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    _same_length(y, p, "y_true_crack", "p_crack")
+    b = _check_budget(max_false_alarm_rate)
+    neg = np.sort(p[~y])[::-1]
+    if neg.size == 0:
+        raise ValueError("expected at least one non-crack patch to set a false-alarm threshold")
+    k = math.floor(b * neg.size + 1e-9)
+    if k >= neg.size:
+        return 0.0
+    return float(np.nextafter(neg[k], np.inf))
+
+
+def recall_at_false_alarm(y_true_crack: ArrayLike, p_crack: ArrayLike, *, budget: float) -> float:
+    """The highest recall any threshold reaches while its false-alarm rate stays within ``budget``.
+
+    This is the recall at :func:`threshold_for_false_alarms` (the threshold just above
+    the k-th highest non-crack score, k = floor(budget * #non-crack)), i.e. the largest
+    true-positive rate on the ROC curve whose false-positive rate is <= budget. Used to
+    select checkpoints at a fixed false-alarm cost.
+
+    Returns:
+        The recall; nan when there are no crack patches, 1.0 when there are no others.
+
+    Raises:
+        ValueError: on shape mismatch, probabilities outside [0, 1], budget outside [0, 1].
+    """
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    _same_length(y, p, "y_true_crack", "p_crack")
+    if not y.any():
+        _check_budget(budget)
+        return float("nan")
+    if y.all():
+        _check_budget(budget)
+        return 1.0
+    t = threshold_for_false_alarms(y, p, max_false_alarm_rate=budget)
+    return float(np.mean(p[y] >= t))
