@@ -337,7 +337,7 @@ def test_threshold_from_a_false_alarm_budget_on_validation(evaluated, tmp_path):
     from sklearn.metrics import roc_curve
 
     from trainkit.core.contract import screening_probability
-    from trainkit.judging.evaluation import _run_experiment
+    from trainkit.judging.evaluation import EvaluationOptions, _run_experiment
 
     a, _, _ = evaluated
     c = _clone_experiment(a, tmp_path / "c")
@@ -346,8 +346,8 @@ def test_threshold_from_a_false_alarm_budget_on_validation(evaluated, tmp_path):
     assert s["max_false_alarms"] == 0.05 and s["target_recall"] is None
     assert "false-alarm rate at most 0.05" in s["threshold_source"]
     assert s["validation"]["false_alarm_rate"] <= 0.05
-    run = _run_experiment(c, "test", 0.95, None)
-    y, p = run.val.labels != 0, screening_probability(run.val_probs)
+    run = _run_experiment(c, EvaluationOptions(), None)
+    y, p = run.val.labels != 0, screening_probability(run.val.probs)
     fpr, tpr, _ = roc_curve(y, p)
     assert s["validation"]["recall"] == pytest.approx(tpr[fpr <= 0.05 + 1e-12].max())
     html = (c / "evaluation" / "report.html").read_text(encoding="utf-8")

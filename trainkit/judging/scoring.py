@@ -1,0 +1,295 @@
+"""Score a model's predictions on one subset: the metrics dictionary, without any file or model I/O.
+
+Everything here is a pure function of arrays (labels, probabilities, logits and the
+patches' photo, group and scale), so evaluation, the benchmarks and the job checks all
+compute their figures the same way. The keys of the dictionary are documented in
+:mod:`trainkit.judging.evaluation`.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from trainkit.core.contract import screening_probability
+from trainkit.judging import metrics as M
+
+__all__ = [
+    "CAUTION",
+    "METRICS_VERSION",
+    "Scored",
+    "choose_threshold",
+    "screen_block",
+    "calibration_block",
+    "acceptance_gate",
+    "score_predictions",
+    "json_ready",
+]
+
+METRICS_VERSION = 1
+
+CAUTION = (
+    "This screener is a triage aid that decides which photos and regions a person looks at "
+    "first; it is not an inspection. Its figures hold only for photos like its test set "
+    "(same cameras, surfaces, lighting and scale). Defer to local codes and to licensed engineers "
+    "for any judgement about a structure."
+)
+
+
+@dataclass
+class Scored:
+    """A model's outputs on a set of labelled patches.
+
+    Attributes:
+        labels: (n,) true class indices (0 = none).
+        probs: (n, C) softmax probabilities.
+        logits: (n, C) logits (for calibration; may equal log-probabilities).
+        photos: (n,) photo name of each patch (for the breakdowns).
+        groups: (n,) structure group of each patch.
+        patch_mm: (n,) surface width covered by each patch in mm (nan when unknown).
+    """
+
+    labels: np.ndarray
+    probs: np.ndarray
+    logits: np.ndarray
+    photos: list[str] = field(default_factory=list)
+    groups: list[str] = field(default_factory=list)
+    patch_mm: np.ndarray | None = None
+
+    def __len__(self) -> int:
+        return int(len(self.labels))
+
+    @property
+    def screening(self) -> np.ndarray:
+        """Screening probability 1 - P(none) of each patch, in float64."""
+        return screening_probability(np.asarray(self.probs, dtype=np.float64))
+
+    @property
+    def is_crack(self) -> np.ndarray:
+        return np.asarray(self.labels) != 0
+
+
+def choose_threshold(
+    val: Scored | None, *, target_recall: float, max_false_alarms: float | None = None
+) -> tuple[float, str]:
+    """The operating threshold chosen on validation, and how it was chosen, in words.
+
+    With ``max_false_alarms`` the lowest threshold whose validation false-alarm rate is
+    at most that budget; otherwise the highest threshold reaching ``target_recall`` on
+    validation's crack patches. Without the patches a rule needs, 0.5 and the reason.
+    """
+    if max_false_alarms is not None:
+        if val is not None and len(val) and np.any(~val.is_crack):
+            t = M.threshold_for_false_alarms(
+                val.is_crack, val.screening, max_false_alarm_rate=max_false_alarms
+            )
+            return float(t), f"validation subset, false-alarm rate at most {max_false_alarms:g}"
+        return 0.5, "default 0.5 (validation has no clean patches)"
+    if val is not None and len(val) and np.any(val.is_crack):
+        t = M.threshold_for_recall(val.is_crack, val.screening, target_recall=target_recall)
+        return float(t), f"validation subset, target screening recall {target_recall:g}"
+    return 0.5, "default 0.5 (validation has no crack patches)"
+
+
+def _plain(d: dict) -> dict:
+    return {k: (float(v) if isinstance(v, float | np.floating) else int(v)) for k, v in d.items()}
+
+
+def screen_block(is_crack: np.ndarray, p: np.ndarray, threshold: float) -> dict:
+    """Screening counts and rates at a threshold, plus the share of patches flagged."""
+    s = _plain(M.screening_scores(is_crack, p, threshold=threshold))
+    s["flagged_share"] = (s["tp"] + s["fp"]) / max(1, is_crack.size)
+    return s
+
+
+def calibration_block(test: Scored, val: Scored | None, *, temperature_scaling: bool) -> dict:
+    """Calibration of the argmax confidence; with ``temperature_scaling`` one temperature
+    fitted on validation by NLL (report only: the probabilities used elsewhere stay as they are).
+
+    Raises:
+        ValueError: temperature scaling was asked for without validation patches.
+    """
+    probs, y = test.probs, test.labels
+    pred = probs.argmax(1)
+    conf, correct = probs.max(1).astype(float), pred == y
+    out: dict[str, Any] = {
+        "n_bins": 10,
+        "ece": M.expected_calibration_error(conf, correct, n_bins=10),
+        "nll": M.negative_log_likelihood(test.logits, y),
+        "bins": M.reliability_bins(conf, correct, n_bins=10),
+        "temperature": None,
+    }
+    if not temperature_scaling:
+        return out
+    if val is None or len(val) == 0:
+        raise ValueError(
+            "temperature scaling needs validation patches to fit on; the split has none"
+        )
+    t = M.fit_temperature(val.logits, val.labels)
+    scaled = M.softmax(test.logits, temperature=t)
+    conf_t, correct_t = scaled.max(1), scaled.argmax(1) == y
+    out["temperature"] = {
+        "value": t,
+        "fitted_on": f"validation subset ({len(val)} patches), by NLL",
+        "val_nll_before": M.negative_log_likelihood(val.logits, val.labels),
+        "val_nll_after": M.negative_log_likelihood(val.logits, val.labels, temperature=t),
+        "ece_after": M.expected_calibration_error(conf_t, correct_t, n_bins=10),
+        "nll_after": M.negative_log_likelihood(test.logits, y, temperature=t),
+        "bins_after": M.reliability_bins(conf_t, correct_t, n_bins=10),
+        "applied_to": "report only: predictions.csv, the threshold and the exported "
+        "model use the unscaled probabilities",
+    }
+    return out
+
+
+def _breakdowns(test: Scored, flagged: np.ndarray, *, confidence: float, method: str) -> dict:
+    correct = test.probs.argmax(1) == test.labels
+    patch_mm = (
+        np.full(len(test), np.nan) if test.patch_mm is None else np.asarray(test.patch_mm, float)
+    )
+    bands, band_order = M.scale_bands(patch_mm, n_bands=3)
+    kw = {"confidence": confidence, "method": method}
+    return {
+        "by_photo": M.breakdown(test.photos, test.is_crack, flagged, correct, **kw),
+        "by_group": M.breakdown(test.groups, test.is_crack, flagged, correct, **kw),
+        "by_scale": M.breakdown(bands, test.is_crack, flagged, correct, order=band_order, **kw)
+        if bool(np.isfinite(patch_mm).any())
+        else [],
+    }
+
+
+def acceptance_gate(interval: M.Interval, required: float, *, confidence: float, what: str) -> dict:
+    """The acceptance verdict: pass only when the interval's lower bound reaches ``required``.
+
+    Args:
+        interval: the recall interval (its ``k``/``n`` are quoted in the verdict).
+        required: the lowest acceptable lower bound.
+        confidence: the interval's two-sided level (for the wording).
+        what: where the recall was measured, e.g. "the test subset".
+
+    Returns:
+        ``required_recall``, ``recall_lower_bound``, ``passed`` and ``verdict`` (words).
+    """
+    lower = interval.low
+    passed = bool(np.isfinite(lower) and lower >= required)
+    level = f"{confidence:.0%}"
+    if not np.isfinite(lower):
+        verdict = (
+            f"REFUSED: {what} has no crack patches, so screening recall "
+            f"cannot be bounded (required lower bound {required:.3f})."
+        )
+    else:
+        word, relation = ("ACCEPTED", "is at least") if passed else ("REFUSED", "is below")
+        verdict = (
+            f"{word}: the {level} lower bound of screening recall ({lower:.3f}, "
+            f"{interval.k}/{interval.n} cracks found) {relation} the required {required:.3f}."
+        )
+    return {
+        "required_recall": float(required),
+        "recall_lower_bound": lower,
+        "passed": passed,
+        "verdict": verdict,
+    }
+
+
+def score_predictions(
+    test: Scored,
+    val: Scored | None,
+    *,
+    class_names: list[str],
+    threshold: float,
+    threshold_source: str,
+    split: str = "test",
+    confidence: float = 0.95,
+    method: str = "wilson",
+    target_recall: float | None = 0.95,
+    max_false_alarms: float | None = None,
+    require_recall: float | None = None,
+    temperature_scaling: bool = False,
+) -> dict:
+    """The metrics of one evaluated subset (every key but provenance and comparison).
+
+    Args:
+        test: the evaluated patches' predictions.
+        val: validation predictions (for the validation view and temperature), or None.
+        class_names: the class set's names in index order.
+        threshold: the operating threshold on the screening probability.
+        threshold_source: how it was chosen, in words.
+        split: the evaluated subset's name ('test' or 'val').
+        confidence: two-sided level of every interval.
+        method: interval method ('wilson' or 'clopper-pearson').
+        target_recall: the recall rule that chose the threshold (None under a budget).
+        max_false_alarms: the false-alarm budget that chose it, if that rule was used.
+        require_recall: the acceptance gate's lowest recall bound, or None for no gate.
+        temperature_scaling: fit and report a temperature (see :func:`calibration_block`).
+    """
+    y, probs = test.labels, test.probs
+    pred = probs.argmax(1)
+    labels = list(range(len(class_names)))
+    cm = M.confusion_matrix(y, pred, labels=labels)
+    p_crack = test.screening
+    screen = screen_block(test.is_crack, p_crack, threshold)
+    recall_ci = M.recall_interval(
+        screen["tp"], screen["tp"] + screen["fn"], confidence=confidence, method=method
+    )
+    calibration = calibration_block(test, val, temperature_scaling=temperature_scaling)
+    gate = None
+    if require_recall is not None:
+        gate = acceptance_gate(
+            recall_ci, require_recall, confidence=confidence, what=f"the {split} subset"
+        )
+    return {
+        "metrics_version": METRICS_VERSION,
+        "split": split,
+        "patches": int(len(test)),
+        "photos": len(set(test.photos)),
+        "class_names": list(class_names),
+        "accuracy": float(np.mean(pred == y)),
+        "confusion_matrix": cm.tolist(),
+        "confusion_matrix_row_normalised": M.row_normalise(cm).round(4).tolist(),
+        "per_class": M.per_class_report(
+            y, pred, labels=labels, class_names=class_names, confidence=confidence, method=method
+        ),
+        "screening": {
+            **screen,
+            "threshold": threshold,
+            "threshold_source": threshold_source,
+            "threshold_independent": split != "val",
+            "target_recall": None if max_false_alarms is not None else float(target_recall),
+            "max_false_alarms": None if max_false_alarms is None else float(max_false_alarms),
+            "recall_ci_low": recall_ci.low,
+            "recall_ci_high": recall_ci.high,
+            "recall_interval": recall_ci.to_dict(),
+            "validation": screen_block(val.is_crack, val.screening, threshold)
+            if val is not None and len(val)
+            else None,
+            "at_default_threshold": screen_block(test.is_crack, p_crack, 0.5),
+        },
+        "expected_calibration_error": float(calibration["ece"]),
+        "calibration": calibration,
+        **_breakdowns(test, p_crack >= threshold, confidence=confidence, method=method),
+        "interval_method": method,
+        "confidence": float(confidence),
+        "gate": gate,
+        "caution": CAUTION,
+    }
+
+
+def json_ready(o: Any) -> Any:
+    """``o`` with numpy scalars and arrays made plain and undefined ratios (nan) as None."""
+    if isinstance(o, dict):
+        return {k: json_ready(v) for k, v in o.items()}
+    if isinstance(o, list | tuple):
+        return [json_ready(v) for v in o]
+    if isinstance(o, np.ndarray):
+        return json_ready(o.tolist())
+    if isinstance(o, np.bool_):
+        return bool(o)
+    if isinstance(o, np.integer):
+        return int(o)
+    if isinstance(o, float | np.floating):
+        return float(o) if math.isfinite(o) else None
+    return o
