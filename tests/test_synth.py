@@ -460,9 +460,9 @@ def test_write_dataset_reproducible_and_consistent(tmp_path: Path) -> None:
 
 
 def test_write_dataset_scene_mix() -> None:
-    from trainkit.synth import _scene_plan  # deterministic plan, no pixels needed
+    from trainkit.synth.dataset import scene_plan  # deterministic plan, no pixels needed
 
-    plan = _scene_plan(np.random.default_rng(0), 20)
+    plan = scene_plan(np.random.default_rng(0), 20)
     scenes = [s for s, _ in plan]
     # Hand computation of 20 x (20%, 45%, 15%, 20%).
     assert {s: scenes.count(s) for s in set(scenes)} == {
