@@ -24,8 +24,8 @@ __all__ = ["ASSET_OWNER", "STRUCTURES", "PhotoSpec", "scene_plan", "photo_specs"
 
 #: Fictional asset owner and structures used to name photos in :func:`write_dataset`.
 #: Coined words (not places, organisations or brands) joined to trade terms for the kind.
-ASSET_OWNER = "Millbrook Canal Trust"
-STRUCTURES = ("aqueduct-deck", "culvert-east", "lock-3-wall", "pier-n")
+ASSET_OWNER = "Quembrath (fictional)"
+STRUCTURES = ("brevask-deck", "ullomir-culvert", "tessivane-wall", "korrindel-pier")
 
 #: Labelling thresholds used unless the caller passes others (frozen, so safe to share).
 _DEFAULT_RULES = LabelRules()
