@@ -460,9 +460,9 @@ def test_write_dataset_reproducible_and_consistent(tmp_path: Path) -> None:
 
 
 def test_write_dataset_scene_mix() -> None:
-    from trainkit.synth import _scene_plan  # deterministic plan, no pixels needed
+    from trainkit.synth.dataset import scene_plan  # deterministic plan, no pixels needed
 
-    plan = _scene_plan(np.random.default_rng(0), 20)
+    plan = scene_plan(np.random.default_rng(0), 20)
     scenes = [s for s, _ in plan]
     # Hand computation of 20 x (20%, 45%, 15%, 20%).
     assert {s: scenes.count(s) for s in set(scenes)} == {
@@ -474,3 +474,19 @@ def test_write_dataset_scene_mix() -> None:
     angles = sorted(a for s, a in plan if s == "single")
     # Stratified over [0, 180): one angle per 20-degree bin.
     assert [int(a // 20) for a in angles] == list(range(9))
+
+
+def test_photo_specs_plan_is_what_write_dataset_writes(tmp_path: Path) -> None:
+    from trainkit.synth.dataset import STRUCTURES, photo_specs
+
+    opts = SynthOptions(height=96, width=128)
+    specs = photo_specs(np.random.default_rng(5), 4, opts)
+    write_dataset(tmp_path, n_photos=4, seed=5, tile_px=64, options=opts, class_set=PRESENCE)
+    for spec in specs:
+        truth = json.loads((tmp_path / "truth" / f"{spec.name}.json").read_text())
+        assert truth["seed"] == spec.seed and truth["structure"] == spec.structure
+        assert truth["scene"] == spec.options.scene and spec.structure in STRUCTURES
+    # Names count per structure from 001 without gaps.
+    for s in {spec.structure for spec in specs}:
+        numbers = sorted(int(sp.name.rsplit("-", 1)[1]) for sp in specs if sp.structure == s)
+        assert numbers == list(range(1, len(numbers) + 1))

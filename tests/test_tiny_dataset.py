@@ -50,3 +50,17 @@ def test_labels_cover_every_tile_of_every_photo():
         assert (r["label"] == "") == (r["status"] == "ambiguous")
     assert counts == {k: v for k, v in manifest["counts"].items() if v}
     assert sum(p.stat().st_size for p in TINY.rglob("*")) < 8_000_000
+
+
+def test_photos_carry_the_generators_invented_names():
+    from trainkit.synth import ASSET_OWNER, STRUCTURES
+
+    manifest = json.loads((TINY / "manifest.json").read_text())
+    assert manifest["asset_owner"] == ASSET_OWNER
+    assert set(manifest["structures"]) <= set(STRUCTURES)
+    rows = list(csv.DictReader((TINY / "scale.csv").open()))
+    assert {r["structure"] for r in rows} == set(manifest["structures"])
+    for r in rows:
+        assert r["photo"].startswith(r["structure"] + "-")
+        assert (TINY / "photos" / r["photo"]).is_file()
+    assert sum(1 for _ in rows) == sum(manifest["structures"].values())
