@@ -18,7 +18,7 @@ Allocation of the N cells (a documented rule, not a published optimum):
 
 1. every non-empty stratum first gets ``min(N_h, min_per_stratum)`` cells (default 20:
    enough for a within-stratum variance, and a floor so that no pile goes unchecked);
-2. the remainder goes in proportion to ``N_h * S_h`` (Neyman allocation, Cochran §5.5),
+2. the remainder goes in proportion to ``N_h * S_h`` (Neyman allocation, Cochran ch. 5),
    with the prior standard deviation ``S_h = sqrt(q_h (1 - q_h))`` of a crack indicator
    whose prevalence ``q_h`` is the stratum's mean screening probability, clipped to
    ``[prior_floor, 1 - prior_floor]`` (default 0.05). The clip is common practice rather
