@@ -15,19 +15,11 @@ sampling (Cochran, *Sampling Techniques*, 3rd ed. 1977):
   likewise, with ``v(C_h) = v(Y_h)``;
 - flagged share ``N_F / N`` is known exactly: every cell's probability is in the census.
 
-Intervals. Wald intervals (estimate ± z·se) under-cover where recall is near 1 and few
-misses are seen. The default, ``"beta-binomial"``, is the method Webber recommends
-("Approximate recall confidence intervals", ACM TOIS 31(1), 2013: beta-binomial
-posteriors on the retrieved and unretrieved yield with fixed hyperparameters and a Monte
-Carlo estimate of the posterior of recall), extended here from two segments to the three
-strata: per stratum the crack rate has the posterior ``Beta(x_h + a, n_h - x_h + a)``
-(``a = 0.5``, Jeffreys prior; the value of Webber's fixed hyperparameters is recalled
-from memory), the cracks among the ``N_h - n_h`` unanswered cells are drawn binomially
-from it, and recall and false-alarm rate are computed per draw; the interval is the
-central ``confidence`` quantile range of the draws, widened if needed to contain the
-design estimate. ``"korn-graubard"`` (Korn and Graubard 1998, Survey Methodology 24(2):
-Clopper-Pearson on the effective sample size ``p(1 - p) / v(p)`` with the
-degrees-of-freedom factor ``(z / t_df)^2``) and ``"wald"`` are given for comparison.
+Intervals: Wald intervals (estimate ± z·se) under-cover where recall is near 1 and few
+misses are seen; the default is a conservative beta-binomial Monte Carlo interval after
+Webber ("Approximate recall confidence intervals", ACM TOIS 31(1), 2013), with
+Korn-Graubard (Survey Methodology 24(2), 1998), Jeffreys and Wald for comparison: see
+:mod:`trainkit.jobs.intervals`.
 
 Unsure or unanswered cells are counted per stratum and reported; the estimate treats the
 answered cells of a stratum as a simple random sample of it (missing at random).
@@ -45,6 +37,7 @@ from numpy.typing import ArrayLike
 from scipy import stats
 
 from trainkit.jobs.design import STRATA
+from trainkit.jobs.intervals import FLAGGED, korn_graubard, simulated_intervals
 
 __all__ = [
     "INTERVAL_METHODS",
@@ -58,7 +51,6 @@ __all__ = [
 ]
 
 INTERVAL_METHODS: tuple[str, ...] = ("beta-binomial", "jeffreys", "korn-graubard", "wald")
-_FLAGGED = 0
 
 
 class EstimateError(ValueError):
@@ -231,118 +223,6 @@ def _ratio_var(r: float, var_top: float, var_other: float, den: float) -> float:
     return ((1.0 - r) ** 2 * var_top + r**2 * var_other) / den**2
 
 
-def _posterior_draws(
-    big: np.ndarray,
-    n: np.ndarray,
-    x: np.ndarray,
-    draws: int,
-    shift: np.ndarray,
-    prior: float,
-    rng: np.random.Generator,
-) -> np.ndarray:
-    """(draws, strata) crack totals from per-stratum beta-binomial posteriors.
-
-    The crack rate of stratum h is drawn from ``Beta(x_h + a_h, n_h - x_h + b_h)`` with
-    ``(a_h, b_h) = (prior, prior)`` where ``shift[h] == 0``, ``(1, 0)`` where ``shift[h] > 0``
-    and ``(0, 1)`` where ``shift[h] < 0`` (a zero first or second parameter is a point mass
-    at 0 or 1); the cracks among the unanswered ``N_h - n_h`` cells are binomial given it.
-    """
-    out = np.empty((draws, big.size))
-    for h in range(big.size):
-        unseen = int(big[h] - n[h])
-        a, b = {0: (prior, prior), 1: (1.0, 0.0), -1: (0.0, 1.0)}[int(np.sign(shift[h]))]
-        alpha, beta = x[h] + a, n[h] - x[h] + b
-        if unseen == 0:
-            out[:, h] = x[h]
-            continue
-        if alpha <= 0:
-            rate = np.zeros(draws)
-        elif beta <= 0:
-            rate = np.ones(draws)
-        else:
-            rate = rng.beta(alpha, beta, size=draws)
-        out[:, h] = x[h] + rng.binomial(unseen, rate)
-    return out
-
-
-def _korn_graubard(
-    p: float, var: float, n_domain: int, df: int, conf: float
-) -> tuple[float, float]:
-    """Clopper-Pearson on the effective sample size (Korn and Graubard 1998)."""
-    alpha = 1.0 - conf
-    if not math.isfinite(p):
-        return math.nan, math.nan
-    n_eff = p * (1 - p) / var if (0 < p < 1 and var > 0) else float(n_domain)
-    n_eff = min(n_eff, float(n_domain)) if n_domain > 0 else n_eff
-    if df > 0:
-        ratio = stats.norm.ppf(1 - alpha / 2) / stats.t.ppf(1 - alpha / 2, df)
-        n_eff *= ratio**2
-    if n_eff <= 0:
-        return 0.0, 1.0
-    k = p * n_eff
-    low = 0.0 if k <= 0 else float(stats.beta.ppf(alpha / 2, k, n_eff - k + 1))
-    high = 1.0 if k >= n_eff else float(stats.beta.ppf(1 - alpha / 2, k + 1, n_eff - k))
-    return low, high
-
-
-def _simulated_intervals(
-    big: np.ndarray,
-    n: np.ndarray,
-    x: np.ndarray,
-    point: tuple[float, float, float],
-    conf: float,
-    method: str,
-    draws: int,
-    prior: float,
-    seed: int,
-) -> tuple[tuple[float, float], ...]:
-    """Recall, false-alarm and crack-total intervals from posterior draws of the totals.
-
-    ``"jeffreys"``: one set of draws, every stratum with a ``Beta(x + 0.5, n - x + 0.5)``
-    rate, central quantiles. ``"beta-binomial"``: two sets in the manner of the
-    Clopper-Pearson interval, whose ends are the quantiles of ``Beta(x, n - x + 1)`` and
-    ``Beta(x + 1, n - x)``: the low end of recall (and high end of false alarms) from draws
-    that lean every stratum's rate toward more misses (flagged: fewer cracks, near and
-    rest: more), the high end from draws leaning the other way. Recall rises with the
-    flagged total and falls with the others; the false-alarm rate does the opposite, so
-    each end takes the quantile of the draws that favour it.
-    """
-    rng = np.random.default_rng(seed)
-    k = big.size
-    lean = np.array([-1] + [1] * (k - 1))  # toward low recall, high false alarms
-    if method == "jeffreys":
-        pess = opt = _posterior_draws(big, n, x, draws, np.zeros(k), prior, rng)
-    else:
-        pess = _posterior_draws(big, n, x, draws, lean, prior, rng)
-        opt = _posterior_draws(big, n, x, draws, -lean, prior, rng)
-    total_cells = int(big.sum())
-    lo_q, hi_q = (1 - conf) / 2, 1 - (1 - conf) / 2
-
-    def figures(sims: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        y_sim = sims.sum(axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            r_sim = sims[:, _FLAGGED] / y_sim
-            a_sim = (big[_FLAGGED] - sims[:, _FLAGGED]) / (total_cells - y_sim)
-        return r_sim, a_sim, y_sim
-
-    def q(sim: np.ndarray, level: float) -> float:
-        ok = sim[np.isfinite(sim)]
-        return float(np.quantile(ok, level)) if ok.size else math.nan
-
-    r_p, a_p, y_p = figures(pess)
-    r_o, a_o, y_o = figures(opt)
-    ends = (
-        (q(r_p, lo_q), q(r_o, hi_q)),
-        (q(a_o, lo_q), q(a_p, hi_q)),
-        (q(y_o, lo_q), q(y_p, hi_q)),
-    )
-    # Widen to contain the design estimate where the two disagree (no misses seen).
-    return tuple(
-        (min(lo, est), max(hi, est)) if math.isfinite(est) else (math.nan, math.nan)
-        for (lo, hi), est in zip(ends, point, strict=True)
-    )
-
-
 def estimate_job(
     answered_strata: ArrayLike,
     answers: ArrayLike,
@@ -390,27 +270,29 @@ def estimate_job(
     y_h, v_h = _totals(big, n, x)
     y_tot, v_tot = float(y_h.sum()), float(v_h.sum())
     c_tot = total_cells - y_tot
-    c_flag = float(big[_FLAGGED] - y_h[_FLAGGED])
-    v_other = float(v_h.sum() - v_h[_FLAGGED])
-    recall = y_h[_FLAGGED] / y_tot if y_tot > 0 else math.nan
+    c_flag = float(big[FLAGGED] - y_h[FLAGGED])
+    v_other = float(v_h.sum() - v_h[FLAGGED])
+    recall = y_h[FLAGGED] / y_tot if y_tot > 0 else math.nan
     fa = c_flag / c_tot if c_tot > 0 else math.nan
-    se_r = math.sqrt(_ratio_var(recall, v_h[_FLAGGED], v_other, y_tot)) if y_tot > 0 else math.nan
-    se_a = math.sqrt(_ratio_var(fa, v_h[_FLAGGED], v_other, c_tot)) if c_tot > 0 else math.nan
+    se_r = math.sqrt(_ratio_var(recall, v_h[FLAGGED], v_other, y_tot)) if y_tot > 0 else math.nan
+    se_a = math.sqrt(_ratio_var(fa, v_h[FLAGGED], v_other, c_tot)) if c_tot > 0 else math.nan
     se_y = math.sqrt(v_tot)
     z = float(stats.norm.ppf(1 - (1 - conf) / 2))
 
     def wald(est: float, se: float, unit: bool = True) -> tuple[float, float]:
+        if not (math.isfinite(est) and math.isfinite(se)):
+            return math.nan, math.nan
         low, high = est - z * se, est + z * se
         return (max(0.0, low), min(1.0, high)) if unit else (max(0.0, low), high)
 
     if method in ("beta-binomial", "jeffreys"):
-        r_int, a_int, y_int = _simulated_intervals(
+        r_int, a_int, y_int = simulated_intervals(
             big, n, x, (recall, fa, y_tot), conf, method, int(draws), float(prior), int(seed)
         )
     elif method == "korn-graubard":
         df = int(n.sum()) - int((big > 0).sum())
-        r_int = _korn_graubard(recall, se_r**2, int(x.sum()), df, conf)
-        a_int = _korn_graubard(fa, se_a**2, int((n - x).sum()), df, conf)
+        r_int = korn_graubard(recall, se_r**2, int(x.sum()), df, conf)
+        a_int = korn_graubard(fa, se_a**2, int((n - x).sum()), df, conf)
         y_int = wald(y_tot, se_y, unit=False)
     else:
         r_int, a_int, y_int = wald(recall, se_r), wald(fa, se_a), wald(y_tot, se_y, unit=False)
@@ -430,7 +312,7 @@ def estimate_job(
         recall=Figure(float(recall), *r_int, se_r, method, conf),
         false_alarm_rate=Figure(float(fa), *a_int, se_a, method, conf),
         crack_total=Figure(y_tot, *y_int, se_y, method, conf),
-        flagged_share=float(big[_FLAGGED] / total_cells),
+        flagged_share=float(big[FLAGGED] / total_cells),
         strata=table,
         answered=int(n.sum()),
         unresolved=int(u.sum()),
