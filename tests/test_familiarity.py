@@ -1,0 +1,122 @@
+"""Tests for trainkit.core.familiarity: the Mahalanobis detector of Lee et al. (NeurIPS 2018)."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from scipy.spatial.distance import mahalanobis
+from sklearn.covariance import ledoit_wolf
+from sklearn.metrics import roc_auc_score
+
+from trainkit.core import familiarity as F
+
+LEE = "Lee, Lee, Lee, Shin (2018), NeurIPS: min over classes of the Mahalanobis distance"
+
+
+def _clouds(n: int, d: int, seed: int, shift: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+    """Two classes of correlated Gaussian vectors, optionally shifted as a whole."""
+    rng = np.random.default_rng(seed)
+    mix = np.random.default_rng(100).normal(size=(d, d)) / np.sqrt(d)
+    labels = rng.integers(0, 2, size=n)
+    centres = np.random.default_rng(101).normal(scale=2.0, size=(2, d))
+    x = rng.normal(size=(n, d)) @ mix + centres[labels] + shift
+    return x, labels
+
+
+def test_distances_match_scipy_mahalanobis_without_projection():
+    # LEE, checked against scipy.spatial.distance.mahalanobis(u, v, VI) with the fitted
+    # class means and precision matrix (no projection, no shrinkage: the pooled covariance).
+    x, y = _clouds(400, 8, seed=0)
+    s = F.fit(x, y, k=None, shrink=False)
+    probe = np.random.default_rng(1).normal(scale=3.0, size=(25, 8))
+    ours = F.scores(s, probe)
+    prec = s.precision.astype(np.float64)
+    means = s.class_means.astype(np.float64) + s.mean.astype(np.float64)
+    ref = [min(mahalanobis(u, m, prec) for m in means) for u in probe]
+    assert np.allclose(ours, ref, rtol=1e-6)
+    # The precision is the inverse of the pooled within-class covariance (divisor n).
+    resid = x - np.stack([x[y == c].mean(0) for c in (0, 1)])[y]
+    assert np.allclose(np.linalg.inv(resid.T @ resid / len(x)), prec, rtol=1e-4, atol=1e-5)
+
+
+def test_distances_match_scipy_in_the_projected_space():
+    x, y = _clouds(300, 40, seed=2)
+    s = F.fit(x, y, k=6)
+    probe = _clouds(20, 40, seed=3, shift=0.5)[0]
+    z = s.project(probe)
+    ref = [
+        min(mahalanobis(u, m, s.precision.astype(np.float64)) for m in s.class_means.astype(float))
+        for u in z
+    ]
+    assert np.allclose(F.scores(s, probe), ref, rtol=1e-6)
+    # The projection is PCA: its rows are the top principal directions of the centred data
+    # (checked up to sign against numpy's eigendecomposition of the covariance).
+    w, v = np.linalg.eigh(np.cov(x.T))
+    top = v[:, np.argsort(w)[::-1][:6]].T
+    assert np.allclose(np.abs(np.sum(top * s.components, axis=1)), 1.0, atol=1e-4)
+
+
+def test_shrinkage_matches_sklearn_ledoit_wolf():
+    # Ledoit and Wolf (2004) shrinkage, checked against sklearn.covariance.ledoit_wolf.
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=(30, 25)) @ rng.normal(size=(25, 25))
+    x -= x.mean(0)
+    cov, delta = F.ledoit_wolf_shrinkage(x)
+    ref_cov, ref_delta = ledoit_wolf(x, assume_centered=True)
+    assert delta == pytest.approx(ref_delta, rel=1e-9)
+    assert np.allclose(cov, ref_cov)
+
+
+def test_shifted_cloud_separates_and_validation_quantile_flags_about_one_percent():
+    x, y = _clouds(3000, 128, seed=5)
+    s = F.fit(x, y, k=32)
+    val = F.scores(s, _clouds(3000, 128, seed=6)[0])
+    thr = F.threshold_from_validation(val, quantile=0.99)
+    held_out = F.scores(s, _clouds(5000, 128, seed=7)[0])
+    shifted = F.scores(s, _clouds(1000, 128, seed=8, shift=2.0)[0])
+    # Sanity check: the shifted cloud is told apart (AUC from sklearn's roc_auc_score).
+    auc = roc_auc_score(
+        np.r_[np.zeros(held_out.size), np.ones(shifted.size)], np.r_[held_out, shifted]
+    )
+    assert auc > 0.99
+    # About 1 % of held-out in-distribution vectors exceed the 99th validation percentile;
+    # binomial sd with n = 5000 is 0.0014, so [0.4 %, 1.8 %] is about 4 sd either side.
+    assert 0.004 <= np.mean(held_out > thr) <= 0.018
+    assert np.mean(shifted > thr) > 0.9
+
+
+def test_summary_round_trips_through_json_and_frame_median():
+    x, y = _clouds(200, 16, seed=9)
+    s = F.fit(x, y, k=4)
+    back = F.FamiliaritySummary.from_dict(json.loads(json.dumps(s.to_dict())))
+    probe = _clouds(10, 16, seed=10)[0]
+    assert np.array_equal(F.scores(s, probe), F.scores(back, probe))
+    assert back.precision.dtype == np.float32 and back.components.shape == (4, 16)
+    assert F.frame_score([1.0, 5.0, 2.0, 9.0, 3.0], 2.5) == (3.0, True)
+    assert F.frame_score([[1.0, 2.0], [2.0, 9.0]], 2.5) == (2.0, False)
+
+
+def test_errors_name_the_value():
+    x, y = _clouds(50, 8, seed=11)
+    s = F.fit(x, y, k=3)
+    with pytest.raises(F.FamiliarityError, match="dimension 8.*got 7"):
+        F.scores(s, x[:, :7])
+    with pytest.raises(F.FamiliarityError, match="k to be an int >= 1"):
+        F.fit(x, y, k=0)
+    with pytest.raises(F.FamiliarityError, match="quantile in \\(0, 1\\), got 1.5"):
+        F.threshold_from_validation([1.0, 2.0], quantile=1.5)
+    with pytest.raises(F.FamiliarityError, match="format"):
+        F.FamiliaritySummary.from_dict({"format": "other"})
+
+
+def test_module_imports_without_scipy_sklearn_or_torch():
+    code = (
+        "import sys, trainkit.core.familiarity; "
+        "bad = [m for m in ('scipy', 'sklearn', 'torch') if m in sys.modules]; print(bad)"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"

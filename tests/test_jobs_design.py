@@ -1,0 +1,108 @@
+"""Tests for trainkit.jobs.design: strata, allocation and seeded stratified sampling."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from trainkit.jobs.design import STRATA, DesignError, allocate, assign_strata, draw_sample
+
+COCHRAN = "Cochran, W. G. (1977). Sampling Techniques, 3rd ed., ch. 5"
+
+
+def _probabilities(n: int, seed: int = 0) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    p = rng.beta(0.5, 8.0, n)
+    p[rng.random(n) < 0.05] = rng.uniform(0.5, 1.0)
+    return p
+
+
+def test_strata_edges_belong_upward():
+    # p == t is flagged (the Screener flags p >= t); p == t * f is in the near band.
+    codes = assign_strata([0.5, 0.4999, 0.1, 0.0999, 0.0, 1.0], 0.5, near_fraction=0.2)
+    assert [STRATA[c] for c in codes] == ["flagged", "near", "near", "rest", "rest", "flagged"]
+
+
+def test_same_seed_same_sample_and_other_seed_another():
+    p = _probabilities(5000)
+    a = draw_sample(p, 0.5, 300, seed=11)
+    b = draw_sample(p, 0.5, 300, seed=11)
+    c = draw_sample(p, 0.5, 300, seed=12)
+    assert np.array_equal(a.index, b.index) and np.array_equal(a.stratum, b.stratum)
+    assert not np.array_equal(a.index, c.index)
+
+
+def test_sample_is_within_strata_without_replacement_with_recorded_inclusion_probability():
+    p = _probabilities(5000)
+    s = draw_sample(p, 0.5, 300, seed=3)
+    codes = assign_strata(p, 0.5)
+    assert s.index.size == 300 == int(s.allocated.sum())
+    assert np.unique(s.index).size == s.index.size  # without replacement
+    assert np.array_equal(codes[s.index], s.stratum)
+    assert np.array_equal(s.population, np.bincount(codes, minlength=3))
+    for h in range(3):
+        in_h = s.stratum == h
+        assert in_h.sum() == s.allocated[h]
+        # Inclusion probability of SRS without replacement in a stratum: n_h / N_h (COCHRAN).
+        assert np.allclose(s.inclusion_probability[in_h], s.allocated[h] / s.population[h])
+    assert s.to_dict()["strata"][0]["sampled"] == int(s.allocated[0])
+
+
+def test_empirical_inclusion_frequency_matches_n_h_over_N_h():
+    # Every cell of stratum h is included with probability n_h / N_h (COCHRAN, SRSWOR): the
+    # frequency over 3000 seeds lies within 4.5 binomial standard errors of it for every cell.
+    p = np.concatenate([np.full(6, 0.9), np.full(9, 0.3), np.full(30, 0.01)])
+    hits = np.zeros(p.size)
+    reps = 3000
+    for seed in range(reps):
+        s = draw_sample(p, 0.5, 12, seed=seed, min_per_stratum=2)
+        hits[s.index] += 1
+    prob = s.inclusion_probability[np.searchsorted(s.stratum, assign_strata(p, 0.5))]
+    se = np.sqrt(prob * (1 - prob) / reps)
+    assert np.all(np.abs(hits / reps - prob) < 4.5 * se)
+
+
+@pytest.mark.parametrize("seed", range(30))
+def test_allocation_sums_to_n_respects_sizes_and_floor(seed):
+    rng = np.random.default_rng(seed)
+    big = rng.integers(0, 60, size=3)
+    big[rng.integers(0, 3)] += 1  # at least one cell
+    n = int(rng.integers(1, big.sum() + 1))
+    sd = rng.uniform(0.05, 0.5, size=3)
+    alloc = allocate(big, n, prior_sd=sd, min_per_stratum=5)
+    assert alloc.sum() == n
+    assert np.all(alloc <= big) and np.all(alloc >= 0)
+    if n >= 5 * 3:
+        assert np.all(alloc >= np.minimum(big, 5))
+
+
+def test_neyman_share_follows_size_times_prior_sd():
+    # Neyman allocation n_h proportional to N_h S_h (COCHRAN, optimum allocation; the rule
+    # after the floors is this module's own, see its docstring):
+    # sizes (1000, 1000, 2000), S (0.1, 0.3, 0.2): weights 100, 300, 400 of 800.
+    alloc = allocate(
+        np.array([1000, 1000, 2000]), 830, prior_sd=[0.1, 0.3, 0.2], min_per_stratum=10
+    )
+    # 30 go to the floors; the other 800 split 100 : 300 : 400.
+    assert alloc.tolist() == [110, 310, 410]
+
+
+def test_full_census_and_errors_name_the_value():
+    p = _probabilities(200)
+    s = draw_sample(p, 0.5, 200, seed=0)
+    assert np.array_equal(np.sort(s.index), np.arange(200))
+    assert np.allclose(s.inclusion_probability, 1.0)
+    with pytest.raises(DesignError, match=r"\[1, 200\].*201"):
+        draw_sample(p, 0.5, 201, seed=0)
+    with pytest.raises(DesignError, match="threshold"):
+        draw_sample(p, 1.5, 10, seed=0)
+    with pytest.raises(DesignError, match="in \\[0, 1\\]"):
+        draw_sample(np.array([0.2, 1.2]), 0.5, 1, seed=0)
+    with pytest.raises(DesignError, match="seed"):
+        draw_sample(p, 0.5, 10, seed=-1)
+
+
+def test_a_million_cells_draw_in_one_pass():
+    p = _probabilities(1_000_000, seed=5)
+    s = draw_sample(p, 0.5, 1000, seed=1)
+    assert s.index.size == 1000 and np.all(np.diff(s.index[s.stratum == 2]) > 0)
