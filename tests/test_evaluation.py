@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+import os
 import shutil
 from pathlib import Path
 
@@ -352,3 +353,31 @@ def test_threshold_from_a_false_alarm_budget_on_validation(evaluated, tmp_path):
     assert s["validation"]["recall"] == pytest.approx(tpr[fpr <= 0.05 + 1e-12].max())
     html = (c / "evaluation" / "report.html").read_text(encoding="utf-8")
     assert "Allowing at most 5% false alarms on validation" in html
+
+
+def test_two_evaluations_of_one_experiment_at_once_both_finish_whole(evaluated, tmp_path):
+    """Two `evaluate` processes on one experiment at the same time (say, an engineer trying
+    another gate while a scheduled job runs): both finish, every file left is whole and
+    is one of the two results, and no temporary file is left behind."""
+    import subprocess
+    import sys
+
+    a, _, _ = evaluated
+    c = _clone_experiment(a, tmp_path / "c")
+    code = (
+        "import sys; from trainkit.judging.evaluation import evaluate_experiment; "
+        "evaluate_experiment(sys.argv[1], require_recall=float(sys.argv[2]))"
+    )
+    env = {**os.environ, "OMP_NUM_THREADS": "1"}
+    procs = [
+        subprocess.Popen([sys.executable, "-c", code, str(c), r], env=env, stderr=subprocess.PIPE)
+        for r in ("0.0", "0.99")
+    ]
+    errors = [p.communicate(timeout=600)[1].decode() for p in procs]
+    assert [p.returncode for p in procs] == [0, 0], errors
+    ev = c / "evaluation"
+    metrics = json.loads((ev / "metrics.json").read_text(encoding="utf-8"))
+    assert metrics["gate"]["required_recall"] in (0.0, 0.99)
+    assert (ev / "report.html").read_text(encoding="utf-8").rstrip().endswith("</html>")
+    assert len(_rows(ev / "predictions.csv")) == metrics["patches"]
+    assert sorted(p.name for p in ev.iterdir() if "tmp" in p.name) == []

@@ -27,3 +27,16 @@ def test_temporary_name_keeps_the_suffix(tmp_path):
         assert tmp.suffix == ".png" and tmp.parent == tmp_path
         Image.new("RGB", (2, 2)).save(tmp)  # Pillow picks the format from the suffix
     assert Image.open(tmp_path / "plot.png").format == "PNG"
+
+
+def test_two_writers_of_one_file_never_share_a_temporary_file(tmp_path):
+    # Two writes of the same target at once (threads here; processes alike) must each get
+    # their own temporary file: a fixed or per-process name would let one writer truncate,
+    # replace or delete the other's half-written file.
+    target = tmp_path / "metrics.json"
+    with atomic_path(target) as first, atomic_path(target) as second:
+        assert first != second and first.parent == second.parent == tmp_path
+        first.write_text("one")
+        second.write_text("two")
+    assert target.read_text() == "one"  # the outer write finished last and won, whole
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["metrics.json"]
