@@ -111,8 +111,8 @@ def main(argv: list[str]) -> int:
 
     from trainkit.learning.config import load_train_config
     from trainkit.learning.data import load_patch_set
-    from trainkit.learning.network import build_network, load_checkpoint
-    from trainkit.learning.training import cpu_threads, predict_proba, train
+    from trainkit.learning.network import build_network
+    from trainkit.learning.training import cpu_threads, train
 
     t0 = time.perf_counter()
     args.out.mkdir(parents=True, exist_ok=True)
@@ -150,26 +150,28 @@ def main(argv: list[str]) -> int:
     summary = train(ws, exp, cfg, resume=False)
     t_train = time.perf_counter() - t1
 
-    from trainkit.judging.metrics import recall_at_false_alarm, threshold_for_false_alarms
+    # The library's own evaluation: threshold chosen on validation within the budget,
+    # figures on the held-out test photos (exactly what `trainkit evaluate` reports).
+    from trainkit.judging.evaluation import evaluate_experiment
+    from trainkit.judging.metrics import recall_at_false_alarm
 
-    model, _, _ = load_checkpoint(exp)
-    val = load_patch_set(ws, "val", cs)
-    test = load_patch_set(ws, "test", cs)
-    pv = predict_proba(model, np.asarray(val.images), num_classes=cs.num_classes)
-    pt = predict_proba(model, np.asarray(test.images), num_classes=cs.num_classes)
-    crack_v, crack_t = val.labels != 0, test.labels != 0
-    thr = threshold_for_false_alarms(
-        crack_v, screening_probability(pv), max_false_alarm_rate=args.budget
-    )
+    metrics = evaluate_experiment(exp, split="test", max_false_alarms=args.budget)
+    s = metrics["screening"]
+    thr = s["threshold"]
+    tp, n_pos, fp, n_neg = s["tp"], s["tp"] + s["fn"], s["fp"], s["fp"] + s["tn"]
+    val, test = load_patch_set(ws, "val", cs), load_patch_set(ws, "test", cs)
+    with (exp / "evaluation" / "predictions.csv").open(newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    pt = np.array([[float(r[f"p_{n}"]) for n in cs.names] for r in rows])
+    labels = np.array([cs.names.index(r["true"]) for r in rows])
+    crack_t = labels != 0
     flagged = screening_probability(pt) >= thr
-    tp, n_pos = int((flagged & crack_t).sum()), int(crack_t.sum())
-    fp, n_neg = int((flagged & ~crack_t).sum()), int((~crack_t).sum())
-
+    # Orientation: among flagged linear cracks, is the likeliest crack class the true one?
     linear = [i for i, c in enumerate(cs.names) if cs.angle_centres[i] is not None]
-    sel = flagged & np.isin(test.labels, linear)
+    sel = flagged & np.isin(labels, linear)
     crack_cols = list(range(1, cs.num_classes))
     pred_crack = np.array(crack_cols)[pt[:, crack_cols].argmax(1)]
-    k_or = int((pred_crack[sel] == test.labels[sel]).sum())
+    k_or = int((pred_crack[sel] == labels[sel]).sum())
     n_or = int(sel.sum())
     result = {
         "data": {

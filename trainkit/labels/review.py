@@ -119,7 +119,10 @@ def build_queue(
     else:
         keep = {r.id for r in pool}
         ids = [pid for pid in find_conflicts(events or []) if pid in keep]
+    # A job's acceptance-sample cells come first: an engineer is waiting for that estimate.
+    job = {r.id for r in pool if r.job is not None}
     front = [i for i in ids if i not in skipped]
+    front = [i for i in front if i in job] + [i for i in front if i not in job]
     back = sorted((i for i in ids if i in skipped), key=lambda i: skipped[i])
     return front + back
 

@@ -135,7 +135,8 @@ def split_workspace(
 
     Returns a report: group count per subset and class counts per subset.
     """
-    records = [r for r in workspace.patches() if r.label is not None]
+    # A job's acceptance-sample cells estimate that job's figures: they never join a split.
+    records = [r for r in workspace.patches() if r.label is not None and r.job is None]
     if not records:
         raise SplitError(f"workspace {workspace.root} has no labelled patches; label some first")
     group_subset = assign_groups(

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
+from trainkit.labels.schema import SCHEMA as _SCHEMA
 
 __all__ = ["Workspace", "WorkspaceError", "PatchRecord", "DB_NAME", "LABEL_ORIGINS"]
 
@@ -29,66 +30,6 @@ LABEL_ORIGINS = ("reviewer", "file", "suggestion")
 _V1_ORIGINS = {"human": "reviewer", "imported": "file", "model-accepted": "suggestion"}
 #: Label value meaning "looked at, unsure": kept out of training and evaluation.
 UNSURE = None
-
-_SCHEMA = """
-CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
-CREATE TABLE IF NOT EXISTS photos (
-    id INTEGER PRIMARY KEY,
-    name TEXT NOT NULL UNIQUE,          -- path relative to the folder it was found in
-    source_path TEXT NOT NULL,          -- absolute path at intake (updated when the file moves)
-    size_bytes INTEGER NOT NULL,
-    width INTEGER NOT NULL, height INTEGER NOT NULL,   -- upright (EXIF orientation applied)
-    gsd_mm REAL,                        -- mm per pixel of the original photo, NULL if unknown
-    gsd_source TEXT NOT NULL,           -- sidecar | sidecar-camera | option | option-camera | exif | none
-    group_id TEXT NOT NULL,             -- structure / site (or the photo) keeping splits apart
-    capture_date TEXT,                  -- YYYY-MM-DD from the sidecar, the name pattern or EXIF
-    roi TEXT,                           -- region of interest as given, NULL for the whole photo
-    sha256 TEXT NOT NULL,
-    added_at REAL NOT NULL
-);
-CREATE INDEX IF NOT EXISTS photos_sha ON photos(sha256);
-CREATE TABLE IF NOT EXISTS patches (
-    id INTEGER PRIMARY KEY,
-    photo_id INTEGER NOT NULL REFERENCES photos(id),
-    row INTEGER NOT NULL, col INTEGER NOT NULL,
-    x0 INTEGER NOT NULL, y0 INTEGER NOT NULL, x1 INTEGER NOT NULL, y1 INTEGER NOT NULL,
-    crop TEXT NOT NULL,                 -- crop file relative to the workspace
-    patch_mm REAL,                      -- surface width covered by the patch, NULL if unknown
-    focus REAL NOT NULL,                -- variance of the Laplacian of the grey crop
-    clipped REAL NOT NULL,              -- fraction of grey pixels at <= 2 or >= 253
-    flags TEXT NOT NULL DEFAULT '',     -- comma-separated quality flags
-    review_skip INTEGER NOT NULL DEFAULT 0,  -- 1: left out of the review queue (--skip-flagged)
-    UNIQUE (photo_id, x0, y0, x1, y1)
-);
-CREATE TABLE IF NOT EXISTS label_events (
-    id INTEGER PRIMARY KEY AUTOINCREMENT,
-    patch_id INTEGER NOT NULL REFERENCES patches(id),
-    label TEXT,                         -- class name; NULL = unsure (kept out of training)
-    reviewer TEXT NOT NULL,
-    origin TEXT NOT NULL,               -- reviewer | file | suggestion (LABEL_ORIGINS)
-    created_at REAL NOT NULL
-);
-CREATE INDEX IF NOT EXISTS label_events_patch ON label_events(patch_id, id);
-CREATE TABLE IF NOT EXISTS review_skips (
-    patch_id INTEGER NOT NULL REFERENCES patches(id),
-    reviewer TEXT NOT NULL,
-    created_at REAL NOT NULL,
-    PRIMARY KEY (patch_id, reviewer)    -- skipped patches go to the end of that reviewer's queue
-);
-CREATE TABLE IF NOT EXISTS undone_label_events (
-    id INTEGER PRIMARY KEY,             -- the label_events id the undo removed
-    patch_id INTEGER NOT NULL, label TEXT, reviewer TEXT NOT NULL, origin TEXT NOT NULL,
-    created_at REAL NOT NULL, undone_at REAL NOT NULL
-);
-CREATE TABLE IF NOT EXISTS label_settlements (
-    event_id INTEGER PRIMARY KEY REFERENCES label_events(id),  -- the settling label event
-    settled_reviewers TEXT NOT NULL     -- comma-separated reviewers whose labels disagreed
-);
-CREATE TABLE IF NOT EXISTS split_assignments (
-    patch_id INTEGER PRIMARY KEY REFERENCES patches(id),
-    subset TEXT NOT NULL CHECK (subset IN ('train', 'val', 'test'))
-);
-"""
 
 
 class WorkspaceError(ValueError):
@@ -115,6 +56,7 @@ class PatchRecord:
     labelled: bool
     subset: str | None
     review_skip: bool = False
+    job: str | None = None  # the job whose acceptance sample drew this cell, if any
 
     @property
     def box_mm(self) -> tuple[float, float, float, float] | None:
@@ -326,9 +268,10 @@ class Workspace:
                p.patch_mm, ph.gsd_mm, p.focus, p.clipped, p.flags,
                (SELECT e.label FROM label_events e WHERE e.patch_id = p.id ORDER BY e.id DESC LIMIT 1),
                EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = p.id),
-               s.subset, p.review_skip
+               s.subset, p.review_skip, j.job
         FROM patches p JOIN photos ph ON ph.id = p.photo_id
         LEFT JOIN split_assignments s ON s.patch_id = p.id
+        LEFT JOIN job_cells j ON j.patch_id = p.id
         ORDER BY ph.id, p.row, p.col
         """
         with self.connect() as con:
@@ -351,6 +294,7 @@ class Workspace:
                 labelled=bool(r[16]),
                 subset=r[17],
                 review_skip=bool(r[18]),
+                job=r[19],
             )
             for r in rows
         ]
@@ -560,3 +504,66 @@ class Workspace:
                 "SELECT patch_id, created_at FROM review_skips WHERE reviewer = ?", (reviewer,)
             ).fetchall()
         return {int(p): float(t) for p, t in rows}
+
+    # ----- job samples ---------------------------------------------------------------
+
+    def add_job(
+        self, name: str, *, scan: str, threshold: float, design: dict, cells: list[dict]
+    ) -> None:
+        """Record a job's acceptance sample: its design and each sampled cell.
+
+        Args:
+            name: the job's name (unique in the workspace).
+            scan: the scan folder the cells were drawn from.
+            threshold: the model's screening threshold at the scan.
+            design: JSON-ready description of the sampling design.
+            cells: one dict per cell: ``patch_id``, ``frame``, ``stratum``,
+                ``inclusion_probability``, ``screening_probability``.
+
+        Raises:
+            WorkspaceError: a job of that name exists.
+        """
+        with self.connect() as con:
+            if con.execute("SELECT 1 FROM jobs WHERE name = ?", (name,)).fetchone():
+                raise WorkspaceError(
+                    f"workspace {self.root} already holds job {name!r}; choose another name"
+                )
+            con.execute(
+                "INSERT INTO jobs(name, scan, threshold, design, created_at) VALUES (?, ?, ?, ?, ?)",
+                (name, scan, float(threshold), json.dumps(design), time.time()),
+            )
+            con.executemany(
+                "INSERT INTO job_cells(patch_id, job, frame, stratum, inclusion_probability,"
+                " screening_probability) VALUES (?, ?, ?, ?, ?, ?)",
+                [
+                    (
+                        int(c["patch_id"]), name, c["frame"], c["stratum"],
+                        float(c["inclusion_probability"]), float(c["screening_probability"]),
+                    )
+                    for c in cells
+                ],
+            )  # fmt: skip
+
+    def jobs(self) -> list[dict]:
+        """Every job: name, scan, threshold, design (dict), created_at; oldest first."""
+        with self.connect() as con:
+            rows = con.execute(
+                "SELECT name, scan, threshold, design, created_at FROM jobs ORDER BY created_at"
+            ).fetchall()
+        keys = ("name", "scan", "threshold", "design", "created_at")
+        return [dict(zip(keys, (*r[:3], json.loads(r[3]), r[4]), strict=True)) for r in rows]
+
+    def job_cells(self, job: str) -> list[dict]:
+        """The cells of one job's sample, with their current label (None = unsure) and
+        whether they were answered at all."""
+        q = """
+        SELECT j.patch_id, j.frame, j.stratum, j.inclusion_probability, j.screening_probability,
+               (SELECT e.label FROM label_events e WHERE e.patch_id = j.patch_id ORDER BY e.id DESC LIMIT 1),
+               EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = j.patch_id)
+        FROM job_cells j WHERE j.job = ? ORDER BY j.patch_id
+        """
+        keys = ("patch_id", "frame", "stratum", "inclusion_probability",
+                "screening_probability", "label", "answered")  # fmt: skip
+        with self.connect() as con:
+            rows = con.execute(q, (job,)).fetchall()
+        return [dict(zip(keys, (*r[:6], bool(r[6])), strict=True)) for r in rows]

@@ -1,0 +1,76 @@
+"""The workspace database schema (SQLite): photos, patches, label history, review state, jobs, split."""
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS photos (
+    id INTEGER PRIMARY KEY,
+    name TEXT NOT NULL UNIQUE,          -- path relative to the folder it was found in
+    source_path TEXT NOT NULL,          -- absolute path at intake (updated when the file moves)
+    size_bytes INTEGER NOT NULL,
+    width INTEGER NOT NULL, height INTEGER NOT NULL,   -- upright (EXIF orientation applied)
+    gsd_mm REAL,                        -- mm per pixel of the original photo, NULL if unknown
+    gsd_source TEXT NOT NULL,           -- sidecar | sidecar-camera | option | option-camera | exif | none
+    group_id TEXT NOT NULL,             -- structure / site (or the photo) keeping splits apart
+    capture_date TEXT,                  -- YYYY-MM-DD from the sidecar, the name pattern or EXIF
+    roi TEXT,                           -- region of interest as given, NULL for the whole photo
+    sha256 TEXT NOT NULL,
+    added_at REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS photos_sha ON photos(sha256);
+CREATE TABLE IF NOT EXISTS patches (
+    id INTEGER PRIMARY KEY,
+    photo_id INTEGER NOT NULL REFERENCES photos(id),
+    row INTEGER NOT NULL, col INTEGER NOT NULL,
+    x0 INTEGER NOT NULL, y0 INTEGER NOT NULL, x1 INTEGER NOT NULL, y1 INTEGER NOT NULL,
+    crop TEXT NOT NULL,                 -- crop file relative to the workspace
+    patch_mm REAL,                      -- surface width covered by the patch, NULL if unknown
+    focus REAL NOT NULL,                -- variance of the Laplacian of the grey crop
+    clipped REAL NOT NULL,              -- fraction of grey pixels at <= 2 or >= 253
+    flags TEXT NOT NULL DEFAULT '',     -- comma-separated quality flags
+    review_skip INTEGER NOT NULL DEFAULT 0,  -- 1: left out of the review queue (--skip-flagged)
+    UNIQUE (photo_id, x0, y0, x1, y1)
+);
+CREATE TABLE IF NOT EXISTS label_events (
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    patch_id INTEGER NOT NULL REFERENCES patches(id),
+    label TEXT,                         -- class name; NULL = unsure (kept out of training)
+    reviewer TEXT NOT NULL,
+    origin TEXT NOT NULL,               -- reviewer | file | suggestion (LABEL_ORIGINS)
+    created_at REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS label_events_patch ON label_events(patch_id, id);
+CREATE TABLE IF NOT EXISTS review_skips (
+    patch_id INTEGER NOT NULL REFERENCES patches(id),
+    reviewer TEXT NOT NULL,
+    created_at REAL NOT NULL,
+    PRIMARY KEY (patch_id, reviewer)    -- skipped patches go to the end of that reviewer's queue
+);
+CREATE TABLE IF NOT EXISTS undone_label_events (
+    id INTEGER PRIMARY KEY,             -- the label_events id the undo removed
+    patch_id INTEGER NOT NULL, label TEXT, reviewer TEXT NOT NULL, origin TEXT NOT NULL,
+    created_at REAL NOT NULL, undone_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS label_settlements (
+    event_id INTEGER PRIMARY KEY REFERENCES label_events(id),  -- the settling label event
+    settled_reviewers TEXT NOT NULL     -- comma-separated reviewers whose labels disagreed
+);
+CREATE TABLE IF NOT EXISTS jobs (
+    name TEXT PRIMARY KEY,              -- a job's name (one sample of one scan)
+    scan TEXT NOT NULL,                 -- the scan folder the cells were drawn from
+    threshold REAL NOT NULL,            -- the model's screening threshold at the scan
+    design TEXT NOT NULL,               -- JSON: strata sizes, sample sizes, band, seed
+    created_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS job_cells (
+    patch_id INTEGER PRIMARY KEY REFERENCES patches(id),
+    job TEXT NOT NULL REFERENCES jobs(name),
+    frame TEXT NOT NULL,                -- the frame's path as the scan recorded it
+    stratum TEXT NOT NULL,              -- flagged | near | rest
+    inclusion_probability REAL NOT NULL,
+    screening_probability REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS split_assignments (
+    patch_id INTEGER PRIMARY KEY REFERENCES patches(id),
+    subset TEXT NOT NULL CHECK (subset IN ('train', 'val', 'test'))
+);
+"""
