@@ -133,7 +133,8 @@ def test_reduced_size_jpeg_decoding_keeps_boxes_in_frame_pixels(tmp_path):
     assert res["scanned"] == 1 and rec["width"] == 768 and rec["height"] == 512
     assert rec["cells"] == 4 * 6
     assert [b["box"] for b in rec["flagged_boxes"]] == [[256, 128, 384, 256]]
-    assert Image.open(rec["overlay"]).size == (768, 512 + 34)
+    ov = Image.open(rec["overlay"])
+    assert ov.size[0] == 768 and ov.size[1] > 512  # the frame at full size, legend below
 
 
 def last_lines(path):
