@@ -217,3 +217,53 @@ def test_session_killed_between_keystrokes_loses_nothing_finished(tmp_path):
     shown(again, 4, 0, 3)  # resumes with the unlabelled patches only
     again.send("q")
     again.expect(pexpect.EOF)
+
+
+def _labels_in_queue_order(ws: Workspace) -> list[tuple[int, str | None]]:
+    return [(r.id, r.label if r.labelled else "-") for r in ws.patches()]
+
+
+def test_keys_typed_ahead_in_one_burst_are_all_applied_in_order(tmp_path):
+    """Issue 14: `003u15q` written in ONE burst, before the first screen is even drawn. Every
+    key is applied in order (the `u` takes back the `3`) and the typed-ahead `q` still quits."""
+    ws = make_ws(tmp_path / "ws", n=6)
+    child = spawn(ws, "--reviewer", "ana")
+    child.send("003u15q")  # one write, straight after start: typed faster than any redraw
+    child.expect(r"ana: 4 labels this session .* 2 left; run the same command to resume")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert child.exitstatus == 0
+    assert _labels_in_queue_order(ws) == [
+        (1, "none"),
+        (2, "none"),
+        (3, "horizontal"),
+        (4, "map"),
+        (5, "-"),
+        (6, "-"),
+    ]
+    assert [(e["patch_id"], e["label"]) for e in ws.undone_events()] == [(3, "vertical")]
+
+
+def test_keys_typed_ahead_while_a_screen_is_drawn(tmp_path):
+    """The same keys, one write each after the first screen, with pauses shorter than a redraw
+    may take: the result is the same."""
+    import time
+
+    ws = make_ws(tmp_path / "ws", n=6)
+    child = spawn(ws, "--reviewer", "ana")
+    shown(child, 1, 0, 6)
+    for key in "003u15q":
+        child.send(key)
+        time.sleep(0.02)
+    child.expect(r"ana: 4 labels this session .* 2 left; run the same command to resume")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert child.exitstatus == 0
+    assert _labels_in_queue_order(ws) == [
+        (1, "none"),
+        (2, "none"),
+        (3, "horizontal"),
+        (4, "map"),
+        (5, "-"),
+        (6, "-"),
+    ]

@@ -10,7 +10,7 @@ import pytest
 from PIL import Image
 from test_screener import brightness_model
 
-from trainkit.screener.scan import read_done, scan_frames
+from trainkit.screener.scan import exit_code, read_done, recorded_line, scan_frames
 
 
 def frames(tmp_path, n=5):
@@ -133,4 +133,91 @@ def test_reduced_size_jpeg_decoding_keeps_boxes_in_frame_pixels(tmp_path):
     assert res["scanned"] == 1 and rec["width"] == 768 and rec["height"] == 512
     assert rec["cells"] == 4 * 6
     assert [b["box"] for b in rec["flagged_boxes"]] == [[256, 128, 384, 256]]
-    assert Image.open(rec["overlay"]).size == (768, 512 + 34)
+    ov = Image.open(rec["overlay"])
+    assert ov.size[0] == 768 and ov.size[1] > 512  # the frame at full size, legend below
+
+
+def last_lines(path):
+    """Frame -> its last line in frames.jsonl, parsed here with the json module directly."""
+    return {r["frame"]: r for r in lines(path)}
+
+
+def test_resumed_scan_still_reports_and_fails_on_unreadable_frames(tmp_path, capsys):
+    """Issue 14: a second run over the same folder found nothing new and used to say
+    '0 unreadable' and exit 0 although frames.jsonl held 4 error lines for its frames."""
+    from trainkit.cli import main
+
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    d = tmp_path / "frames"
+    d.mkdir()
+    for i in range(2):
+        Image.fromarray(np.full((64, 96, 3), 200, np.uint8)).save(d / f"good{i}.png")
+    for i in range(4):
+        (d / f"bad{i}.jpg").write_bytes(b"\xff\xd8\xff truncated %d" % i)
+    out = tmp_path / "out"
+    cmd = ["scan", str(d), "--model", str(model), "--out", str(out), "--overlays", "none"]
+
+    assert main(cmd) == 1
+    first = capsys.readouterr().out
+    assert main(cmd) == 1  # nothing new, but the 4 are still recorded as unreadable
+    second = capsys.readouterr().out
+    assert "6 frames in this folder recorded, of which 4 unreadable (0 recorded earlier)" in first
+    assert "6 frames in this folder recorded, of which 4 unreadable (4 recorded earlier)" in second
+    assert main([*cmd, "--json"]) == 1
+    res = json.loads(capsys.readouterr().out)
+    assert (res["scanned"], res["errors"], res["resumed_skip"]) == (0, 0, 6)  # this run
+    assert (res["recorded"], res["unreadable"], res["unreadable_earlier"]) == (6, 4, 4)
+    last = last_lines(out / "frames.jsonl")
+    assert sum(r["status"] == "error" for r in last.values()) == res["unreadable"]
+
+    # the bad frames are replaced by readable ones (new content: new hash, scanned again)
+    for i in range(4):
+        arr = np.full((64, 96, 3), 200, np.uint8)
+        arr[:32, :32] = 30 + i
+        Image.fromarray(arr).save(d / f"bad{i}.jpg", quality=95)
+    assert main([*cmd, "--json"]) == 0
+    res = json.loads(capsys.readouterr().out)
+    assert (res["scanned"], res["errors"], res["resumed_skip"]) == (4, 0, 2)
+    assert (res["recorded"], res["unreadable"], res["unreadable_earlier"]) == (6, 0, 0)
+    assert main(cmd) == 0
+    assert "6 frames in this folder recorded, of which 0 unreadable (0 recorded earlier)" in (
+        capsys.readouterr().out
+    )
+    # the old error lines stay as history; each frame's last line describes it as it now is
+    recs = lines(out / "frames.jsonl")
+    assert sum(r["status"] == "error" for r in recs) == 4
+    assert all(r["status"] == "ok" for r in last_lines(out / "frames.jsonl").values())
+
+
+def test_flagged_list_follows_each_frames_last_line(tmp_path):
+    """A flagged frame replaced by a clean one leaves flagged.txt; the counts agree."""
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    d = frames(tmp_path, n=4)  # f1 and f3 have a dark corner: flagged
+    out = tmp_path / "out"
+    first = scan_frames(model, [d], out, overlays="none")
+    assert (out / "flagged.txt").read_text().split() == [str(d / "f1.png"), str(d / "f3.png")]
+    Image.fromarray(np.full((64, 96, 3), 210, np.uint8)).save(d / "f1.png")
+    res = scan_frames(model, [d], out, overlays="none")
+    assert res["scanned"] == 1 and res["flagged"] == 0
+    assert (out / "flagged.txt").read_text().split() == [str(d / "f3.png")]
+    assert first["flagged_recorded"] == 2 and first["unreadable"] == 1
+    last = last_lines(out / "frames.jsonl")
+    assert res["flagged_recorded"] == sum(bool(r.get("flagged")) for r in last.values()) == 1
+    assert (res["unreadable"], res["unreadable_earlier"]) == (1, 1)  # broken.jpg, first run
+
+
+def test_recorded_line_wording_and_exit_code(tmp_path):
+    one = {"inputs": [str(tmp_path)], "recorded": 1, "unreadable": 1, "unreadable_earlier": 0}
+    assert recorded_line(one) == (
+        "1 frame in this folder recorded, of which 1 unreadable (0 recorded earlier)"
+    )
+    assert exit_code(one) == 1
+    f = tmp_path / "a.png"
+    f.write_bytes(b"")
+    many = {"inputs": [str(f), str(tmp_path)], "recorded": 0, "unreadable": 0}
+    many["unreadable_earlier"] = 0
+    assert recorded_line(many) == (
+        "0 frames of these 2 inputs recorded, of which 0 unreadable (0 recorded earlier)"
+    )
+    assert exit_code(many) == 0
+    assert recorded_line(dict(one, inputs=[str(f)])).startswith("1 frame of this file recorded")

@@ -88,9 +88,12 @@ def test_flagged_cells_are_the_dark_ones_and_match_onnxruntime(tmp_path):
     d = json.loads(cm.to_json())
     assert d["flagged_cells"] == 1 and d["rows"] == 2 and d["cols"] == 3
     img = np.asarray(cm.overlay(frame))
-    assert img.shape == (64 + 34, 96, 3)  # frame plus the legend strip
-    # the flagged cell is tinted (redder than the grey it was), the others are untouched
-    assert img[40:56, 70:90, 0].mean() > frame[40:56, 70:90, 0].mean() + 20
+    assert img.shape[1:] == (96, 3) and img.shape[0] > 64  # frame plus the legend strip
+    # the flagged cell is tinted blue (bluer, not redder, than the grey it was); the others
+    # are untouched
+    inside, was = img[40:56, 70:90].astype(float), frame[40:56, 70:90].astype(float)
+    assert inside[..., 2].mean() > inside[..., 0].mean() + 20
+    assert inside[..., 2].mean() > was[..., 2].mean() + 20
     np.testing.assert_array_equal(img[:32, :32], frame[:32, :32])
 
 
@@ -169,7 +172,7 @@ def test_scale_warning_flagged_cells_raster_and_overlay(tmp_path):
     ]
     assert raster[0, 95] == pytest.approx(np.mean(covering), abs=1e-6)
     img = inside.overlay(frame)
-    assert img.size == (96, 64 + 34)  # the legend strip below the frame
+    assert img.size[0] == 96 and img.size[1] > 64  # the legend strip below the frame
 
 
 def test_screener_module_does_not_import_torch():
@@ -203,3 +206,55 @@ def test_concurrent_batches_give_onnxruntimes_answer_in_input_order(tmp_path, th
     want = sess.run(None, {"image": patches})[0]
     np.testing.assert_allclose(got, want, rtol=0, atol=1e-6)
     assert got.shape == (37, 2) and scr.predict(patches[:0]).shape == (0, 2)
+
+
+def _lab_hue_and_lightness(rgb):
+    """CIELAB lightness L* and hue angle h_ab in degrees (scikit-image's rgb2lab, sRGB D65)."""
+    from skimage.color import rgb2lab
+
+    lab = rgb2lab(np.asarray([rgb], dtype=float) / 255.0)[0]
+    return lab[:, 0], np.degrees(np.arctan2(lab[:, 2], lab[:, 1])) % 360
+
+
+@pytest.mark.parametrize("threshold", [0.5, 0.9])
+def test_overlay_palette_is_one_blue_hue_not_a_warm_severity_ramp(tmp_path, threshold):
+    """The legend's colour steps, threshold to 1: CIELAB lightness falls strictly as the
+    probability rises (a sequential ramp), and every hue angle is blue (h_ab 220-300 deg);
+    none is red, amber or yellow (h_ab below ~110 deg). Hue angles of sRGB red ~40 deg,
+    yellow ~100 deg, blue ~306 deg are textbook CIELAB values, quoted from memory."""
+    cm = Screener(brightness_model(tmp_path / "m.onnx", threshold=threshold)).crack_map(
+        np.full((64, 320, 3), 40, np.uint8)
+    )
+    steps = cm.legend_swatches()
+    assert [p for p, _ in steps] == pytest.approx(np.linspace(threshold, 1.0, 6).tolist())
+    lightness, hue = _lab_hue_and_lightness([c for _, c in steps])
+    assert np.all(np.diff(lightness) < -3)
+    assert np.all((hue > 220) & (hue < 300))
+    # reference points for the check itself: the old amber and red ends fall outside it
+    _, warm = _lab_hue_and_lightness([(250, 190, 40), (215, 40, 30)])
+    assert np.all(warm < 110)
+    # the legend is drawn with these colours, below the frame
+    img = np.asarray(cm.overlay(np.full((64, 320, 3), 40, np.uint8)))
+    legend = {tuple(int(v) for v in px) for px in img[64:].reshape(-1, 3)}
+    assert {c for _, c in steps} <= legend
+
+
+def test_overlay_legend_says_what_it_shows(tmp_path):
+    frame = np.full((64, 96, 3), 200, np.uint8)
+    frame[:32, :32] = 30
+    cm = Screener(brightness_model(tmp_path / "m.onnx", threshold=0.9)).crack_map(frame)
+    text = cm.legend_text()
+    assert "screening probability 0.90 (light) to 1.00 (dark)" in text
+    assert "not a severity" in text
+    assert "Line = crack direction, star = crossing cracks" in text
+    assert "1 of 6 cells flagged" in text
+    assert text.endswith("Triage aid, not an inspection.")
+    assert not any(w in text.lower() for w in ("red", "amber", "yellow", "green"))
+    assert "below the threshold" in cm.legend_text(show_all=True)
+    # nothing is cut off at the right edge: the strip's right margin stays background grey,
+    # on a narrow frame (text below the colour steps) and a wide one (text beside them)
+    for width in (96, 640):
+        img = np.asarray(cm.overlay(np.full((64, width, 3), 200, np.uint8)))
+        strip = img[64:]
+        assert strip.shape[0] >= 34 and (strip[:, -5:] == 30).all()
+        assert (strip[:, :-5] != 30).any()  # and something is written in it

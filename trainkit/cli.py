@@ -853,6 +853,7 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
     metavar="ADDRESS",
     help="Dask scheduler address for --engine dask, e.g. tcp://scheduler-host:8786.",
 )
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON to stdout.")
 @click.pass_obj
 def scan(
     ctx: Ctx,
@@ -864,14 +865,19 @@ def scan(
     gsd_mm,
     engine,
     scheduler,
+    as_json: bool,
 ) -> None:
-    """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl."""
-    from trainkit.screener.scan import scan_frames
+    """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl.
+
+    Exits 1 while any frame of FRAMES is recorded as unreadable, by this run or an earlier one.
+    """
+    from trainkit.screener.scan import exit_code, recorded_line, scan_frames
 
     if model.is_dir():
         model = model / "model.onnx"
     with user_errors(ctx):
-        with progress_bar(ctx, "scanning frames") as bar:
+        # machine output: only the JSON goes to stdout
+        with progress_bar(Ctx(ctx.quiet or as_json, ctx.debug), "scanning frames") as bar:
             res = scan_frames(
                 model,
                 list(frames),
@@ -883,12 +889,16 @@ def scan(
                 scheduler=scheduler,
                 progress=lambda d, n: bar.update(d, n),
             )
-    ctx.console.print(
-        f"{res['scanned']} frames scanned ({res['resumed_skip']} already done) at {res['frames_per_second']:.2f} "
-        f"frames/s; {res['flagged']} flagged, {res['errors']} unreadable -> {res['frames_file']}"
-    )
-    if res["errors"]:
-        raise SystemExit(EXIT_SKIPPED)
+    if as_json:
+        click.echo(json.dumps(res, indent=2))
+    else:
+        ctx.console.print(
+            f"{res['scanned']} frames scanned ({res['resumed_skip']} already done) at {res['frames_per_second']:.2f} "
+            f"frames/s; {res['flagged']} flagged, {res['errors']} unreadable in this run -> {res['frames_file']}"
+        )
+        ctx.console.print(recorded_line(res))
+    if exit_code(res):
+        raise SystemExit(exit_code(res))
 
 
 # ----- review --------------------------------------------------------------------------

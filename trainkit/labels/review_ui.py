@@ -20,7 +20,6 @@ import subprocess
 import tempfile
 from pathlib import Path
 
-import click
 import numpy as np
 from PIL import Image, ImageDraw, ImageFilter, ImageFont
 
@@ -33,6 +32,7 @@ from trainkit.labels.review import (
     load_patch,
     parse_sheet_answer,
 )
+from trainkit.labels.terminal_input import KEY_NAMES, stdin_keys
 
 __all__ = [
     "MIN_COLS",
@@ -250,10 +250,25 @@ SHEET_HELP = """Answer a whole sheet in one line (numbers as on the sheet):
 def run_keys(session: Session, console, *, viewer: str | None = None, getchar=None) -> str:
     """Run one-key review until the queue ends or the reviewer quits.
 
+    Without ``getchar`` keys come from :func:`~trainkit.labels.terminal_input.stdin_keys`,
+    with the terminal held in key mode for the whole run (restored however the run ends), so
+    keys typed while a screen is drawn are applied in order and a typed-ahead ``q`` quits
+    after the keys before it.
+
+    Args:
+        getchar: optional function returning the next key (raising EOFError at the end).
+
     Returns:
         ``"quit"``, ``"finished"`` or ``"sheet"`` (the reviewer switched to sheet mode).
     """
-    getchar = getchar or click.getchar
+    if getchar is not None:
+        return _key_loop(session, console, viewer, getchar)
+    keys = stdin_keys()
+    with keys:
+        return _key_loop(session, console, viewer, keys.key)
+
+
+def _key_loop(session: Session, console, viewer: str | None, getchar) -> str:
     names = session.class_set.names
     zoom = 0
     message = ""
@@ -288,7 +303,10 @@ def run_keys(session: Session, console, *, viewer: str | None = None, getchar=No
         if message:
             console.print(message, style="yellow", highlight=False)
             message = ""
-        key = getchar()
+        try:
+            key = getchar()
+        except EOFError:
+            return "quit"
         if key in ("q", "Q", "\x03", "\x04"):
             return "quit"
         if key.isdigit() and int(key) < len(names):
@@ -327,9 +345,12 @@ def run_keys(session: Session, console, *, viewer: str | None = None, getchar=No
             console.clear()
             console.print(KEY_HELP, highlight=False)
             console.print(_legend(session), style="cyan", highlight=False)
-            getchar()
+            try:
+                getchar()
+            except EOFError:
+                return "quit"
         else:
-            message = f"key {key!r} does nothing here; ? shows the keys"
+            message = f"key {KEY_NAMES.get(key, repr(key))} does nothing here; ? shows the keys"
 
 
 # ----- sheet mode -----------------------------------------------------------------------------------
@@ -364,12 +385,16 @@ def run_sheet(
     """Run contact-sheet review until the queue ends or the reviewer quits.
 
     Each round writes ``sheet_path`` (a PNG of the next ``cols x rows`` patches), opens it
-    with the viewer, and reads one answer line.
+    with the viewer, and reads one answer line. Without ``read_line`` lines come from
+    :func:`~trainkit.labels.terminal_input.stdin_keys` in the terminal's line mode; keys
+    typed ahead in key mode (after ``c``) start the first line, none are lost.
 
     Returns:
         ``"quit"`` or ``"finished"``.
     """
-    read_line = read_line or (lambda: input("answer> "))
+    if read_line is None:
+        keys = stdin_keys()
+        read_line = lambda: keys.read_line("answer> ")  # noqa: E731
     message = ""
     last_ids: list[int] = []
     while True:

@@ -7,8 +7,18 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-#: Overlay tint, from low to high screening probability (cool grey-blue to amber to red).
-_RAMP = np.array([[70, 110, 160], [250, 190, 40], [215, 40, 30]], dtype=float)
+#: Overlay tint of flagged cells, from the threshold to probability 1: one blue hue going from
+#: light to dark (stops of ColorBrewer's sequential "Blues" scheme, values from memory). A
+#: probability is not a severity, so no warm colours: amber-to-red reads as a condition-state
+#: scale, and ramps ending in yellow (viridis, cividis) read as "caution" at the top. Blue also
+#: stands apart from grey concrete, rust stains and vegetation.
+_RAMP = np.array([[158, 202, 225], [66, 146, 198], [8, 81, 156]], dtype=float)
+#: Fill opacity of flagged cells (0-255): the concrete stays visible under the tint.
+_FILL_ALPHA = 110
+#: Outline of every flagged cell: the darkest blue, visible on light and dark concrete alike.
+_OUTLINE = (8, 48, 107)
+#: Largest fill opacity of unflagged cells with ``show_all`` (no outline: not flagged).
+_BELOW_ALPHA = 45
 
 
 def _ramp(p: float) -> tuple[int, int, int]:
@@ -122,10 +132,11 @@ class CrackMap:
     def overlay(self, rgb: np.ndarray, *, show_all: bool = False):
         """A picture read at a glance; returns a PIL image.
 
-        Flagged cells are tinted from amber to red by screening probability and outlined;
-        each carries a short line along its class's crack direction (a small star for
-        crossing cracks); a legend strip below the frame explains the marks. With
-        ``show_all``, unflagged cells get a faint blue-grey tint by probability too.
+        Flagged cells are outlined and tinted blue, light at the threshold and dark at
+        probability 1 (a screening probability, not a severity); each carries a short line
+        along its class's crack direction (a small star for crossing cracks); a legend strip
+        below the frame explains the marks. With ``show_all``, unflagged cells get a faint
+        light-blue tint growing with their probability, without an outline.
         """
         from PIL import Image, ImageDraw
 
@@ -141,22 +152,38 @@ class CrackMap:
                 x0, y0, x1, y1 = (int(v) for v in self.boxes[r, c])
                 if not self.flagged[r, c]:
                     if show_all and p > 0.05:
-                        draw.rectangle(
-                            [x0, y0, x1 - 1, y1 - 1], fill=(*_ramp(p * 0.5), int(60 * p))
-                        )
+                        alpha = int(_BELOW_ALPHA * min(1.0, p / max(self.threshold, 1e-6)))
+                        draw.rectangle([x0, y0, x1 - 1, y1 - 1], fill=(*_ramp(0.0), alpha))
                     continue
                 col = self._flag_colour(p)
                 draw.rectangle(
-                    [x0, y0, x1 - 1, y1 - 1], fill=(*col, 70), outline=(*col, 255), width=line_w
+                    [x0, y0, x1 - 1, y1 - 1],
+                    fill=(*col, _FILL_ALPHA),
+                    outline=(*_OUTLINE, 255),
+                    width=line_w,
                 )
                 self._mark(draw, r, c, (x0, y0, x1, y1), line_w)
         out = Image.alpha_composite(frame, layer).convert("RGB")
-        return self._with_legend(out)
+        return self._with_legend(out, show_all)
 
     def _flag_colour(self, p: float) -> tuple[int, int, int]:
-        """Amber at the threshold, red at probability 1."""
+        """Light blue at the threshold, dark blue at probability 1."""
         span = max(1e-6, 1.0 - self.threshold)
-        return _ramp(0.5 + 0.5 * min(1.0, max(0.0, (p - self.threshold) / span)))
+        return _ramp(min(1.0, max(0.0, (p - self.threshold) / span)))
+
+    def legend_swatches(self, n: int = 6) -> list[tuple[float, tuple[int, int, int]]]:
+        """(probability, RGB) of the legend's colour steps, from the threshold to 1."""
+        return [(float(p), self._flag_colour(float(p))) for p in np.linspace(self.threshold, 1, n)]
+
+    def legend_text(self, *, show_all: bool = False) -> str:
+        """What the legend strip says, word for word."""
+        below = " Faint tint, no outline: below the threshold." if show_all else ""
+        return (
+            f"Outlined cells are flagged: screening probability {self.threshold:.2f} (light) "
+            f"to 1.00 (dark); a probability, not a severity.{below} "
+            f"Line = crack direction, star = crossing cracks. {int(self.flagged.sum())} of "
+            f"{self.flagged.size} cells flagged. Triage aid, not an inspection."
+        )
 
     def _mark(self, draw, r: int, c: int, box: tuple[int, int, int, int], line_w: int) -> None:
         x0, y0, x1, y1 = box
@@ -165,35 +192,59 @@ class CrackMap:
         name = self.cell_class(r, c)
         idx = self.class_names.index(name)
         angle = self.angle_centres[idx] if idx < len(self.angle_centres) else None
-        ink = (255, 255, 255, 235)
+        ink, halo = (255, 255, 255, 235), (20, 20, 20, 200)
         if angle is None:  # no single direction: a small star
-            for a in (0.0, 60.0, 120.0):
-                dx, dy = half * 0.6 * np.cos(np.radians(a)), -half * 0.6 * np.sin(np.radians(a))
-                draw.line([cx - dx, cy - dy, cx + dx, cy + dy], fill=ink, width=line_w)
-        else:  # on-screen angle: y grows downward, so the row offset is -sin
-            dx, dy = half * np.cos(np.radians(angle)), -half * np.sin(np.radians(angle))
-            draw.line(
-                [cx - dx, cy - dy, cx + dx, cy + dy], fill=(20, 20, 20, 200), width=line_w + 2
-            )
-            draw.line([cx - dx, cy - dy, cx + dx, cy + dy], fill=ink, width=line_w)
+            arms = [(half * 0.6, a) for a in (0.0, 60.0, 120.0)]
+        else:
+            arms = [(half, angle)]
+        for colour, width in ((halo, line_w + 2), (ink, line_w)):  # white on a dark halo
+            for length, a in arms:  # on-screen angle: y grows downward, so the row offset is -sin
+                dx, dy = length * np.cos(np.radians(a)), -length * np.sin(np.radians(a))
+                draw.line([cx - dx, cy - dy, cx + dx, cy + dy], fill=colour, width=width)
 
-    def _with_legend(self, img):
+    def _with_legend(self, img, show_all: bool = False):
+        """The frame with a legend strip below it: colour steps and wrapped text that fits."""
         from PIL import Image, ImageDraw
 
         w, h = img.size
-        bar_h = 34
+        size = max(11, round(w / 80))  # text grows with the frame, readable when scaled down
+        font = _legend_font(size)
+        pad, line_h = max(6, size // 2), size + max(3, size // 3)
+        swatches = self.legend_swatches()
+        side = max(2, min(size + 4, (w - 2 * pad) // len(swatches) - 2))  # steps fit the width
+        steps_w = len(swatches) * (side + 2)
+        beside = w - steps_w - 3 * pad >= 20 * size  # text beside the steps, or below them
+        text_x = steps_w + 2 * pad if beside else pad
+        text_y = pad if beside else 2 * pad + side
+        measure = ImageDraw.Draw(img)
+        lines = _wrap(self.legend_text(show_all=show_all), measure, font, w - text_x - pad)
+        bar_h = max(text_y + len(lines) * line_h + pad, side + 2 * pad)
         out = Image.new("RGB", (w, h + bar_h), (30, 30, 30))
         out.paste(img, (0, 0))
         d = ImageDraw.Draw(out)
-        n_flag = int(self.flagged.sum())
-        x = 8
-        for i, p in enumerate(np.linspace(self.threshold, 1.0, 6)):
-            d.rectangle([x + 14 * i, h + 9, x + 14 * i + 12, h + 25], fill=self._flag_colour(p))
-        x += 14 * 6 + 6
-        text = (
-            f"flagged: screening probability {self.threshold:.2f} (amber) to 1.00 (red); "
-            f"line = crack direction, star = crossing cracks; {n_flag} of {self.flagged.size} cells. "
-            "Triage aid, not an inspection."
-        )
-        d.text((x, h + 11), text, fill=(235, 235, 235))
+        for i, (_, colour) in enumerate(swatches):
+            x = pad + i * (side + 2)
+            d.rectangle([x, h + pad, x + side, h + pad + side], fill=colour, outline=(235,) * 3)
+        for k, line in enumerate(lines):
+            d.text((text_x, h + text_y + k * line_h), line, fill=(235, 235, 235), font=font)
         return out
+
+
+def _legend_font(size: int):
+    from PIL import ImageFont
+
+    try:
+        return ImageFont.load_default(size=size)
+    except TypeError:  # Pillow < 10.1: one small bitmap size
+        return ImageFont.load_default()
+
+
+def _wrap(text: str, draw, font, width: float) -> list[str]:
+    """Greedy word wrap to ``width`` pixels (a single long word stays on its own line)."""
+    lines: list[str] = []
+    for word in text.split():
+        if lines and draw.textlength(f"{lines[-1]} {word}", font=font) <= width:
+            lines[-1] = f"{lines[-1]} {word}"
+        else:
+            lines.append(word)
+    return lines

@@ -4,7 +4,14 @@
 flushed to disk before the next is written, so stopping and restarting a scan
 loses nothing; a frame already in the file with the same path and content hash
 is skipped on restart, and a half-written last line (the process was killed
-mid-write) is dropped and redone. ``flagged.txt`` lists the flagged frames.
+mid-write) is dropped and redone. A frame whose content changed, or that could not
+be read at all last time, is scanned again and gets a new line: the LAST line of a
+frame describes it as it now is (earlier lines stay as history). ``flagged.txt``
+lists the frames whose last line is flagged.
+
+The summary of a run describes the whole output for the frames given, not only this
+run's share: a resumed scan still reports (and exits 1 for) frames recorded as
+unreadable by an earlier run (:func:`recorded_line`, :func:`exit_code`).
 
 Engines: ``local`` overlaps decoding and cutting of the next frames (a thread
 pool; Pillow releases the GIL while decoding) with inference on the current one,
@@ -31,7 +38,18 @@ from trainkit.core.decode import PhotoError, find_images, read_rgb_fast
 from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.screener.model import FramePatches, Screener
 
-__all__ = ["scan_frames", "read_done", "FRAMES_FILE", "FLAGGED_FILE", "OVERLAY_CHOICES", "ENGINES"]
+__all__ = [
+    "scan_frames",
+    "read_done",
+    "read_latest",
+    "recorded_line",
+    "exit_code",
+    "FRAMES_FILE",
+    "FLAGGED_FILE",
+    "OVERLAY_CHOICES",
+    "ENGINES",
+    "EXIT_UNREADABLE",
+]
 
 FRAMES_FILE = "frames.jsonl"
 FLAGGED_FILE = "flagged.txt"
@@ -39,14 +57,18 @@ OVERLAY_CHOICES = ("flagged", "all", "none")
 ENGINES = ("local", "dask")
 
 
-def read_done(path: Path) -> dict[str, str | None]:
-    """Frame path -> content hash of the lines already in frames.jsonl.
+#: Exit code while any frame of the inputs is recorded as unreadable (the CLI's "skipped" code).
+EXIT_UNREADABLE = 1
+
+
+def read_latest(path: Path) -> dict[str, dict]:
+    """Frame path -> ``{"sha256", "status", "flagged"}`` of its LAST line in frames.jsonl.
 
     A torn last line (no newline, or not JSON) is truncated away in place.
     """
-    done: dict[str, str | None] = {}
+    latest: dict[str, dict] = {}
     if not path.exists():
-        return done
+        return latest
     good_bytes = 0
     with path.open("rb") as fh:
         for raw in fh:
@@ -56,12 +78,84 @@ def read_done(path: Path) -> dict[str, str | None]:
                 rec = json.loads(raw)
             except json.JSONDecodeError:
                 break
-            done[rec["frame"]] = rec.get("sha256")
+            latest[rec["frame"]] = _brief(rec)
             good_bytes += len(raw)
     if good_bytes != path.stat().st_size:
         with path.open("r+b") as fh:
             fh.truncate(good_bytes)
-    return done
+    return latest
+
+
+def _brief(rec: dict) -> dict:
+    return {
+        "sha256": rec.get("sha256"),
+        "status": rec.get("status"),
+        "flagged": bool(rec.get("flagged")),
+    }
+
+
+def read_done(path: Path) -> dict[str, str | None]:
+    """Frame path -> content hash of its last line in frames.jsonl (None: it could not be read).
+
+    A torn last line (no newline, or not JSON) is truncated away in place.
+    """
+    return {frame: r["sha256"] for frame, r in read_latest(path).items()}
+
+
+def _needs_scan(path: Path, last: dict | None) -> bool:
+    """True unless the frame's last line was made from the same content (same hash)."""
+    if last is None or last["sha256"] is None:  # never scanned, or could not be read then
+        return True
+    try:
+        return last["sha256"] != hashlib.sha256(path.read_bytes()).hexdigest()
+    except OSError:  # unreadable now: scanning records that
+        return True
+
+
+def _recorded_counts(frames: list[Path], latest: dict[str, dict], now: set[str]) -> dict:
+    """What frames.jsonl now says about ``frames`` (their last lines)."""
+    recs = [(str(p), latest[str(p)]) for p in frames if str(p) in latest]
+    bad = [f for f, r in recs if r["status"] != "ok"]
+    return {
+        "recorded": len(recs),
+        "unreadable": len(bad),
+        "unreadable_earlier": sum(f not in now for f in bad),
+        "flagged_recorded": sum(bool(r["flagged"]) for _, r in recs),
+    }
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" + ("" if n == 1 else "s")
+
+
+def recorded_line(summary: dict) -> str:
+    """One line on the whole output for the frames given, e.g. ``6 frames in this folder
+    recorded, of which 4 unreadable (4 recorded earlier)``.
+
+    Args:
+        summary: the dict returned by :func:`scan_frames`.
+    """
+    inputs = summary.get("inputs", [])
+    where = (
+        "in this folder"
+        if len(inputs) == 1 and Path(inputs[0]).is_dir()
+        else "of this file"
+        if len(inputs) == 1
+        else f"of these {len(inputs)} inputs"
+    )
+    return (
+        f"{_plural(summary['recorded'], 'frame')} {where} recorded, of which "
+        f"{summary['unreadable']} unreadable ({summary['unreadable_earlier']} recorded earlier)"
+    )
+
+
+def exit_code(summary: dict) -> int:
+    """:data:`EXIT_UNREADABLE` while any frame of the inputs is recorded as unreadable, else 0.
+
+    Args:
+        summary: the dict returned by :func:`scan_frames`.
+    """
+    return EXIT_UNREADABLE if summary["unreadable"] else 0
 
 
 def _decode_and_cut(
@@ -291,7 +385,12 @@ def scan_frames(
         progress: called with (done, total) after each frame.
 
     Returns:
-        Counts: frames, skipped on resume, scanned, flagged, errors, seconds, frames per second.
+        This run's counts: ``frames`` (found in the inputs), ``resumed_skip`` (unchanged since
+        their last line), ``scanned``, ``flagged`` and ``errors`` (lines written by this
+        run), ``seconds``, ``frames_per_second``; and what frames.jsonl now says about the
+        frames of the inputs (their last lines): ``recorded``, of which ``unreadable``, of
+        which ``unreadable_earlier`` (not written by this run), and ``flagged_recorded``.
+        ``unreadable`` used to be this run's ``errors``; it now counts the whole output.
     """
     if overlays is True:
         overlays = "flagged"
@@ -311,16 +410,11 @@ def scan_frames(
     if overlay_dir:
         overlay_dir.mkdir(exist_ok=True)
     frames_path = out / FRAMES_FILE
-    done = read_done(frames_path)
+    latest = read_latest(frames_path)
     frames = [p for p, _ in find_images(list(inputs))]
     screener = Screener(model)  # validates the model before any work starts
-    todo = []
-    for p in frames:
-        if str(p) in done:
-            known = done[str(p)]
-            if known is None or known == hashlib.sha256(p.read_bytes()).hexdigest():
-                continue
-        todo.append(p)
+    todo = [p for p in frames if _needs_scan(p, latest.get(str(p)))]
+    written: set[str] = set()
     counts = {
         "frames": len(frames),
         "resumed_skip": len(frames) - len(todo),
@@ -335,6 +429,8 @@ def scan_frames(
             fh.write(json.dumps(rec) + "\n")
             fh.flush()
             os.fsync(fh.fileno())
+            latest[rec["frame"]] = _brief(rec)
+            written.add(rec["frame"])
             counts["scanned"] += 1
             counts["flagged"] += bool(rec.get("flagged"))
             counts["errors"] += rec["status"] != "ok"
@@ -350,18 +446,11 @@ def scan_frames(
         for rec in results:
             write(rec)
     seconds = time.perf_counter() - t0
-    _write_flagged(frames_path, out / FLAGGED_FILE)
+    flagged = sorted(f for f, r in latest.items() if r["flagged"])
+    atomic_write_text(out / FLAGGED_FILE, "".join(f"{f}\n" for f in flagged))
     counts["seconds"] = round(seconds, 3)
     counts["frames_per_second"] = round(counts["scanned"] / seconds, 3) if seconds > 0 else 0.0
     counts["frames_file"] = str(frames_path)
-    counts["unreadable"] = counts["errors"]  # older name, kept for scripts
+    counts["inputs"] = [str(p) for p in inputs]
+    counts.update(_recorded_counts(frames, latest, written))
     return counts
-
-
-def _write_flagged(frames_path: Path, target: Path) -> None:
-    flagged = []
-    for line in frames_path.read_text(encoding="utf-8").splitlines():
-        rec = json.loads(line)
-        if rec.get("flagged"):
-            flagged.append(rec["frame"])
-    atomic_write_text(target, "".join(f"{f}\n" for f in sorted(set(flagged))))
