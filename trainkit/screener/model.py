@@ -184,9 +184,22 @@ class Screener:
         return np.concatenate([np.zeros((0, len(self.class_names)), dtype=np.float32), *outs])
 
     def cut(
-        self, rgb: np.ndarray, stride: int | None = None, gsd_mm: float | None = None
+        self,
+        rgb: np.ndarray,
+        stride: int | None = None,
+        gsd_mm: float | None = None,
+        *,
+        full_size: tuple[int, int] | None = None,
     ) -> FramePatches:
-        """Resample (when scales are known) and cut a frame into model patches, without inference."""
+        """Resample (when scales are known) and cut a frame into model patches, without inference.
+
+        Args:
+            rgb: the frame, (H, W, 3) uint8.
+            stride: step between cells in model pixels (default: the patch size).
+            gsd_mm: the full-size frame's scale in mm per pixel.
+            full_size: (height, width) of the full-size frame when ``rgb`` was decoded at
+                reduced size; boxes, height and width are then reported in full-size pixels.
+        """
         rgb = np.asarray(rgb)
         if rgb.dtype != np.uint8 or rgb.ndim != 3 or rgb.shape[2] != 3:
             raise ScreenerError(
@@ -197,17 +210,23 @@ class Screener:
         if not 1 <= stride <= s:
             raise ScreenerError(f"stride must be between 1 and {s}, got {stride}")
         h, w = rgb.shape[:2]
-        factor = 1.0
+        full_h, full_w = (h, w) if full_size is None else (int(full_size[0]), int(full_size[1]))
+        if full_w < w or full_h < h:
+            raise ScreenerError(f"full_size {full_size} is smaller than the frame given ({h}, {w})")
+        pixel_scale = full_w / w  # full-size pixels per pixel of rgb
+        factor = 1.0 / pixel_scale  # model pixels per full-size frame pixel
         work = rgb
         if gsd_mm is not None:
             if not gsd_mm > 0:
                 raise ScreenerError(f"gsd_mm must be positive, got {gsd_mm}")
             if self.patch_mm:
-                factor = s / (self.patch_mm / gsd_mm)  # model pixels per frame pixel
-                if abs(factor - 1.0) > 1e-3:
+                # model pixels per pixel of rgb, whose own scale is gsd_mm * pixel_scale
+                step = s / (self.patch_mm / (gsd_mm * pixel_scale))
+                factor = step / pixel_scale
+                if abs(step - 1.0) > 1e-3:
                     from PIL import Image
 
-                    nw, nh = max(1, round(w * factor)), max(1, round(h * factor))
+                    nw, nh = max(1, round(w * step)), max(1, round(h * step))
                     work = np.asarray(Image.fromarray(rgb).resize((nw, nh), Image.BILINEAR))
         wh, ww = work.shape[:2]
         ys, xs = axis_starts(wh, s, stride), axis_starts(ww, s, stride)
@@ -225,10 +244,12 @@ class Screener:
                 boxes[r, c] = [
                     int(round(x0 / factor)),
                     int(round(y0 / factor)),
-                    min(w, int(round(x1 / factor))),
-                    min(h, int(round(y1 / factor))),
+                    min(full_w, int(round(x1 / factor))),
+                    min(full_h, int(round(y1 / factor))),
                 ]
-        return FramePatches(patches=patches, boxes=boxes, height=h, width=w, gsd_mm=gsd_mm)
+        return FramePatches(
+            patches=patches, boxes=boxes, height=full_h, width=full_w, gsd_mm=gsd_mm
+        )
 
     def crack_map_from_patches(self, fp: FramePatches) -> CrackMap:
         """Run the model on a cut frame (see :meth:`cut`) and build its crack map."""

@@ -174,13 +174,8 @@ def _decode_and_cut(
         rgb, reduced = _read_for_model(screener, path, data, gsd_mm)
         if reduced is None:
             fp = screener.cut(rgb, gsd_mm=gsd_mm)
-        else:  # decoded at reduced size: cut at the reduced scale, report boxes in full-size pixels
-            full_h, full_w, k = reduced
-            fp = screener.cut(rgb, gsd_mm=gsd_mm * k)
-            fp.boxes = np.minimum(
-                np.round(fp.boxes * k).astype(np.int64), [full_w, full_h, full_w, full_h]
-            )
-            fp.height, fp.width, fp.gsd_mm = full_h, full_w, gsd_mm
+        else:  # decoded at reduced size: the Screener reports boxes in full-size pixels
+            fp = screener.cut(rgb, gsd_mm=gsd_mm, full_size=reduced[:2])
             rgb = None  # overlays need the full frame: decode again only if one is drawn
     except (PhotoError, ValueError) as exc:
         rec.update(status="error", error=str(exc))
@@ -233,6 +228,13 @@ def _finish(
         threshold=cm.threshold,
         warnings=cm.warnings,
         flagged_boxes=[{k: c[k] for k in ("box", "probability", "class")} for c in cells],
+        # Every cell, for a job's acceptance sample (`trainkit sample`): the grid's column
+        # and row extents in frame pixels, and each cell's screening probability.
+        grid={
+            "x": cm.boxes[0, :, [0, 2]].T.tolist(),
+            "y": cm.boxes[:, 0, [1, 3]].tolist(),
+        },
+        cell_probabilities=np.round(cm.probabilities, 4).tolist(),
         seconds_model=round(time.perf_counter() - t0, 4),
     )
     if overlay_dir is not None and (overlays == "all" or (overlays == "flagged" and cells)):
