@@ -6,7 +6,9 @@ label importer, used by ``tile --labels``, ``review --import-csv``, the demo and
 job samples — takes either ``patch_id, label`` or ``photo, x0, y0, x1, y1, label`` (so
 an export reads back, and so does ``trainkit synth``'s labels.csv). Photo names are
 relative names inside the photo folder: absolute paths, ``..`` and backslashes are
-refused.
+refused. A label is a class name, or empty or ``unsure`` for an unsure answer; in a
+job's ``sample.csv`` (it has an ``inclusion_probability`` column) an empty label means
+"not answered yet" and the row is skipped.
 
 Folder layout: ``ROOT/<class name>/<photo>@<x0>_<y0>_<x1>_<y1>.<ext>``, with ``/`` in a
 photo's relative name written as ``~``. Import matches a file by that name and, for
@@ -52,6 +54,11 @@ EXPORT_COLUMNS = (
 )
 _IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".jpg", ".jpeg", ".bmp", ".webp"}
 _NAME_RE = re.compile(r"^(?P<photo>.+)@(?P<x0>\d+)_(?P<y0>\d+)_(?P<x1>\d+)_(?P<y1>\d+)$")
+
+
+#: Label text meaning "looked at, unsure" (an empty label means the same, except in a
+#: job's sample.csv, where it means "not answered yet").
+UNSURE_WORD = "unsure"
 
 
 class LabelsIOError(ValueError):
@@ -107,6 +114,8 @@ def export_folders(ws: Workspace, root: str | Path) -> dict[str, int]:
 
 def _check_label(raw: str, names: tuple[str, ...], where: str) -> str | None:
     label = (raw or "").strip() or None
+    if label == UNSURE_WORD and UNSURE_WORD not in names:
+        return None
     if label is not None and label not in names:
         raise LabelsIOError(f"{where}: unknown class {label!r}; choose one of: {', '.join(names)}")
     return label
@@ -143,8 +152,13 @@ def import_csv(
                 f"got {reader.fieldnames}"
             )
         find = _by_id(ws) if by_id else _by_place(ws)
+        # A job's sample.csv lists cells still to answer: there an empty label means "not
+        # answered yet" and the row is skipped; "unsure" records an unsure answer.
+        sample_file = "inclusion_probability" in cols
         for line, row in enumerate(reader, start=2):
             where = f"{path.name} line {line}"
+            if sample_file and not (row["label"] or "").strip():
+                continue
             items.append((find(row, where), _check_label(row["label"], names, where)))
     return ws.add_labels(items, reviewer=reviewer, origin=origin)
 

@@ -1,0 +1,176 @@
+"""A job's acceptance sample end to end: scan, sample into a workspace, answer, verify.
+
+The screener is the hand-built brightness model of test_screener (darker cell, higher
+screening probability); the frames are made here with a known truth per cell, and a
+simulated reviewer answers from that truth.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import numpy as np
+import pytest
+from PIL import Image
+from test_screener import S, brightness_model
+
+from trainkit.core.taxonomy import load_class_set
+from trainkit.jobs.sample import SampleError, read_scan_cells, sample_scan
+from trainkit.jobs.verify import VerifyError, verify_scan
+from trainkit.labels.labels_io import import_csv
+from trainkit.labels.review import build_queue
+from trainkit.labels.splits import split_workspace
+from trainkit.labels.workspace import Workspace
+from trainkit.screener.scan import scan_frames
+
+# Grey level of a cell -> (is it a crack, screening probability of the brightness model)
+#   60: dark crack, flagged;  90: dark stain, a false alarm;  131: faint crack or not, "near";
+#   160: faint crack the model misses ("rest");  200: clean concrete ("rest").
+KINDS = {"crack": (60, True), "stain": (90, False), "near_crack": (131, True),
+         "near_clean": (131, False), "missed": (160, True), "clean": (200, False)}  # fmt: skip
+
+
+def make_job(tmp_path, n_frames=6, seed=0):
+    """Frames of 8 x 8 cells of S px with a known kind per cell; returns (folder, truth)."""
+    rng = np.random.default_rng(seed)
+    d = tmp_path / "frames"
+    d.mkdir()
+    truth = {}
+    kinds = list(KINDS)
+    weights = np.array([0.06, 0.03, 0.04, 0.04, 0.03, 0.80])
+    for f in range(n_frames):
+        img = np.zeros((8 * S, 8 * S, 3), np.uint8)
+        for r in range(8):
+            for c in range(8):
+                kind = kinds[rng.choice(len(kinds), p=weights)]
+                img[r * S : (r + 1) * S, c * S : (c + 1) * S] = KINDS[kind][0]
+                truth[(f"f{f}.png", (c * S, r * S, (c + 1) * S, (r + 1) * S))] = KINDS[kind][1]
+        Image.fromarray(img).save(d / f"f{f}.png")
+    return d, truth
+
+
+@pytest.fixture()
+def scanned(tmp_path):
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.5)
+    frames, truth = make_job(tmp_path)
+    out = tmp_path / "scan"
+    scan_frames(model, [frames], out)
+    return out, truth
+
+
+def new_ws(path):
+    return Workspace.create(path, class_set=load_class_set("presence"), tile_px=S)
+
+
+def answer_from_truth(ws, truth):
+    """The simulated reviewer: answers every job cell from the frames' truth."""
+    items = []
+    for r in ws.patches():
+        if r.job is not None:
+            frame = r.photo.split("/", 1)[1]
+            items.append((r.id, "crack" if truth[(frame, r.box)] else "none"))
+    return ws.add_labels(items, reviewer="sim")
+
+
+def test_scan_records_every_cell_for_the_sample(scanned):
+    out, truth = scanned
+    cells = read_scan_cells(out)
+    assert len(cells) == len(truth) == 6 * 64
+    # The brightness model's screening probability: sigmoid((128 - grey) / 5).
+    i = int(np.flatnonzero(cells.frame_index == 0)[0])
+    frame = cells.frames[0]["frame"].rsplit("/", 1)[1]
+    grey = [g for k, (g, crack) in KINDS.items()]
+    p = cells.probabilities[i]
+    assert min(abs(p - 1 / (1 + np.exp(-(128 - g) / 5))) for g in grey) < 1e-3
+    assert tuple(cells.boxes[i]) in {b for (f, b) in truth if f == frame}
+
+
+def test_sample_is_reproducible_stratified_and_kept_out_of_splits(scanned, tmp_path):
+    out, truth = scanned
+    ws1, ws2 = new_ws(tmp_path / "a"), new_ws(tmp_path / "b")
+    s1 = sample_scan(out, ws1, cells=60, seed=3)
+    rows1 = list(csv.DictReader((out / "sample.csv").open()))
+    s2 = sample_scan(out, ws2, cells=60, seed=3)
+    rows2 = list(csv.DictReader((out / "sample.csv").open()))
+    key = lambda r: (r["frame"], r["x0"], r["y0"], r["stratum"])  # noqa: E731
+    assert sorted(map(key, rows1)) == sorted(map(key, rows2)) and len(rows1) == 60
+    assert s1["strata"] == s2["strata"]
+    # Each cell's inclusion probability is n_h / N_h of its stratum (Cochran ch. 5).
+    table = {s["stratum"]: s for s in s1["strata"]}
+    for r in rows1:
+        t = table[r["stratum"]]
+        assert float(r["inclusion_probability"]) == pytest.approx(t["sampled"] / t["cells"])
+    assert sum(t["cells"] for t in s1["strata"]) == len(truth)
+    # Job cells never join a split, and they come first in the review queue.
+    ws1.add_labels([(r.id, "none") for r in ws1.patches()][:5], reviewer="x")
+    with pytest.raises(ValueError, match="no labelled patches"):
+        split_workspace(ws1)
+    queue = build_queue(ws1.patches(), reviewer="sim")
+    assert set(queue) == {r.id for r in ws1.patches() if not r.labelled}
+    with pytest.raises(SampleError, match="already holds job"):
+        sample_scan(out, ws1, cells=10, seed=4)
+
+
+def test_answers_through_sample_csv_equal_answers_in_review(scanned, tmp_path):
+    out, truth = scanned
+    ws_a, ws_b = new_ws(tmp_path / "a"), new_ws(tmp_path / "b")
+    sample_scan(out, ws_a, cells=80, seed=5)
+    answer_from_truth(ws_a, truth)
+    a = verify_scan(out, ws_a)
+    sample_scan(out, ws_b, cells=80, seed=5)
+    path = out / "sample.csv"
+    rows = list(csv.DictReader(path.open()))
+    for r in rows:
+        frame = r["frame"].rsplit("/", 1)[1]
+        box = tuple(int(r[k]) for k in ("x0", "y0", "x1", "y1"))
+        r["label"] = "crack" if truth[(frame, box)] else "none"
+    rows[0]["label"] = ""  # left unanswered: skipped, not stored as unsure
+    with path.open("w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+    assert import_csv(ws_b, path, reviewer="sheet") == 79
+    assert verify_scan(out, ws_b)["cells_unsure_or_unanswered"] == {"unsure": 0, "unanswered": 1}
+    first = rows[0]
+    box = tuple(int(first[k]) for k in ("x0", "y0", "x1", "y1"))
+    crack = truth[(first["frame"].rsplit("/", 1)[1], box)]
+    ws_b.add_labels([(int(first["patch_id"]), "crack" if crack else "none")], reviewer="sheet")
+    b = verify_scan(out, ws_b)
+    assert a["estimate"] == b["estimate"]
+    assert a["cells_answered"] == b["cells_answered"] == 80
+
+
+def test_verify_counts_unresolved_cells_and_applies_the_gate(scanned, tmp_path):
+    out, truth = scanned
+    ws = new_ws(tmp_path / "w")
+    with pytest.raises(VerifyError, match="no sample"):
+        verify_scan(out, ws)
+    sample_scan(out, ws, cells=90, seed=1)
+    answer_from_truth(ws, truth)
+    job_ids = [r.id for r in ws.patches() if r.job is not None]
+    # Take back two answers and mark one unsure: reported, never silently dropped.
+    events = {e["patch_id"]: e["id"] for e in ws.label_events()}
+    strata = {c["patch_id"]: c["stratum"] for c in ws.job_cells(ws.jobs()[0]["name"])}
+    rest = [p for p in job_ids if strata[p] == "rest"]
+    ws.undo_label_event(events[rest[0]])
+    ws.undo_label_event(events[rest[1]])
+    ws.add_labels([(rest[2], None)], reviewer="sim")
+    res = verify_scan(out, ws, require_recall=0.99)
+    assert res["cells_unsure_or_unanswered"] == {"unsure": 1, "unanswered": 2}
+    assert res["cells_answered"] == 87
+    # The recall estimate equals the Cochran stratified ratio computed by hand here.
+    cells = ws.job_cells(res["job"])
+    N = {s["stratum"]: s["cells"] for s in ws.jobs()[0]["design"]["strata"]}
+    ans = [c for c in cells if c["answered"] and c["label"] is not None]
+    tot = {h: N[h] / sum(c["stratum"] == h for c in ans) * sum(
+        c["stratum"] == h and c["label"] == "crack" for c in ans) for h in N}  # fmt: skip
+    assert res["estimate"]["recall"]["estimate"] == pytest.approx(
+        tot["flagged"] / sum(tot.values())
+    )
+    # The brightness model misses the faint cracks: the gate refuses at 0.99.
+    assert res["gate"]["passed"] is False and res["gate"]["verdict"].startswith("REFUSED")
+    saved = json.loads((out / "verification.json").read_text())
+    assert saved["estimate"] == res["estimate"]
+    html = (out / "verification.html").read_text()
+    assert "triage aid" in html and html.rstrip().endswith("</html>")
