@@ -221,3 +221,14 @@ def test_recorded_line_wording_and_exit_code(tmp_path):
     )
     assert exit_code(many) == 0
     assert recorded_line(dict(one, inputs=[str(f)])).startswith("1 frame of this file recorded")
+
+
+def test_scan_records_familiarity_per_frame_and_counts_unfamiliar_frames(tmp_path):
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9, familiarity=5.0)
+    d = frames(tmp_path)  # grey 200 everywhere except a dark corner: unlike "training" (128)
+    summary = scan_frames(model, [d], tmp_path / "out")
+    ok = [r for r in lines(tmp_path / "out" / "frames.jsonl") if r["status"] == "ok"]
+    assert all(r["unfamiliar"] is True and r["familiarity_score"] > 5.0 for r in ok)
+    assert summary["unfamiliar_recorded"] == len(ok) == 5 and summary["notes"] == []
+    v1 = scan_frames(brightness_model(tmp_path / "v1.onnx"), [d], tmp_path / "out1")
+    assert v1["unfamiliar_recorded"] is None and "no familiarity output" in v1["notes"][0]

@@ -17,10 +17,14 @@ from trainkit.screener.model import Screener, ScreenerError
 S = 32
 
 
-def brightness_model(path, *, patch_px=S, threshold=0.5, patch_mm=None, meta_extra=None, drop=()):
+def brightness_model(
+    path, *, patch_px=S, threshold=0.5, patch_mm=None, meta_extra=None, drop=(), familiarity=None
+):
     """A hand-built ONNX graph: darker patches get a higher crack probability.
 
     logits = [(mean - 128) / 10, (128 - mean) / 10] over the patch's mean grey, softmax.
+    With ``familiarity`` (a threshold), a contract-2 model whose second output is
+    |mean - 128| / 10: grey near 128 is "familiar", very bright or dark is not.
     """
     image = helper.make_tensor_value_info("image", TensorProto.UINT8, ["N", patch_px, patch_px, 3])
     probs = helper.make_tensor_value_info("probabilities", TensorProto.FLOAT, ["N", 2])
@@ -41,15 +45,22 @@ def brightness_model(path, *, patch_px=S, threshold=0.5, patch_mm=None, meta_ext
         helper.make_tensor("c10", TensorProto.FLOAT, [], [10.0]),
         helper.make_tensor("ax1", TensorProto.INT64, [1], [1]),
     ]
-    graph = helper.make_graph(nodes, "brightness", [image], [probs], initializer=inits)
+    outputs = [probs]
+    if familiarity is not None:
+        nodes += [
+            helper.make_node("Abs", ["l0"], ["familiarity"]),
+        ]
+        outputs.append(helper.make_tensor_value_info("familiarity", TensorProto.FLOAT, ["N"]))
+    graph = helper.make_graph(nodes, "brightness", [image], outputs, initializer=inits)
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 18)])
     model.ir_version = 9
     meta = {
-        "trainkit.format": "trainkit-screener-1",
+        "trainkit.format": "trainkit-screener-1" if familiarity is None else "trainkit-screener-2",
         "class_names": json.dumps(["none", "crack"]),
         "patch_px": str(patch_px),
         "threshold": json.dumps(threshold),
         "patch_mm": json.dumps(patch_mm),
+        **({} if familiarity is None else {"familiarity": json.dumps({"threshold": familiarity})}),
         **(meta_extra or {}),
     }
     onnx.helper.set_model_props(model, {k: v for k, v in meta.items() if k not in drop})
@@ -258,3 +269,32 @@ def test_overlay_legend_says_what_it_shows(tmp_path):
         strip = img[64:]
         assert strip.shape[0] >= 34 and (strip[:, -5:] == 30).all()
         assert (strip[:, :-5] != 30).any()  # and something is written in it
+
+
+def test_contract_2_model_warns_on_unfamiliar_frames_and_version_1_says_once(tmp_path):
+    """A frame whose cells' median familiarity exceeds the model's threshold is flagged as
+    unlike the training data; a version-1 model loads and says once that it cannot tell."""
+    v2 = Screener(brightness_model(tmp_path / "v2.onnx", familiarity=5.0))
+    assert v2.notes == [] and v2.info.familiarity == {"threshold": 5.0}
+    familiar = np.full((2 * S, 3 * S, 3), 131, np.uint8)  # |131 - 128| / 10 = 0.3 per cell
+    strange = np.full((2 * S, 3 * S, 3), 200, np.uint8)  # 7.2 per cell
+    strange[:S, :S] = 131  # a minority of familiar cells does not change the median
+    cm = v2.crack_map(familiar)
+    assert cm.unfamiliar is False and cm.familiarity.shape == (2, 3)
+    assert cm.familiarity_score == pytest.approx(0.3, abs=1e-4)
+    cm = v2.crack_map(strange)
+    assert cm.unfamiliar is True and cm.familiarity_score == pytest.approx(7.2, abs=1e-4)
+    assert any("unlike the model's training data" in w for w in cm.warnings)
+    assert cm.to_dict()["unfamiliar"] is True
+    v1 = Screener(brightness_model(tmp_path / "v1.onnx"))
+    assert len(v1.notes) == 1 and "no familiarity output" in v1.notes[0]
+    cm = v1.crack_map(strange)
+    assert cm.familiarity is None and cm.unfamiliar is None and cm.familiarity_score is None
+
+
+def test_contract_2_needs_its_familiarity_threshold(tmp_path):
+    path = brightness_model(
+        tmp_path / "bad.onnx", meta_extra={"trainkit.format": "trainkit-screener-2"}
+    )
+    with pytest.raises(ScreenerError, match="needs metadata familiarity.threshold"):
+        Screener(path)

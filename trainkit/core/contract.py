@@ -5,6 +5,17 @@ never drift apart. Metadata values are strings in the ONNX file; structured valu
 are JSON. A change to anything here that an older reader cannot ignore bumps
 :data:`CONTRACT_VERSION`; readers keep accepting every version in
 :data:`READABLE_VERSIONS`.
+
+Versions:
+
+- ``trainkit-screener-1``: one output, ``probabilities``.
+- ``trainkit-screener-2`` (migration note: readers of version 1 that check for exactly one
+  output must accept a second one): a second output ``familiarity``, float32 (N,), the
+  patch's smallest Mahalanobis distance to a training class in the model's feature space
+  (:mod:`trainkit.core.familiarity`), and the metadata key ``familiarity`` (JSON:
+  ``threshold``, ``rule``, how it was fitted). A frame whose cells' median familiarity
+  exceeds the threshold looks unlike the training data. Version-1 models still load; they
+  give no familiarity and so no unfamiliar-surface warning.
 """
 
 from __future__ import annotations
@@ -22,8 +33,11 @@ __all__ = [
     "FORMAT_KEY",
     "INPUT_NAME",
     "OUTPUT_NAME",
+    "FAMILIARITY_NAME",
+    "FAMILIARITY_SINCE",
     "REQUIRED_KEYS",
     "ContractError",
+    "contract_number",
     "ModelInfo",
     "encode_metadata",
     "decode_metadata",
@@ -33,13 +47,17 @@ __all__ = [
 #: Metadata key holding the contract version.
 FORMAT_KEY = "trainkit.format"
 #: The version this kit writes.
-CONTRACT_VERSION = "trainkit-screener-1"
+CONTRACT_VERSION = "trainkit-screener-2"
 #: Versions this kit reads.
-READABLE_VERSIONS = ("trainkit-screener-1",)
+READABLE_VERSIONS = ("trainkit-screener-1", "trainkit-screener-2")
+#: The first version whose models carry the ``familiarity`` output.
+FAMILIARITY_SINCE = "trainkit-screener-2"
 #: The graph's one input: uint8 (N, S, S, 3) RGB, N dynamic.
 INPUT_NAME = "image"
 #: The graph's output: float32 (N, C) softmax over the class set.
 OUTPUT_NAME = "probabilities"
+#: The graph's second output from version 2: float32 (N,), larger is less familiar.
+FAMILIARITY_NAME = "familiarity"
 #: Keys every readable model carries.
 REQUIRED_KEYS = (FORMAT_KEY, "class_names", "patch_px", "threshold")
 
@@ -77,6 +95,8 @@ class ModelInfo:
         kit_version: the kit version that exported the model.
         data_digest: digest of the training data.
         test_metrics: headline test figures, when the model was evaluated.
+        familiarity: from version 2: ``threshold`` (cells' median above it: unfamiliar),
+            ``rule`` and how it was fitted; None for version-1 models.
         version: the contract version.
         extra: any further keys, as stored (strings).
     """
@@ -92,6 +112,7 @@ class ModelInfo:
     kit_version: str = ""
     data_digest: str = ""
     test_metrics: dict | None = None
+    familiarity: dict | None = None
     version: str = CONTRACT_VERSION
     extra: dict[str, str] = field(default_factory=dict)
 
@@ -109,9 +130,18 @@ _KNOWN = (
     "kit_version",
     "data_digest",
     "test_metrics",
+    "familiarity",
     "input",
     "output",
 )
+
+
+def contract_number(version: str) -> int:
+    """The number of a contract version (``trainkit-screener-2`` -> 2)."""
+    try:
+        return int(version.rsplit("-", 1)[1])
+    except (IndexError, ValueError):
+        raise ContractError(f"malformed contract version {version!r}") from None
 
 
 def encode_metadata(info: ModelInfo) -> dict[str, str]:
@@ -134,6 +164,10 @@ def encode_metadata(info: ModelInfo) -> dict[str, str]:
         "input": _INPUT_TEXT,
         "output": _OUTPUT_TEXT,
     }
+    if contract_number(info.version) >= contract_number(FAMILIARITY_SINCE):
+        if not info.familiarity or "threshold" not in info.familiarity:
+            raise ContractError(f"contract {info.version} needs familiarity with a threshold")
+        meta["familiarity"] = json.dumps(info.familiarity)
     meta.update(info.extra)
     return meta
 
@@ -176,6 +210,7 @@ def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
             kit_version=meta.get("kit_version", ""),
             data_digest=meta.get("data_digest", ""),
             test_metrics=json.loads(meta.get("test_metrics", "null")),
+            familiarity=json.loads(meta.get("familiarity", "null")),
             version=version,
             extra={k: v for k, v in meta.items() if k not in _KNOWN},
         )
@@ -183,6 +218,11 @@ def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
         raise ContractError(f"{name}: malformed trainkit metadata ({exc})") from None
     if not info.class_names or info.class_names[0] != "none":
         raise ContractError(f"{name}: class 0 must be 'none', got {info.class_names[:1]}")
+    if contract_number(version) >= contract_number(FAMILIARITY_SINCE) and not (
+        isinstance(info.familiarity, dict)
+        and isinstance(info.familiarity.get("threshold"), float | int)
+    ):
+        raise ContractError(f"{name}: contract {version} needs metadata familiarity.threshold")
     if len(info.angle_centres) != len(info.class_names):
         raise ContractError(
             f"{name}: {len(info.angle_centres)} angle centres for {len(info.class_names)} classes"

@@ -42,7 +42,12 @@ class CrackMap:
         class_probabilities: (rows, cols, C) float32 softmax per cell.
         gsd_mm: the frame's scale if given (mm per pixel).
         angle_centres: angle centre per class in degrees (None for classes without one).
-        warnings: things the caller should know (e.g. a scale outside the training range).
+        warnings: things the caller should know (e.g. a scale outside the training range,
+            or a frame unlike the training data).
+        familiarity: (rows, cols) float32 familiarity score per cell (larger: less like
+            the training data), or None for a model without that output.
+        unfamiliar: True when the frame looks unlike the training data (median cell
+            familiarity above the model's threshold); None without familiarity.
     """
 
     probabilities: np.ndarray
@@ -55,6 +60,13 @@ class CrackMap:
     gsd_mm: float | None = None
     angle_centres: list[float | None] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    familiarity: np.ndarray | None = field(default=None, repr=False)
+    unfamiliar: bool | None = None
+
+    @property
+    def familiarity_score(self) -> float | None:
+        """The frame's familiarity score: the median of its cells' (None without familiarity)."""
+        return None if self.familiarity is None else float(np.median(self.familiarity))
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -120,6 +132,8 @@ class CrackMap:
             "labels": self.labels.tolist(),
             "boxes": self.boxes.tolist(),
             "warnings": list(self.warnings),
+            "familiarity_score": self.familiarity_score,
+            "unfamiliar": self.unfamiliar,
         }
         if self.gsd_mm:
             d["boxes_mm"] = np.round(self.boxes * self.gsd_mm, 2).tolist()

@@ -24,6 +24,7 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.contract import (
+    FAMILIARITY_NAME,
     INPUT_NAME,
     OUTPUT_NAME,
     READABLE_VERSIONS,
@@ -33,6 +34,7 @@ from trainkit.core.contract import (
     screening_probability,
 )
 from trainkit.core.cores import usable_cores
+from trainkit.core.familiarity import frame_score
 from trainkit.core.grid import axis_starts
 from trainkit.screener.crackmap import CrackMap
 
@@ -123,10 +125,20 @@ class Screener:
                 f"{self.path.name}: expected one uint8 input named {INPUT_NAME!r}, got "
                 f"{[(i.name, i.type) for i in inputs]}"
             )
-        if len(outputs) != 1 or outputs[0].name != OUTPUT_NAME:
+        want = [OUTPUT_NAME] + ([FAMILIARITY_NAME] if self.info.familiarity else [])
+        if [o.name for o in outputs] != want:
             raise ScreenerError(
-                f"{self.path.name}: expected one output named {OUTPUT_NAME!r}, "
+                f"{self.path.name}: contract {self.info.version} expects outputs {want}, "
                 f"got {[o.name for o in outputs]}"
+            )
+        self._outputs = want
+        #: Things to say once about this model (e.g. what an older contract lacks).
+        self.notes: list[str] = []
+        if not self.info.familiarity:
+            self.notes.append(
+                f"{self.path.name} follows contract {self.info.version}, which has no familiarity "
+                "output: frames unlike the training data are not detected (export the model "
+                "again with this kit to get the unfamiliar-surface warning)"
             )
         self.class_names: list[str] = list(self.info.class_names)
         self.patch_px = self.info.patch_px
@@ -162,6 +174,15 @@ class Screener:
         Batches run concurrently on ``workers`` threads (ONNX Runtime sessions accept
         concurrent runs and release the GIL); the result is in input order.
         """
+        return self.predict_all(patches, batch_size=batch_size)[0]
+
+    def predict_all(
+        self, patches: np.ndarray, *, batch_size: int = 8
+    ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Class probabilities (N, C) and familiarity (N,) of uint8 patches (N, S, S, 3).
+
+        The familiarity is None for models without that output (contract version 1).
+        """
         patches = np.asarray(patches)
         s = self.patch_px
         if patches.dtype != np.uint8 or patches.ndim != 4 or patches.shape[1:] != (s, s, 3):
@@ -175,13 +196,17 @@ class Screener:
             batch_size = max(1, min(batch_size, -(-len(patches) // self.workers)))
         chunks = [patches[i : i + batch_size] for i in range(0, len(patches), batch_size)]
 
-        def run(chunk: np.ndarray) -> np.ndarray:
-            return self._session.run([OUTPUT_NAME], {INPUT_NAME: chunk})[0]
+        def run(chunk: np.ndarray) -> list[np.ndarray]:
+            return self._session.run(self._outputs, {INPUT_NAME: chunk})
 
-        outs = (
-            list(self._pool.map(run, chunks)) if parallel and len(chunks) > 1 else map(run, chunks)
+        outs = list(
+            self._pool.map(run, chunks) if parallel and len(chunks) > 1 else map(run, chunks)
         )
-        return np.concatenate([np.zeros((0, len(self.class_names)), dtype=np.float32), *outs])
+        empty = np.zeros((0, len(self.class_names)), dtype=np.float32)
+        probs = np.concatenate([empty, *(o[0] for o in outs)])
+        if len(self._outputs) == 1:
+            return probs, None
+        return probs, np.concatenate([np.zeros(0, np.float32), *(o[1] for o in outs)])
 
     def cut(
         self,
@@ -254,9 +279,21 @@ class Screener:
     def crack_map_from_patches(self, fp: FramePatches) -> CrackMap:
         """Run the model on a cut frame (see :meth:`cut`) and build its crack map."""
         rows, cols = fp.boxes.shape[:2]
-        probs = self.predict(fp.patches).reshape(rows, cols, -1)
+        probs, fam = self.predict_all(fp.patches)
+        probs = probs.reshape(rows, cols, -1)
         screen = screening_probability(probs)
         warnings = []
+        familiarity = None if fam is None else fam.reshape(rows, cols).astype(np.float32)
+        unfamiliar = None
+        if familiarity is not None:
+            limit = float(self.info.familiarity["threshold"])
+            score, unfamiliar = frame_score(familiarity, limit)
+            if unfamiliar:
+                warnings.append(
+                    f"this frame looks unlike the model's training data (familiarity score "
+                    f"{score:.1f} above {limit:.1f}): its recall figures do not apply here; "
+                    "check this job with `trainkit sample` and `trainkit verify`"
+                )
         if fp.gsd_mm is not None and self.gsd_range is not None:
             lo, hi = self.gsd_range
             if not (lo * 0.8 <= fp.gsd_mm <= hi * 1.25):
@@ -277,6 +314,8 @@ class Screener:
             gsd_mm=fp.gsd_mm,
             angle_centres=list(self.angle_centres),
             warnings=warnings,
+            familiarity=familiarity,
+            unfamiliar=unfamiliar,
         )
 
     def crack_map(

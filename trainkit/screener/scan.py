@@ -91,6 +91,7 @@ def _brief(rec: dict) -> dict:
         "sha256": rec.get("sha256"),
         "status": rec.get("status"),
         "flagged": bool(rec.get("flagged")),
+        "unfamiliar": rec.get("unfamiliar"),
     }
 
 
@@ -121,6 +122,10 @@ def _recorded_counts(frames: list[Path], latest: dict[str, dict], now: set[str])
         "unreadable": len(bad),
         "unreadable_earlier": sum(f not in now for f in bad),
         "flagged_recorded": sum(bool(r["flagged"]) for _, r in recs),
+        # None when the model has no familiarity output (contract version 1)
+        "unfamiliar_recorded": sum(bool(r.get("unfamiliar")) for _, r in recs)
+        if any(r.get("unfamiliar") is not None for _, r in recs)
+        else None,
     }
 
 
@@ -227,6 +232,8 @@ def _finish(
         dominant_class=cm.dominant_class(),
         threshold=cm.threshold,
         warnings=cm.warnings,
+        familiarity_score=None if cm.familiarity is None else round(cm.familiarity_score, 3),
+        unfamiliar=cm.unfamiliar,
         flagged_boxes=[{k: c[k] for k in ("box", "probability", "class")} for c in cells],
         # Every cell, for a job's acceptance sample (`trainkit sample`): the grid's column
         # and row extents in frame pixels, and each cell's screening probability.
@@ -454,5 +461,6 @@ def scan_frames(
     counts["frames_per_second"] = round(counts["scanned"] / seconds, 3) if seconds > 0 else 0.0
     counts["frames_file"] = str(frames_path)
     counts["inputs"] = [str(p) for p in inputs]
+    counts["notes"] = list(screener.notes)
     counts.update(_recorded_counts(frames, latest, written))
     return counts
