@@ -34,7 +34,7 @@ def test_graph_is_checked_and_batchnorm_is_folded(demo_run):
     onnx.checker.check_model(model, full_check=True)
     ops = {n.op_type for n in model.graph.node}
     assert "BatchNormalization" not in ops and "Conv" in ops
-    assert read_metadata(out / "model.onnx")["trainkit.format"] == "trainkit-screener-1"
+    assert read_metadata(out / "model.onnx")["trainkit.format"] == "trainkit-screener-2"
 
 
 def test_parity_with_pytorch_on_real_patches(demo_run):
@@ -53,6 +53,37 @@ def test_parity_with_pytorch_on_real_patches(demo_run):
     got = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": test.images})[0]
     assert np.max(np.abs(ref - got)) <= 1e-4
     assert np.array_equal(ref.argmax(1), got.argmax(1))
+
+
+def test_familiarity_output_is_the_mahalanobis_distance_of_the_penultimate_features(demo_run):
+    """The graph's second output against scipy.spatial.distance.mahalanobis (nearest class
+    mean, in the projected space of a summary fitted again here on the training patches),
+    and the stored threshold against numpy's 99th percentile of the validation scores."""
+    import json
+
+    from scipy.spatial.distance import mahalanobis
+
+    from trainkit.core import familiarity as F
+    from trainkit.judging.familiarity_graph import penultimate_features, split_head
+    from trainkit.labels.workspace import Workspace
+    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.network import load_checkpoint
+    from trainkit.learning.training import head_module_name
+
+    out, _ = demo_run
+    model, ckpt, cs = load_checkpoint(out)
+    ws = Workspace.open(out / "workspace")
+    train, val, test = (load_patch_set(ws, s, cs) for s in ("train", "val", "test"))
+    body, _ = split_head(model, head_module_name(ckpt["config"]["backbone"]))
+    summary = F.fit(penultimate_features(body, train.images), train.labels, k=64)
+    got = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": test.images})[1]
+    z = summary.project(penultimate_features(body, test.images))
+    prec = summary.precision.astype(np.float64)
+    want = [min(mahalanobis(v, m, prec) for m in summary.class_means.astype(float)) for v in z]
+    assert np.allclose(got, want, rtol=1e-3, atol=1e-3)
+    fam = json.loads(read_metadata(out / "model.onnx")["familiarity"])
+    val_scores = F.scores(summary, penultimate_features(body, val.images))
+    assert fam["threshold"] == pytest.approx(float(np.quantile(val_scores, 0.99)), abs=2e-3)
 
 
 def test_opencv_dnn_reads_the_model_and_agrees_with_onnxruntime(demo_run):

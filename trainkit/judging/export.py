@@ -18,6 +18,9 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.contract import (
+    CONTRACT_VERSION,
+    FAMILIARITY_NAME,
+    FORMAT_KEY,
     INPUT_NAME,
     OUTPUT_NAME,
     ModelInfo,
@@ -56,22 +59,30 @@ def _wrapper(model):
 def network_to_onnx(network, input_px: int, *, opset: int = DEFAULT_OPSET):
     """The graph of a trained network (Preprocess + backbone) with softmax, as an ONNX ModelProto.
 
-    Input ``image``: uint8 (N, S, S, 3) with a dynamic batch; output ``probabilities``.
-    The exporter's progress lines are kept off the console. No metadata is set here.
+    Input ``image``: uint8 (N, S, S, 3) with a dynamic batch; output ``probabilities``, and
+    ``familiarity`` too when ``network`` is a
+    :class:`~trainkit.judging.familiarity_graph.ScreenerGraph` (which applies its own
+    softmax). The exporter's progress lines are kept off the console. No metadata is set here.
     """
     import torch
+
+    from trainkit.judging.familiarity_graph import ScreenerGraph
+
+    two = isinstance(network, ScreenerGraph)
+    module = network.eval() if two else _wrapper(network)
+    names = [OUTPUT_NAME, FAMILIARITY_NAME] if two else [OUTPUT_NAME]
 
     dummy = torch.zeros((2, input_px, input_px, 3), dtype=torch.uint8)
     batch = torch.export.Dim("batch", min=1, max=4096)
     log = io.StringIO()
     with contextlib.redirect_stdout(log), contextlib.redirect_stderr(log):
         program = torch.onnx.export(
-            _wrapper(network),
+            module,
             (dummy,),
             dynamo=True,
             opset_version=opset,
             input_names=[INPUT_NAME],
-            output_names=[OUTPUT_NAME],
+            output_names=names,
             dynamic_shapes=({0: batch},),
             optimize=True,
             verbose=False,
@@ -108,8 +119,6 @@ def export_experiment(
         ExportError: the checker or the parity check failed.
     """
     import onnx
-    import onnxruntime as ort
-    import torch
 
     from trainkit import __version__
     from trainkit.learning.network import load_checkpoint
@@ -119,9 +128,9 @@ def export_experiment(
     exp = folder.path
     model, ckpt, class_set = load_checkpoint(exp)
     input_px = int(ckpt["input_px"])
-    wrapped = _wrapper(model)
+    graph, familiarity = _graph_with_familiarity(model, ckpt, class_set, input_px)
     target = Path(out) if out else folder.model_path
-    proto = network_to_onnx(model, input_px, opset=opset)
+    proto = network_to_onnx(graph, input_px, opset=opset)
     metrics = folder.read_metrics()
     experiment = ckpt["experiment"]
     pmm = experiment.get("patch_mm_range")
@@ -140,6 +149,8 @@ def export_experiment(
             kit_version=__version__,
             data_digest=str(experiment.get("data_digest")),
             test_metrics=_headline(metrics),
+            familiarity=familiarity,
+            version=CONTRACT_VERSION if familiarity else "trainkit-screener-1",
         )
     )
     onnx.helper.set_model_props(proto, meta)
@@ -155,23 +166,16 @@ def export_experiment(
             )
         # Parity against PyTorch on real patches.
         images = _sample_patches(ckpt, input_px)
-        with torch.no_grad():
-            ref = wrapped(torch.from_numpy(images)).numpy()
-        sess = ort.InferenceSession(str(tmp), providers=["CPUExecutionProvider"])
-        got = sess.run([OUTPUT_NAME], {INPUT_NAME: images})[0]
-        max_diff = float(np.max(np.abs(ref - got)))
-        same_argmax = bool(np.array_equal(ref.argmax(1), got.argmax(1)))
-        if max_diff > PARITY_ATOL or not same_argmax:
-            raise ExportError(
-                f"ONNX output differs from PyTorch on {len(images)} patches: max |dp| = {max_diff:.2e} "
-                f"(allowed {PARITY_ATOL:.0e}), identical argmax: {same_argmax}; model not written"
-            )
+        max_diff, fam_diff = _check_parity(graph, tmp, images, two=familiarity is not None)
     summary = {
         "model": str(target),
         "opset": opset,
         "bytes": target.stat().st_size,
         "parity_max_abs_diff": max_diff,
         "parity_patches": int(len(images)),
+        "familiarity_max_rel_diff": fam_diff,
+        "familiarity": familiarity,
+        "contract": meta[FORMAT_KEY],
         "batchnorm_nodes": len(left),
         "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
         "threshold": json.loads(meta["threshold"]),
@@ -181,6 +185,62 @@ def export_experiment(
 
     summary["model_card"] = str(write_model_card(exp, ckpt, summary))
     return summary
+
+
+def _check_parity(
+    graph, path: Path, images: np.ndarray, *, two: bool
+) -> tuple[float, float | None]:
+    """Compare ONNX Runtime with PyTorch on ``images``; returns (max |dp|, familiarity's
+    max relative difference or None).
+
+    Raises:
+        ExportError: probabilities differ by more than :data:`PARITY_ATOL`, the argmax
+            differs, or the familiarity differs by more than 1e-3 relative.
+    """
+    import onnxruntime as ort
+    import torch
+
+    with torch.no_grad():
+        ref = graph(torch.from_numpy(images)) if two else _wrapper(graph)(torch.from_numpy(images))
+    ref_p, ref_f = (ref[0].numpy(), ref[1].numpy()) if two else (ref.numpy(), None)
+    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    got = sess.run(None, {INPUT_NAME: images})
+    max_diff = float(np.max(np.abs(ref_p - got[0])))
+    same_argmax = bool(np.array_equal(ref_p.argmax(1), got[0].argmax(1)))
+    if max_diff > PARITY_ATOL or not same_argmax:
+        raise ExportError(
+            f"ONNX output differs from PyTorch on {len(images)} patches: max |dp| = {max_diff:.2e} "
+            f"(allowed {PARITY_ATOL:.0e}), identical argmax: {same_argmax}; model not written"
+        )
+    if ref_f is None:
+        return max_diff, None
+    rel = float(np.max(np.abs(ref_f - got[1]) / np.maximum(np.abs(ref_f), 1.0)))
+    if rel > 1e-3:
+        raise ExportError(
+            f"ONNX familiarity differs from PyTorch by {rel:.2e} (relative, allowed 1e-3) on "
+            f"{len(images)} patches; model not written"
+        )
+    return max_diff, rel
+
+
+def _graph_with_familiarity(model, ckpt: dict, class_set, input_px: int):
+    """The network with its familiarity output (contract 2) when the experiment's workspace
+    has training and validation patches; else the plain network and None (contract 1)."""
+    from trainkit.judging.familiarity_graph import fit_graph
+    from trainkit.labels.workspace import Workspace, WorkspaceError
+    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.training import head_module_name
+
+    try:
+        ws = Workspace.open(ckpt["experiment"]["workspace"])
+        train = load_patch_set(ws, "train", class_set, input_px=input_px)
+        val = load_patch_set(ws, "val", class_set, input_px=input_px)
+    except (WorkspaceError, KeyError, OSError):
+        return model, None
+    if len(train) < 2 or len(val) == 0:
+        return model, None
+    head = head_module_name(ckpt["config"]["backbone"])
+    return fit_graph(model, head, train.images, train.labels, val.images)
 
 
 def _headline(metrics: dict | None) -> dict | None:
