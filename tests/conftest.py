@@ -10,24 +10,41 @@ REPO = Path(__file__).resolve().parents[1]
 TINY = REPO / "tiny_dataset"
 
 
-class QuietCtx:
-    """The CLI context object with quiet output, for calling command functions directly."""
-
-    quiet = True
-    debug = False
-
-    @property
-    def console(self):
-        from rich.console import Console
-
-        return Console(quiet=True)
+@pytest.fixture(scope="session")
+def demo_events() -> list[tuple]:
+    """What the session's demo run reported through its DemoProgress callbacks, in order."""
+    return []
 
 
 @pytest.fixture(scope="session")
-def demo_run(tmp_path_factory) -> tuple[Path, dict]:
+def demo_run(tmp_path_factory, demo_events) -> tuple[Path, dict]:
     """Run the demo on 10 photos for 2 epochs once; returns (folder, headline)."""
-    from trainkit.demo import run_demo
+    from contextlib import contextmanager
+
+    from trainkit.demo import DemoProgress, run_demo
+
+    class Recorder(DemoProgress):
+        def section(self, title):
+            demo_events.append(("section", title))
+
+        def line(self, text, *, caution=False):
+            demo_events.append(("line", text, caution))
+
+        @contextmanager
+        def task(self, description, total=None):
+            demo_events.append(("task", description, total))
+            with super().task(description, total) as handle:  # the silent default handle
+                yield handle
+
+        def epoch_done(self, row, false_alarm_budget):
+            demo_events.append(("epoch", row["epoch"], false_alarm_budget))
+
+        def split_done(self, report):
+            demo_events.append(("split", report))
+
+        def evaluated(self, metrics, folder):
+            demo_events.append(("evaluated", metrics, folder))
 
     out = tmp_path_factory.mktemp("demo")
-    headline = run_demo(QuietCtx(), out, epochs=2, photos=10)
+    headline = run_demo(out, epochs=2, photos=10, progress=Recorder())
     return out, headline

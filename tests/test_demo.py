@@ -11,6 +11,7 @@ import pytest
 from click.testing import CliRunner
 
 from trainkit.cli import cli
+from trainkit.demo import STEPS
 from trainkit.judging.export import read_metadata
 from trainkit.labels.workspace import Workspace
 
@@ -129,3 +130,49 @@ def test_scan_lines(demo_run):
     assert all(len(rec["sha256"]) == 64 and "dominant_class" in rec for rec in lines)
     flagged = sorted(rec["frame"] for rec in lines if rec["flagged"])
     assert (out / "scan/flagged.txt").read_text().split() == flagged
+
+
+def test_demo_reports_through_its_callbacks(demo_run, demo_events):
+    """run_demo prints nothing itself: steps, tasks, epochs and results reach the callbacks."""
+    out, _ = demo_run
+    sections = [e[1] for e in demo_events if e[0] == "section"]
+    assert sections == [f"{i}/7 {title}" for i, title in enumerate(STEPS, start=1)] + ["done"]
+    assert [e[1] for e in demo_events if e[0] == "task"] == [
+        "tiling photos",
+        "training",
+        "scanning frames",
+    ]
+    history = list(csv.DictReader((out / "history.csv").open()))
+    assert [e[1] for e in demo_events if e[0] == "epoch"] == [int(r["epoch"]) for r in history]
+    (split,) = [e[1] for e in demo_events if e[0] == "split"]
+    recs = Workspace.open(out / "workspace").patches()
+    assert sum(sum(c.values()) for c in split["class_counts"].values()) <= len(recs)
+    (evaluated,) = [e for e in demo_events if e[0] == "evaluated"]
+    written = json.loads((out / "evaluation/metrics.json").read_text())
+    for key in ("class_names", "confusion_matrix", "split", "patches"):
+        assert evaluated[1][key] == written[key], key
+    for key in ("recall", "threshold", "false_alarm_rate"):
+        assert evaluated[1]["screening"][key] == pytest.approx(written["screening"][key]), key
+    assert evaluated[2] == out / "evaluation"
+    cautions = [e[1] for e in demo_events if e[0] == "line" and e[2]]
+    assert len(cautions) == 1 and "not an inspection" in cautions[0]
+
+
+def test_demo_module_does_not_import_the_command_line():
+    """The library demo must not reach into trainkit.cli (that was an import cycle)."""
+    import ast
+    import inspect
+
+    import trainkit.demo
+
+    tree = ast.parse(inspect.getsource(trainkit.demo))
+    names = [
+        ("trainkit." * bool(n.level) + (n.module or ""))
+        if isinstance(n, ast.ImportFrom)
+        else a.name
+        for n in ast.walk(tree)
+        if isinstance(n, ast.Import | ast.ImportFrom)
+        for a in n.names
+    ]
+    assert "trainkit.core.fsutil" in names  # the walk saw the imports
+    assert not [n for n in names if n.startswith(("trainkit.cli", "click", "rich"))]

@@ -1,23 +1,94 @@
-"""The end-to-end demo: the same functions the commands call, run in order on the tiny dataset.
+"""The end-to-end demo: the same library functions the commands call, run in order on the tiny dataset.
 
 The demo folder is itself an experiment folder (checkpoint, history, evaluation,
 model.onnx); the workspace, the fresh frames and the scan results are subfolders.
+:func:`run_demo` prints nothing itself: it reports through a :class:`DemoProgress`,
+whose methods do nothing unless a caller (the ``demo`` command) overrides them.
 """
 
 from __future__ import annotations
 
 import json
 import time
+from contextlib import AbstractContextManager, nullcontext
 from pathlib import Path
+from typing import Any, Protocol
 
 from trainkit.core.fsutil import atomic_path, atomic_write_text
 
-__all__ = ["run_demo", "TINY_DATASET", "tiny_dataset_dir"]
+__all__ = ["run_demo", "DemoProgress", "TaskHandle", "TINY_DATASET", "tiny_dataset_dir"]
 
 #: How tiny_dataset/ was made: `trainkit synth tiny_dataset --photos 40 --seed 2026 --size 768x512 --tile-px 128`.
 TINY_DATASET = {"n_photos": 40, "seed": 2026, "width": 768, "height": 512, "tile_px": 128}
 #: Seeds of the fresh frames the demo scans (never used for the tiny dataset's photos).
 FRAME_SEEDS = (900_001, 900_002, 900_003, 900_004, 900_005, 900_006)
+#: Scene of each fresh frame, in the order of FRAME_SEEDS.
+FRAME_SCENES = ("single", "none", "map", "multi", "single", "none")
+#: Steps of the demo, in order.
+STEPS = (
+    "tile photos into a workspace",
+    "load the shipped labels",
+    "split by photo",
+    "train (random initialisation, CPU)",
+    "evaluate on held-out photos",
+    "export ONNX",
+    "scan fresh synthetic frames",
+)
+
+
+class TaskHandle(Protocol):
+    """One long task's progress: counts done, total, and lines logged beside it."""
+
+    def update(
+        self, completed: int, total: int | None = None, description: str | None = None
+    ) -> None: ...
+
+    def advance(self, n: int = 1) -> None: ...
+
+    def log(self, text: str) -> None: ...
+
+
+class _SilentTask:
+    """A task handle that shows nothing."""
+
+    def update(
+        self, completed: int, total: int | None = None, description: str | None = None
+    ) -> None:
+        pass
+
+    def advance(self, n: int = 1) -> None:
+        pass
+
+    def log(self, text: str) -> None:
+        pass
+
+
+class DemoProgress:
+    """How :func:`run_demo` reports what it does; every method here does nothing.
+
+    Override the methods you want to show (the ``demo`` command prints them with rich).
+    """
+
+    def section(self, title: str) -> None:
+        """A step begins (``"1/7 tile photos into a workspace"``) or the demo ends (``"done"``)."""
+
+    def line(self, text: str, *, caution: bool = False) -> None:
+        """A line of plain text; ``caution`` marks the triage-aid caution."""
+
+    def task(
+        self, description: str, total: int | None = None
+    ) -> AbstractContextManager[TaskHandle]:
+        """A long task (tiling, training, scanning): a context manager yielding its handle."""
+        return nullcontext(_SilentTask())
+
+    def epoch_done(self, row: dict[str, Any], false_alarm_budget: float) -> None:
+        """One training epoch finished; ``row`` is its history.csv row."""
+
+    def split_done(self, report: dict[str, Any]) -> None:
+        """The workspace was split; ``report`` has groups and class counts per subset."""
+
+    def evaluated(self, metrics: dict[str, Any], folder: Path) -> None:
+        """The test evaluation finished; ``metrics`` is metrics.json, written in ``folder``."""
 
 
 def tiny_dataset_dir() -> Path | None:
@@ -26,7 +97,7 @@ def tiny_dataset_dir() -> Path | None:
     return here if (here / "labels.csv").is_file() else None
 
 
-def _ensure_dataset(ctx, out: Path) -> Path:
+def _ensure_dataset(progress: DemoProgress, out: Path) -> Path:
     found = tiny_dataset_dir()
     if found is not None:
         return found
@@ -35,7 +106,7 @@ def _ensure_dataset(ctx, out: Path) -> Path:
 
     target = out / "tiny_dataset"
     if not (target / "labels.csv").is_file():
-        ctx.console.print(
+        progress.line(
             "tiny_dataset/ not found beside the package; generating it (same command, same files)"
         )
         write_dataset(
@@ -49,49 +120,21 @@ def _ensure_dataset(ctx, out: Path) -> Path:
     return target
 
 
-def _step(ctx, n: int, text: str) -> None:
-    ctx.console.rule(f"[bold]{n}/7 {text}")
-
-
-def run_demo(
-    ctx, out_dir: str | Path, *, epochs: int | None = None, photos: int | None = None
-) -> dict:
-    """Run tile -> labels -> split -> train -> evaluate -> export -> scan; returns the headline figures."""
-    from PIL import Image
-
+def _tile(progress: DemoProgress, data: Path, out: Path, photos: int | None):
+    """Step 1: a workspace of the (first ``photos``) tiny-dataset photos; returns it and the files."""
     from trainkit.core.decode import list_images
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.sidecar import read_sidecar
     from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
-    from trainkit.labels.labels_io import import_csv
-    from trainkit.labels.splits import split_workspace
     from trainkit.labels.workspace import Workspace
-    from trainkit.learning.config import load_train_config
-    from trainkit.screener.scan import scan_frames
-    from trainkit.synth import SynthOptions, generate_photo
 
-    from .cli import print_evaluation, progress_bar, run_training
-
-    t_start = time.perf_counter()
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    data = _ensure_dataset(ctx, out)
-    ctx.console.print(
-        "[bold]trainkit demo[/bold]: an invented scenario on synthetic concrete photos. The network is "
-        "trained from random initialisation (no pretrained weights are downloaded), so its figures show "
-        "the workflow, not what a fine-tuned backbone reaches."
-    )
-
-    _step(ctx, 1, "tile photos into a workspace")
     files = list_images([data / "photos"])
     if photos:
         files = files[:photos]
     ws = Workspace.create(
         out / "workspace", class_set=load_class_set("orientation"), tile_px=TINY_DATASET["tile_px"]
     )
-    with progress_bar(ctx, "tiling photos", len(files)) as bar:
+    with progress.task("tiling photos", len(files)) as bar:
         tiled = tile_into_workspace(
             files,
             ws,
@@ -99,66 +142,159 @@ def run_demo(
             group_by="photo",
             progress=lambda i, n, name: bar.update(i, n),
         )
-    ctx.console.print(
+    progress.line(
         f"{tiled['photos_added']} photos, {tiled['patches_added']} patches "
         f"({tiled['patches_flagged']} with quality flags)"
     )
+    return ws, files
 
-    _step(ctx, 2, "load the shipped labels")
+
+def _load_labels(
+    progress: DemoProgress, ws, data: Path, out: Path, files: list[Path], subset: bool
+) -> None:
+    """Step 2: import the shipped labels of the photos in use (``subset``: not all), once."""
+    from trainkit.labels.labels_io import import_csv
+
     labels_csv = data / "labels.csv"
-    if photos:  # keep only the rows of the photos in use
+    if subset:  # keep only the rows of the photos in use
         keep = {f.name for f in files}
         lines = labels_csv.read_text(encoding="utf-8").splitlines()
         labels_csv = out / "labels-subset.csv"
-        labels_csv.write_text(
+        atomic_write_text(
+            labels_csv,
             "\n".join([lines[0], *[ln for ln in lines[1:] if ln.split(",")[0] in keep]]) + "\n",
-            encoding="utf-8",
         )
-    if not any(r.labelled for r in ws.patches()):
-        n = import_csv(ws, labels_csv, reviewer="synth-ground-truth")
-        ctx.console.print(
-            f"{n} labels loaded (ambiguous patches are stored as 'unsure' and kept out of training)"
-        )
-    else:
-        ctx.console.print("labels already loaded (resumed demo)")
+    if any(r.labelled for r in ws.patches()):
+        progress.line("labels already loaded (resumed demo)")
+        return
+    n = import_csv(ws, labels_csv, reviewer="synth-ground-truth")
+    progress.line(
+        f"{n} labels loaded (ambiguous patches are stored as 'unsure' and kept out of training)"
+    )
 
-    _step(ctx, 3, "split by photo")
-    rep = split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0)
-    from .cli import _print_split
 
-    _print_split(ctx, rep)
+def _train(progress: DemoProgress, ws, out: Path, epochs: int | None) -> dict:
+    """Step 4: train the demo recipe, resuming an interrupted run."""
+    from trainkit.learning.config import load_train_config
+    from trainkit.learning.training import train
 
-    _step(ctx, 4, "train (random initialisation, CPU)")
     cfg = load_train_config("demo", {"epochs": epochs})
-    trained = run_training(ctx, ws, out, cfg, resume=True)
+    with progress.task("training") as bar:
 
-    _step(ctx, 5, "evaluate on held-out photos")
-    metrics = evaluate_experiment(out, split="test")
-    print_evaluation(ctx, metrics, out / "evaluation")
+        def on_start(n_epochs: int, n: int) -> None:
+            bar.update(0, n_epochs * n, f"training ({n_epochs} epochs x {n} patches)")
 
-    _step(ctx, 6, "export ONNX")
-    exported = export_experiment(out)
-    ctx.console.print(f"{exported['model']}: parity max |dp| {exported['parity_max_abs_diff']:.1e}")
+        return train(
+            ws,
+            out,
+            cfg,
+            resume=True,
+            on_start=on_start,
+            on_epoch=lambda row: progress.epoch_done(row, cfg.false_alarm_budget),
+            on_batch=bar.advance,
+            on_note=bar.log,
+        )
 
-    _step(ctx, 7, "scan fresh synthetic frames")
+
+def _scan_fresh_frames(progress: DemoProgress, model: Path, out: Path) -> dict:
+    """Step 7: write the fresh synthetic frames once and scan them."""
+    from PIL import Image
+
+    from trainkit.screener.scan import scan_frames
+    from trainkit.synth import SynthOptions, generate_photo
+
     frames_dir = out / "frames"
     frames_dir.mkdir(exist_ok=True)
-    scenes = ("single", "none", "map", "multi", "single", "none")
-    for seed, scene in zip(FRAME_SEEDS, scenes, strict=True):
+    for seed, scene in zip(FRAME_SEEDS, FRAME_SCENES, strict=True):
         path = frames_dir / f"frame-{seed}-{scene}.jpg"
         if not path.exists():
             ph = generate_photo(seed, SynthOptions(height=512, width=768, scene=scene))
             with atomic_path(path) as tmp:
                 Image.fromarray(ph.image).save(tmp, quality=90)
-    with progress_bar(ctx, "scanning frames", len(FRAME_SEEDS)) as bar:
-        scanned = scan_frames(
-            exported["model"], [frames_dir], out / "scan", progress=lambda d, n: bar.update(d, n)
+    with progress.task("scanning frames", len(FRAME_SEEDS)) as bar:
+        return scan_frames(
+            model, [frames_dir], out / "scan", progress=lambda d, n: bar.update(d, n)
         )
 
-    seconds = time.perf_counter() - t_start
+
+def _f3(v: float | None) -> str:  # metrics.json writes undefined values as null
+    return "n/a" if v is None else f"{v:.3f}"
+
+
+def _closing_lines(headline: dict, metrics: dict, out: Path) -> list[str]:
+    s = metrics["screening"]
+    ci = s["recall_interval"]
+    return [
+        f"finished in {headline['seconds'] / 60:.1f} min. Test screening recall {_f3(s['recall'])} "
+        f"[{_f3(ci['low'])}, {_f3(ci['high'])}] (Wilson 95%), false-alarm rate "
+        f"{_f3(s['false_alarm_rate'])}, 6-class accuracy {metrics['accuracy']:.3f}; "
+        f"{headline['train_images_per_second']:.0f} training images/s.",
+        f"  model         {out / 'model.onnx'}",
+        f"  metrics       {out / 'evaluation' / 'metrics.json'}",
+        f"  report        {out / 'evaluation' / 'report.html'}",
+        f"  scan results  {out / 'scan' / 'frames.jsonl'} (overlays in {out / 'scan' / 'overlays'})",
+        f"  workspace     {out / 'workspace'}",
+    ]
+
+
+def run_demo(
+    out_dir: str | Path,
+    *,
+    epochs: int | None = None,
+    photos: int | None = None,
+    progress: DemoProgress | None = None,
+) -> dict:
+    """Run tile -> labels -> split -> train -> evaluate -> export -> scan on the tiny dataset.
+
+    Args:
+        out_dir: the demo folder (an experiment folder; created, resumed when present).
+        epochs: override the demo recipe's epochs.
+        photos: use only the first N photos of the tiny dataset (quicker, noisier).
+        progress: where to report steps, progress and results (default: nowhere).
+
+    Returns:
+        The headline figures, also written to ``out_dir/demo-summary.json``.
+    """
+    from trainkit.judging.evaluation import evaluate_experiment
+    from trainkit.judging.export import export_experiment
+    from trainkit.labels.splits import split_workspace
+
+    progress = progress or DemoProgress()
+    t_start = time.perf_counter()
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    data = _ensure_dataset(progress, out)
+    progress.line(
+        "trainkit demo: an invented scenario on synthetic concrete photos. The network is "
+        "trained from random initialisation (no pretrained weights are downloaded), so its "
+        "figures show the workflow, not what a fine-tuned backbone reaches."
+    )
+    steps = iter(enumerate(STEPS, start=1))
+
+    def next_step() -> None:
+        n, title = next(steps)
+        progress.section(f"{n}/{len(STEPS)} {title}")
+
+    next_step()
+    ws, files = _tile(progress, data, out, photos)
+    next_step()
+    _load_labels(progress, ws, data, out, files, subset=bool(photos))
+    next_step()
+    progress.split_done(split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0))
+    next_step()
+    trained = _train(progress, ws, out, epochs)
+    next_step()
+    metrics = evaluate_experiment(out, split="test")
+    progress.evaluated(metrics, out / "evaluation")
+    next_step()
+    exported = export_experiment(out)
+    progress.line(f"{exported['model']}: parity max |dp| {exported['parity_max_abs_diff']:.1e}")
+    next_step()
+    scanned = _scan_fresh_frames(progress, exported["model"], out)
+
     s = metrics["screening"]
     headline = {
-        "seconds": round(seconds, 1),
+        "seconds": round(time.perf_counter() - t_start, 1),
         "test_patches": metrics["patches"],
         "screening_recall": s["recall"],
         "screening_recall_interval": [s["recall_interval"]["low"], s["recall_interval"]["high"]],
@@ -169,23 +305,8 @@ def run_demo(
         "frames_flagged": f"{scanned['flagged']}/{scanned['frames']}",
     }
     atomic_write_text(out / "demo-summary.json", json.dumps(headline, indent=2))
-    ctx.console.rule("[bold]done")
-
-    def f3(v) -> str:  # metrics.json writes undefined values as null
-        return "n/a" if v is None else f"{v:.3f}"
-
-    ctx.console.print(
-        f"finished in {seconds / 60:.1f} min. Test screening recall {f3(s['recall'])} "
-        f"[{f3(s['recall_interval']['low'])}, {f3(s['recall_interval']['high'])}] (Wilson 95%), false-alarm rate "
-        f"{f3(s['false_alarm_rate'])}, 6-class accuracy {metrics['accuracy']:.3f}; "
-        f"{trained['median_images_per_second']:.0f} training images/s."
-    )
-    ctx.console.print(f"  model         {out / 'model.onnx'}")
-    ctx.console.print(f"  metrics       {out / 'evaluation' / 'metrics.json'}")
-    ctx.console.print(f"  report        {out / 'evaluation' / 'report.html'}")
-    ctx.console.print(
-        f"  scan results  {out / 'scan' / 'frames.jsonl'} (overlays in {out / 'scan' / 'overlays'})"
-    )
-    ctx.console.print(f"  workspace     {out / 'workspace'}")
-    ctx.console.print(f"[dim]{metrics['caution']}[/dim]")
+    progress.section("done")
+    for line in _closing_lines(headline, metrics, out):
+        progress.line(line)
+    progress.line(metrics["caution"], caution=True)
     return headline

@@ -1,0 +1,52 @@
+"""`trainkit export`: export an experiment's screener to ONNX, optionally quantized."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from trainkit.cli.options import experiment_argument
+from trainkit.cli.output import Ctx, user_errors
+
+__all__ = ["export"]
+
+
+@click.command(epilog="Example: trainkit export experiments/first --quantize int8")
+@experiment_argument
+@click.option(
+    "--opset", type=click.IntRange(18, 23), default=18, show_default=True, help="ONNX opset."
+)
+@click.option(
+    "--quantize",
+    type=click.Choice(["int8"]),
+    default=None,
+    help="Also write EXP/model-int8.onnx, kept only if test recall holds and it is faster.",
+)
+@click.pass_obj
+def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
+    """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
+    from trainkit.judging.export import export_experiment, quantize_experiment
+
+    console = ctx.console
+    with user_errors(ctx):
+        with console.status("exporting to ONNX and checking parity"):
+            res = export_experiment(exp_dir, opset=opset)
+        console.print(
+            f"wrote {res['model']} ({res['bytes'] / 1e6:.2f} MB, {res['exporter']}); parity max "
+            f"|dp| {res['parity_max_abs_diff']:.1e} on {res['parity_patches']} patches; "
+            f"threshold {res['threshold']:.3f}"
+            + (
+                ""
+                if res["evaluated"]
+                else " (not evaluated yet: run `trainkit evaluate` first for a tuned threshold)"
+            )
+        )
+        if quantize:
+            with console.status("quantizing to int8 and checking recall and speed"):
+                q = quantize_experiment(exp_dir)
+            console.print(
+                f"wrote {q['model']} ({'per-channel' if q['per_channel'] else 'per-tensor'}): "
+                f"test crack recall {q['recall']:.3f} (float {q['float_recall']:.3f}), "
+                f"{q['speedup']:.2f}x faster"
+            )

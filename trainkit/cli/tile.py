@@ -1,0 +1,178 @@
+"""`trainkit tile`: cut photos into patches in a workspace."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import click
+
+from trainkit.cli.options import (
+    classes_option,
+    gather,
+    scale_options,
+    tile_px_option,
+    workers_option,
+)
+from trainkit.cli.output import EXIT_SKIPPED, EXIT_USAGE, Ctx, fail, progress_bar, user_errors, warn
+from trainkit.intake.scale import ScaleOptions
+
+__all__ = ["tile", "TileSettings"]
+
+
+@dataclass(frozen=True)
+class TileSettings:
+    """How photos are cut and queued (the tiling options of `trainkit tile`)."""
+
+    tile_px: int
+    tile_mm: float | None
+    overlap: float
+    group_by: str
+    group_pattern: str | None
+    skip_flagged: bool
+    crop_format: str
+    workers: int | None
+    max_megapixels: float
+
+
+@click.command(
+    epilog="Example: trainkit tile photos/ --workspace ws --tile-px 224 --sidecar photos/scale.csv"
+)
+@click.argument("photos", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
+@click.option(
+    "--workspace",
+    "-w",
+    "ws_dir",
+    required=True,
+    type=click.Path(file_okay=False, path_type=Path),
+    help="Workspace folder (created if missing).",
+)
+@tile_px_option("Patch size in pixels (the model's input size).", default=224)
+@click.option(
+    "--tile-mm",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Cut patches covering this many mm of surface (needs scale), resampled to --tile-px.",
+)
+@click.option(
+    "--overlap",
+    type=click.FloatRange(0, 0.9),
+    default=0.0,
+    show_default=True,
+    help="Overlap between neighbouring patches as a fraction.",
+)
+@click.option(
+    "--sidecar",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="CSV: photo plus any of gsd_mm; distance_m,focal_mm,sensor_width_mm; structure; date; roi.",
+)
+@scale_options
+@click.option(
+    "--group-by",
+    type=click.Choice(["sidecar", "photo"]),
+    default="sidecar",
+    show_default=True,
+    help="Split groups: the sidecar's structure column or --group-pattern (photo when absent), "
+    "or each photo.",
+)
+@click.option(
+    "--group-pattern",
+    default=None,
+    metavar="REGEX",
+    help="Regex on the photo's relative path with named groups 'group' and 'date', e.g. "
+    "'^(?P<group>[^/]+)/(?P<date>[0-9-]{10})/'.",
+)
+@click.option(
+    "--skip-flagged", is_flag=True, help="Leave patches with quality flags out of the review queue."
+)
+@click.option(
+    "--crop-format",
+    type=click.Choice(["tiff", "png"]),
+    default="tiff",
+    show_default=True,
+    help="Lossless crop files: uncompressed TIFF (fast) or PNG (smaller, slower to write).",
+)
+@classes_option("Class set of a new workspace: orientation, presence or a YAML file.")
+@click.option(
+    "--import-labels",
+    type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    help="CSV photo,x0,y0,x1,y1,label of existing labels to load (empty label = unsure).",
+)
+@workers_option("Parallel processes (default: all cores).")
+@click.option(
+    "--max-megapixels",
+    type=click.FloatRange(min=1),
+    default=250.0,
+    show_default=True,
+    help="Refuse larger images (decompression-bomb guard); raise it for trusted huge files.",
+)
+@click.pass_obj
+@gather(TileSettings, "settings")
+def tile(
+    ctx: Ctx,
+    photos: tuple[Path, ...],
+    ws_dir: Path,
+    sidecar: Path | None,
+    classes: str,
+    import_labels: Path | None,
+    scale: ScaleOptions,
+    settings: TileSettings,
+) -> None:
+    """Cut photos into patches in a workspace, with scale, quality flags and provenance.
+
+    Scale per photo, first found wins: sidecar gsd_mm; sidecar camera geometry;
+    --gsd-mm; --distance-m with --focal-mm and --sensor-width-mm; EXIF focal length
+    with a distance. Re-running on the same photos adds only what is new.
+    """
+    from trainkit.core.decode import find_images
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.intake.sidecar import read_sidecar
+    from trainkit.intake.tiling import tile_into_workspace
+    from trainkit.labels.labels_io import import_csv
+    from trainkit.labels.workspace import Workspace
+
+    with user_errors(ctx):
+        found = find_images(list(photos))
+        if not found:
+            fail(f"no image files found in {', '.join(map(str, photos))}")
+        side = read_sidecar(sidecar) if sidecar else {}
+        ws = Workspace.create(ws_dir, class_set=load_class_set(classes), tile_px=settings.tile_px)
+        with progress_bar(ctx, "tiling photos", len(found)) as bar:
+            res = tile_into_workspace(
+                [p for p, _ in found],
+                ws,
+                overlap=settings.overlap,
+                tile_mm=settings.tile_mm,
+                sidecar=side,
+                scale=scale,
+                group_by=settings.group_by,
+                group_pattern=settings.group_pattern,
+                skip_flagged=settings.skip_flagged,
+                crop_format=settings.crop_format,
+                workers=settings.workers,
+                max_pixels=int(settings.max_megapixels * 1e6),
+                roots={p: r for p, r in found if r is not None},
+                progress=lambda i, n, name: bar.update(i, n),
+            )
+        for p in res["problems"]:
+            warn(p)
+        ctx.console.print(_summary(res, settings.skip_flagged, ws.root))
+        if import_labels:
+            n = import_csv(ws, import_labels)
+            ctx.console.print(f"imported {n} labels from {import_labels}")
+    if res["photos_skipped"] and not (
+        res["photos_added"] or res["photos_already_present"] or res["photos_moved"]
+    ):
+        raise SystemExit(EXIT_USAGE)  # nothing could be tiled
+    if res["photos_skipped"]:
+        raise SystemExit(EXIT_SKIPPED)
+
+
+def _summary(res: dict, skip_flagged: bool, root: Path) -> str:
+    return (
+        f"{res['photos_added']} photos added, {res['photos_already_present']} already present, "
+        f"{res['photos_moved']} moved, {res['photos_skipped']} skipped; "
+        f"{res['patches_added']} patches, {res['patches_flagged']} with quality flags"
+        + (f" ({res['patches_left_out_of_review']} left out of review)" if skip_flagged else "")
+        + f" -> {root}"
+    )
