@@ -78,10 +78,11 @@ def test_no_photo_in_two_subsets(demo_run):
 def test_onnx_contract(demo_run):
     out, _ = demo_run
     sess = ort.InferenceSession(str(out / "model.onnx"), providers=["CPUExecutionProvider"])
-    (inp,), (outp,) = sess.get_inputs(), sess.get_outputs()
+    (inp,), (outp, fam) = sess.get_inputs(), sess.get_outputs()
     assert inp.name == "image" and inp.type == "tensor(uint8)" and inp.shape[1:] == [128, 128, 3]
     assert isinstance(inp.shape[0], str)  # dynamic batch
     assert outp.name == "probabilities" and outp.type == "tensor(float)"
+    assert fam.name == "familiarity" and fam.type == "tensor(float)"  # contract 2
     for n in (1, 3):
         probs = sess.run(None, {"image": np.zeros((n, 128, 128, 3), np.uint8)})[0]
         assert probs.shape == (n, 6)

@@ -49,14 +49,31 @@ def _is_type_checking(node: ast.If) -> bool:
     )
 
 
-def imported_names(path: Path, name: str) -> list[str]:
-    """Every absolute name a module imports (``pkg.mod`` and ``pkg.mod.attr``), lazily or not."""
+def _catches_import_error(node: ast.Try) -> bool:
+    names = {"ImportError", "ModuleNotFoundError"}
+    for h in node.handlers:
+        kinds = h.type.elts if isinstance(h.type, ast.Tuple) else [h.type]
+        if any(isinstance(k, ast.Name) and k.id in names for k in kinds):
+            return True
+    return False
+
+
+def imported_names(path: Path, name: str, *, skip_optional: bool = False) -> list[str]:
+    """Every absolute name a module imports (``pkg.mod`` and ``pkg.mod.attr``), lazily or not.
+
+    With ``skip_optional``, imports inside ``try`` blocks that catch ImportError (an optional
+    accelerator, with a fallback when it is missing) are left out.
+    """
     is_package = path.name == "__init__.py"
     found: list[str] = []
 
     def visit(node: ast.AST) -> None:
         if isinstance(node, ast.If) and _is_type_checking(node):
             for child in node.orelse:
+                visit(child)
+            return
+        if skip_optional and isinstance(node, ast.Try) and _catches_import_error(node):
+            for child in [*node.handlers, *node.orelse, *node.finalbody]:
                 visit(child)
             return
         if isinstance(node, ast.Import):
@@ -170,7 +187,7 @@ def test_core_and_screener_import_nothing_heavy(room):
         checked += 1
         bad = [
             n
-            for n in imported_names(path, name)
+            for n in imported_names(path, name, skip_optional=True)
             if n.startswith(HEAVY_ROOMS) or n.split(".")[0] in HEAVY_PACKAGES
         ]
         assert not bad, f"{name} imports {sorted(set(bad))}"
