@@ -174,3 +174,43 @@ def test_verify_counts_unresolved_cells_and_applies_the_gate(scanned, tmp_path):
     assert saved["estimate"] == res["estimate"]
     html = (out / "verification.html").read_text()
     assert "triage aid" in html and html.rstrip().endswith("</html>")
+
+
+def test_the_job_loop_through_the_command_line(tmp_path):
+    """scan -> sample -> answers through sample.csv and `review --import-csv` -> verify."""
+    from click.testing import CliRunner
+
+    from trainkit.cli import cli
+
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.5)
+    frames, truth = make_job(tmp_path)
+    ws = tmp_path / "ws"
+    new_ws(ws)
+    run = CliRunner().invoke
+    scan_out = tmp_path / "scan"
+    assert (
+        run(
+            cli, ["-q", "scan", str(frames), "--model", str(model), "--out", str(scan_out)]
+        ).exit_code
+        == 0
+    )
+    r = run(cli, ["sample", str(scan_out), "--workspace", str(ws), "--cells", "70"])
+    assert r.exit_code == 2 and "--seed is required" in r.output
+    r = run(cli, ["sample", str(scan_out), "--workspace", str(ws), "--cells", "70", "--seed", "2"])
+    assert r.exit_code == 0, r.output
+    assert "70 cells drawn" in r.output and "trainkit verify" in r.output
+    path = scan_out / "sample.csv"
+    rows = list(csv.DictReader(path.open()))
+    for row in rows:
+        box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
+        row["label"] = "crack" if truth[(row["frame"].rsplit("/", 1)[1], box)] else "none"
+    with path.open("w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+    r = run(cli, ["review", str(ws), "--reviewer", "ana", "--import-csv", str(path)])
+    assert r.exit_code == 0, r.output
+    r = run(cli, ["verify", str(scan_out), "--workspace", str(ws), "--require-recall", "0.99"])
+    assert r.exit_code == 3 and "REFUSED" in r.output and "70 answered cells" in r.output
+    r = run(cli, ["verify", str(scan_out), "--workspace", str(ws), "--json"])
+    assert r.exit_code == 0 and json.loads(r.output)["cells_answered"] == 70

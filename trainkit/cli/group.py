@@ -10,12 +10,14 @@ from trainkit.cli.evaluate import evaluate
 from trainkit.cli.export import export
 from trainkit.cli.output import Ctx
 from trainkit.cli.review import review
+from trainkit.cli.sample import sample
 from trainkit.cli.scan import scan
 from trainkit.cli.split import split
 from trainkit.cli.status import status
 from trainkit.cli.synth import synth
 from trainkit.cli.tile import tile
 from trainkit.cli.train import train
+from trainkit.cli.verify import verify
 
 __all__ = ["cli", "EPILOG_CAUTION"]
 
@@ -38,10 +40,13 @@ def cli(click_ctx: click.Context, quiet: bool, debug: bool) -> None:
 
     \b
     Workflow:  synth/photos -> tile -> review -> split -> train -> evaluate -> export -> scan
+    Each job:  scan -> sample -> review -> verify
     Try it:    trainkit demo --out demo-output
     """
     click_ctx.obj = Ctx(quiet, debug)
 
 
-for _command in (synth, tile, split, train, evaluate, export, scan, review, status, demo):
+for _command in (
+    synth, tile, split, train, evaluate, export, scan, sample, verify, review, status, demo
+):  # fmt: skip
     cli.add_command(_command)

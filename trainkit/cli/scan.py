@@ -89,5 +89,13 @@ def scan(
             f"{res['errors']} unreadable in this run -> {res['frames_file']}"
         )
         ctx.console.print(recorded_line(res))
+        if res.get("unfamiliar_recorded"):
+            ctx.console.print(
+                f"{res['unfamiliar_recorded']} frames look unlike the model's training data: "
+                "its recall figures do not apply to them; check this job with "
+                f"`trainkit sample {out_dir} --workspace WS --cells 300 --seed S`"
+            )
+        for note in res.get("notes", []):
+            ctx.console.print(f"note: {note}")
     if exit_code(res):
         raise SystemExit(exit_code(res))
