@@ -214,3 +214,38 @@ def test_the_job_loop_through_the_command_line(tmp_path):
     assert r.exit_code == 3 and "REFUSED" in r.output and "70 answered cells" in r.output
     r = run(cli, ["verify", str(scan_out), "--workspace", str(ws), "--json"])
     assert r.exit_code == 0 and json.loads(r.output)["cells_answered"] == 70
+
+
+def test_a_job_check_is_recorded_with_the_model_and_on_its_card(demo_run, tmp_path):
+    """The demo's exported model scans two fresh synthetic frames; the check of that job is
+    recorded in the experiment (jobs.json), on the model card and in `status`."""
+    import shutil
+
+    from trainkit.learning.experiment import Experiment
+    from trainkit.synth import SynthOptions, generate_photo
+
+    out, _ = demo_run
+    exp = tmp_path / "exp"
+    shutil.copytree(out, exp, ignore=shutil.ignore_patterns("workspace", "scan*"))
+    frames = tmp_path / "frames"
+    frames.mkdir()
+    for seed in (41, 42):
+        photo = generate_photo(seed, SynthOptions(width=512, height=384))
+        Image.fromarray(photo.image).save(frames / f"frame-{seed}.png")
+    scan_out = tmp_path / "scan"
+    scan_frames(exp / "model.onnx", [frames], scan_out)
+    assert json.loads((scan_out / "scan.json").read_text())["model"] == str(exp / "model.onnx")
+    ws = Workspace.create(tmp_path / "ws", class_set=load_class_set("orientation"), tile_px=128)
+    sample_scan(scan_out, ws, cells=20, seed=1)
+    cells = ws.job_cells(ws.jobs()[0]["name"])
+    ws.add_labels(
+        [(c["patch_id"], "map" if c["stratum"] == "flagged" else "none") for c in cells],
+        reviewer="sim",
+    )
+    res = verify_scan(scan_out, ws)
+    assert res["recorded_in"] == str(exp)
+    folder = Experiment(exp)
+    assert [j["job"] for j in folder.read_jobs()] == ["scan"]
+    card = folder.card_path.read_text(encoding="utf-8")
+    assert "## Jobs checked" in card and "| scan |" in card
+    assert folder.status()["jobs_checked"] == 1

@@ -112,10 +112,65 @@ def verify_scan(
         "created": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "caution": CAUTION,
     }
+    model = _scan_model(scan_dir)
+    result["model"] = model
     result = json_ready(result)
     atomic_write_json(scan_dir / VERIFICATION_FILE, result, allow_nan=False)
     atomic_write_text(scan_dir / VERIFICATION_REPORT, job_report(result))
+    result["recorded_in"] = _record_in_experiment(result, model)
     return result
+
+
+def _scan_model(scan_dir: Path) -> dict | None:
+    """What ``SCAN/scan.json`` says of the model that made the scan (None for older scans)."""
+    import json
+
+    path = scan_dir / "scan.json"
+    return json.loads(path.read_text(encoding="utf-8")) if path.is_file() else None
+
+
+def _record_in_experiment(result: dict, model: dict | None) -> str | None:
+    """Add the job to the model's experiment folder (jobs.json, model card) when the scanned
+    model is that folder's own model.onnx; returns the folder, or None."""
+    from trainkit.learning.experiment import Experiment
+
+    if not model:
+        return None
+    folder = Experiment(Path(model["model"]).parent)
+    if Path(model["model"]).name != Experiment.MODEL or not folder.checkpoint_path.is_file():
+        return None
+    est = result["estimate"]
+
+    def f(v):
+        return "n/a" if v is None else f"{v:.3f}"
+
+    r, fa = est["recall"], est["false_alarm_rate"]
+    folder.record_job(
+        {
+            "job": result["job"],
+            "scan": result["scan"],
+            "checked": result["created"],
+            "cells_answered": result["cells_answered"],
+            "recall": r,
+            "false_alarm_rate": fa,
+            "flagged_share": est["flagged_share"],
+            "gate": result["gate"],
+            "summary": f"recall {f(r['estimate'])} [{f(r['low'])}, {f(r['high'])}], false alarms "
+            f"{f(fa['estimate'])} from {result['cells_answered']} cells",
+        }
+    )
+    _rewrite_card(folder)
+    return str(folder.path)
+
+
+def _rewrite_card(folder) -> None:
+    """Write the model card again so it lists the job just checked."""
+    import torch
+
+    from trainkit.judging.model_card import write_model_card
+
+    ckpt = torch.load(folder.checkpoint_path, map_location="cpu", weights_only=True)
+    write_model_card(folder.path, ckpt, folder.read_export())
 
 
 def _suggested_threshold(

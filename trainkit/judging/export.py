@@ -181,9 +181,12 @@ def export_experiment(
         "threshold": json.loads(meta["threshold"]),
         "evaluated": metrics is not None,
     }
+    from trainkit.core.fsutil import atomic_write_json
     from trainkit.judging.model_card import write_model_card
 
     summary["model_card"] = str(write_model_card(exp, ckpt, summary))
+    if target == folder.model_path:  # the folder's own model: its record stays beside it
+        atomic_write_json(folder.export_path, summary)
     return summary
 
 

@@ -361,6 +361,30 @@ def _limits(experiment: dict, metrics: dict | None, synthetic: bool | None) -> l
     return lines
 
 
+def _jobs(jobs: list[dict] | None) -> list[str]:
+    """The jobs this model was checked on with `trainkit verify`, each with its intervals."""
+    lines = ["## Jobs checked", ""]
+    if not jobs:
+        return lines + [
+            "- None yet. Its test figures hold only for photos like its test set; on each new "
+            "job, check it on that job's own frames (`trainkit sample`, `trainkit verify`).",
+            "",
+        ]
+    lines += [
+        "| job | checked | answered cells | recall (95% interval) | false-alarm rate (95% interval) | verdict |",
+        "|---|---|---|---|---|---|",
+    ]
+    for j in jobs:
+        r, fa = j["recall"], j["false_alarm_rate"]
+        verdict = (j.get("gate") or {}).get("verdict", "no gate asked").split(":")[0]
+        lines.append(
+            f"| {j['job']} | {j['checked']} | {j['cells_answered']} | "
+            f"{_f(r['estimate'])} ({_f(r['low'])}-{_f(r['high'])}) | "
+            f"{_f(fa['estimate'])} ({_f(fa['low'])}-{_f(fa['high'])}) | {verdict} |"
+        )
+    return lines + ["", "Each row holds for that job's frames only.", ""]
+
+
 def build_model_card(
     ckpt: dict,
     *,
@@ -371,6 +395,7 @@ def build_model_card(
     name: str | None = None,
     kit_version: str | None = None,
     created: str | None = None,
+    jobs: list[dict] | None = None,
 ) -> str:
     """The model card's Markdown text.
 
@@ -383,6 +408,7 @@ def build_model_card(
         name: the experiment's name shown in the title.
         kit_version: trainkit version (default: the installed one).
         created: timestamp shown on the card (default: now, UTC).
+        jobs: the job checks recorded for this model (``jobs.json``), oldest first.
 
     Returns:
         The card as Markdown text ending in a newline.
@@ -434,6 +460,7 @@ def build_model_card(
     lines += _model(ckpt, experiment, export)
     lines += _metrics(metrics)
     lines += _threshold(metrics, export)
+    lines += _jobs(jobs)
     lines += _limits(experiment, metrics, synthetic)
     lines += [
         "## Cautions",
@@ -469,6 +496,7 @@ def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None
         export=export,
         synthetic=synthetic_training_data(experiment.get("workspace")),
         name=exp.resolve().name,
+        jobs=folder.read_jobs(),
     )
     target = folder.card_path
     atomic_write_text(target, text)

@@ -14,7 +14,9 @@ Layout::
       checkpoint.pt          the chosen epoch's weights, recipe and class set
       evaluation/            metrics.json, predictions.csv, report.html, plots
       model.onnx             the exported screener; model-int8.onnx when kept
-      model-card.md          written beside every export
+      export.json            what the export measured (parity, contract, familiarity)
+      jobs.json              the jobs this model was checked on (trainkit verify)
+      model-card.md          written beside every export, and again after each job check
 
 Migration: folders written before the rename hold ``config.yaml``, ``last.pt`` and
 ``evaluation/confusion_matrix.png``; :meth:`Experiment.migrate` renames them once,
@@ -54,6 +56,8 @@ class Experiment:
     MODEL = "model.onnx"
     MODEL_INT8 = "model-int8.onnx"
     CARD = "model-card.md"
+    EXPORT = "export.json"
+    JOBS = "jobs.json"
     EVALUATION = "evaluation"
     METRICS = "metrics.json"
     PREDICTIONS = "predictions.csv"
@@ -99,6 +103,14 @@ class Experiment:
     @property
     def card_path(self) -> Path:
         return self.path / self.CARD
+
+    @property
+    def export_path(self) -> Path:
+        return self.path / self.EXPORT
+
+    @property
+    def jobs_path(self) -> Path:
+        return self.path / self.JOBS
 
     @property
     def evaluation_dir(self) -> Path:
@@ -147,6 +159,21 @@ class Experiment:
         """The contents of ``evaluation/metrics.json``, or None before evaluation."""
         return _read_json(self.metrics_path)
 
+    def read_export(self) -> dict | None:
+        """The export summary (``export.json``), or None before export."""
+        return _read_json(self.export_path)
+
+    def read_jobs(self) -> list[dict]:
+        """The job checks recorded for this model (``jobs.json``), oldest first."""
+        return (_read_json(self.jobs_path) or {}).get("jobs", [])
+
+    def record_job(self, record: dict) -> None:
+        """Add (or replace, by job name) one job check in ``jobs.json``, atomically."""
+        from trainkit.core.fsutil import atomic_write_json
+
+        jobs = [j for j in self.read_jobs() if j.get("job") != record.get("job")]
+        atomic_write_json(self.jobs_path, {"jobs": [*jobs, record]})
+
     def read_history(self) -> list[dict[str, str]]:
         """The rows of ``history.csv`` as dicts of strings (empty before training)."""
         if not self.history_path.exists():
@@ -175,6 +202,11 @@ class Experiment:
             ci = s["recall_interval"]
             info["screening_recall"] = f"{s['recall']:.3f} [{ci['low']:.3f}, {ci['high']:.3f}]"
             info["threshold"] = s["threshold"]
+        jobs = self.read_jobs()
+        if jobs:
+            last = jobs[-1]
+            info["jobs_checked"] = len(jobs)
+            info["latest_job"] = f"{last['job']}: {last['summary']}"
         return info
 
 

@@ -35,7 +35,7 @@ import numpy as np
 
 from trainkit.core.cores import usable_cores
 from trainkit.core.decode import PhotoError, find_images, read_rgb_fast
-from trainkit.core.fsutil import atomic_path, atomic_write_text
+from trainkit.core.fsutil import atomic_path, atomic_write_json, atomic_write_text
 from trainkit.screener.model import FramePatches, Screener
 
 __all__ = [
@@ -52,6 +52,8 @@ __all__ = [
 ]
 
 FRAMES_FILE = "frames.jsonl"
+#: Which model made the scan (rewritten by every run).
+SCAN_FILE = "scan.json"
 FLAGGED_FILE = "flagged.txt"
 OVERLAY_CHOICES = ("flagged", "all", "none")
 ENGINES = ("local", "dask")
@@ -84,6 +86,22 @@ def read_latest(path: Path) -> dict[str, dict]:
         with path.open("r+b") as fh:
             fh.truncate(good_bytes)
     return latest
+
+
+def _scan_record(model: Path, screener: Screener) -> dict:
+    """Which model scanned (for the job check that may follow)."""
+    import datetime as _dt
+
+    info = screener.info
+    return {
+        "model": str(model.resolve()),
+        "contract": info.version,
+        "threshold": info.threshold,
+        "data_digest": info.data_digest,
+        "kit_version": info.kit_version,
+        "familiarity_threshold": (info.familiarity or {}).get("threshold"),
+        "updated": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+    }
 
 
 def _brief(rec: dict) -> dict:
@@ -462,5 +480,6 @@ def scan_frames(
     counts["frames_file"] = str(frames_path)
     counts["inputs"] = [str(p) for p in inputs]
     counts["notes"] = list(screener.notes)
+    atomic_write_json(out / SCAN_FILE, _scan_record(Path(model), screener))
     counts.update(_recorded_counts(frames, latest, written))
     return counts
