@@ -306,27 +306,75 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
     Raises:
         ExportError: no candidate passes; the message gives the figures.
     """
-    import onnx
-    import onnxruntime as ort
-    from onnxruntime.quantization import (
-        CalibrationDataReader,
-        QuantFormat,
-        QuantType,
-        quantize_static,
-    )
-    from onnxruntime.quantization.shape_inference import quant_pre_process
+    import shutil
+    import tempfile
 
+    import onnx
+
+    folder = Experiment(exp_dir)
+    fp32 = folder.model_path
+    if not fp32.is_file():
+        raise ExportError(f"{fp32} does not exist; export the float model first")
+    train, test = _int8_patches(folder)
+    meta = read_metadata(fp32)
+    threshold = float(json.loads(meta["threshold"]))
+    rng = np.random.default_rng(0)
+    calib = train.images[rng.permutation(len(train))[:calibration_patches]]
+    work = Path(tempfile.mkdtemp(prefix=".int8-work-", dir=folder.path))
+    try:
+        base_recall, candidates = _int8_candidates(fp32, work, calib, test, threshold)
+        best = max(candidates, key=lambda c: (c["recall"], c["speedup"]))
+        figures = {
+            "float_recall": round(base_recall, 4),
+            "candidates": [
+                {
+                    k: (round(c[k], 4) if k == "recall" else c[k])
+                    for k in ("per_channel", "recall", "speedup")
+                }
+                for c in candidates
+            ],
+            "test_patches": int(len(test)),
+            "calibration_patches": int(len(calib)),
+        }
+        drop = base_recall - best["recall"]
+        if drop > INT8_MAX_RECALL_DROP or best["speedup"] < INT8_MIN_SPEEDUP:
+            raise ExportError(_int8_refusal(base_recall, candidates))
+        model = onnx.load(str(best["path"]))
+        props = dict(meta)
+        props["quantization"] = json.dumps(
+            {
+                "format": "QDQ",
+                "per_channel": best["per_channel"],
+                "activations": "uint8",
+                "weights": "int8",
+                **figures,
+            }  # fmt: skip
+        )
+        del model.metadata_props[:]
+        onnx.helper.set_model_props(model, props)
+        target = folder.int8_model_path
+        with atomic_path(target) as tmp:
+            onnx.save(model, str(tmp))
+            onnx.checker.check_model(str(tmp), full_check=True)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    return {
+        "model": str(target),
+        "per_channel": best["per_channel"],
+        "recall": best["recall"],
+        "speedup": best["speedup"],
+        **figures,
+    }
+
+
+def _int8_patches(folder: Experiment):
+    """(train, test) patch sets of the experiment's workspace, for calibration and the check."""
     from trainkit.core.taxonomy import class_set_from_dict
     from trainkit.labels.workspace import Workspace
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
 
-    folder = Experiment(exp_dir)
-    exp = folder.path
-    fp32 = folder.model_path
-    if not fp32.is_file():
-        raise ExportError(f"{fp32} does not exist; export the float model first")
-    _, ckpt, _ = load_checkpoint(exp)
+    _, ckpt, _ = load_checkpoint(folder.path)
     cs = class_set_from_dict(ckpt["class_set"])
     ws = Workspace.open(ckpt["experiment"]["workspace"])
     px = int(ckpt["input_px"])
@@ -336,10 +384,20 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
         raise ExportError(
             "int8 needs training patches for calibration and test patches with cracks for the check"
         )
-    meta = read_metadata(fp32)
-    threshold = float(json.loads(meta["threshold"]))
-    rng = np.random.default_rng(0)
-    calib = train.images[rng.permutation(len(train))[:calibration_patches]]
+    return train, test
+
+
+def _int8_candidates(fp32: Path, work: Path, calib: np.ndarray, test, threshold: float):
+    """The float model's test recall, and per-tensor and per-channel int8 candidates with
+    their recall and speed-up measured side by side."""
+    import onnxruntime as ort
+    from onnxruntime.quantization import (
+        CalibrationDataReader,
+        QuantFormat,
+        QuantType,
+        quantize_static,
+    )
+    from onnxruntime.quantization.shape_inference import quant_pre_process
 
     class Reader(CalibrationDataReader):
         def __init__(self) -> None:
@@ -353,32 +411,22 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
             [
                 sess.run([OUTPUT_NAME], {INPUT_NAME: test.images[i : i + 64]})[0]
                 for i in range(0, len(test), 64)
-            ]
+            ]  # fmt: skip
         )
-        crack = test.labels != 0
-        return float(np.mean(screening_probability(probs[crack]) >= threshold))
+        return float(np.mean(screening_probability(probs[test.labels != 0]) >= threshold))
 
     opts = ort.SessionOptions()
     base = ort.InferenceSession(str(fp32), opts, providers=["CPUExecutionProvider"])
-    base_recall = recall(base)
-    work = exp / ".int8-work"
-    work.mkdir(exist_ok=True)
     pre = work / "pre.onnx"
     quant_pre_process(str(fp32), str(pre), skip_symbolic_shape=True)
     candidates = []
     for per_channel in (False, True):
         out = work / f"int8-{'channel' if per_channel else 'tensor'}.onnx"
         quantize_static(
-            str(pre),
-            str(out),
-            Reader(),
-            quant_format=QuantFormat.QDQ,
-            per_channel=per_channel,
-            activation_type=QuantType.QUInt8,
-            weight_type=QuantType.QInt8,
-        )
+            str(pre), str(out), Reader(), quant_format=QuantFormat.QDQ, per_channel=per_channel,
+            activation_type=QuantType.QUInt8, weight_type=QuantType.QInt8,
+        )  # fmt: skip
         sess = ort.InferenceSession(str(out), opts, providers=["CPUExecutionProvider"])
-        r = recall(sess)
         # time the float and the int8 model alternately on the same patches
         t_int8, t_fp32 = [], []
         for _ in range(3):
@@ -386,63 +434,23 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
             t_fp32.append(_time_session(base, test.images, rounds=1))
         speedup = float(np.median(t_fp32) / np.median(t_int8))
         candidates.append(
-            {"per_channel": per_channel, "path": out, "recall": r, "speedup": round(speedup, 3)}
-        )
-    best = max(candidates, key=lambda c: (c["recall"], c["speedup"]))
-    figures = {
-        "float_recall": round(base_recall, 4),
-        "candidates": [
             {
-                "per_channel": c["per_channel"],
-                "recall": round(c["recall"], 4),
-                "speedup": c["speedup"],
-            }
-            for c in candidates
-        ],
-        "test_patches": int(len(test)),
-        "calibration_patches": int(len(calib)),
-    }
-    ok = (
-        base_recall - best["recall"] <= INT8_MAX_RECALL_DROP and best["speedup"] >= INT8_MIN_SPEEDUP
-    )
-    if not ok:
-        import shutil
-
-        shutil.rmtree(work, ignore_errors=True)
-        raise ExportError(
-            "int8 model refused: float crack recall "
-            f"{base_recall:.3f}; candidates "
-            + "; ".join(
-                f"{'per-channel' if c['per_channel'] else 'per-tensor'} recall {c['recall']:.3f}, "
-                f"{c['speedup']:.2f}x speed"
-                for c in candidates
-            )
-            + f" (needs a drop of at most {INT8_MAX_RECALL_DROP} and at least {INT8_MIN_SPEEDUP}x)"
+                "per_channel": per_channel,
+                "path": out,
+                "recall": recall(sess),
+                "speedup": round(speedup, 3),
+            }  # fmt: skip
         )
-    model = onnx.load(str(best["path"]))
-    props = dict(meta)
-    props["quantization"] = json.dumps(
-        {
-            "format": "QDQ",
-            "per_channel": best["per_channel"],
-            "activations": "uint8",
-            "weights": "int8",
-            **figures,
-        }
-    )
-    del model.metadata_props[:]
-    onnx.helper.set_model_props(model, props)
-    target = folder.int8_model_path
-    with atomic_path(target) as tmp:
-        onnx.save(model, str(tmp))
-        onnx.checker.check_model(str(tmp), full_check=True)
-    import shutil
+    return recall(base), candidates
 
-    shutil.rmtree(work, ignore_errors=True)
-    return {
-        "model": str(target),
-        "per_channel": best["per_channel"],
-        "recall": best["recall"],
-        "speedup": best["speedup"],
-        **figures,
-    }
+
+def _int8_refusal(base_recall: float, candidates: list[dict]) -> str:
+    return (
+        f"int8 model refused: float crack recall {base_recall:.3f}; candidates "
+        + "; ".join(
+            f"{'per-channel' if c['per_channel'] else 'per-tensor'} recall {c['recall']:.3f}, "
+            f"{c['speedup']:.2f}x speed"
+            for c in candidates
+        )
+        + f" (needs a drop of at most {INT8_MAX_RECALL_DROP} and at least {INT8_MIN_SPEEDUP}x)"
+    )
