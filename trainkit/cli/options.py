@@ -115,6 +115,22 @@ def workspace_argument(must_exist: bool = True) -> Callable[[F], F]:
     )
 
 
+def workspace_option(help: str) -> Callable[[F], F]:
+    """``--workspace WS``: an existing workspace folder, passed as ``ws_dir``."""
+    return click.option(
+        "--workspace",
+        "ws_dir",
+        required=True,
+        type=click.Path(exists=True, file_okay=False, path_type=Path),
+        help=help,
+    )
+
+
+#: SCAN: a scan's output folder (holding frames.jsonl), passed as ``scan_dir``.
+scan_argument = click.argument(
+    "scan_dir", metavar="SCAN", type=click.Path(exists=True, file_okay=False, path_type=Path)
+)
+
 #: EXP: an existing experiment folder, passed as ``exp_dir``.
 experiment_argument = click.argument(
     "exp_dir", metavar="EXP", type=click.Path(exists=True, file_okay=False, path_type=Path)

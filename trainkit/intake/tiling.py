@@ -1,11 +1,7 @@
-"""Cut a photo into square patch boxes that cover every pixel, and crop them.
+"""Photos into a workspace: hash, decode, scale, cut on the tile grid, measure quality, save crops.
 
-Border rule: tiles start at 0 and advance by the stride; if the last tile would
-run past the border, it is shifted inward so that it ends exactly at the border
-(it then overlaps its neighbour). No pixel is dropped and nothing is padded. A
-photo smaller than one tile along an axis gives a single tile along that axis
-that is padded by edge replication when cropped, and the box records the true
-extent.
+The grid and its border rule are :mod:`trainkit.core.grid`'s; the scale precedence is
+:mod:`trainkit.intake.scale`'s; quality flags come from :mod:`trainkit.intake.quality`.
 """
 
 from __future__ import annotations
