@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from trainkit.cli.options import json_option, seed_option
+from trainkit.cli.options import json_option, scan_argument, seed_option, workspace_option
 from trainkit.cli.output import Ctx, user_errors
 
 __all__ = ["sample"]
@@ -19,16 +19,8 @@ __all__ = ["sample"]
     "the label column of SCAN/sample.csv and load it (trainkit review ws --reviewer NAME "
     "--import-csv SCAN/sample.csv), and run trainkit verify SCAN --workspace ws."
 )
-@click.argument(
-    "scan_dir", metavar="SCAN", type=click.Path(exists=True, file_okay=False, path_type=Path)
-)
-@click.option(
-    "--workspace",
-    "ws_dir",
-    required=True,
-    type=click.Path(exists=True, file_okay=False, path_type=Path),
-    help="The workspace that receives the cells (the one the model was trained from).",
-)
+@scan_argument
+@workspace_option("The workspace that receives the cells (the one the model was trained from).")
 @click.option(
     "--cells",
     type=click.IntRange(1, 1_000_000),

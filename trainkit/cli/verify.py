@@ -8,23 +8,15 @@ from pathlib import Path
 import click
 
 from trainkit.cli.codes import EXIT_GATE
-from trainkit.cli.options import json_option
+from trainkit.cli.options import json_option, scan_argument, workspace_option
 from trainkit.cli.output import Ctx, user_errors
 
 __all__ = ["verify"]
 
 
 @click.command(epilog="Example: trainkit verify scan-results --workspace ws --require-recall 0.9")
-@click.argument(
-    "scan_dir", metavar="SCAN", type=click.Path(exists=True, file_okay=False, path_type=Path)
-)
-@click.option(
-    "--workspace",
-    "ws_dir",
-    required=True,
-    type=click.Path(exists=True, file_okay=False, path_type=Path),
-    help="The workspace holding the job's sample and its answers.",
-)
+@scan_argument
+@workspace_option("The workspace holding the job's sample and its answers.")
 @click.option("--job", default=None, help="The job's name (default: the latest sample of SCAN).")
 @click.option(
     "--require-recall",
