@@ -366,7 +366,8 @@ class Workspace:
         Keys: ``photos``, ``patches``, ``flagged`` (patches with a quality flag),
         ``labeled`` (class name -> patches whose current label is that class),
         ``unsure`` (labelled but marked unsure), ``unlabeled`` (never labelled) and
-        ``splits`` (subset name -> labelled patches in it), plus descriptive fields.
+        ``splits`` (subset name -> labelled patches in it), ``jobs`` (job name -> its
+        sampled cells and how many are answered), plus descriptive fields.
         """
         recs = self.patches()
         names = self.class_set.names
@@ -397,6 +398,13 @@ class Workspace:
             "unlabeled": unlabeled,
             "splits": splits,
             "left_out_of_review": sum(r.review_skip for r in recs),
+            "jobs": {
+                j: {
+                    "cells": sum(r.job == j for r in recs),
+                    "answered": sum(r.job == j and r.labelled for r in recs),
+                }
+                for j in sorted({r.job for r in recs if r.job is not None})
+            },
         }
 
     # ----- review sessions (events one at a time, undo, skips, settlements) ------------
