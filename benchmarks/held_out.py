@@ -153,7 +153,7 @@ def main(argv: list[str]) -> int:
     # The library's own evaluation: threshold chosen on validation within the budget,
     # figures on the held-out test photos (exactly what `trainkit evaluate` reports).
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.metrics import recall_at_false_alarm
+    from trainkit.metrics import recall_at_false_alarm
 
     metrics = evaluate_experiment(exp, split="test", max_false_alarms=args.budget)
     s = metrics["screening"]

@@ -221,7 +221,7 @@ def test_a_job_check_is_recorded_with_the_model_and_on_its_card(demo_run, tmp_pa
     recorded in the experiment (jobs.json), on the model card and in `status`."""
     import shutil
 
-    from trainkit.learning.experiment import Experiment
+    from trainkit.core.experiment import Experiment
     from trainkit.synth import SynthOptions, generate_photo
 
     out, _ = demo_run

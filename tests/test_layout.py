@@ -314,3 +314,24 @@ def test_command_line_without_the_train_extra_says_what_to_install(missing):
     assert len(lines) == 1 and "Traceback" not in res.stderr
     assert lines[0].startswith("trainkit: ") and f"needs {missing}" in lines[0]
     assert "pip install 'trainkit-concrete[train]'" in lines[0]
+
+
+#: The rooms in dependency order: a module may import its own room and the rooms before it.
+ROOM_ORDER = {
+    "core": 0, "screener": 1, "synth": 1, "metrics": 2, "intake": 3, "labels": 4,
+    "learning": 5, "judging": 6, "jobs": 7, "cli": 8, "demo": 8, "__main__": 9,
+}  # fmt: skip
+
+
+def test_rooms_import_only_rooms_before_them():
+    """The folders show the dependency direction (DEVELOPERS.md): no room reaches forward."""
+    graph = import_graph()
+    assert set(ROOM_ORDER) >= {m.split(".")[1] for m in graph if "." in m}
+    backward = [
+        (a, b)
+        for a, targets in graph.items()
+        if "." in a
+        for b in targets
+        if "." in b and ROOM_ORDER[b.split(".")[1]] > ROOM_ORDER[a.split(".")[1]]
+    ]
+    assert backward == []

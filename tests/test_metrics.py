@@ -1,4 +1,4 @@
-"""Tests for trainkit.judging.metrics against published values, reference libraries and properties."""
+"""Tests for trainkit.metrics against published values, reference libraries and properties."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from scipy import stats
 from sklearn import metrics as skm
 
-from trainkit.judging import metrics as M
+from trainkit import metrics as M
 
 NEWCOMBE = "Newcombe, R. G. (1998). Statistics in Medicine 17, 857-872, Table I"
 
@@ -670,7 +670,7 @@ def test_threshold_for_false_alarms_is_the_roc_point_within_budget(seed):
     within the budget and its recall is the best any threshold within the budget reaches."""
     from sklearn.metrics import roc_curve
 
-    from trainkit.judging.metrics import recall_at_false_alarm, threshold_for_false_alarms
+    from trainkit.metrics import recall_at_false_alarm, threshold_for_false_alarms
 
     rng = np.random.default_rng(100 + seed)
     n = int(rng.integers(6, 90))

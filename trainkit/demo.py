@@ -14,6 +14,7 @@ from contextlib import AbstractContextManager, nullcontext
 from pathlib import Path
 from typing import Any, Protocol
 
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_text
 
 __all__ = ["run_demo", "DemoProgress", "TaskHandle", "TINY_DATASET", "tiny_dataset_dir"]
@@ -285,7 +286,7 @@ def run_demo(
     trained = _train(progress, ws, out, epochs)
     next_step()
     metrics = evaluate_experiment(out, split="test")
-    progress.evaluated(metrics, out / "evaluation")
+    progress.evaluated(metrics, Experiment(out).evaluation_dir)
     next_step()
     exported = export_experiment(out)
     progress.line(f"{exported['model']}: parity max |dp| {exported['parity_max_abs_diff']:.1e}")

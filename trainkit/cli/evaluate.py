@@ -10,6 +10,7 @@ import click
 from trainkit.cli.options import experiment_argument, json_option
 from trainkit.cli.output import EXIT_GATE, Ctx, user_errors
 from trainkit.cli.tables import print_evaluation
+from trainkit.core.experiment import Experiment
 
 __all__ = ["evaluate"]
 
@@ -83,6 +84,6 @@ def evaluate(ctx: Ctx, exp_dir: Path, subset: str, as_json: bool, **settings) ->
     if as_json:
         click.echo(json.dumps(res, indent=2))
     else:
-        print_evaluation(ctx.console, res, Path(exp_dir) / "evaluation")
+        print_evaluation(ctx.console, res, Experiment(exp_dir).evaluation_dir)
     if res["gate"] and not res["gate"]["passed"]:
         raise SystemExit(EXIT_GATE)

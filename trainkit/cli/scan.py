@@ -9,6 +9,7 @@ import click
 
 from trainkit.cli.options import gsd_mm_option, json_option, workers_option
 from trainkit.cli.output import Ctx, progress_bar, user_errors
+from trainkit.core.experiment import Experiment
 
 __all__ = ["scan"]
 
@@ -73,7 +74,7 @@ def scan(
     from trainkit.screener.scan import exit_code, recorded_line, scan_frames
 
     if model.is_dir():
-        model = model / "model.onnx"
+        model = Experiment(model).model_path
     with user_errors(ctx):
         # machine output: only the JSON goes to stdout
         with progress_bar(Ctx(ctx.quiet or as_json, ctx.debug), "scanning frames") as bar:

@@ -19,8 +19,8 @@ __all__ = ["status"]
 @click.pass_obj
 def status(ctx: Ctx, path: Path, as_json: bool) -> None:
     """Summarise a workspace (photos, patches, labels, split) or an experiment folder."""
+    from trainkit.core.experiment import Experiment
     from trainkit.labels.workspace import DB_NAME, Workspace
-    from trainkit.learning.experiment import Experiment
 
     with user_errors(ctx):
         if (path / DB_NAME).exists():

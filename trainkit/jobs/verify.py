@@ -132,7 +132,7 @@ def _scan_model(scan_dir: Path) -> dict | None:
 def _record_in_experiment(result: dict, model: dict | None) -> str | None:
     """Add the job to the model's experiment folder (jobs.json, model card) when the scanned
     model is that folder's own model.onnx; returns the folder, or None."""
-    from trainkit.learning.experiment import Experiment
+    from trainkit.core.experiment import Experiment
 
     if not model:
         return None

@@ -8,8 +8,8 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit import metrics as M
 from trainkit.core.fsutil import atomic_path
-from trainkit.judging import metrics as M
 from trainkit.judging.scoring import Scored
 
 __all__ = ["Side", "ComparisonError", "paired_comparison", "write_disagreements"]

@@ -77,9 +77,10 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit import metrics as M
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_json
 from trainkit.core.taxonomy import ClassSet
-from trainkit.judging import metrics as M
 from trainkit.judging.comparison import (
     ComparisonError,
     Side,
@@ -96,7 +97,6 @@ from trainkit.judging.scoring import (
 from trainkit.labels.splits import check_no_leak
 from trainkit.labels.workspace import Workspace
 from trainkit.learning.data import PatchSet, load_patch_set
-from trainkit.learning.experiment import Experiment
 
 __all__ = ["evaluate_experiment", "EvaluationOptions", "EvaluationError", "CAUTION"]
 

@@ -27,8 +27,8 @@ from trainkit.core.contract import (
     encode_metadata,
     screening_probability,
 )
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
-from trainkit.learning.experiment import Experiment
 
 __all__ = ["export_experiment", "ExportError", "DEFAULT_OPSET", "PARITY_ATOL", "read_metadata"]
 

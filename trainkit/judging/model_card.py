@@ -15,8 +15,8 @@ import json
 from pathlib import Path
 from typing import Any
 
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_write_text
-from trainkit.learning.experiment import Experiment
 
 __all__ = [
     "CARD_NAME",

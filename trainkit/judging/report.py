@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.contract import screening_probability
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_write_text
 from trainkit.core.taxonomy import ClassSet
 from trainkit.judging.html import METHOD_NAMES, page
@@ -28,7 +29,6 @@ from trainkit.judging.plots import (
     plot_reliability,
     plot_screening_curves,
 )
-from trainkit.learning.experiment import Experiment
 
 __all__ = ["write_report", "CONFUSION_PNG"]
 

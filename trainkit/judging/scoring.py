@@ -14,8 +14,8 @@ from typing import Any
 
 import numpy as np
 
+from trainkit import metrics as M
 from trainkit.core.contract import screening_probability
-from trainkit.judging import metrics as M
 
 __all__ = [
     "CAUTION",

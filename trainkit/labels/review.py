@@ -27,6 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.experiment import Experiment
 from trainkit.core.grid import resize_patch
 from trainkit.core.taxonomy import ClassSet
 from trainkit.labels.workspace import PatchRecord, Workspace
@@ -176,7 +177,7 @@ def agreement(events: list[dict], class_set: ClassSet) -> list[dict]:
         ``kappa``, ``kappa_crack_vs_none``, ``observed_agreement``, ``labels`` and
         ``confusion`` (rows: reviewer a, columns: reviewer b).
     """
-    from trainkit.judging.metrics import cohen_kappa, confusion_matrix
+    from trainkit.metrics import cohen_kappa, confusion_matrix
 
     latest = latest_by_reviewer(events)
     per: dict[str, dict[int, str]] = defaultdict(dict)
@@ -349,7 +350,7 @@ def model_probabilities(
 
     path = Path(model)
     if path.is_dir():
-        path = path / "model.onnx"
+        path = Experiment(path).model_path
     with Screener(path) as scr:
         return _predict_records(ws, records, scr, path, progress)
 

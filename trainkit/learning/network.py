@@ -7,9 +7,9 @@ from pathlib import Path
 import torch
 from torch import nn
 
+from trainkit.core.experiment import Experiment
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.learning.config import TrainConfig
-from trainkit.learning.experiment import Experiment
 from trainkit.learning.models import IMAGENET_MEAN, IMAGENET_STD, create_model
 
 

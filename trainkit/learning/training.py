@@ -1,6 +1,6 @@
 """The training loop: fine-tune a backbone on a workspace's split, with checkpoints and resume.
 
-An experiment folder (see :mod:`trainkit.learning.experiment`) receives ``recipe.yaml`` (the resolved recipe),
+An experiment folder (see :mod:`trainkit.core.experiment`) receives ``recipe.yaml`` (the resolved recipe),
 ``experiment.json`` (which workspace and split it used), ``history.csv`` (one row
 per epoch, with throughput in images per second), ``resume.pt`` (for resuming after
 a crash) and ``checkpoint.pt`` (the epoch with the best validation score).
@@ -26,16 +26,16 @@ from torch import nn
 
 from trainkit.core.contract import screening_probability
 from trainkit.core.cores import usable_cores
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.core.taxonomy import apply_d4, load_class_set
-from trainkit.judging.metrics import recall_at_false_alarm
 from trainkit.labels.splits import check_no_leak
 from trainkit.labels.workspace import Workspace
 from trainkit.learning.config import TrainConfig
 from trainkit.learning.data import Augmenter, PatchSet, batches, load_patch_set
-from trainkit.learning.experiment import Experiment
 from trainkit.learning.models import HEADS
 from trainkit.learning.network import TrainingError, build_network
+from trainkit.metrics import recall_at_false_alarm
 
 __all__ = ["build_network", "train", "predict_proba", "TrainingError", "HISTORY_FIELDS"]
 

@@ -8,8 +8,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-from trainkit.judging.metrics._checks import _as_bool, _as_unit_float, _ratio, _same_length
-from trainkit.judging.metrics.classification import confusion_matrix
+from trainkit.metrics._checks import _as_bool, _as_unit_float, _ratio, _same_length
+from trainkit.metrics.classification import confusion_matrix
 
 
 def _check_threshold(threshold: float) -> float:

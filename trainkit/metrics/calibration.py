@@ -8,7 +8,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-from trainkit.judging.metrics._checks import (
+from trainkit.metrics._checks import (
     _as_1d,
     _as_bool,
     _as_unit_float,

@@ -12,7 +12,7 @@ from numpy.typing import ArrayLike
 from scipy import stats
 from sklearn import metrics as skm
 
-from trainkit.judging.metrics._checks import (
+from trainkit.metrics._checks import (
     _METHOD_ALIASES,
     _METHOD_DISPLAY,
     INTERVAL_METHODS,

@@ -8,8 +8,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-from trainkit.judging.metrics._checks import _as_1d, _as_bool, _check_n_bins, _ratio, _same_length
-from trainkit.judging.metrics.classification import recall_interval
+from trainkit.metrics._checks import _as_1d, _as_bool, _check_n_bins, _ratio, _same_length
+from trainkit.metrics.classification import recall_interval
 
 
 def scale_bands(patch_mm: ArrayLike, *, n_bands: int = 3) -> tuple[list[str], list[str]]:

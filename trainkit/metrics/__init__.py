@@ -1,27 +1,27 @@
 """Pure evaluation metrics for the crack screener: counts, intervals, thresholds, calibration.
 
 One package, one module per family; every name is re-exported here, so
-``from trainkit.judging import metrics as M`` and ``M.recall_interval`` keep working.
+``from trainkit import metrics as M`` and ``M.recall_interval`` keep working.
 """
 
-from trainkit.judging.metrics._checks import INTERVAL_METHODS
-from trainkit.judging.metrics.agreement import cohen_kappa, mcnemar_test
-from trainkit.judging.metrics.breakdowns import breakdown, scale_bands
-from trainkit.judging.metrics.calibration import (
+from trainkit.metrics._checks import INTERVAL_METHODS
+from trainkit.metrics.agreement import cohen_kappa, mcnemar_test
+from trainkit.metrics.breakdowns import breakdown, scale_bands
+from trainkit.metrics.calibration import (
     expected_calibration_error,
     fit_temperature,
     negative_log_likelihood,
     reliability_bins,
     softmax,
 )
-from trainkit.judging.metrics.classification import (
+from trainkit.metrics.classification import (
     Interval,
     confusion_matrix,
     per_class_report,
     recall_interval,
     row_normalise,
 )
-from trainkit.judging.metrics.screening import (
+from trainkit.metrics.screening import (
     recall_at_false_alarm,
     screening_scores,
     threshold_for_false_alarms,

@@ -11,8 +11,8 @@ from numpy.typing import ArrayLike
 from scipy import stats
 from sklearn import metrics as skm
 
-from trainkit.judging.metrics._checks import _as_bool, _same_length
-from trainkit.judging.metrics.classification import _confusion
+from trainkit.metrics._checks import _as_bool, _same_length
+from trainkit.metrics.classification import _confusion
 
 
 def mcnemar_test(
