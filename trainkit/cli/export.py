@@ -42,6 +42,15 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
                 else " (not evaluated yet: run `trainkit evaluate` first for a tuned threshold)"
             )
         )
+        fam = res.get("familiarity")
+        console.print(
+            f"contract {res['contract']}: frames unlike the training data are flagged when their "
+            f"cells' median familiarity exceeds {fam['threshold']:.2f} (the 99th percentile of "
+            f"{fam['threshold_from_patches']} validation patches)"
+            if fam
+            else f"contract {res['contract']}: no familiarity output (the workspace's training "
+            "and validation patches were not found), so no unfamiliar-surface warning"
+        )
         if quantize:
             with console.status("quantizing to int8 and checking recall and speed"):
                 q = quantize_experiment(exp_dir)
