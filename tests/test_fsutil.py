@@ -40,3 +40,13 @@ def test_two_writers_of_one_file_never_share_a_temporary_file(tmp_path):
         second.write_text("two")
     assert target.read_text() == "one"  # the outer write finished last and won, whole
     assert sorted(p.name for p in tmp_path.iterdir()) == ["metrics.json"]
+
+
+def test_written_files_get_the_usual_permissions(tmp_path):
+    # Outputs are read by other people and tools: the atomic write must not leave them
+    # private (as a file made by tempfile.mkstemp would be, mode 0600).
+    import os
+
+    atomic_write_text(tmp_path / "a.txt", "x")
+    (tmp_path / "b.txt").write_text("x")  # a plain write, for the umask in force
+    assert os.stat(tmp_path / "a.txt").st_mode == os.stat(tmp_path / "b.txt").st_mode

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
+import uuid
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -19,18 +19,14 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
 
     A reader sees either the old file or the complete new one, never a half-written
     file; on an exception the temporary file is removed and ``path`` is untouched.
-    The temporary name is unique (created with :func:`tempfile.mkstemp` in the
-    target's folder), so two processes or threads writing the same file at once never
-    share a temporary file: the last rename wins and each result is whole. The name
-    keeps the suffix so that writers choosing a format by suffix (Pillow, matplotlib,
-    torch) still work.
+    The temporary name is unique (a random 96-bit name in the target's folder, not
+    created here, so the writer creates it with the usual permissions), so two processes
+    or threads writing the same file at once never share a temporary file: the last
+    rename wins and each result is whole. The name keeps the suffix so that writers
+    choosing a format by suffix (Pillow, matplotlib, torch) still work.
     """
     path = Path(path)
-    fd, name = tempfile.mkstemp(
-        prefix=f".{path.stem}.", suffix=f".tmp{path.suffix}", dir=path.parent
-    )
-    os.close(fd)
-    tmp = Path(name)
+    tmp = path.with_name(f".{path.stem}.{uuid.uuid4().hex[:24]}.tmp{path.suffix}")
     try:
         yield tmp
         os.replace(tmp, path)
