@@ -1,0 +1,41 @@
+"""The experiment folder: file names, readers, the renames of older folders and job records."""
+
+from __future__ import annotations
+
+import json
+
+from trainkit.core.experiment import LEGACY_NAMES, Experiment
+
+
+def test_older_folders_are_renamed_once_and_nothing_is_overwritten(tmp_path):
+    (tmp_path / "evaluation").mkdir()
+    for old in LEGACY_NAMES:
+        (tmp_path / old).write_text(f"old {old}")
+    (tmp_path / "resume.pt").write_text("new")  # already there: the legacy file stays
+    exp = Experiment(tmp_path)
+    done = exp.migrate()
+    assert sorted(done) == ["config.yaml -> recipe.yaml",
+                            "evaluation/confusion_matrix.png -> evaluation/confusion.png"]  # fmt: skip
+    assert exp.recipe_path.read_text() == "old config.yaml"
+    assert exp.resume_path.read_text() == "new" and (tmp_path / "last.pt").exists()
+    assert exp.migrate() == []
+
+
+def test_readers_and_status_of_a_folder_with_metrics_and_jobs(tmp_path):
+    exp = Experiment(tmp_path)
+    assert not exp.is_experiment() and exp.read_metrics() is None and exp.read_jobs() == []
+    exp.provenance_path.write_text(json.dumps({"workspace": "ws", "training_patches": 12}))
+    exp.evaluation_dir.mkdir()
+    ci = {"low": 0.5, "high": 0.9}
+    exp.metrics_path.write_text(
+        json.dumps({"screening": {"recall": 0.75, "recall_interval": ci, "threshold": 0.4}})
+    )
+    exp.record_job({"job": "a", "summary": "first"})
+    exp.record_job({"job": "b", "summary": "second"})
+    exp.record_job({"job": "a", "summary": "again"})  # replaces job a, keeps the order of arrival
+    assert [j["summary"] for j in exp.read_jobs()] == ["second", "again"]
+    info = exp.status()
+    assert exp.is_experiment() and info["training_patches"] == 12
+    assert info["screening_recall"] == "0.750 [0.500, 0.900]" and info["threshold"] == 0.4
+    assert info["jobs_checked"] == 2 and info["latest_job"] == "a: again"
+    assert info["model.onnx"] == "missing"
