@@ -140,6 +140,10 @@ def export_experiment(
             kit_version=__version__,
             data_digest=str(experiment.get("data_digest")),
             test_metrics=_headline(metrics),
+            extra={
+                "weights": json.dumps(weights_record(ckpt)),
+                "preprocess": json.dumps(preprocess_record(ckpt)),
+            },
         )
     )
     onnx.helper.set_model_props(proto, meta)
@@ -175,12 +179,34 @@ def export_experiment(
         "batchnorm_nodes": len(left),
         "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
         "threshold": json.loads(meta["threshold"]),
+        "weights": weights_record(ckpt),
         "evaluated": metrics is not None,
     }
     from trainkit.judging.model_card import write_model_card
 
     summary["model_card"] = str(write_model_card(exp, ckpt, summary))
     return summary
+
+
+def weights_record(ckpt: dict) -> dict:
+    """Which weights the model started from: ``{"name", "source", "sha256"}`` or random initialisation.
+
+    Checkpoints from before the record existed say what their recipe asked for.
+    """
+    if isinstance(ckpt.get("weights"), dict):
+        return ckpt["weights"]
+    asked = ckpt["config"].get("weights")
+    if asked is None:
+        return {"name": "random initialisation"}
+    return {"name": f"not recorded (the recipe asked for weights: {asked})"}
+
+
+def preprocess_record(ckpt: dict) -> dict:
+    """The normalisation inside the graph: float = (uint8 / 255 - mean) / std per RGB channel."""
+    from trainkit.learning.models import backbone_record
+
+    record = backbone_record(ckpt["config"]["backbone"])
+    return {"input": "uint8 RGB", "mean": list(record.mean), "std": list(record.std)}
 
 
 def _headline(metrics: dict | None) -> dict | None:
