@@ -54,8 +54,29 @@ def _lr(progress: float, peak: float) -> float:
     )
 
 
-def train_in_budget(cfg, train_set, class_set, cpu_seconds: float, seed: int) -> dict:
-    """Train ``cfg``'s network on ``train_set`` until ``cpu_seconds`` of process CPU time are used."""
+class _Upscaled:
+    """A network fed patches upscaled (bicubic, in the graph) to ``px``: the input-size study."""
+
+    @staticmethod
+    def wrap(network, px: int):
+        from torch import nn
+
+        class Up(nn.Sequential):
+            def forward(self, x):
+                x = self[0](x)  # Preprocess: uint8 NHWC -> normalised NCHW
+                x = nn.functional.interpolate(x, size=(px, px), mode="bicubic", align_corners=False)
+                return self[1](x)
+
+        return Up(network[0], network[1]) if px else network
+
+
+def train_in_budget(
+    cfg, train_set, class_set, cpu_seconds: float, seed: int, input_px: int = 0
+) -> dict:
+    """Train ``cfg``'s network on ``train_set`` until ``cpu_seconds`` of process CPU time are used.
+
+    ``input_px`` > 0 upscales the patches inside the network to that size (bicubic).
+    """
     import torch
     from torch import nn
 
@@ -70,7 +91,8 @@ def train_in_budget(cfg, train_set, class_set, cpu_seconds: float, seed: int) ->
     )
 
     torch.manual_seed(seed)
-    model = build_network(cfg, class_set.num_classes)  # set-up (weights, imports) not counted
+    # set-up (weights, imports) not counted
+    model = _Upscaled.wrap(build_network(cfg, class_set.num_classes), input_px)
     optimizer = build_optimizer(model, cfg)
     loss_fn = nn.CrossEntropyLoss(
         weight=class_weights(train_set.labels, class_set.num_classes, cfg.class_weighting),
@@ -178,6 +200,10 @@ def main(argv: list[str]) -> int:
     ap.add_argument("--budget", type=float, default=0.05, help="false-alarm budget")
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--json", type=Path, default=None)
+    ap.add_argument(
+        "--input-px", type=int, default=0, help="upscale patches to this size in the network"
+    )
+    ap.add_argument("--only", default=None, help="run only the networks whose name contains this")
     args = ap.parse_args(argv)
 
     import torch
@@ -210,7 +236,10 @@ def main(argv: list[str]) -> int:
             patch_mm=train_all.patch_mm[idx],
         )
         for name, cfg in recipes().items():
-            run = train_in_budget(cfg, subset, cs, args.cpu_seconds, args.seed)
+            if args.only and args.only not in name:
+                continue
+            run = train_in_budget(cfg, subset, cs, args.cpu_seconds, args.seed, args.input_px)
+            run["input_px"] = args.input_px or ws.tile_px
             res = held_out_recall(run.pop("model"), val, test, cs.num_classes, args.budget)
             row = {"labelled_patches": n, "network": name, **run, **res}
             rows.append(row)

@@ -255,6 +255,28 @@ def _time_session(sess, images: np.ndarray, rounds: int = 5) -> float:
     return statistics.median(times)
 
 
+def _speedup(base, sess, images: np.ndarray) -> float:
+    """Float time / int8 time, timing the two alternately on the same patches (median of 3)."""
+    t_int8, t_fp32 = [], []
+    for _ in range(3):
+        t_int8.append(_time_session(sess, images, rounds=1))
+        t_fp32.append(_time_session(base, images, rounds=1))
+    return round(float(np.median(t_fp32) / np.median(t_int8)), 3)
+
+
+def _int8_refusal(base_recall: float, candidates: list[dict]) -> str:
+    return (
+        "int8 model refused: float crack recall "
+        f"{base_recall:.3f}; candidates "
+        + "; ".join(
+            f"{'per-channel' if c['per_channel'] else 'per-tensor'} recall {c['recall']:.3f}, "
+            f"{c['speedup']:.2f}x speed"
+            for c in candidates
+        )
+        + f" (needs a drop of at most {INT8_MAX_RECALL_DROP} and at least {INT8_MIN_SPEEDUP}x)"
+    )
+
+
 def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) -> dict:
     """Make ``EXP/model-int8.onnx`` by static QDQ quantization, if it keeps recall and is faster.
 
@@ -341,15 +363,13 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
             weight_type=QuantType.QInt8,
         )
         sess = ort.InferenceSession(str(out), opts, providers=["CPUExecutionProvider"])
-        r = recall(sess)
-        # time the float and the int8 model alternately on the same patches
-        t_int8, t_fp32 = [], []
-        for _ in range(3):
-            t_int8.append(_time_session(sess, test.images, rounds=1))
-            t_fp32.append(_time_session(base, test.images, rounds=1))
-        speedup = float(np.median(t_fp32) / np.median(t_int8))
         candidates.append(
-            {"per_channel": per_channel, "path": out, "recall": r, "speedup": round(speedup, 3)}
+            {
+                "per_channel": per_channel,
+                "path": out,
+                "recall": recall(sess),
+                "speedup": _speedup(base, sess, test.images),
+            }
         )
     best = max(candidates, key=lambda c: (c["recall"], c["speedup"]))
     figures = {
@@ -372,16 +392,7 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
         import shutil
 
         shutil.rmtree(work, ignore_errors=True)
-        raise ExportError(
-            "int8 model refused: float crack recall "
-            f"{base_recall:.3f}; candidates "
-            + "; ".join(
-                f"{'per-channel' if c['per_channel'] else 'per-tensor'} recall {c['recall']:.3f}, "
-                f"{c['speedup']:.2f}x speed"
-                for c in candidates
-            )
-            + f" (needs a drop of at most {INT8_MAX_RECALL_DROP} and at least {INT8_MIN_SPEEDUP}x)"
-        )
+        raise ExportError(_int8_refusal(base_recall, candidates))
     model = onnx.load(str(best["path"]))
     props = dict(meta)
     props["quantization"] = json.dumps(
