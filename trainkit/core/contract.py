@@ -95,6 +95,9 @@ class ModelInfo:
         kit_version: the kit version that exported the model.
         data_digest: digest of the training data.
         test_metrics: headline test figures, when the model was evaluated.
+        weights: which weights training started from (name, source, SHA-256 prefix), or
+            ``{"name": "random initialisation"}``.
+        preprocess: the normalisation inside the graph (mean and std per RGB channel).
         familiarity: from version 2: ``threshold`` (cells' median above it: unfamiliar),
             ``rule`` and how it was fitted; None for version-1 models.
         version: the contract version.
@@ -112,6 +115,8 @@ class ModelInfo:
     kit_version: str = ""
     data_digest: str = ""
     test_metrics: dict | None = None
+    weights: dict | None = None
+    preprocess: dict | None = None
     familiarity: dict | None = None
     version: str = CONTRACT_VERSION
     extra: dict[str, str] = field(default_factory=dict)
@@ -130,6 +135,8 @@ _KNOWN = (
     "kit_version",
     "data_digest",
     "test_metrics",
+    "weights",
+    "preprocess",
     "familiarity",
     "input",
     "output",
@@ -161,6 +168,8 @@ def encode_metadata(info: ModelInfo) -> dict[str, str]:
         "kit_version": info.kit_version,
         "data_digest": str(info.data_digest),
         "test_metrics": json.dumps(info.test_metrics),
+        "weights": json.dumps(info.weights),
+        "preprocess": json.dumps(info.preprocess),
         "input": _INPUT_TEXT,
         "output": _OUTPUT_TEXT,
     }
@@ -210,6 +219,8 @@ def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
             kit_version=meta.get("kit_version", ""),
             data_digest=meta.get("data_digest", ""),
             test_metrics=json.loads(meta.get("test_metrics", "null")),
+            weights=json.loads(meta.get("weights", "null")),
+            preprocess=json.loads(meta.get("preprocess", "null")),
             familiarity=json.loads(meta.get("familiarity", "null")),
             version=version,
             extra={k: v for k, v in meta.items() if k not in _KNOWN},

@@ -151,6 +151,8 @@ def export_experiment(
             test_metrics=_headline(metrics),
             familiarity=familiarity,
             version=CONTRACT_VERSION if familiarity else "trainkit-screener-1",
+            weights=weights_record(ckpt),
+            preprocess=preprocess_record(ckpt),
         )
     )
     onnx.helper.set_model_props(proto, meta)
@@ -179,6 +181,7 @@ def export_experiment(
         "batchnorm_nodes": len(left),
         "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
         "threshold": json.loads(meta["threshold"]),
+        "weights": weights_record(ckpt),
         "evaluated": metrics is not None,
     }
     from trainkit.core.fsutil import atomic_write_json
@@ -232,7 +235,7 @@ def _graph_with_familiarity(model, ckpt: dict, class_set, input_px: int):
     from trainkit.judging.familiarity_graph import fit_graph
     from trainkit.labels.workspace import Workspace, WorkspaceError
     from trainkit.learning.data import load_patch_set
-    from trainkit.learning.training import head_module_name
+    from trainkit.learning.steps import head_module_name
 
     try:
         ws = Workspace.open(ckpt["experiment"]["workspace"])
@@ -244,6 +247,27 @@ def _graph_with_familiarity(model, ckpt: dict, class_set, input_px: int):
         return model, None
     head = head_module_name(ckpt["config"]["backbone"])
     return fit_graph(model, head, train.images, train.labels, val.images)
+
+
+def weights_record(ckpt: dict) -> dict:
+    """Which weights the model started from: ``{"name", "source", "sha256"}`` or random initialisation.
+
+    Checkpoints from before the record existed say what their recipe asked for.
+    """
+    if isinstance(ckpt.get("weights"), dict):
+        return ckpt["weights"]
+    asked = ckpt["config"].get("weights")
+    if asked is None:
+        return {"name": "random initialisation"}
+    return {"name": f"not recorded (the recipe asked for weights: {asked})"}
+
+
+def preprocess_record(ckpt: dict) -> dict:
+    """The normalisation inside the graph: float = (uint8 / 255 - mean) / std per RGB channel."""
+    from trainkit.learning.models import backbone_record
+
+    record = backbone_record(ckpt["config"]["backbone"])
+    return {"input": "uint8 RGB", "mean": list(record.mean), "std": list(record.std)}
 
 
 def _headline(metrics: dict | None) -> dict | None:
@@ -290,6 +314,15 @@ def _time_session(sess, images: np.ndarray, rounds: int = 5) -> float:
             sess.run([OUTPUT_NAME], {INPUT_NAME: images[i : i + 64]})
         times.append(time.perf_counter() - t0)
     return statistics.median(times)
+
+
+def _speedup(base, sess, images: np.ndarray) -> float:
+    """Float time / int8 time, timing the two alternately on the same patches (median of 3)."""
+    t_int8, t_fp32 = [], []
+    for _ in range(3):
+        t_int8.append(_time_session(sess, images, rounds=1))
+        t_fp32.append(_time_session(base, images, rounds=1))
+    return round(float(np.median(t_fp32) / np.median(t_int8)), 3)
 
 
 def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) -> dict:
@@ -427,18 +460,12 @@ def _int8_candidates(fp32: Path, work: Path, calib: np.ndarray, test, threshold:
             activation_type=QuantType.QUInt8, weight_type=QuantType.QInt8,
         )  # fmt: skip
         sess = ort.InferenceSession(str(out), opts, providers=["CPUExecutionProvider"])
-        # time the float and the int8 model alternately on the same patches
-        t_int8, t_fp32 = [], []
-        for _ in range(3):
-            t_int8.append(_time_session(sess, test.images, rounds=1))
-            t_fp32.append(_time_session(base, test.images, rounds=1))
-        speedup = float(np.median(t_fp32) / np.median(t_int8))
         candidates.append(
             {
                 "per_channel": per_channel,
                 "path": out,
                 "recall": recall(sess),
-                "speedup": round(speedup, 3),
+                "speedup": _speedup(base, sess, test.images),
             }  # fmt: skip
         )
     return recall(base), candidates

@@ -11,7 +11,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 __all__ = ["AugmentConfig", "TrainConfig", "ConfigError", "load_train_config", "BUILTIN_RECIPES"]
 
-BUILTIN_RECIPES = ("default", "demo", "presence", "frozen")
+BUILTIN_RECIPES = ("default", "demo", "scratch", "presence", "frozen")
 
 
 class ConfigError(ValueError):
@@ -52,6 +52,8 @@ class TrainConfig(_Strict):
     class_weighting: Literal["none", "balanced", "sqrt"] = "sqrt"
     early_stop_patience: int = Field(0, ge=0)
     head_epochs: int = Field(0, ge=0)
+    backbone_lr_scale: float = Field(1.0, gt=0.0, le=1.0)
+    freeze_bn_stats: bool = False
     cached_features: bool = False
     sampling: Literal["shuffle", "balanced"] = "shuffle"
     select_on: Literal["recall_at_fa", "macro_recall"] = "recall_at_fa"

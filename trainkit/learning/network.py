@@ -10,7 +10,7 @@ from torch import nn
 from trainkit.core.experiment import Experiment
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.learning.config import TrainConfig
-from trainkit.learning.models import IMAGENET_MEAN, IMAGENET_STD, create_model
+from trainkit.learning.models import IMAGENET_MEAN, IMAGENET_STD, backbone_record, create_model
 
 
 class TrainingError(ValueError):
@@ -18,16 +18,21 @@ class TrainingError(ValueError):
 
 
 class Preprocess(nn.Module):
-    """uint8 (N, S, S, 3) RGB -> float (N, 3, S, S) normalised with the ImageNet statistics.
+    """uint8 (N, S, S, 3) RGB -> float (N, 3, S, S) normalised as the backbone's weights expect.
 
     It is the first layer of every network, so the exported ONNX graph takes raw
-    uint8 pixels and nobody downstream has to know the normalisation.
+    uint8 pixels and nobody downstream has to know the normalisation. ``mean`` and
+    ``std`` are per channel of [0, 1] RGB (the registry record's; ImageNet's by default).
     """
 
-    def __init__(self) -> None:
+    def __init__(
+        self,
+        mean: tuple[float, float, float] = IMAGENET_MEAN,
+        std: tuple[float, float, float] = IMAGENET_STD,
+    ) -> None:
         super().__init__()
-        mean = torch.tensor(IMAGENET_MEAN, dtype=torch.float32).view(1, 3, 1, 1) * 255.0
-        std = torch.tensor(IMAGENET_STD, dtype=torch.float32).view(1, 3, 1, 1) * 255.0
+        mean = torch.tensor(mean, dtype=torch.float32).view(1, 3, 1, 1) * 255.0
+        std = torch.tensor(std, dtype=torch.float32).view(1, 3, 1, 1) * 255.0
         self.register_buffer("mean", mean)
         self.register_buffer("inv_std", 1.0 / std)
 
@@ -41,11 +46,12 @@ class Preprocess(nn.Module):
 def build_network(
     cfg: TrainConfig, num_classes: int, *, load_weights: bool = True
 ) -> nn.Sequential:
-    """Preprocess + backbone, the module that is trained, evaluated and exported."""
+    """Preprocess (the backbone record's mean/std) + backbone: trained, evaluated and exported."""
+    record = backbone_record(cfg.backbone)
     backbone = create_model(
         cfg.backbone, num_classes, weights=cfg.weights if load_weights else None
     )
-    return nn.Sequential(Preprocess(), backbone)
+    return nn.Sequential(Preprocess(record.mean, record.std), backbone)
 
 
 def load_checkpoint(exp_or_file: str | Path) -> tuple[nn.Sequential, dict, ClassSet]:
