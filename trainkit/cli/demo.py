@@ -75,9 +75,9 @@ class ConsoleDemoProgress(DemoProgress):
 def demo(ctx: Ctx, out_dir: Path, epochs: int | None, photos: int | None) -> None:
     """Run the whole chain on the shipped synthetic tiny dataset, end to end, on CPU.
 
-    Tiles the photos, loads their labels, splits by photo, trains the demo recipe
-    from random initialisation (no pretrained weights are downloaded), evaluates on
-    held-out photos, exports ONNX and scans fresh synthetic frames.
+    Tiles the photos, loads their labels, splits by photo, fine-tunes the demo recipe
+    from the packaged ImageNet weights (EfficientNet-Lite0; nothing is downloaded),
+    evaluates on held-out photos, exports ONNX and scans fresh synthetic frames.
     """
     from trainkit.demo import run_demo
 

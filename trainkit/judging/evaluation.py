@@ -59,7 +59,7 @@ key                                    meaning
 ``gate``                               ``null``, or ``required_recall``,
                                        ``recall_lower_bound``, ``passed``, ``verdict``
 ``experiment`` / ``workspace``         absolute paths of the experiment and the workspace used
-``model``                              ``checkpoint``, ``backbone``, ``epoch``
+``model``                              ``checkpoint``, ``backbone``, ``epoch``, ``weights`` (it started from)
 ``checkpoint_epoch`` / ``data_digest``  best epoch; SHA-256 of the training and validation data
 ``evaluated_digest``                   SHA-256 of the evaluated patches (photo, box, label)
 ``kit_version`` / ``created``          trainkit version; UTC time of the evaluation
@@ -302,6 +302,7 @@ def _with_provenance(result: dict, run: _Run, comparison: dict | None) -> dict:
             "checkpoint": str(Experiment(run.exp).checkpoint_path),
             "backbone": ckpt.get("config", {}).get("backbone"),
             "epoch": ckpt.get("best_epoch"),
+            "weights": ckpt.get("weights"),
         },
         checkpoint_epoch=ckpt.get("best_epoch"),
         data_digest=ckpt["experiment"].get("data_digest"),

@@ -17,6 +17,7 @@ from typing import Any
 
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_write_text
+from trainkit.judging.scoring import CAUTION
 
 __all__ = [
     "CARD_NAME",
@@ -36,19 +37,8 @@ NOT_EVALUATED = (
     "before trusting it to pre-filter anything."
 )
 
-_CAUTION_FALLBACK = (
-    "This screener is a triage aid that decides which photos and regions a person looks at "
-    "first; it is not an inspection. Its figures hold only for photos like its test set "
-    "(same cameras, surfaces, lighting and scale). Defer to local codes and to licensed engineers "
-    "for any judgement about a structure."
-)
-
 
 def _caution() -> str:
-    try:
-        from trainkit.judging.evaluation import CAUTION
-    except ImportError:  # pragma: no cover - evaluation always ships with the kit
-        return _CAUTION_FALLBACK
     return CAUTION
 
 
@@ -63,12 +53,25 @@ def _pct(conf: Any) -> str:
     return "n/a" if conf is None else f"{100 * float(conf):g}%"
 
 
-def _weights_source(weights: Any) -> str:
-    if weights is None:
+def weights_line(ckpt: dict) -> str:
+    """Which weights training started from, in words (name, source, SHA-256 prefix).
+
+    Checkpoints from before the weights record existed say what their recipe asked for.
+    """
+    rec = ckpt.get("weights")
+    if isinstance(rec, dict):
+        if rec.get("name") == "random initialisation":
+            return "random initialisation (no pretrained weights)"
+        parts = [rec.get("name", "?")]
+        if rec.get("source"):
+            parts.append(f"from {rec['source']}")
+        if rec.get("sha256"):
+            parts.append(f"SHA-256 {str(rec['sha256'])[:8]}...")
+        return ", ".join(parts) + "; new classification head"
+    asked = (ckpt.get("config") or {}).get("weights")
+    if asked is None:
         return "random initialisation (no pretrained weights)"
-    if weights == "torchvision":
-        return "torchvision's default pretrained weights for the backbone (new classification head)"
-    return f"pretrained weights from the file `{weights}` (new classification head)"
+    return f"not recorded (the recipe asked for weights `{asked}`); new classification head"
 
 
 def synthetic_training_data(workspace: str | Path | None) -> bool | None:
@@ -216,7 +219,7 @@ def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
     if cfg.get("head_epochs"):
         frozen = " on cached features" if cfg.get("cached_features") else ""
         lines.append(f"- Head-only stage{frozen}: the first {cfg['head_epochs']} epochs")
-    lines.append(f"- Weights: {_weights_source(cfg.get('weights'))}")
+    lines.append(f"- Weights it started from: {weights_line(ckpt)}")
     if export:
         model = export.get("model")
         lines.append(

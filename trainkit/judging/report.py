@@ -22,6 +22,7 @@ from trainkit.judging.html import get_path as _get
 from trainkit.judging.html import img_tag as _img_tag
 from trainkit.judging.html import interval as _ci
 from trainkit.judging.html import metric as _m
+from trainkit.judging.model_card import weights_line
 from trainkit.judging.plots import (
     SHEET_MAX,
     contact_sheet,
@@ -249,7 +250,7 @@ def _provenance(R: dict, experiment: dict) -> str:
 ({len(R.get("by_group") or [])} groups), digest <code>{_e(R["evaluated_digest"][:16])}</code></td></tr>
 <tr><th>model</th><td><code>{_e(model.get("checkpoint"))}</code>
 (backbone {_e(model.get("backbone"))}, best epoch {_e(model.get("epoch"))}); experiment
-<code>{_e(R["experiment"])}</code></td></tr>
+<code>{_e(R["experiment"])}</code>; started from {_e(weights_line({"weights": model.get("weights")}))}</td></tr>
 <tr><th>training data</th><td>digest <code>{_e(str(R.get("data_digest"))[:16])}</code>;
 photo scale {scale_txt}</td></tr>
 <tr><th>threshold</th><td>{_e(s["threshold_source"])}; {independent}</td></tr>
