@@ -164,9 +164,18 @@ def test_gate_verdict_and_missing_values_are_shown(demo_run):
 
 
 def test_weights_source_is_named(demo_run):
+    """The card names the weights a model started from: the checkpoint's record (name,
+    source, SHA-256 prefix), random initialisation, or, for checkpoints from before the
+    record, what the recipe asked for."""
     out, _ = demo_run
     ckpt, _, experiment = _load(out)
-    ckpt = dict(ckpt, config=dict(ckpt["config"], weights="/models/backbone.pth"))
-    card = build_model_card(ckpt, experiment=experiment)
-    assert "from the file `/models/backbone.pth`" in card
-    assert "random initialisation" not in _section(card, "The model")
+    rec = {"name": "weights of a test", "source": "/models/backbone.pth", "sha256": "abcdef0123"}
+    card = build_model_card(dict(ckpt, weights=rec), experiment=experiment)
+    line = "weights of a test, from /models/backbone.pth, SHA-256 abcdef01..."
+    assert line in _section(card, "The model")
+    random = build_model_card(dict(ckpt, weights={"name": "random initialisation"}))
+    assert "random initialisation (no pretrained weights)" in _section(random, "The model")
+    old = {k: v for k, v in ckpt.items() if k != "weights"}
+    old["config"] = dict(ckpt["config"], weights="/models/backbone.pth")
+    card = build_model_card(old, experiment=experiment)
+    assert "not recorded (the recipe asked for weights `/models/backbone.pth`)" in card
