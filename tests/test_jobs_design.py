@@ -5,7 +5,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from trainkit.jobs.design import STRATA, DesignError, allocate, assign_strata, draw_sample
+from trainkit.jobs.design import (
+    STRATA,
+    DesignError,
+    allocate,
+    assign_strata,
+    design_codes,
+    draw_sample,
+    rest_band_edges,
+)
 
 COCHRAN = "Cochran, W. G. (1977). Sampling Techniques, 3rd ed., ch. 5"
 
@@ -35,12 +43,18 @@ def test_same_seed_same_sample_and_other_seed_another():
 def test_sample_is_within_strata_without_replacement_with_recorded_inclusion_probability():
     p = _probabilities(5000)
     s = draw_sample(p, 0.5, 300, seed=3)
-    codes = assign_strata(p, 0.5)
+    # The default design cuts `rest` into bands whose edges it records (adapted from the
+    # three-stratum layout: the codes are recomputed from the recorded edges).
+    assert len(s.rest_edges) == 2
+    codes = assign_strata(p, 0.5, rest_edges=s.rest_edges)
     assert s.index.size == 300 == int(s.allocated.sum())
     assert np.unique(s.index).size == s.index.size  # without replacement
     assert np.array_equal(codes[s.index], s.stratum)
-    assert np.array_equal(s.population, np.bincount(codes, minlength=3))
-    for h in range(3):
+    assert np.array_equal(s.population, np.bincount(codes, minlength=len(STRATA)))
+    assert [r["stratum"] for r in s.strata_table()] == ["flagged", "near"] + [
+        f"rest-{j}" for j in (1, 2, 3)
+    ]
+    for h in design_codes(s.rest_edges):
         in_h = s.stratum == h
         assert in_h.sum() == s.allocated[h]
         # Inclusion probability of SRS without replacement in a stratum: n_h / N_h (COCHRAN).
@@ -55,7 +69,7 @@ def test_empirical_inclusion_frequency_matches_n_h_over_N_h():
     hits = np.zeros(p.size)
     reps = 3000
     for seed in range(reps):
-        s = draw_sample(p, 0.5, 12, seed=seed, min_per_stratum=2)
+        s = draw_sample(p, 0.5, 12, seed=seed, min_per_stratum=2, rest_bands=1)
         hits[s.index] += 1
     prob = s.inclusion_probability[np.searchsorted(s.stratum, assign_strata(p, 0.5))]
     se = np.sqrt(prob * (1 - prob) / reps)
@@ -105,4 +119,4 @@ def test_full_census_and_errors_name_the_value():
 def test_a_million_cells_draw_in_one_pass():
     p = _probabilities(1_000_000, seed=5)
     s = draw_sample(p, 0.5, 1000, seed=1)
-    assert s.index.size == 1000 and np.all(np.diff(s.index[s.stratum == 2]) > 0)
+    assert s.index.size == 1000 and np.all(np.diff(s.index[s.stratum == 5]) > 0)
