@@ -233,7 +233,9 @@ def rest_band_edges(
         DesignError: on a band count out of range or malformed probabilities.
     """
     if isinstance(bands, bool) or not isinstance(bands, (int, np.integer)):
-        raise DesignError(f"expected rest_bands to be an int in [1, {MAX_REST_BANDS}], got {bands!r}")
+        raise DesignError(
+            f"expected rest_bands to be an int in [1, {MAX_REST_BANDS}], got {bands!r}"
+        )
     if not 1 <= bands <= MAX_REST_BANDS:
         raise DesignError(f"expected rest_bands in [1, {MAX_REST_BANDS}], got {bands}")
     p = _check_probabilities(probabilities)

@@ -21,8 +21,8 @@ numerator, every other stratum holds misses.
 
 Intervals: Wald intervals (estimate ± z·se) under-cover where recall is near 1 and few
 misses are seen; the default is a conservative beta-binomial Monte Carlo interval after
-Webber, its lean pooled over the unflagged strata ("Approximate recall confidence intervals", ACM TOIS 31(1), 2013), with
-Korn-Graubard (Survey Methodology 24(2), 1998), Jeffreys and Wald for comparison: see
+Webber ("Approximate recall confidence intervals", ACM TOIS 31(1), 2013), its lean
+pooled over the unflagged strata, with Korn-Graubard (Survey Methodology 24(2), 1998), Jeffreys and Wald for comparison: see
 :mod:`trainkit.jobs.intervals`.
 
 Unsure or unanswered cells are counted per stratum and reported; the estimate treats the

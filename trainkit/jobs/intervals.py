@@ -108,7 +108,8 @@ def simulated_intervals(
 
     ``"jeffreys"``: one set of draws, every stratum with a ``Beta(x + 0.5, n - x + 0.5)``
     rate, central quantiles. ``"pooled-beta-binomial"``: as ``"beta-binomial"`` with the
-    unflagged strata's pseudo-count ``N_h / sum(N_unflagged)`` instead of 1 each. ``"beta-binomial"``: two sets in the manner of the
+    unflagged strata's pseudo-count ``N_h / sum(N_unflagged)`` instead of 1 each.
+    ``"beta-binomial"``: two sets in the manner of the
     Clopper-Pearson interval, whose ends are the quantiles of ``Beta(x, n - x + 1)`` and
     ``Beta(x + 1, n - x)``: the low end of recall (and high end of false alarms) from draws
     that lean every stratum's rate toward more misses (flagged: fewer cracks, near and
