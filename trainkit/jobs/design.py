@@ -20,6 +20,13 @@ threshold ``t``:
   :func:`assign_strata` takes them back. With ``rest_bands = 1`` the design is the
   original three-stratum one (``flagged``, ``near``, ``rest``).
 
+  The bands narrow recall intervals only together with the pooled interval of
+  :mod:`trainkit.jobs.intervals` (``pooled-beta-binomial``): a conservative interval that
+  adds one phantom miss per stratum widens with every band (measured in
+  ``benchmarks/job_intervals.py``). When no miss is seen, no valid interval can be much
+  narrower than the Clopper-Pearson bound on the misses in the whole unflagged pile,
+  which shrinks only with the number of unflagged cells answered.
+
 Within each stratum the cells are drawn by simple random sampling without replacement, so
 a cell of stratum h is included with probability ``n_h / N_h`` (recorded per cell).
 
