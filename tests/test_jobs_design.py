@@ -5,7 +5,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from trainkit.jobs.design import STRATA, DesignError, allocate, assign_strata, draw_sample
+from trainkit.jobs.design import (
+    STRATA,
+    DesignError,
+    allocate,
+    assign_strata,
+    design_codes,
+    draw_sample,
+    rest_band_edges,
+)
 
 COCHRAN = "Cochran, W. G. (1977). Sampling Techniques, 3rd ed., ch. 5"
 
@@ -35,12 +43,18 @@ def test_same_seed_same_sample_and_other_seed_another():
 def test_sample_is_within_strata_without_replacement_with_recorded_inclusion_probability():
     p = _probabilities(5000)
     s = draw_sample(p, 0.5, 300, seed=3)
-    codes = assign_strata(p, 0.5)
+    # The default design cuts `rest` into bands whose edges it records (adapted from the
+    # three-stratum layout: the codes are recomputed from the recorded edges).
+    assert len(s.rest_edges) == 2
+    codes = assign_strata(p, 0.5, rest_edges=s.rest_edges)
     assert s.index.size == 300 == int(s.allocated.sum())
     assert np.unique(s.index).size == s.index.size  # without replacement
     assert np.array_equal(codes[s.index], s.stratum)
-    assert np.array_equal(s.population, np.bincount(codes, minlength=3))
-    for h in range(3):
+    assert np.array_equal(s.population, np.bincount(codes, minlength=len(STRATA)))
+    assert [r["stratum"] for r in s.strata_table()] == ["flagged", "near"] + [
+        f"rest-{j}" for j in (1, 2, 3)
+    ]
+    for h in design_codes(s.rest_edges):
         in_h = s.stratum == h
         assert in_h.sum() == s.allocated[h]
         # Inclusion probability of SRS without replacement in a stratum: n_h / N_h (COCHRAN).
@@ -55,7 +69,7 @@ def test_empirical_inclusion_frequency_matches_n_h_over_N_h():
     hits = np.zeros(p.size)
     reps = 3000
     for seed in range(reps):
-        s = draw_sample(p, 0.5, 12, seed=seed, min_per_stratum=2)
+        s = draw_sample(p, 0.5, 12, seed=seed, min_per_stratum=2, rest_bands=1)
         hits[s.index] += 1
     prob = s.inclusion_probability[np.searchsorted(s.stratum, assign_strata(p, 0.5))]
     se = np.sqrt(prob * (1 - prob) / reps)
@@ -105,4 +119,65 @@ def test_full_census_and_errors_name_the_value():
 def test_a_million_cells_draw_in_one_pass():
     p = _probabilities(1_000_000, seed=5)
     s = draw_sample(p, 0.5, 1000, seed=1)
-    assert s.index.size == 1000 and np.all(np.diff(s.index[s.stratum == 2]) > 0)
+    assert s.index.size == 1000 and np.all(np.diff(s.index[s.stratum == 5]) > 0)
+
+
+def test_rest_bands_are_tertiles_of_the_rest_pile_and_recorded_for_later():
+    # Equal-count bands: each of the 3 bands holds a third of the rest pile, to within the
+    # one cell an interpolated quantile may move (definition of tertiles; distinct p here).
+    p = _probabilities(3000, seed=7)
+    s = draw_sample(p, 0.5, 200, seed=1)
+    rest = p[p < 0.1]
+    assert rest_band_edges(p, 0.5, bands=3) == s.rest_edges
+    low, high = s.rest_edges
+    sizes = [(rest >= high).sum(), ((rest >= low) & (rest < high)).sum(), (rest < low).sum()]
+    assert all(abs(k - rest.size / 3) <= 1 for k in sizes)
+    table = {r["stratum"]: r["cells"] for r in s.strata_table()}
+    assert [table["rest-1"], table["rest-2"], table["rest-3"]] == sizes
+    # A stored sample can be re-stratified from its JSON: same codes for every cell.
+    d = s.to_dict()
+    codes = assign_strata(p, d["threshold"], near_fraction=0.2, rest_edges=d["rest_edges"])
+    assert [STRATA[c] for c in codes[s.index]] == [c["stratum"] for c in d["cells"]]
+    # One band is the original three-stratum design, with no edges.
+    old = draw_sample(p, 0.5, 200, seed=1, rest_bands=1)
+    assert old.rest_edges == () and [r["stratum"] for r in old.strata_table()] == [
+        "flagged",
+        "near",
+        "rest",
+    ]
+    with pytest.raises(DesignError, match="rest_bands in \\[1, 4\\], got 5"):
+        draw_sample(p, 0.5, 200, seed=1, rest_bands=5)
+    with pytest.raises(DesignError, match="rest_edges"):
+        assign_strata(p, 0.5, rest_edges=[0.05, 0.01])
+
+
+def test_banded_design_empirical_inclusion_frequency_matches_n_h_over_N_h():
+    # Every cell of every band is included with probability n_h / N_h (COCHRAN, SRSWOR):
+    # the frequency over 3000 seeds lies within 4.5 binomial standard errors of it.
+    p = np.concatenate([np.full(6, 0.9), np.full(9, 0.3), np.linspace(0.001, 0.09, 30)])
+    hits = np.zeros(p.size)
+    reps = 3000
+    for seed in range(reps):
+        s = draw_sample(p, 0.5, 15, seed=seed, min_per_stratum=2)
+        hits[s.index] += 1
+    codes = assign_strata(p, 0.5, rest_edges=s.rest_edges)
+    assert sorted(set(codes.tolist())) == [0, 1, 3, 4, 5]
+    prob = (s.allocated / np.maximum(s.population, 1))[codes]
+    se = np.sqrt(prob * (1 - prob) / reps)
+    assert np.all(np.abs(hits / reps - prob) < 4.5 * se)
+
+
+@pytest.mark.parametrize("seed", range(20))
+def test_banded_allocation_within_sizes_reaches_every_stratum_and_is_seeded(seed):
+    rng = np.random.default_rng(seed)
+    size = int(rng.integers(12, 400))
+    p = rng.beta(0.5, 6.0, size)
+    n = int(rng.integers(5, size + 1))
+    s = draw_sample(p, 0.5, n, seed=seed)
+    assert s.allocated.sum() == n == s.index.size
+    assert np.all(s.allocated <= s.population) and np.all(s.allocated >= 0)
+    nonempty = s.population > 0
+    if n >= nonempty.sum():  # the floor is lowered for a small n so no stratum is skipped
+        assert np.all(s.allocated[nonempty] >= 1)
+    again = draw_sample(p, 0.5, n, seed=seed)
+    assert np.array_equal(s.index, again.index) and s.rest_edges == again.rest_edges

@@ -189,3 +189,87 @@ def test_beta_binomial_reduces_to_clopper_pearson_on_one_huge_stratum(k, n, low,
     e = estimate_job(["rest"] * n, [1] * k + [0] * (n - k), {"rest": big}, draws=200_000, seed=1)
     assert e.crack_total.low / big == pytest.approx(low, abs=0.002)
     assert e.crack_total.high / big == pytest.approx(high, abs=0.002)
+
+
+def test_enumeration_on_the_banded_layout_unbiased_total_and_recall_strata():
+    # Five strata (flagged, near, rest-1..3) of 4 cells, 2 answered in each: all 6^5 = 7776
+    # samples. The stratified total is unbiased and the mean of its variance estimate is the
+    # exact variance sum N_h^2 (1 - f_h) S_h^2 / n_h (COCHRAN5, theorems 5.1-5.4).
+    names = ["flagged", "near", "rest-1", "rest-2", "rest-3"]
+    pop = [
+        np.array(v) for v in ([1, 1, 0, 1], [0, 1, 0, 0], [1, 0, 0, 0], [0, 0, 0, 0], [0, 1, 1, 0])
+    ]
+    sizes = {n: 4 for n in names}
+    est, var, flagged_total = [], [], []
+    for combo in itertools.product(*[itertools.combinations(range(4), 2) for _ in names]):
+        strata = [n for n, c in zip(names, combo, strict=True) for _ in c]
+        answers = [int(v[i]) for v, c in zip(pop, combo, strict=True) for i in c]
+        e = estimate_job(strata, answers, sizes, method="wald")
+        est.append(e.crack_total.estimate)
+        var.append(e.crack_total.se**2)
+        flagged_total.append(e.recall.estimate * e.crack_total.estimate)
+    truth = sum(int(v.sum()) for v in pop)
+    exact = sum(16 * (1 - 2 / 4) * np.var(v, ddof=1) / 2 for v in pop)
+    assert np.mean(est) == pytest.approx(truth)
+    assert np.mean(var) == pytest.approx(exact)
+    # recall's numerator is the flagged stratum alone, whose total is unbiased too.
+    assert np.mean(flagged_total) == pytest.approx(int(pop[0].sum()))
+    assert {r["stratum"] for r in e.strata} == set(names)
+
+
+def test_old_three_size_array_still_means_flagged_near_rest():
+    by_name = estimate_job(STRATA_HAND, ANSWERS_HAND, N_HAND, method="wald")
+    by_array = estimate_job(STRATA_HAND, ANSWERS_HAND, np.array([10, 20, 40]), method="wald")
+    assert by_name == by_array
+
+
+def test_pooled_lean_equals_the_per_stratum_lean_with_one_unflagged_stratum():
+    # With one unflagged stratum its pooled pseudo-count is N/N = 1: the two methods are one.
+    strata = ["flagged"] * 5 + ["rest"] * 5
+    answers = [1, 1, 1, 1, 0] + [1, 0, 0, 0, 0]
+    sizes = {"flagged": 10, "rest": 40}
+    a = estimate_job(strata, answers, sizes, method="pooled-beta-binomial", draws=4000, seed=2)
+    b = estimate_job(strata, answers, sizes, method="beta-binomial", draws=4000, seed=2)
+    assert (a.recall.low, a.recall.high) == (b.recall.low, b.recall.high)
+    # With several unflagged strata and no miss seen the per-stratum lean adds one phantom
+    # miss per stratum (weight N_h / n_h each); the pooled one adds about one in all.
+    strata = ["flagged"] * 20 + ["near"] * 20 + [f"rest-{j}" for j in (1, 2, 3) for _ in range(20)]
+    answers = [1] * 15 + [0] * 5 + [0] * 80
+    sizes = {"flagged": 60, "near": 300, "rest-1": 2000, "rest-2": 2000, "rest-3": 2000}
+    a = estimate_job(strata, answers, sizes, method="pooled-beta-binomial", draws=4000, seed=2)
+    b = estimate_job(strata, answers, sizes, method="beta-binomial", draws=4000, seed=2)
+    assert a.recall.low > b.recall.low
+
+
+def _uninformative_job(n_cells: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cells whose missed cracks take the probability of a random clean cell below 0.1."""
+    p, y = _population(n_cells, 150, 0.95, seed=seed)
+    rng = np.random.default_rng(seed)
+    pile = p[~y & (p < 0.1)]
+    missed = y & (p < 0.5)
+    p[missed] = rng.choice(pile, int(missed.sum()))
+    return p, y
+
+
+@pytest.mark.parametrize("job", ["misses low", "misses spread over rest"])
+def test_default_banded_design_and_pooled_interval_cover_by_simulation(job):
+    # The new default (rest cut into 3 bands, pooled-beta-binomial) over 250 seeded samples
+    # of one fixed job, including one where p says nothing about where in the rest pile
+    # the misses are. Target from issue 16: coverage >= 0.93.
+    p, y = (
+        _population(4000, 150, 0.95, seed=2) if job == "misses low" else _uninformative_job(4000, 3)
+    )
+    flagged = p >= 0.5
+    true_r = (y & flagged).sum() / y.sum()
+    true_a = (~y & flagged).sum() / (~y).sum()
+    hit_r = hit_a = 0
+    reps = 250
+    for r in range(reps):
+        s = draw_sample(p, 0.5, 200, seed=r)
+        assert len(s.rest_edges) == 2
+        e = estimate_job(s.stratum, y[s.index], s.population, draws=2000, seed=r)
+        assert e.recall.method == "pooled-beta-binomial"
+        hit_r += e.recall.low <= true_r <= e.recall.high
+        hit_a += e.false_alarm_rate.low <= true_a <= e.false_alarm_rate.high
+    assert hit_r / reps >= 0.93
+    assert hit_a / reps >= 0.93

@@ -1,23 +1,41 @@
 """Draw a stratified random sample of a scan's cells over the screening probability.
 
 The design (Cochran, *Sampling Techniques*, 3rd ed. 1977, ch. 5): every cell of a finished
-scan falls into exactly one of three strata by its screening probability ``p`` and the
-model's threshold ``t``:
+scan falls into exactly one stratum by its screening probability ``p`` and the model's
+threshold ``t``:
 
 - ``flagged``: ``p >= t`` (what the screener sends to a person);
 - ``near``: ``t * near_fraction <= p < t``, the band just below the threshold where a
   screener's near-misses sit (default ``near_fraction = 0.2``: with ``t = 0.5`` the band
   is ``[0.1, 0.5)``; a ratio band is kept rather than a quantile band so that its meaning
   does not change with the job's mix of clean and cracked cells);
-- ``rest``: ``p < t * near_fraction``, the large unflagged pile where silent misses hide.
+- ``rest``: ``p < t * near_fraction``, the large unflagged pile where silent misses hide,
+  by default cut into ``rest_bands = 3`` bands of equal size by the quantiles of ``p``
+  within it: ``rest-1`` (highest p) ... ``rest-k`` (lowest). Stratifying on an auxiliary
+  variable correlated with the target is Cochran's section 5A.7 (Dalenius and Hodges,
+  JASA 54, 1959, give the cum-sqrt(f) rule for the edges); equal-count bands are this
+  module's simpler choice (from memory, the gain of any reasonable edges is close to the
+  optimum's). Quantile bands are the same in ``p`` and in ``log p``. The inner edges are
+  data-dependent, so they are recorded (:attr:`JobSample.rest_edges`, ``to_dict()``) and
+  :func:`assign_strata` takes them back. With ``rest_bands = 1`` the design is the
+  original three-stratum one (``flagged``, ``near``, ``rest``).
+
+  The bands narrow recall intervals only together with the pooled interval of
+  :mod:`trainkit.jobs.intervals` (``pooled-beta-binomial``): a conservative interval that
+  adds one phantom miss per stratum widens with every band (measured in
+  ``benchmarks/job_intervals.py``). When no miss is seen, no valid interval can be much
+  narrower than the Clopper-Pearson bound on the misses in the whole unflagged pile,
+  which shrinks only with the number of unflagged cells answered.
 
 Within each stratum the cells are drawn by simple random sampling without replacement, so
 a cell of stratum h is included with probability ``n_h / N_h`` (recorded per cell).
 
 Allocation of the N cells (a documented rule, not a published optimum):
 
-1. every non-empty stratum first gets ``min(N_h, min_per_stratum)`` cells (default 20:
-   enough for a within-stratum variance, and a floor so that no pile goes unchecked);
+1. every non-empty stratum first gets ``min(N_h, floor)`` cells, ``floor =
+   min(min_per_stratum, n // strata)`` but at least 1 (default 20: enough for a
+   within-stratum variance, and a floor so that no pile goes unchecked; lowered for a
+   small n so that every stratum is reached);
 2. the remainder goes in proportion to ``N_h * S_h`` (Neyman allocation, Cochran ch. 5),
    with the prior standard deviation ``S_h = sqrt(q_h (1 - q_h))`` of a crack indicator
    whose prevalence ``q_h`` is the stratum's mean screening probability, clipped to
@@ -40,14 +58,33 @@ from numpy.typing import ArrayLike
 __all__ = [
     "STRATA",
     "DesignError",
+    "MAX_REST_BANDS",
     "JobSample",
     "allocate",
     "assign_strata",
+    "design_codes",
     "draw_sample",
+    "rest_band_edges",
 ]
 
-#: Stratum names, in code order (the ``stratum`` arrays hold these indices).
-STRATA: tuple[str, ...] = ("flagged", "near", "rest")
+#: Most bands the ``rest`` pile may be cut into.
+MAX_REST_BANDS = 4
+
+#: Stratum names, in code order (the ``stratum`` arrays hold these indices). A design uses
+#: either ``rest`` (one band) or ``rest-1`` ... ``rest-k``; the unused codes hold no cells.
+STRATA: tuple[str, ...] = ("flagged", "near", "rest") + tuple(
+    f"rest-{j}" for j in range(1, MAX_REST_BANDS + 1)
+)
+
+#: Code of the first ``rest-j`` band.
+_BAND0 = 3
+
+
+def design_codes(rest_edges: tuple[float, ...] | list[float] = ()) -> tuple[int, ...]:
+    """Stratum codes a design with these inner ``rest`` edges uses, in ``STRATA`` order."""
+    if not len(rest_edges):
+        return (0, 1, 2)
+    return (0, 1) + tuple(range(_BAND0, _BAND0 + len(rest_edges) + 1))
 
 
 class DesignError(ValueError):
@@ -63,11 +100,14 @@ class JobSample:
             :func:`draw_sample`, sorted by stratum and then by position.
         stratum: (n,) int8 stratum code of each sampled cell (an index into ``STRATA``).
         inclusion_probability: (n,) float64, ``n_h / N_h`` of the cell's stratum.
-        population: (3,) int64 stratum sizes N_h, in ``STRATA`` order.
-        allocated: (3,) int64 sample sizes n_h, in ``STRATA`` order.
+        population: (len(STRATA),) int64 stratum sizes N_h, in ``STRATA`` order (0 for
+            the codes this design does not use).
+        allocated: (len(STRATA),) int64 sample sizes n_h, in ``STRATA`` order.
         threshold: the model's screening threshold t.
         near_low: the lower edge ``t * near_fraction`` of the ``near`` band.
         seed: the seed that drew the sample.
+        rest_edges: ascending inner edges of the ``rest`` bands (empty: one ``rest``
+            stratum); a cell with ``p >= edge`` lies above it.
     """
 
     index: np.ndarray
@@ -78,15 +118,16 @@ class JobSample:
     threshold: float
     near_low: float
     seed: int
+    rest_edges: tuple[float, ...] = ()
 
     def strata_table(self) -> list[dict[str, Any]]:
-        """Per-stratum name, N_h, n_h and inclusion probability, ready for JSON."""
+        """Per-stratum name, N_h, n_h and inclusion probability of the design's strata."""
         rows = []
-        for h, name in enumerate(STRATA):
+        for h in design_codes(self.rest_edges):
             big, small = int(self.population[h]), int(self.allocated[h])
             rows.append(
                 {
-                    "stratum": name,
+                    "stratum": STRATA[h],
                     "cells": big,
                     "sampled": small,
                     "inclusion_probability": small / big if big else 0.0,
@@ -99,6 +140,7 @@ class JobSample:
         return {
             "threshold": self.threshold,
             "near_low": self.near_low,
+            "rest_edges": [float(e) for e in self.rest_edges],
             "seed": self.seed,
             "strata": self.strata_table(),
             "cells": [
@@ -136,14 +178,22 @@ def _check_probabilities(probabilities: ArrayLike) -> np.ndarray:
 
 
 def assign_strata(
-    probabilities: ArrayLike, threshold: float, *, near_fraction: float = 0.2
+    probabilities: ArrayLike,
+    threshold: float,
+    *,
+    near_fraction: float = 0.2,
+    rest_edges: tuple[float, ...] | list[float] = (),
 ) -> np.ndarray:
-    """Stratum code of every cell: 0 flagged (p >= t), 1 near, 2 rest.
+    """Stratum code of every cell: 0 flagged (p >= t), 1 near, then rest or its bands.
 
     Args:
         probabilities: (n,) screening probability per cell, in [0, 1].
         threshold: the model's screening threshold t in (0, 1].
         near_fraction: the ``near`` band is ``[t * near_fraction, t)``; in [0, 1).
+        rest_edges: ascending inner edges of the ``rest`` bands (at most
+            ``MAX_REST_BANDS - 1``); empty gives one ``rest`` stratum (code 2), else a
+            cell with ``p`` in ``[edge_j, edge_j+1)`` of the k bands, counted from the top,
+            gets ``rest-j``.
 
     Returns:
         (n,) int8 stratum codes, indices into ``STRATA``.
@@ -154,10 +204,55 @@ def assign_strata(
     p = _check_probabilities(probabilities)
     t = _check_unit(threshold, "threshold")
     f = _check_unit(near_fraction, "near_fraction", open_low=False)
+    edges = np.asarray(rest_edges, dtype=np.float64)
+    if edges.ndim != 1 or edges.size > MAX_REST_BANDS - 1 or np.any(np.diff(edges) < 0):
+        raise DesignError(
+            f"expected at most {MAX_REST_BANDS - 1} ascending rest_edges, got {rest_edges!r}"
+        )
+    if edges.size and (not np.all(np.isfinite(edges)) or edges.max() > t * f):
+        raise DesignError(f"expected rest_edges within [0, {t * f:.6g}], got {rest_edges!r}")
     codes = np.full(p.shape, 2, dtype=np.int8)
+    if edges.size:
+        codes[:] = _BAND0 + edges.size - np.searchsorted(edges, p, side="right")
     codes[p >= t * f] = 1
     codes[p >= t] = 0
     return codes
+
+
+def rest_band_edges(
+    probabilities: ArrayLike, threshold: float, *, near_fraction: float = 0.2, bands: int = 3
+) -> tuple[float, ...]:
+    """Inner edges cutting the ``rest`` pile into ``bands`` bands of (about) equal size.
+
+    The edges are the ``j / bands`` quantiles of ``p`` among the ``rest`` cells (numpy's
+    default linear interpolation); ties stay in one band, so a band may be empty.
+
+    Args:
+        probabilities: (n,) screening probability per cell.
+        threshold: the model's screening threshold t.
+        near_fraction: the ``near`` band's lower edge is ``t * near_fraction``.
+        bands: 1 to ``MAX_REST_BANDS``.
+
+    Returns:
+        ``bands - 1`` ascending edges (empty for one band or an empty ``rest`` pile).
+
+    Raises:
+        DesignError: on a band count out of range or malformed probabilities.
+    """
+    if isinstance(bands, bool) or not isinstance(bands, (int, np.integer)):
+        raise DesignError(
+            f"expected rest_bands to be an int in [1, {MAX_REST_BANDS}], got {bands!r}"
+        )
+    if not 1 <= bands <= MAX_REST_BANDS:
+        raise DesignError(f"expected rest_bands in [1, {MAX_REST_BANDS}], got {bands}")
+    p = _check_probabilities(probabilities)
+    low = _check_unit(threshold, "threshold") * _check_unit(
+        near_fraction, "near_fraction", open_low=False
+    )
+    rest = p[p < low]
+    if bands == 1 or rest.size == 0:
+        return ()
+    return tuple(float(e) for e in np.quantile(rest, np.arange(1, bands) / bands))
 
 
 def allocate(
@@ -234,6 +329,7 @@ def draw_sample(
     near_fraction: float = 0.2,
     min_per_stratum: int = 20,
     prior_floor: float = 0.05,
+    rest_bands: int = 3,
 ) -> JobSample:
     """Draw n cells by stratified simple random sampling without replacement.
 
@@ -248,6 +344,8 @@ def draw_sample(
         near_fraction: the ``near`` band is ``[t * near_fraction, t)``.
         min_per_stratum: floor of cells per non-empty stratum.
         prior_floor: clip of the prior prevalence in the Neyman weights, in (0, 0.5].
+        rest_bands: bands the ``rest`` pile is cut into (1 to ``MAX_REST_BANDS``; 1 is
+            the original three-stratum design).
 
     Returns:
         The :class:`JobSample`.
@@ -261,12 +359,21 @@ def draw_sample(
     if floor > 0.5:
         raise DesignError(f"expected prior_floor in (0, 0.5], got {prior_floor!r}")
     p = _check_probabilities(probabilities)
-    codes = assign_strata(p, threshold, near_fraction=near_fraction)
+    edges = rest_band_edges(p, threshold, near_fraction=near_fraction, bands=rest_bands)
+    codes = assign_strata(p, threshold, near_fraction=near_fraction, rest_edges=edges)
     big = np.bincount(codes, minlength=len(STRATA)).astype(np.int64)
     sums = np.bincount(codes, weights=p, minlength=len(STRATA))
     mean = np.divide(sums, big, out=np.full(len(STRATA), 0.5), where=big > 0)
     q = np.clip(mean, floor, 1.0 - floor)
-    alloc = allocate(big, n, prior_sd=np.sqrt(q * (1.0 - q)), min_per_stratum=min_per_stratum)
+    used = list(design_codes(edges))
+    if isinstance(min_per_stratum, bool) or not isinstance(min_per_stratum, (int, np.integer)):
+        raise DesignError(f"expected min_per_stratum to be an int >= 1, got {min_per_stratum!r}")
+    if isinstance(n, (int, np.integer)) and not isinstance(n, bool) and min_per_stratum >= 1:
+        min_per_stratum = max(1, min(int(min_per_stratum), int(n) // int((big > 0).sum())))
+    alloc = np.zeros(len(STRATA), dtype=np.int64)
+    alloc[used] = allocate(
+        big[used], n, prior_sd=np.sqrt(q * (1.0 - q))[used], min_per_stratum=min_per_stratum
+    )
     rng = np.random.default_rng(int(seed))
     # One stable sort groups the cells by stratum; each group is drawn from without
     # replacement, so the work is O(n_cells log n_cells) once, not once per stratum.
@@ -290,4 +397,5 @@ def draw_sample(
         threshold=float(threshold),
         near_low=float(threshold) * float(near_fraction),
         seed=int(seed),
+        rest_edges=edges,
     )

@@ -15,10 +15,14 @@ sampling (Cochran, *Sampling Techniques*, 3rd ed. 1977):
   likewise, with ``v(C_h) = v(Y_h)``;
 - flagged share ``N_F / N`` is known exactly: every cell's probability is in the census.
 
+The strata are any of ``STRATA`` (``flagged``, ``near`` and either ``rest`` or the bands
+``rest-1`` ... ``rest-k`` of :mod:`trainkit.jobs.design`); ``flagged`` is recall's
+numerator, every other stratum holds misses.
+
 Intervals: Wald intervals (estimate ± z·se) under-cover where recall is near 1 and few
 misses are seen; the default is a conservative beta-binomial Monte Carlo interval after
-Webber ("Approximate recall confidence intervals", ACM TOIS 31(1), 2013), with
-Korn-Graubard (Survey Methodology 24(2), 1998), Jeffreys and Wald for comparison: see
+Webber ("Approximate recall confidence intervals", ACM TOIS 31(1), 2013), its lean
+pooled over the unflagged strata, with Korn-Graubard (Survey Methodology 24(2), 1998), Jeffreys and Wald for comparison: see
 :mod:`trainkit.jobs.intervals`.
 
 Unsure or unanswered cells are counted per stratum and reported; the estimate treats the
@@ -50,7 +54,17 @@ __all__ = [
     "threshold_for_recall",
 ]
 
-INTERVAL_METHODS: tuple[str, ...] = ("beta-binomial", "jeffreys", "korn-graubard", "wald")
+INTERVAL_METHODS: tuple[str, ...] = (
+    "pooled-beta-binomial",
+    "beta-binomial",
+    "jeffreys",
+    "korn-graubard",
+    "wald",
+)
+
+#: Stratum sizes given as an array of this length are the original three-stratum layout
+#: (flagged, near, rest), kept for callers and stored samples from before the rest bands.
+_OLD_LAYOUT = 3
 
 
 class EstimateError(ValueError):
@@ -87,8 +101,8 @@ class JobEstimate:
         false_alarm_rate: clean flagged / all clean.
         crack_total: estimated number of crack cells in the job.
         flagged_share: flagged cells / all cells, exact (from the census of probabilities).
-        strata: per stratum: name, cells N_h, answered n_h, cracks x_h, unresolved
-            (unsure or unanswered) count, weight N_h / n_h.
+        strata: per non-empty stratum: name, cells N_h, answered n_h, cracks x_h,
+            unresolved (unsure or unanswered) count, weight N_h / n_h.
         answered: answered cells in all.
         unresolved: unsure or unanswered sampled cells in all.
     """
@@ -147,10 +161,12 @@ def _population(population: ArrayLike | Mapping[str, int]) -> np.ndarray:
             )
         population = [population.get(s, 0) for s in STRATA]
     big = np.asarray(population)
+    if big.shape == (_OLD_LAYOUT,) and big.dtype.kind in "iu":
+        big = np.concatenate([big, np.zeros(len(STRATA) - _OLD_LAYOUT, dtype=big.dtype)])
     if big.shape != (len(STRATA),) or big.dtype.kind not in "iu" or big.min() < 0:
         raise EstimateError(
-            f"expected {len(STRATA)} non-negative integer stratum sizes ({', '.join(STRATA)}), "
-            f"got {population!r}"
+            f"expected {len(STRATA)} (or the first {_OLD_LAYOUT}) non-negative integer "
+            f"stratum sizes ({', '.join(STRATA)}), got {population!r}"
         )
     return big.astype(np.int64)
 
@@ -166,7 +182,8 @@ def stratum_counts(
     Args:
         answered_strata: (m,) stratum (code or name) of each answered cell.
         answers: (m,) bool, True where the person saw a crack.
-        population: stratum sizes N_h, in ``STRATA`` order or as a name -> size mapping.
+        population: stratum sizes N_h, in ``STRATA`` order (or only the first three, the
+            original layout) or as a name -> size mapping.
         unresolved_strata: stratum of each sampled cell answered unsure or not at all.
 
     Returns:
@@ -230,7 +247,7 @@ def estimate_job(
     *,
     unresolved_strata: ArrayLike = (),
     confidence: float = 0.95,
-    method: str = "beta-binomial",
+    method: str = "pooled-beta-binomial",
     draws: int = 20000,
     prior: float = 0.5,
     seed: int = 0,
@@ -285,7 +302,7 @@ def estimate_job(
         low, high = est - z * se, est + z * se
         return (max(0.0, low), min(1.0, high)) if unit else (max(0.0, low), high)
 
-    if method in ("beta-binomial", "jeffreys"):
+    if method in ("pooled-beta-binomial", "beta-binomial", "jeffreys"):
         r_int, a_int, y_int = simulated_intervals(
             big, n, x, (recall, fa, y_tot), conf, method, int(draws), float(prior), int(seed)
         )
@@ -307,6 +324,7 @@ def estimate_job(
             "weight": float(weight[h]),
         }
         for h, name in enumerate(STRATA)
+        if big[h] > 0 or n[h] > 0 or u[h] > 0
     ]
     return JobEstimate(
         recall=Figure(float(recall), *r_int, se_r, method, conf),
