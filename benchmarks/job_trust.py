@@ -295,11 +295,13 @@ def scan_set(model: Path, frames: Path, out: Path, cracks: dict[str, list]) -> d
         for key, v in why.items():
             reasons[key] = reasons.get(key, 0) + v
     scores = [f.get("familiarity_score") for f in cells.frames]
+    frame_scores = np.array([np.nan if v is None else v for v in scores], float)
     warned = [bool(f.get("unfamiliar")) for f in cells.frames]
     return {
         "cells": cells,
         "p": cells.probabilities,
         "truth": truth,
+        "frame_scores": frame_scores,
         "summary": {
             "frames": len(cells.frames),
             "frame_px": [cells.frames[0]["width"], cells.frames[0]["height"]],
@@ -307,14 +309,59 @@ def scan_set(model: Path, frames: Path, out: Path, cracks: dict[str, list]) -> d
             "scan_seconds": round(seconds, 1),
             "unfamiliar_frames": int(sum(warned)),
             "unfamiliar_rate": sum(warned) / len(warned),
-            "familiarity_score_median": float(np.median([s for s in scores if s is not None]))
-            if any(s is not None for s in scores)
+            "frame_familiarity_min_median_max": [
+                float(np.min(known)),
+                float(np.median(known)),
+                float(np.max(known)),
+            ]
+            if (known := [s for s in scores if s is not None])
             else None,
             "scan_notes": counts.get("notes", []),
             "ambiguous_reasons": reasons,
             **true_figures(cells.probabilities, truth, cells.threshold),
         },
     }
+
+
+def frame_threshold_diagnostic(model: Path, workspace: Path, scans: dict[str, dict]) -> dict:
+    """What the warning would do with a threshold calibrated on frames, not on patches.
+
+    The exported threshold is the 99th percentile of validation *patch* scores, but a
+    frame is warned about when the *median* of its cells exceeds it. This diagnostic
+    (not the kit's rule) scores the validation photos by the same median rule
+    (``frame_score``), takes the largest validation photo score as a frame threshold
+    (a conservative choice, common practice rather than a published rule), and counts
+    the frames of each set above it.
+    """
+    from trainkit.core.familiarity import frame_score
+    from trainkit.labels.workspace import Workspace
+    from trainkit.learning.data import load_patch_set
+    from trainkit.screener.model import Screener
+
+    ws = Workspace.open(workspace)
+    val = load_patch_set(ws, "val", ws.class_set)
+    with Screener(model) as screener:
+        _, fam = screener.predict_all(val.images)
+        limit = float(screener.info.familiarity["threshold"])
+    if fam is None:
+        return {"note": "the model has no familiarity output"}
+    photos = np.array(val.photos)
+    medians = np.array([frame_score(fam[photos == ph], limit)[0] for ph in sorted(set(val.photos))])
+    thr = float(medians.max())
+    out = {
+        "validation_photos": int(medians.size),
+        "validation_photo_scores_min_median_max": [
+            float(medians.min()),
+            float(np.median(medians)),
+            thr,
+        ],
+        "patch_threshold_exported": limit,
+        "frame_threshold_diagnostic": thr,
+    }
+    for name, sc in scans.items():
+        f = sc["frame_scores"]
+        out[f"warning_rate_{name}"] = float(np.mean(f > thr))
+    return out
 
 
 # --- (d) intervals -----------------------------------------------------------------------
@@ -426,6 +473,10 @@ def end_to_end(scan_dir: Path, scanned: dict, ws_dir: Path, cells: int, patch_px
 # --- report ------------------------------------------------------------------------------
 
 
+def _r(values) -> str:
+    return "n/a" if values is None else " / ".join(f"{v:.3f}" for v in values)
+
+
 def _pct(v) -> str:
     return "  n/a" if v is None else f"{100 * v:5.1f}"
 
@@ -456,6 +507,19 @@ def print_tables(result: dict) -> None:
             f"{_pct(s['recall']):>10}{_pct(s['false_alarm_rate']):>7}{auc:>7}"
         )
     print("  targets: warning on >= 90 % of reserved-family frames, <= 5 % of held-out default")
+    for name, s in result["sets"].items():
+        print(
+            f"  {name}: frame familiarity min/median/max {_r(s['frame_familiarity_min_median_max'])}"
+        )
+    d = result["familiarity_frame_diagnostic"]
+    if "frame_threshold_diagnostic" in d:
+        print(
+            f"  exported patch threshold {d['patch_threshold_exported']:.3f}; diagnostic frame "
+            f"threshold {d['frame_threshold_diagnostic']:.3f} (largest median score of "
+            f"{d['validation_photos']} validation photos) would warn on "
+            f"{_pct(d['warning_rate_broom'])} % of reserved and "
+            f"{_pct(d['warning_rate_default'])} % of held-out default frames"
+        )
     print("\n(d) reserved family: 95 % intervals over repeated samples (simulated reviewer)")
     print(
         f"  {'design':<12}{'cells':>6}{'reps':>6}{'recall cov':>11}{'width':>7}{'mean est':>9}"
@@ -523,6 +587,8 @@ def main(argv: list[str] | None = None) -> int:
         cracks = make_frames(folder, plan, surface, seed)
         scans[surface] = scan_set(model, folder, args.out / f"scan-{surface}", cracks)
         sets[name] = scans[surface]["summary"]
+    say(args.quiet, "calibrating a frame-level familiarity threshold (diagnostic) ...")
+    diagnostic = frame_threshold_diagnostic(model, args.out / "workspace", scans)
     job = scans["broom"]
     thr = job["cells"].threshold
     say(args.quiet, f"repeating samples ({plan.reps} per size) ...")
@@ -543,6 +609,7 @@ def main(argv: list[str] | None = None) -> int:
         ),
         "screener": screener,
         "sets": sets,
+        "familiarity_frame_diagnostic": diagnostic,
         "intervals": intervals,
         "end_to_end": e2e,
         "wall_minutes": round((time.perf_counter() - t0) / 60, 2),
