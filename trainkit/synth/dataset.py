@@ -156,6 +156,15 @@ def _write_photo(out_dir: Path, spec: PhotoSpec, photo: SynthPhoto, jpeg_quality
     )
 
 
+def _options_record(options: SynthOptions) -> dict:
+    """The options as written to the manifest; ``surface`` only when it is not the default,
+    so manifests made before the option existed stay byte-identical."""
+    record = asdict(options)
+    if record["surface"] == "default":
+        del record["surface"]
+    return record
+
+
 def _check_arguments(
     n_photos: int, seed: int, tile_px: int, options: SynthOptions, jpeg_quality: int
 ) -> None:
@@ -247,7 +256,7 @@ def write_dataset(
         "n_photos": n_photos,
         "tile_px": tile_px,
         "jpeg_quality": int(jpeg_quality),
-        "options": asdict(options),
+        "options": _options_record(options),
         "rules": asdict(rules),
         "class_set": class_set.name,
         "class_names": list(class_set.names),

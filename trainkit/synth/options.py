@@ -7,13 +7,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["GENERATOR_VERSION", "SCENES", "SCENE_MIX", "SynthOptions"]
+__all__ = ["GENERATOR_VERSION", "SCENES", "SCENE_MIX", "SURFACES", "SynthOptions"]
 
 #: Recorded in manifests and truth files; bump when the generated pixels change.
 GENERATOR_VERSION = "trainkit.synth 1.0"
 
 #: Scene kinds accepted by :class:`SynthOptions` (``random`` resolves to one of the others).
 SCENES = ("none", "single", "multi", "map", "random")
+
+#: Surface families accepted by :class:`SynthOptions`. ``default`` is the family of every
+#: dataset, demo frame and test of the kit; ``broom`` is reserved for
+#: ``benchmarks/job_trust.py`` (a surface no training data has: see
+#: :mod:`trainkit.synth.reserved`) and must never be used for the demo or the tiny dataset.
+SURFACES = ("default", "broom")
 
 #: Scene mix used for ``scene="random"`` and by :func:`write_dataset`.
 SCENE_MIX: tuple[tuple[str, float], ...] = (
@@ -39,6 +45,9 @@ class SynthOptions:
         noise_sigma: sensor noise in grey levels.
         jpeg_quality: if set, the returned image went through JPEG at this quality.
         gsd_mm: scale in mm per pixel, recorded for widths/lengths in mm.
+        surface: surface family, one of :data:`SURFACES`; ``broom`` (reserved for the
+            job-trust benchmark) changes the paste, aggregate, texture, light and camera
+            but not the cracks, their truth or the distractors.
     """
 
     height: int = 512
@@ -51,6 +60,7 @@ class SynthOptions:
     noise_sigma: float = 2.0
     jpeg_quality: int | None = None
     gsd_mm: float | None = None
+    surface: str = "default"
 
     def __post_init__(self) -> None:
         for name in ("height", "width"):
@@ -75,6 +85,10 @@ class SynthOptions:
         if self.jpeg_quality is not None and not (1 <= self.jpeg_quality <= 100):
             raise ValueError(
                 f"SynthOptions.jpeg_quality: expected 1..100 or None, got {self.jpeg_quality!r}"
+            )
+        if self.surface not in SURFACES:
+            raise ValueError(
+                f"SynthOptions.surface: expected one of {SURFACES}, got {self.surface!r}"
             )
         if self.gsd_mm is not None and not (self.gsd_mm > 0 and math.isfinite(self.gsd_mm)):
             raise ValueError(f"SynthOptions.gsd_mm: expected > 0 or None, got {self.gsd_mm!r}")

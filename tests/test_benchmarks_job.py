@@ -1,0 +1,92 @@
+"""The pure helpers of benchmarks/job_trust.py: per-cell truth and the census figures.
+
+The benchmark itself (training, scans, 200 repetitions) stays out of the suite: even its
+--quick run takes about a minute on 2 cores.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from sklearn.metrics import confusion_matrix, recall_score, roc_auc_score
+
+from trainkit.core.grid import grid_boxes
+from trainkit.synth import Crack
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def jt():
+    spec = importlib.util.spec_from_file_location("job_trust", REPO / "benchmarks" / "job_trust.py")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules["job_trust"] = module  # its dataclass looks its module up while defined
+    try:
+        spec.loader.exec_module(module)
+        yield module
+    finally:
+        sys.modules.pop("job_trust", None)
+
+
+def line(p0, p1, width=1.0, crack_id=0) -> Crack:
+    return Crack(np.array([p0, p1], float), np.full(2, width), kind="main", crack_id=crack_id)
+
+
+def test_cell_truth_follows_the_label_rules_on_hand_geometry(jt):
+    """Hand-worked on a 4 x 3 grid of 64 px cells (rules: LabelRules defaults, a crack counts
+    inside the box shrunk by 0.05 * 64 = 3.2 px and needs 0.15 * 64 = 9.6 px there; a
+    crack within half its width + 1 px = 1.5 px outside a box makes the box ambiguous)."""
+    boxes = np.array([tuple(int(v) for v in b) for b in grid_boxes(192, 256, 64, 64)])
+    cracks = [
+        line((0.0, 96.5), (150.0, 96.5), crack_id=0),  # row 1: 64, 64, 18.8 px counted
+        line((200.0, 160.0), (205.0, 160.0), crack_id=1),  # row 2, col 3: a 5 px stub
+        line((70.0, 129.0), (120.0, 129.0), crack_id=2),  # 1 px below row 1, col 1
+    ]
+    codes, reasons = jt.cell_truth(cracks, boxes)
+    grid = {(int(b[1]) // 64, int(b[0]) // 64): int(c) for b, c in zip(boxes, codes, strict=True)}
+    C, N, A = jt.CRACK, jt.CLEAN, jt.AMBIGUOUS
+    expected = {
+        (0, 0): N, (0, 1): N, (0, 2): N, (0, 3): N,
+        (1, 0): C, (1, 1): C, (1, 2): C, (1, 3): N,
+        # row 2, col 1: the y = 129 crack lies inside but within the 3.2 px margin: a stub.
+        (2, 0): N, (2, 1): A, (2, 2): N, (2, 3): A,
+    }  # fmt: skip
+    assert grid == expected
+    assert reasons == {"crack stub too short": 2}
+    # Without the row-1 crack, the y = 129 line is 1 px outside cell (1, 1): its edge shows.
+    codes, reasons = jt.cell_truth(cracks[2:], boxes)
+    assert codes[1 * 4 + 1] == A and reasons["crack edge just outside the cell"] == 1
+
+
+def test_true_figures_match_scikit_learn(jt):
+    rng = np.random.default_rng(3)
+    truth = rng.choice([jt.CLEAN, jt.CRACK, jt.AMBIGUOUS], size=500, p=[0.8, 0.15, 0.05])
+    p = np.clip(rng.normal(0.3 + 0.4 * (truth == jt.CRACK), 0.2), 0, 1)
+    f = jt.true_figures(p, truth, 0.5)
+    keep = truth != jt.AMBIGUOUS
+    y, pred = truth[keep] == jt.CRACK, p[keep] >= 0.5
+    tn, fp, fn, tp = confusion_matrix(y, pred).ravel()  # scikit-learn's order for 0/1
+    assert f["recall"] == pytest.approx(recall_score(y, pred))
+    assert f["false_alarm_rate"] == pytest.approx(fp / (fp + tn))
+    assert f["recall_k_n"] == [tp, tp + fn] and f["false_alarm_k_n"] == [fp, fp + tn]
+    assert f["roc_auc"] == pytest.approx(roc_auc_score(y, p[keep]))
+    assert f["ambiguous_cells"] == int((~keep).sum())
+    assert f["flagged_share_all_cells"] == pytest.approx(np.mean(p >= 0.5))
+
+
+def test_frames_are_reproducible_and_the_families_differ(jt, tmp_path):
+    plan = jt.Plan(1, "demo", 1, 0.0, 2, 96, 128, (10,), 1, 10)
+    a = jt.make_frames(tmp_path / "a", plan, "broom", 5)
+    jt.make_frames(tmp_path / "b", plan, "broom", 5)
+    d = jt.make_frames(tmp_path / "d", plan, "default", 5)
+    for name in a:
+        assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
+    # Same plan, other surface: the same cracks (truth), other pixels.
+    for (na, ca), (nd, cd) in zip(sorted(a.items()), sorted(d.items()), strict=True):
+        assert na.replace("broom-", "") == nd.replace("default-", "")
+        assert all(np.array_equal(x.points, y.points) for x, y in zip(ca, cd, strict=True))
+        assert (tmp_path / "a" / na).read_bytes() != (tmp_path / "d" / nd).read_bytes()
