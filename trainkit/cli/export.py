@@ -48,8 +48,12 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
             f"cells' median familiarity exceeds {fam['threshold']:.2f} (the 99th percentile of "
             f"{fam['threshold_from_patches']} validation patches)"
             if fam
-            else f"contract {res['contract']}: no familiarity output (the workspace's training "
-            "and validation patches were not found), so no unfamiliar-surface warning"
+            else f"contract {res['contract']}: no familiarity output ("
+            + (
+                res.get("familiarity_skipped")
+                or "the workspace's training and validation patches were not found"
+            )
+            + "), so no unfamiliar-surface warning"
         )
         if quantize:
             with console.status("quantizing to int8 and checking recall and speed"):

@@ -48,6 +48,9 @@ __all__ = [
     "threshold_from_validation",
 ]
 
+#: Principal directions whose singular value is below this share of the largest are dropped.
+RANK_FLOOR = 1e-3
+
 #: Format tag written into every summary dict.
 SUMMARY_FORMAT = "trainkit-familiarity-1"
 
@@ -176,7 +179,8 @@ def fit(
     Args:
         features: (n, d) penultimate-layer features of the training patches.
         labels: (n,) integer class of each patch (every class present is one Gaussian).
-        k: project onto this many principal components (capped at ``min(d, n - 1)``);
+        k: project onto this many principal components (capped at ``min(d, n - 1)`` and at the
+            number of directions whose singular value is above RANK_FLOOR of the largest);
             None keeps the d raw dimensions (centred only).
         shrink: apply Ledoit-Wolf shrinkage (False: the plain pooled covariance, which
             must then be invertible).
@@ -204,7 +208,11 @@ def fit(
     if k is not None:
         k_used = int(min(k, x.shape[1], x.shape[0] - 1))
         # Rows of vt are the principal directions, ordered by singular value.
-        _, _, vt = np.linalg.svd(centred, full_matrices=False)
+        _, sv, vt = np.linalg.svd(centred, full_matrices=False)
+        # Directions with next to no spread (features of a weakly trained network can
+        # collapse onto a few) would get an enormous precision that float32 arithmetic in
+        # the exported graph cannot reproduce: keep only those above RANK_FLOOR of the largest.
+        k_used = max(1, min(k_used, int(np.sum(sv > RANK_FLOOR * sv[0])) if sv[0] > 0 else 1))
         components = vt[:k_used]
         centred = centred @ components.T
     classes = np.unique(y)

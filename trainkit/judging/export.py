@@ -118,7 +118,6 @@ def export_experiment(
     Raises:
         ExportError: the checker or the parity check failed.
     """
-    import onnx
 
     from trainkit import __version__
     from trainkit.learning.network import load_checkpoint
@@ -130,45 +129,16 @@ def export_experiment(
     input_px = int(ckpt["input_px"])
     graph, familiarity = _graph_with_familiarity(model, ckpt, class_set, input_px)
     target = Path(out) if out else folder.model_path
-    proto = network_to_onnx(graph, input_px, opset=opset)
     metrics = folder.read_metrics()
-    experiment = ckpt["experiment"]
-    pmm = experiment.get("patch_mm_range")
-    meta = encode_metadata(
-        ModelInfo(
-            class_names=list(class_set.names),
-            angle_centres=list(class_set.angle_centres),
-            patch_px=input_px,
-            patch_mm=None if not pmm else round(float(np.mean(pmm)), 3),
-            threshold=metrics["screening"]["threshold"] if metrics else 0.5,
-            threshold_source=metrics["screening"]["threshold_source"]
-            if metrics
-            else "default 0.5 (not evaluated)",
-            gsd_mm_range=experiment.get("gsd_mm_range"),
-            patch_mm_range=pmm,
-            kit_version=__version__,
-            data_digest=str(experiment.get("data_digest")),
-            test_metrics=_headline(metrics),
-            familiarity=familiarity,
-            version=CONTRACT_VERSION if familiarity else "trainkit-screener-1",
-            weights=weights_record(ckpt),
-            preprocess=preprocess_record(ckpt),
-        )
-    )
-    onnx.helper.set_model_props(proto, meta)
-    proto.producer_name = "trainkit"
-    proto.producer_version = __version__
-    with atomic_path(target) as tmp:
-        onnx.save(proto, tmp)
-        onnx.checker.check_model(str(tmp), full_check=True)
-        left = [n.name for n in proto.graph.node if n.op_type == "BatchNormalization"]
-        if left:
-            raise ExportError(
-                f"{len(left)} BatchNormalization nodes were not folded into convolutions: {left[:3]}"
-            )
-        # Parity against PyTorch on real patches.
-        images = _sample_patches(ckpt, input_px)
-        max_diff, fam_diff = _check_parity(graph, tmp, images, two=familiarity is not None)
+    info = _model_info(ckpt, class_set, input_px, metrics, __version__)
+    skipped = None
+    try:
+        meta, checks = _write_checked(graph, familiarity, info, ckpt, target, opset)
+    except _FamiliarityMismatch as exc:  # the add-on must not cost the screener itself
+        skipped = f"{exc}; exported without the familiarity output (contract 1)"
+        meta, checks = _write_checked(model, None, info, ckpt, target, opset)
+        familiarity = None
+    max_diff, fam_diff, left, images = checks
     summary = {
         "model": str(target),
         "opset": opset,
@@ -177,6 +147,7 @@ def export_experiment(
         "parity_patches": int(len(images)),
         "familiarity_max_rel_diff": fam_diff,
         "familiarity": familiarity,
+        "familiarity_skipped": skipped,
         "contract": meta[FORMAT_KEY],
         "batchnorm_nodes": len(left),
         "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
@@ -191,6 +162,66 @@ def export_experiment(
     if target == folder.model_path:  # the folder's own model: its record stays beside it
         atomic_write_json(folder.export_path, summary)
     return summary
+
+
+def _model_info(ckpt: dict, class_set, input_px: int, metrics: dict | None, version: str):
+    """The contract fields every export shares (familiarity and version are set per graph)."""
+    experiment = ckpt["experiment"]
+    pmm = experiment.get("patch_mm_range")
+    return ModelInfo(
+        class_names=list(class_set.names),
+        angle_centres=list(class_set.angle_centres),
+        patch_px=input_px,
+        patch_mm=None if not pmm else round(float(np.mean(pmm)), 3),
+        threshold=metrics["screening"]["threshold"] if metrics else 0.5,
+        threshold_source=metrics["screening"]["threshold_source"]
+        if metrics
+        else "default 0.5 (not evaluated)",
+        gsd_mm_range=experiment.get("gsd_mm_range"),
+        patch_mm_range=pmm,
+        kit_version=version,
+        data_digest=str(experiment.get("data_digest")),
+        test_metrics=_headline(metrics),
+        weights=weights_record(ckpt),
+        preprocess=preprocess_record(ckpt),
+    )
+
+
+def _write_checked(graph, familiarity: dict | None, info, ckpt: dict, target: Path, opset: int):
+    """Export ``graph``, set its metadata, check it (checker, folded BatchNorm, parity with
+    PyTorch) and only then put it at ``target``; returns (metadata, check figures)."""
+    import dataclasses
+
+    import onnx
+
+    from trainkit import __version__
+
+    info = dataclasses.replace(
+        info,
+        familiarity=familiarity,
+        version=CONTRACT_VERSION if familiarity else "trainkit-screener-1",
+    )
+    proto = network_to_onnx(graph, info.patch_px, opset=opset)
+    meta = encode_metadata(info)
+    onnx.helper.set_model_props(proto, meta)
+    proto.producer_name = "trainkit"
+    proto.producer_version = __version__
+    with atomic_path(target) as tmp:
+        onnx.save(proto, tmp)
+        onnx.checker.check_model(str(tmp), full_check=True)
+        left = [n.name for n in proto.graph.node if n.op_type == "BatchNormalization"]
+        if left:
+            raise ExportError(
+                f"{len(left)} BatchNormalization nodes were not folded into convolutions: {left[:3]}"
+            )
+        # Parity against PyTorch on real patches.
+        images = _sample_patches(ckpt, info.patch_px)
+        max_diff, fam_diff = _check_parity(graph, tmp, images, two=familiarity is not None)
+    return meta, (max_diff, fam_diff, left, images)
+
+
+class _FamiliarityMismatch(ExportError):
+    """The familiarity output of the ONNX graph does not reproduce PyTorch's."""
 
 
 def _check_parity(
@@ -222,7 +253,7 @@ def _check_parity(
         return max_diff, None
     rel = float(np.max(np.abs(ref_f - got[1]) / np.maximum(np.abs(ref_f), 1.0)))
     if rel > 1e-3:
-        raise ExportError(
+        raise _FamiliarityMismatch(
             f"ONNX familiarity differs from PyTorch by {rel:.2e} (relative, allowed 1e-3) on "
             f"{len(images)} patches; model not written"
         )
