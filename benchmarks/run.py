@@ -233,8 +233,14 @@ def _model_only_bound(model: Path, patches: np.ndarray, per_frame: int) -> dict:
     return best
 
 
-def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
-    """trainkit scan on 12-Mpx JPEGs against the model-only bound and a plain PyTorch loop."""
+def bench_scan(
+    n_frames: int = 24, rounds: int = 2, backbone: str | None = None, px: int = 128
+) -> dict:
+    """trainkit scan on 12-Mpx JPEGs against the model-only bound and a plain PyTorch loop.
+
+    The network is the default recipe's backbone (EfficientNet-Lite0) at its 128-px
+    patch size unless told otherwise; the same network runs in all three.
+    """
     import subprocess
 
     import cv2
@@ -244,8 +250,12 @@ def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
 
     with tempfile.TemporaryDirectory() as d:
         root = Path(d)
+        from trainkit.core.grid import axis_starts
+        from trainkit.learning.config import load_train_config
+
+        backbone = backbone or load_train_config("default").backbone
         model = root / "m.onnx"
-        _random_screener(model)
+        _random_screener(model, backbone=backbone, px=px)
         frames = root / "frames"
         frames.mkdir()
         rng = np.random.default_rng(0)
@@ -254,7 +264,8 @@ def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
             big = cv2.resize(small, (4000, 3000), interpolation=cv2.INTER_CUBIC)
             big = np.clip(big + rng.normal(0, 3, big.shape), 0, 255).astype(np.uint8)
             Image.fromarray(big).save(frames / f"f{i:02d}.jpg", quality=92)
-        per_frame = 18 * 14  # 224-px cells on 4000 x 3000, last row and column shifted inward
+        # cells on 4000 x 3000, last row and column shifted inward
+        per_frame = len(axis_starts(4000, px, px)) * len(axis_starts(3000, px, px))
 
         # 1) model-only bound: patches already in memory, the best of several ways to run
         # ONNX Runtime (one session with intra-op threads on all cores, or batches run
@@ -262,7 +273,7 @@ def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
         # 2) the whole command, in a child process. Peak memory is the child's own VmHWM
         # (ru_maxrss of children would include the pages of this large parent at fork).
         # The two alternate over `rounds`, and each keeps its best: the same statistic for both.
-        patches = rng.integers(0, 256, (per_frame * 2, 224, 224, 3), dtype=np.uint8)
+        patches = rng.integers(0, 256, (per_frame * 2, px, px, 3), dtype=np.uint8)
         wrapper = (
             "import sys; from trainkit.cli import main; code = main(sys.argv[1:]); "
             "hwm = [ln for ln in open('/proc/self/status') if ln.startswith('VmHWM')][0]; "
@@ -301,11 +312,10 @@ def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
         # 3) plain reference: PIL decode, crop each patch, torchvision transforms, eager model
         from torchvision import transforms
 
-        from trainkit.learning.config import load_train_config
         from trainkit.learning.models import create_model
 
         torch.manual_seed(0)
-        net = create_model(load_train_config("default").backbone, 6).eval()
+        net = create_model(backbone, 6).eval()
         tf = transforms.Compose(
             [
                 transforms.ToTensor(),
@@ -318,15 +328,16 @@ def bench_scan(n_frames: int = 24, rounds: int = 2) -> dict:
             im = Image.open(f).convert("RGB")
             w, h = im.size
             crops = [
-                tf(im.crop((x, y, x + 224, y + 224)))
-                for y in list(range(0, h - 224 + 1, 224)) + [h - 224]
-                for x in list(range(0, w - 224 + 1, 224)) + [w - 224]
+                tf(im.crop((x, y, x + px, y + px)))
+                for y in axis_starts(h, px, px)
+                for x in axis_starts(w, px, px)
             ]
             with torch.no_grad():
                 torch.softmax(net(torch.stack(crops)), 1)
         ref_fps = ref_frames / (time.perf_counter() - t0)
     return {
-        "what": f"{n_frames} JPEG frames of 4000 x 3000 px, MobileNetV3-Small at 224 px (random weights)",
+        "what": f"{n_frames} JPEG frames of 4000 x 3000 px, {backbone} at {px} px "
+        f"({per_frame} cells per frame, random weights)",
         "model_only_bound_frames_per_second": round(bound[best_cfg], 3),
         "bound_configuration": best_cfg,
         "bound_by_configuration": {k: round(v, 3) for k, v in bound.items()},
