@@ -52,6 +52,9 @@ from pathlib import Path
 
 import numpy as np
 
+# The benchmark folder is not a package: its shared helpers are imported by file name.
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
 REPO = Path(__file__).resolve().parents[1]
 RESULTS = REPO / "benchmarks" / "results" / "job_trust.json"
 
@@ -175,29 +178,14 @@ def build_workspace(out: Path, n_photos: int, seed: int, tile_px: int = 128):
 
 def fit_epochs(ws, recipe: str, minutes: float) -> tuple[int, float]:
     """Epochs that fit ``minutes`` of training, from 12 timed steps on real patches."""
-    import torch
+    from held_out import probe_images_per_second
 
     from trainkit.learning.config import load_train_config
     from trainkit.learning.data import load_patch_set
-    from trainkit.learning.network import build_network
-    from trainkit.learning.training import cpu_threads
 
     cfg = load_train_config(recipe)
     data = load_patch_set(ws, "train", ws.class_set)
-    torch.set_num_threads(cfg.threads or cpu_threads())
-    net = build_network(cfg, ws.class_set.num_classes)
-    opt = torch.optim.AdamW(net.parameters(), lr=cfg.lr)
-    net.train()
-    x = torch.from_numpy(np.ascontiguousarray(data.images[: cfg.batch_size]))
-    y = torch.from_numpy(data.labels[: cfg.batch_size])
-    for i in range(14):
-        if i == 2:
-            t0 = time.perf_counter()
-        loss = torch.nn.functional.cross_entropy(net(x), y)
-        opt.zero_grad()
-        loss.backward()
-        opt.step()
-    ips = 12 * cfg.batch_size / (time.perf_counter() - t0)
+    ips = probe_images_per_second(cfg, data, ws.class_set.num_classes)
     epoch_s = len(data) / ips * 1.15  # validation passes and augmentation
     return max(1, min(cfg.epochs, int(minutes * 60 * 0.9 / epoch_s))), ips
 
