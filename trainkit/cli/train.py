@@ -14,7 +14,9 @@ __all__ = ["train"]
 
 
 @click.command(
-    epilog="Example: trainkit train ws --out experiments/first --config default --epochs 10"
+    epilog="Examples: trainkit train ws --out experiments/first --config default --epochs 10\n\n"
+    "trainkit train ws --from experiments/first --out experiments/first-deck7 (after "
+    "trainkit sample and review of a job)"
 )
 @workspace_argument()
 @click.option(
@@ -27,9 +29,21 @@ __all__ = ["train"]
 @click.option(
     "--config",
     "config",
-    default="default",
-    show_default=True,
-    help="Recipe name (default, demo, presence, frozen) or a YAML file.",
+    default=None,
+    help="Recipe name (default, demo, presence, frozen, scratch) or a YAML file  [default: default].",
+)
+@click.option(
+    "--from",
+    "source",
+    default=None,
+    type=click.Path(file_okay=False, exists=True, path_type=Path),
+    help="Adapt this trained experiment to the workspace's job cells (its recipe, a few epochs).",
+)
+@click.option(
+    "--job",
+    "jobs",
+    multiple=True,
+    help="With --from: the job whose answered cells to learn from (repeatable; default: all).",
 )
 @click.option("--backbone", default=None, help="Override the recipe's backbone.")
 @click.option(
@@ -51,22 +65,43 @@ def train(
     ctx: Ctx,
     ws_dir: Path,
     exp_dir: Path,
-    config: str,
+    config: str | None,
+    source: Path | None,
+    jobs: tuple[str, ...],
     restart: bool,
     **overrides: int | str | None,
 ) -> None:
     """Train a screener on the workspace's train subset, selecting on val.
 
-    Resumes from EXP/resume.pt after an interruption unless --restart is given.
+    With --from, adapt a trained experiment instead: start from its weights and recipe and
+    learn from the answered cells of the workspace's jobs too (split by frame into training
+    and validation; the frames are recorded so `trainkit sample` and `verify` keep them out
+    of the next check). Resumes from EXP/resume.pt after an interruption unless --restart is given.
     """
     from trainkit.labels.workspace import Workspace
     from trainkit.learning.config import load_train_config
 
     with user_errors(ctx):
-        cfg = load_train_config(config, overrides)
+        ws = Workspace.open(ws_dir)
+        adaptation = None
+        if source is None:
+            if jobs:
+                raise click.UsageError("--job needs --from EXP (the experiment to adapt)")
+            cfg = load_train_config(config or "default", overrides)
+        else:
+            from trainkit.learning.adapt import adapt_recipe, plan_adaptation
+
+            if config is not None:
+                raise click.UsageError("--config and --from exclude each other: --from uses "
+                                       "the source experiment's recipe")  # fmt: skip
+            if Path(exp_dir).resolve() == Path(source).resolve():
+                raise click.UsageError("--out must differ from --from (the source is kept)")
+            cfg = adapt_recipe(source, overrides)
+            adaptation = plan_adaptation(ws, source, list(jobs) or None, seed=cfg.seed)
+            ctx.console.print(_adaptation_line(adaptation))
         with progress_bar(ctx, "training") as bar:
             res = _train_with_progress(
-                bar, Workspace.open(ws_dir), exp_dir, cfg, resume=not restart
+                bar, ws, exp_dir, cfg, resume=not restart, adaptation=adaptation
             )
         bv = res["best_val"]
         ctx.console.print(
@@ -77,7 +112,21 @@ def train(
         )
 
 
-def _train_with_progress(bar: ProgressHandle, ws, exp_dir: Path, cfg, *, resume: bool) -> dict:
+def _adaptation_line(a) -> str:
+    """What an adaptation learns from, in one line."""
+    frames = {k: sum(f["subset"] == k for f in a.frames) for k in ("train", "val")}
+    left = ", ".join(f"{n} {k}" for k, n in a.left_out.items() if n)
+    return (
+        f"adapting {a.source}: {len(a.cells['train'])} job cells from {frames['train']} frames "
+        f"train, {len(a.cells['val'])} from {frames['val']} other frames validate"
+        + (f" ({left} cells left out)" if left else "")
+        + "; these frames will be kept out of later job checks"
+    )
+
+
+def _train_with_progress(
+    bar: ProgressHandle, ws, exp_dir: Path, cfg, *, resume: bool, adaptation=None
+) -> dict:
     """Train, advancing ``bar`` per batch and logging one line per epoch; returns the result."""
     from trainkit.learning.training import train as train_fn
 
@@ -93,4 +142,5 @@ def _train_with_progress(bar: ProgressHandle, ws, exp_dir: Path, cfg, *, resume:
         on_epoch=lambda row: bar.log(epoch_line(row, cfg.false_alarm_budget)),
         on_batch=lambda n: bar.advance(n),
         on_note=bar.log,
+        adaptation=adaptation,
     )

@@ -174,6 +174,17 @@ class Experiment:
         jobs = [j for j in self.read_jobs() if j.get("job") != record.get("job")]
         atomic_write_json(self.jobs_path, {"jobs": [*jobs, record]})
 
+    def learned_frames(self) -> dict[str, str]:
+        """SHA-256 -> path of the job frames this experiment's model learned from (by
+        ``trainkit train --from``, inherited along a chain of adaptations); ``{}`` when
+        it never learned from a job's frames or its ``experiment.json`` is unreadable."""
+        try:
+            prov = self.read_provenance() or {}
+        except (OSError, ValueError):
+            return {}
+        frames = (prov.get("adaptation") or {}).get("frames", [])
+        return {f["sha256"]: f["frame"] for f in frames}
+
     def read_history(self) -> list[dict[str, str]]:
         """The rows of ``history.csv`` as dicts of strings (empty before training)."""
         if not self.history_path.exists():
@@ -196,6 +207,12 @@ class Experiment:
         if prov:
             info["workspace"] = prov.get("workspace")
             info["training_patches"] = prov.get("training_patches")
+            adapted = prov.get("adaptation")
+            if adapted:
+                info["adapted_from"] = (
+                    f"{adapted['source']} with {sum(map(len, adapted['cells'].values()))} cells "
+                    f"of job(s) {', '.join(adapted['jobs'])} from {len(adapted['frames'])} frames"
+                )
         metrics = self.read_metrics()
         if metrics:
             s = metrics["screening"]

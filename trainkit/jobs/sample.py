@@ -23,14 +23,24 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.decode import PhotoError, read_rgb
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
 from trainkit.core.grid import crop, resize_patch
 from trainkit.jobs.design import STRATA, draw_sample
 from trainkit.labels.workspace import Workspace
+from trainkit.screener.scan import FRAMES_FILE, SCAN_FILE
 
-__all__ = ["SampleError", "ScanCells", "read_scan_cells", "sample_scan", "SAMPLE_COLUMNS"]
+__all__ = [
+    "SampleError",
+    "ScanCells",
+    "read_scan_cells",
+    "sample_scan",
+    "scan_model",
+    "learned_frames",
+    "SAMPLE_COLUMNS",
+]
 
-FRAMES_FILE = "frames.jsonl"
+
 SAMPLE_FILE = "sample.csv"
 SAMPLE_COLUMNS = (
     "patch_id", "photo", "x0", "y0", "x1", "y1", "frame", "stratum",
@@ -113,6 +123,21 @@ def read_scan_cells(scan_dir: str | Path) -> ScanCells:
     return ScanCells(sorted(frames, key=lambda r: r["frame"]), thresholds[0])
 
 
+def scan_model(scan_dir: str | Path) -> dict | None:
+    """What ``SCAN/scan.json`` says of the model that made the scan (None for older scans)."""
+    path = Path(scan_dir) / SCAN_FILE
+    return json.loads(path.read_text(encoding="utf-8")) if path.is_file() else None
+
+
+def learned_frames(scan_dir: str | Path) -> dict[str, str]:
+    """SHA-256 -> path of the job frames the scan's model learned from (``trainkit train
+    --from``), as the scan recorded them, else as the model's experiment folder says now."""
+    rec = scan_model(scan_dir) or {}
+    if isinstance(rec.get("learned_frames"), dict):
+        return rec["learned_frames"]
+    return Experiment(Path(rec["model"]).parent).learned_frames() if rec.get("model") else {}
+
+
 def sample_scan(
     scan_dir: str | Path,
     workspace: Workspace,
@@ -145,6 +170,16 @@ def sample_scan(
             f"workspace {workspace.root} already holds job {job!r}; pass another --job name"
         )
     table = read_scan_cells(scan_dir)
+    learned = learned_frames(scan_dir)
+    kept = [f for f in table.frames if f.get("sha256") not in learned]
+    left_out = len(table.frames) - len(kept)
+    if left_out:
+        if not kept:
+            raise SampleError(
+                f"every frame of {scan_dir} is one the scan's model learned from (trainkit "
+                "train --from): an estimate on them would flatter it; scan other frames of the job"
+            )
+        table = ScanCells(kept, table.threshold)
     if not 1 <= cells <= len(table):
         raise SampleError(
             f"--cells must be between 1 and {len(table)} (the scan's cells), got {cells}"
@@ -178,6 +213,7 @@ def sample_scan(
         "frames": len(table.frames),
         "cells_in_scan": len(table),
         "near_fraction": near_fraction,
+        "frames_learned_from_left_out": left_out,
     }
     summary_design.pop("cells")
     workspace.add_job(
@@ -191,6 +227,7 @@ def sample_scan(
         "cells": len(rows),
         "frames_sampled": len(by_frame),
         "frames_in_scan": len(table.frames),
+        "frames_learned_from_left_out": left_out,
         "cells_in_scan": len(table),
         "threshold": table.threshold,
         "strata": design.strata_table(),

@@ -20,7 +20,7 @@ import numpy as np
 from trainkit.core.fsutil import atomic_write_json, atomic_write_text
 from trainkit.jobs.design import STRATA
 from trainkit.jobs.estimate import EstimateError, design_weights, estimate_job, threshold_for_recall
-from trainkit.jobs.sample import read_scan_cells
+from trainkit.jobs.sample import learned_frames, read_scan_cells, scan_model
 from trainkit.judging.scoring import CAUTION, json_ready
 from trainkit.labels.workspace import Workspace
 
@@ -82,6 +82,7 @@ def verify_scan(
         raise VerifyError(f"--require-recall must be in [0, 1], got {require_recall}")
     j = _job_of(workspace, scan_dir, job)
     cells = workspace.job_cells(j["name"])
+    _refuse_learned_frames(scan_dir, j["name"], cells)
     answered = [c for c in cells if c["answered"] and c["label"] is not None]
     unresolved = [c for c in cells if not (c["answered"] and c["label"] is not None)]
     population = {s["stratum"]: s["cells"] for s in j["design"]["strata"]}
@@ -112,7 +113,7 @@ def verify_scan(
         "created": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "caution": CAUTION,
     }
-    model = _scan_model(scan_dir)
+    model = scan_model(scan_dir)
     result["model"] = model
     result = json_ready(result)
     atomic_write_json(scan_dir / VERIFICATION_FILE, result, allow_nan=False)
@@ -121,12 +122,18 @@ def verify_scan(
     return result
 
 
-def _scan_model(scan_dir: Path) -> dict | None:
-    """What ``SCAN/scan.json`` says of the model that made the scan (None for older scans)."""
-    import json
-
-    path = scan_dir / "scan.json"
-    return json.loads(path.read_text(encoding="utf-8")) if path.is_file() else None
+def _refuse_learned_frames(scan_dir: Path, job: str, cells: list[dict]) -> None:
+    """Refuse a job whose cells come from frames the scan's model learned from."""
+    learned = learned_frames(scan_dir)
+    seen = [c for c in cells if c["frame_sha256"] in learned]
+    if seen:
+        frames = sorted({c["frame"] for c in seen})
+        raise VerifyError(
+            f"job {job!r}: {len(seen)} of its cells come from {len(frames)} frames the scan's "
+            f"model learned from (trainkit train --from; e.g. {frames[0]}), so an estimate "
+            "from them would flatter it. Draw a new sample of this scan (`trainkit sample` "
+            "leaves those frames out) and answer it"
+        )
 
 
 def _record_in_experiment(result: dict, model: dict | None) -> str | None:

@@ -96,6 +96,7 @@ from trainkit.judging.scoring import (
 )
 from trainkit.labels.splits import check_no_leak
 from trainkit.labels.workspace import Workspace
+from trainkit.learning.adapt import load_subset
 from trainkit.learning.data import PatchSet, load_patch_set
 
 __all__ = ["evaluate_experiment", "EvaluationOptions", "EvaluationError", "CAUTION"]
@@ -208,7 +209,8 @@ def _run_experiment(exp_dir: str | Path, opts: EvaluationOptions, workspace) -> 
         raise EvaluationError(f"the {opts.split!r} subset of {ws.root} has no labelled patches")
     box_of = {r.id: r.box for r in records}
     keys = [(p, tuple(box_of[int(i)])) for p, i in zip(data.photos, data.patch_ids, strict=True)]
-    val_data = load_patch_set(ws, "val", class_set, input_px=ckpt["input_px"])
+    # An adapted model's validation includes the job cells it validated on (never its test).
+    val_data = load_subset(ws, "val", class_set, ckpt["experiment"], input_px=ckpt["input_px"])
     nc = class_set.num_classes
     test, val = _scored(model, data, nc), _scored(model, val_data, nc)
     # Operating threshold: chosen on validation, reported on the evaluated subset.

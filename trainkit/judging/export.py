@@ -265,13 +265,14 @@ def _graph_with_familiarity(model, ckpt: dict, class_set, input_px: int):
     has training and validation patches; else the plain network and None (contract 1)."""
     from trainkit.judging.familiarity_graph import fit_graph
     from trainkit.labels.workspace import Workspace, WorkspaceError
-    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.adapt import load_subset
     from trainkit.learning.steps import head_module_name
 
     try:
         ws = Workspace.open(ckpt["experiment"]["workspace"])
-        train = load_patch_set(ws, "train", class_set, input_px=input_px)
-        val = load_patch_set(ws, "val", class_set, input_px=input_px)
+        # an adapted model's job cells count: their surface is now familiar
+        train = load_subset(ws, "train", class_set, ckpt["experiment"], input_px=input_px)
+        val = load_subset(ws, "val", class_set, ckpt["experiment"], input_px=input_px)
     except (WorkspaceError, KeyError, OSError):
         return model, None
     if len(train) < 2 or len(val) == 0:
@@ -435,6 +436,7 @@ def _int8_patches(folder: Experiment):
     """(train, test) patch sets of the experiment's workspace, for calibration and the check."""
     from trainkit.core.taxonomy import class_set_from_dict
     from trainkit.labels.workspace import Workspace
+    from trainkit.learning.adapt import load_subset
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
 
@@ -442,7 +444,7 @@ def _int8_patches(folder: Experiment):
     cs = class_set_from_dict(ckpt["class_set"])
     ws = Workspace.open(ckpt["experiment"]["workspace"])
     px = int(ckpt["input_px"])
-    train = load_patch_set(ws, "train", cs, input_px=px)
+    train = load_subset(ws, "train", cs, ckpt["experiment"], input_px=px)
     test = load_patch_set(ws, "test", cs, input_px=px)
     if len(train) == 0 or len(test) == 0 or not np.any(test.labels != 0):
         raise ExportError(

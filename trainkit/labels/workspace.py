@@ -562,16 +562,18 @@ class Workspace:
         return [dict(zip(keys, (*r[:3], json.loads(r[3]), r[4]), strict=True)) for r in rows]
 
     def job_cells(self, job: str) -> list[dict]:
-        """The cells of one job's sample, with their current label (None = unsure) and
-        whether they were answered at all."""
+        """The cells of one job's sample, with their current label (None = unsure), whether
+        they were answered at all, and the SHA-256 of the frame they were cut from."""
         q = """
         SELECT j.patch_id, j.frame, j.stratum, j.inclusion_probability, j.screening_probability,
                (SELECT e.label FROM label_events e WHERE e.patch_id = j.patch_id ORDER BY e.id DESC LIMIT 1),
-               EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = j.patch_id)
-        FROM job_cells j WHERE j.job = ? ORDER BY j.patch_id
+               EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = j.patch_id),
+               ph.sha256
+        FROM job_cells j JOIN patches p ON p.id = j.patch_id JOIN photos ph ON ph.id = p.photo_id
+        WHERE j.job = ? ORDER BY j.patch_id
         """
         keys = ("patch_id", "frame", "stratum", "inclusion_probability",
-                "screening_probability", "label", "answered")  # fmt: skip
+                "screening_probability", "label", "answered", "frame_sha256")  # fmt: skip
         with self.connect() as con:
             rows = con.execute(q, (job,)).fetchall()
-        return [dict(zip(keys, (*r[:6], bool(r[6])), strict=True)) for r in rows]
+        return [dict(zip(keys, (*r[:6], bool(r[6]), r[7]), strict=True)) for r in rows]

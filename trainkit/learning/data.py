@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import hashlib
 import os
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -57,8 +57,12 @@ def load_patch_set(
     *,
     input_px: int | None = None,
     cache: bool = True,
+    ids: Collection[int] | None = None,
 ) -> PatchSet:
     """Read the labelled crops of one split subset ('train', 'val', 'test').
+
+    With ``ids`` the patches are those ids instead (e.g. a job's cells, which belong to no
+    split); ``subset`` then only names the cache file.
 
     Patches whose current label is "unsure" are left out. With ``cache`` the decoded
     uint8 crops are kept in ``WORKSPACE/cache/`` as one .npy file per subset, keyed by
@@ -68,7 +72,10 @@ def load_patch_set(
     written once by ``trainkit tile``; one edited by hand with its size and modification
     time preserved would not be noticed: delete ``WORKSPACE/cache/`` after such edits.
     """
-    recs = [r for r in workspace.patches() if r.subset == subset and r.label is not None]
+    if ids is None:
+        recs = [r for r in workspace.patches() if r.subset == subset and r.label is not None]
+    else:
+        recs = [r for r in workspace.patches() if r.id in ids and r.label is not None]
     size = input_px or workspace.tile_px
     root = Path(workspace.root)
     if cache and recs:

@@ -25,6 +25,7 @@ from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import check_no_leak
 from trainkit.labels.workspace import Workspace
+from trainkit.learning.adapt import Adaptation, load_subset, replay_set
 from trainkit.learning.config import TrainConfig
 from trainkit.learning.data import Augmenter, load_patch_set
 from trainkit.learning.models import backbone_record, weights_provenance
@@ -88,12 +89,21 @@ HISTORY_FIELDS = (
 )
 
 
-def data_digest(workspace: Workspace, subsets: tuple[str, ...] = ("train", "val")) -> str:
-    """SHA-256 over the (photo, box, label) of the patches in the given subsets."""
+def data_digest(
+    workspace: Workspace,
+    subsets: tuple[str, ...] = ("train", "val"),
+    adaptation: Adaptation | None = None,
+) -> str:
+    """SHA-256 over the (photo, box, label) of the patches in the given subsets (and of the
+    job cells an adaptation learns from, with the subset it gave them)."""
+    role = {i: k for k, ids in (adaptation.cells if adaptation else {}).items() for i in ids}
     h = hashlib.sha256()
     for r in workspace.patches():
-        if r.subset in subsets and r.label is not None:
-            h.update(f"{r.photo}|{r.box}|{r.label}|{r.subset}\n".encode())
+        subset = r.subset if r.subset in subsets else role.get(r.id)
+        if subset is not None and r.label is not None:
+            h.update(f"{r.photo}|{r.box}|{r.label}|{subset}\n".encode())
+    if adaptation is not None:
+        h.update(f"from {adaptation.source} replay {adaptation.replay}".encode())
     return h.hexdigest()
 
 
@@ -133,8 +143,14 @@ class RunState:
     stopped_early: bool = False
 
 
-def prepare_data(workspace: Workspace, cfg: TrainConfig) -> tuple:
-    """Check the workspace against the recipe and load (class set, train set, val set, records)."""
+def prepare_data(
+    workspace: Workspace, cfg: TrainConfig, adaptation: Adaptation | None = None
+) -> tuple:
+    """Check the workspace against the recipe and load (class set, train set, val set, records).
+
+    With an ``adaptation`` the training set is the job's training cells plus a replayed
+    share of the split's training patches, the validation set the split's plus the job's.
+    """
     class_set = load_class_set(cfg.class_set)
     ws_classes = workspace.class_set
     if ws_classes.names != class_set.names:
@@ -150,6 +166,13 @@ def prepare_data(workspace: Workspace, cfg: TrainConfig) -> tuple:
         )
     train_set = load_patch_set(workspace, "train", class_set)
     val_set = load_patch_set(workspace, "val", class_set)
+    if adaptation is not None:
+        experiment = {"adaptation": adaptation.to_dict()}
+        job_train = load_patch_set(
+            workspace, "job-train", class_set, ids=set(adaptation.cells["train"])
+        )
+        train_set = replay_set(train_set, job_train, adaptation.replay, cfg.seed)
+        val_set = load_subset(workspace, "val", class_set, experiment)
     if len(train_set) < 2:
         raise TrainingError(
             f"only {len(train_set)} labelled training patches; label more before training"
@@ -176,7 +199,13 @@ def build_optimizer(model: nn.Module, cfg: TrainConfig) -> torch.optim.AdamW:
 
 
 def write_provenance(
-    folder: Experiment, workspace: Workspace, cfg: TrainConfig, records, sets: tuple, class_set
+    folder: Experiment,
+    workspace: Workspace,
+    cfg: TrainConfig,
+    records,
+    sets: tuple,
+    class_set,
+    adaptation: Adaptation | None = None,
 ) -> dict:
     """Write recipe.yaml and experiment.json (which data the run used); returns the latter."""
     train_set, val_set = sets
@@ -192,10 +221,12 @@ def write_provenance(
         "split": workspace.split_info(),
         "training_patches": len(train_set),
         "validation_patches": len(val_set),
-        "data_digest": data_digest(workspace),
+        "data_digest": data_digest(workspace, adaptation=adaptation),
         "gsd_mm_range": [min(gsds), max(gsds)] if gsds else None,
         "patch_mm_range": [min(mms), max(mms)] if mms else None,
     }
+    if adaptation is not None:
+        experiment["adaptation"] = adaptation.to_dict()
     atomic_write_text(folder.provenance_path, json.dumps(experiment, indent=2))
     return experiment
 
@@ -364,6 +395,7 @@ def train(
     on_batch: Callable[[int], None] | None = None,
     on_start: Callable[[int, int], None] | None = None,
     on_note: Callable[[str], None] | None = None,
+    adaptation: Adaptation | None = None,
 ) -> dict:
     """Train on the workspace's train subset, select on val, write the experiment folder.
 
@@ -376,6 +408,8 @@ def train(
         on_batch: called with the batch size after every optimiser step.
         on_start: called with (epochs still to run, training patches per epoch) before training.
         on_note: called with a line of text about slow preparation steps.
+        adaptation: start from this adaptation's source checkpoint and learn from its job
+            cells too (:mod:`trainkit.learning.adapt`; ``cfg`` from ``adapt_recipe``).
 
     Returns:
         A summary: best epoch and its validation scores, paths, throughput, weights used.
@@ -389,13 +423,16 @@ def train(
     torch.manual_seed(cfg.seed)
 
     # 1) data
-    class_set, train_set, val_set, records = prepare_data(workspace, cfg)
+    class_set, train_set, val_set, records = prepare_data(workspace, cfg, adaptation)
     sets = (train_set, val_set)
-    experiment = write_provenance(folder, workspace, cfg, records, sets, class_set)
+    experiment = write_provenance(folder, workspace, cfg, records, sets, class_set, adaptation)
 
     # 2) network (with the weights it starts from), loss, optimiser, schedule
-    model = build_network(cfg, class_set.num_classes)
-    weights = weights_provenance(cfg.backbone, cfg.weights)
+    if adaptation is None:
+        model = build_network(cfg, class_set.num_classes)
+        weights = weights_provenance(cfg.backbone, cfg.weights)
+    else:
+        model, weights = _adaptation_start(adaptation, cfg, class_set)
     if cfg.weights is None and cfg.head_epochs:
         note(
             "note: head_epochs with weights: null trains a head on a randomly initialised "
@@ -494,6 +531,27 @@ def save_checkpoint(
         "validation_patches": experiment["validation_patches"],
         "weights": weights,
     }
+
+
+def _adaptation_start(adaptation: Adaptation, cfg: TrainConfig, class_set) -> tuple:
+    """The source experiment's selected network and the record of the weights it holds."""
+    from trainkit.learning.network import load_checkpoint
+
+    model, ckpt, source_classes = load_checkpoint(adaptation.source)
+    if source_classes.names != class_set.names or ckpt["config"]["backbone"] != cfg.backbone:
+        raise TrainingError(
+            f"experiment {adaptation.source} has backbone {ckpt['config']['backbone']!r} and "
+            f"classes {list(source_classes.names)}; this run asks for {cfg.backbone!r} and "
+            f"{list(class_set.names)}"
+        )
+    started = ckpt.get("weights") or {"name": "not recorded"}
+    weights = {
+        "name": f"{started.get('name')}, then trained in {adaptation.source} (epoch "
+        f"{ckpt['best_epoch']})",
+        **{k: v for k, v in started.items() if k != "name"},
+        "adapted_from": adaptation.source,
+    }
+    return model.train(), weights
 
 
 def _cv2_threads(n: int) -> int:

@@ -35,6 +35,7 @@ import numpy as np
 
 from trainkit.core.cores import usable_cores
 from trainkit.core.decode import PhotoError, find_images, read_rgb_fast
+from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_json, atomic_write_text
 from trainkit.screener.model import FramePatches, Screener
 
@@ -100,6 +101,8 @@ def _scan_record(model: Path, screener: Screener) -> dict:
         "data_digest": info.data_digest,
         "kit_version": info.kit_version,
         "familiarity_threshold": (info.familiarity or {}).get("threshold"),
+        # job frames the model learned from (trainkit train --from): kept out of job checks
+        "learned_frames": Experiment(model.parent).learned_frames(),
         "updated": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
     }
 
