@@ -58,15 +58,18 @@ def _cpu_seconds() -> float:
 
 def answer_from_truth(ws, cracks_of: dict[str, list]) -> dict[str, int]:
     """Label every unanswered job cell of ``ws`` from the generator's truth (orientation
-    classes of the workspace); ambiguous cells are answered unsure. Returns counts."""
+    classes of the workspace; ``cracks_of`` maps each resolved frame path to its cracks);
+    ambiguous cells are answered unsure. Returns counts."""
     from trainkit.synth import derive_patch_label
 
     cs = ws.class_set
+    # frame path of each job cell (frame names repeat across sets made with other seeds)
+    frame_of = {c["patch_id"]: c["frame"] for j in ws.jobs() for c in ws.job_cells(j["name"])}
     answers, counts = [], {"crack": 0, "none": 0, "unsure": 0}
     for r in ws.patches():
         if r.job is None or r.labelled:
             continue
-        t = derive_patch_label(cracks_of[Path(r.photo).name], tuple(r.box), cs)
+        t = derive_patch_label(cracks_of[str(Path(frame_of[r.id]).resolve())], tuple(r.box), cs)
         label = None if t.label is None else cs.names[t.label]
         answers.append((r.id, label))
         counts["unsure" if label is None else ("none" if label == "none" else "crack")] += 1
@@ -188,7 +191,9 @@ def main(argv: list[str] | None = None) -> int:
     ):
         folder = args.out / f"frames-{name}"
         frames[name] = (folder, jt.make_frames(folder, plan, surface, seed))
-    cracks = {k: v for _, c in frames.values() for k, v in c.items()}
+    cracks = {
+        str((folder / name).resolve()): v for folder, c in frames.values() for name, v in c.items()
+    }
     jt.say(args.quiet, "scanning with the source model ...")
     before = {
         name: jt.scan_set(model, frames[name][0], args.out / f"before-{name}", frames[name][1])

@@ -164,6 +164,7 @@ def test_adapt_export_scan_and_the_honest_path(demo_run, tmp_path):
     )
     evaluate_experiment(exp2.path, split="test")
     export_experiment(exp2.path)
+    assert "**Adapted** from" in exp2.card_path.read_text(encoding="utf-8")
 
     # Scans by the adapted model record what it learned from; a new sample leaves those out.
     scan_frames(exp2.model_path, [tmp_path / "job"], tmp_path / "scan2")
@@ -178,4 +179,7 @@ def test_adapt_export_scan_and_the_honest_path(demo_run, tmp_path):
     assert s["frames_learned_from_left_out"] == 4 and s["frames_sampled"] == 1
     assert {c["frame"] for c in ws.job_cells("check")} == {str(tmp_path / "job" / "frame-61.png")}
     _answer(ws, {**cracks, **more})
-    assert verify_scan(tmp_path / "scan2", ws, job="check")["cells_answered"] > 0
+    v = verify_scan(tmp_path / "scan2", ws, job="check")
+    assert v["cells_answered"] > 0 and v["frames_learned_from_left_out"] == 4
+    page = (tmp_path / "scan2" / "verification.html").read_text(encoding="utf-8")
+    assert 'data-metric="frames_learned_from_left_out" data-value="4"' in page

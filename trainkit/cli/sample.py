@@ -54,6 +54,11 @@ def sample(ctx: Ctx, scan_dir: Path, ws_dir: Path, cells: int, seed, job, as_jso
         f"job {res['job']}: {res['cells']} cells drawn from {res['frames_sampled']} of "
         f"{res['frames_in_scan']} frames ({strata}) -> {res['sample_csv']}"
     )
+    if res["frames_learned_from_left_out"]:
+        ctx.console.print(
+            f"{res['frames_learned_from_left_out']} frames of the scan were left out: the "
+            "scan's model learned from them (trainkit train --from)"
+        )
     ctx.console.print(
         f"label them: trainkit review {ws_dir} --reviewer NAME; then: "
         f"trainkit verify {scan_dir} --workspace {ws_dir}"

@@ -110,6 +110,14 @@ def train(
             f"{bv['val_balanced_accuracy']:.3f}); {res['median_images_per_second']:.0f} images/s; "
             f"checkpoint in {exp_dir}"
         )
+        if adaptation is not None:
+            from trainkit.core.experiment import Experiment
+
+            ctx.console.print(
+                f"next: trainkit evaluate {exp_dir}; trainkit export {exp_dir}; scan the job "
+                f"again with {Experiment(exp_dir).model_path}; then trainkit sample + review + verify that "
+                "scan (frames learned from are left out)"
+            )
 
 
 def _adaptation_line(a) -> str:

@@ -102,6 +102,7 @@ def verify_scan(
         "scan": j["scan"],
         "threshold": j["threshold"],
         "cells_sampled": len(cells),
+        "frames_learned_from_left_out": j["design"].get("frames_learned_from_left_out", 0),
         "cells_answered": len(answered),
         "cells_unsure_or_unanswered": {
             "unsure": sum(c["answered"] for c in unresolved),
@@ -270,6 +271,14 @@ def job_report(result: dict) -> str:
         f"{metric(R, 'suggested_threshold.false_alarm_rate')}). It was chosen on these same "
         "cells: check it again on cells it was not chosen on.</p>"
     )
+    left_out = R.get("frames_learned_from_left_out") or 0
+    learned_html = (
+        f" {metric(R, 'frames_learned_from_left_out')} frames of the scan were left out of the "
+        "sample because the model learned from them (it was adapted to this job): these "
+        "figures describe the other frames."
+        if left_out
+        else ""
+    )
     body = f"""<h1>Job check &mdash; {esc(R["job"])}</h1>
 <p class="caution"><strong>Read this first.</strong> {esc(R["caution"])} These figures hold
 for this job's frames only, estimated from a random sample of its cells.</p>
@@ -285,7 +294,7 @@ share of cells flagged {metric(R, "estimate.flagged_share")} (exact, from the sc
 <p>Cells were drawn at random within strata of the screening probability, so misses in the
 unflagged pile are found with a known chance. {metric(R, "cells_answered")} of
 {metric(R, "cells_sampled")} sampled cells are answered; unsure and unanswered cells are
-not counted and are listed here.</p>
+not counted and are listed here.{learned_html}</p>
 <table><tr><th>stratum</th><th>cells in the scan</th><th>answered</th><th>cracks</th>
 <th>unsure or unanswered</th></tr>{rows}</table>
 <h2>A threshold for this job</h2>{sug_html}

@@ -184,8 +184,26 @@ def _training_data(experiment: dict, synthetic: bool | None) -> list[str]:
             "- The training photos are **synthetic** (procedural concrete made by `trainkit.synth`); "
             "they show the workflow, not what the screener does on real photos."
         )
+    lines += _adaptation(experiment.get("adaptation"))
     lines.append("")
     return lines
+
+
+def _adaptation(adapted: dict | None) -> list[str]:
+    """What an adapted model learned from a job (``trainkit train --from``)."""
+    if not adapted:
+        return []
+    frames = adapted.get("frames", [])
+    cells = adapted.get("cells", {})
+    return [
+        f"- **Adapted** from `{adapted['source']}` with the answered cells of job(s) "
+        f"{', '.join(adapted.get('jobs', []))}: {len(cells.get('train', []))} cells trained, "
+        f"{len(cells.get('val', []))} validated (other frames), from {len(frames)} frames in "
+        f"all, plus {adapted.get('replay')} replayed training patches per job training cell. "
+        "Those frames are kept out of this model's job checks (`trainkit sample` leaves them "
+        "out, `trainkit verify` refuses them): figures on frames a model learned from would "
+        "flatter it."
+    ]
 
 
 def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
