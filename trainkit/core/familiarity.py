@@ -367,7 +367,7 @@ def frame_threshold(frame_scores: ArrayLike, alpha: float = 0.05) -> tuple[float
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0.0 < alpha < 1.0:
         raise FamiliarityError(f"expected alpha in (0, 1), got {alpha!r}")
     n = s.size
-    k = min(n, int(np.ceil((n + 1) * (1.0 - float(alpha)))))
+    k = min(n, int(np.ceil((n + 1) * (1.0 - float(alpha)) - 1e-9)))  # 1e-9: float rounding
     return float(s[k - 1]), 1.0 - k / (n + 1)
 
 
