@@ -124,7 +124,7 @@ def test_frame_threshold_false_warnings_hold_the_bound_by_simulation():
     assert F.frame_threshold([3.0, 1.0, 2.0]) == (3.0, 0.25)
 
 
-def test_ensemble_is_the_mean_of_distances_over_validation_medians():
+def test_ensemble_is_the_mean_of_distances_over_layer_medians():
     # Lee et al. (2018) section 2, feature ensemble; the kit's normalisation (divide each
     # layer by its validation median, average) checked against scipy's mahalanobis per layer.
     layers = [_clouds(300, d, seed=20 + d) for d in (4, 10)]

@@ -11,8 +11,9 @@ Feature ensemble (the paper's section 2, "feature ensemble"): the distance is co
 the global-average-pooled feature maps of several layers (one per network stage, plus the
 penultimate features) and the per-layer scores are combined. The paper weights them by a
 logistic regression fitted on validation outliers; without outlier data this kit divides
-each layer's distance by its median on the validation patches (:func:`layer_scale`) and
-averages (:func:`ensemble_scores`), so a typical in-distribution patch scores about 1.
+each layer's distance by its median on the training patches (:func:`layer_scale`) and
+averages (:func:`ensemble_scores`), so a typical training patch scores about 1 (the
+validation photos are kept apart for the frame threshold, so its guarantee holds).
 Measured on the job-trust benchmark's EfficientNet-Lite0 (2 Dec 2026): the penultimate
 layer alone separated reserved-surface cells from usual ones with ROC AUC 0.76, the
 early stages' pooled features with 0.99-1.00 (a new surface changes colour and texture
@@ -282,21 +283,22 @@ def scores(summary: FamiliaritySummary, features: ArrayLike) -> np.ndarray:
     return np.sqrt(np.maximum(best, 0.0))
 
 
-def layer_scale(validation_distances: ArrayLike) -> float:
-    """A layer's scale in the feature ensemble: the median of held-out in-distribution distances.
+def layer_scale(distances: ArrayLike) -> float:
+    """A layer's scale in the feature ensemble: the median of in-distribution distances.
 
     Dividing a layer's distance by it makes layers of different dimension comparable (a
-    typical validation patch scores 1 in every layer).
+    typical patch of the data it came from scores 1 in every layer). The export uses the
+    training patches, keeping the validation photos for :func:`frame_threshold`.
 
     Raises:
         FamiliarityError: on empty, non-finite or all-zero distances.
     """
-    d = np.asarray(validation_distances, dtype=np.float64).ravel()
+    d = np.asarray(distances, dtype=np.float64).ravel()
     if d.size == 0 or not np.all(np.isfinite(d)):
-        raise FamiliarityError("expected at least one finite validation distance")
+        raise FamiliarityError("expected at least one finite distance")
     m = float(np.median(d))
     if not m > 0.0:
-        raise FamiliarityError(f"expected a positive median validation distance, got {m}")
+        raise FamiliarityError(f"expected a positive median distance, got {m}")
     return m
 
 

@@ -6,8 +6,8 @@ stage (:func:`stage_ends`: the last module to finish at each spatial resolution 
 feature maps), whose maps are global-average-pooled. The feature ensemble of
 :mod:`trainkit.core.familiarity` (Lee et al., NeurIPS 2018: per layer the smallest
 Mahalanobis distance to a class mean, tied covariance; layers combined as the mean of
-distance / validation median) is fitted on the training patches, and the frame threshold
-on the validation photos (split-conformal, 5 % by default). :class:`ScreenerGraph`
+distance / its median on the training patches) is fitted on the training patches, and
+the frame threshold on the validation photos (split-conformal, 5 % by default). :class:`ScreenerGraph`
 computes the probabilities and the per-cell score inside one graph, so a downstream tool
 gets the score without knowing the method.
 """
@@ -228,8 +228,8 @@ def fit_graph(
         network: the trained network in eval mode.
         head_name: its classification head's dotted name.
         train_images, train_labels: training patches (uint8) and classes.
-        val_images: validation patches: their distances set each layer's scale, and the
-            medians of their photos' scores the frame threshold.
+        val_images: validation patches: the medians of their photos' scores set the frame
+            threshold.
         val_photos: the photo of each validation patch; None treats every patch as a
             frame of its own.
         stages: where the network's stages end (:func:`stage_ends`; the backbone record's
@@ -285,7 +285,7 @@ def fit_graph(
         "threshold": round(float(threshold), 4),
         "rule": "a frame is unfamiliar when the median of its cells' familiarity exceeds the threshold",
         "score": "per cell, the mean over layers of the layer's Mahalanobis distance divided by "
-        "its median on the validation patches (about 1 for a typical validation patch)",
+        "its median on the training patches (about 1 for a typical training patch)",
         "method": "feature ensemble of Lee et al. 2018: smallest Mahalanobis distance of "
         "globally pooled stage ends and penultimate features to a training class mean, "
         "tied covariance with Ledoit-Wolf shrinkage",
