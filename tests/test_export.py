@@ -60,7 +60,7 @@ def test_familiarity_output_is_the_feature_ensemble_and_the_threshold_conformal(
     (``forward_intermediates``, its ``feature_info`` stage ends) and head features
     (``forward_head(pre_logits=True)``), pooled, a summary fitted again here per layer, and
     scipy.spatial.distance.mahalanobis; each layer divided by numpy's median of its
-    validation distances, averaged. The threshold against the split-conformal rank of the
+    training distances, averaged. The threshold against the split-conformal rank of the
     validation photos' medians (numpy quantile, method 'inverted_cdf', at k / n with
     k = ceil((n + 1)(1 - alpha)); Lei et al. 2018)."""
     import torch
@@ -94,8 +94,9 @@ def test_familiarity_output_is_the_feature_ensemble_and_the_threshold_conformal(
     assert [layer["name"] for layer in fam["layers"]] == [
         "1." + f["module"] for f in net.feature_info
     ] + ["penultimate"]
-    fits = [F.fit(f, train.labels, k=64) for f in layers(train.images)]
-    scales = [np.median(dist(s, f)) for s, f in zip(fits, layers(val.images), strict=True)]
+    train_feats = layers(train.images)
+    fits = [F.fit(f, train.labels, k=64) for f in train_feats]
+    scales = [np.median(dist(s, f)) for s, f in zip(fits, train_feats, strict=True)]
     per_layer = [dist(s, f) / c for s, f, c in zip(fits, layers(test.images), scales, strict=True)]
     want = np.mean(per_layer, axis=0)
     got = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": test.images})[1]
