@@ -16,8 +16,10 @@ Everything is invented with the kit's own generator (trainkit.synth; no real pho
     length, or a crack edge just outside the cell); ambiguous cells are left out of the
     truth and counted;
 (c) both sets are scanned with ``trainkit.screener.scan.scan_frames``: the share of
-    frames the unfamiliar-surface warning fires on, and the true job recall and
-    false-alarm rate at the model's threshold over all truth cells of each set;
+    frames the unfamiliar-surface warning fires on (the exported rule: a frame's median
+    cell familiarity above a threshold calibrated on the validation photos only), the
+    frame-level AUC of that score, and the true job recall and false-alarm rate at the
+    model's threshold over all truth cells of each set;
 (d) on the reserved-family scan, for each number of answered cells, ``draw_sample`` +
     ``estimate_job`` are repeated with seeds 0..reps-1 (a simulated reviewer answering
     from the truth) and the coverage and mean width of the 95 % recall and false-alarm
@@ -237,6 +239,7 @@ def train_screener(out: Path, plan: Plan, seed: int, quiet: bool) -> tuple[Path,
         },
         "contract": exported["contract"],
         "familiarity_threshold": (exported["familiarity"] or {}).get("threshold"),
+        "familiarity": exported["familiarity"],
     }
     return Path(exported["model"]), facts
 
@@ -318,45 +321,29 @@ def scan_set(model: Path, frames: Path, out: Path, cracks: dict[str, list]) -> d
     }
 
 
-def frame_threshold_diagnostic(model: Path, workspace: Path, scans: dict[str, dict]) -> dict:
-    """What the warning would do with a threshold calibrated on frames, not on patches.
+def familiarity_summary(exported: dict | None, scans: dict[str, dict]) -> dict:
+    """The warning's calibration (as exported) and how well frame scores separate the sets.
 
-    The exported threshold is the 99th percentile of validation *patch* scores, but a
-    frame is warned about when the *median* of its cells exceeds it. This diagnostic
-    (not the kit's rule) scores the validation photos by the same median rule
-    (``frame_score``), takes the largest validation photo score as a frame threshold
-    (a conservative choice, common practice rather than a published rule), and counts
-    the frames of each set above it.
+    The exported threshold is a split-conformal quantile of the validation photos' median
+    cell scores (``trainkit.core.familiarity.frame_threshold``); no frame scanned here takes
+    part in it. The frame-level ROC AUC (sklearn's ``roc_auc_score``, reserved frames as
+    positives) says how far any threshold could separate the two sets.
     """
-    from trainkit.core.familiarity import frame_score
-    from trainkit.labels.workspace import Workspace
-    from trainkit.learning.data import load_patch_set
-    from trainkit.screener.model import Screener
+    from sklearn.metrics import roc_auc_score
 
-    ws = Workspace.open(workspace)
-    val = load_patch_set(ws, "val", ws.class_set)
-    with Screener(model) as screener:
-        _, fam = screener.predict_all(val.images)
-        limit = float(screener.info.familiarity["threshold"])
-    if fam is None:
+    if not exported:
         return {"note": "the model has no familiarity output"}
-    photos = np.array(val.photos)
-    medians = np.array([frame_score(fam[photos == ph], limit)[0] for ph in sorted(set(val.photos))])
-    thr = float(medians.max())
-    out = {
-        "validation_photos": int(medians.size),
-        "validation_photo_scores_min_median_max": [
-            float(medians.min()),
-            float(np.median(medians)),
-            thr,
-        ],
-        "patch_threshold_exported": limit,
-        "frame_threshold_diagnostic": thr,
+    d, r = scans["default"]["frame_scores"], scans["broom"]["frame_scores"]
+    ok = np.isfinite(d).all() and np.isfinite(r).all() and d.size and r.size
+    auc = roc_auc_score(np.r_[np.zeros(d.size), np.ones(r.size)], np.r_[d, r]) if ok else None
+    return {
+        "threshold": exported["threshold"],
+        "threshold_rule": exported.get("threshold_rule"),
+        "calibration_frames": exported.get("calibration_frames"),
+        "false_warning_bound": exported.get("false_warning_bound"),
+        "layers": [layer["name"] for layer in exported.get("layers", [])],
+        "frame_auc_reserved_vs_default": None if auc is None else float(auc),
     }
-    for name, sc in scans.items():
-        f = sc["frame_scores"]
-        out[f"warning_rate_{name}"] = float(np.mean(f > thr))
-    return out
 
 
 # --- (d) intervals -----------------------------------------------------------------------
@@ -506,14 +493,14 @@ def print_tables(result: dict) -> None:
         print(
             f"  {name}: frame familiarity min/median/max {_r(s['frame_familiarity_min_median_max'])}"
         )
-    d = result["familiarity_frame_diagnostic"]
-    if "frame_threshold_diagnostic" in d:
+    f = result["familiarity"]
+    if "threshold" in f:
+        auc = f["frame_auc_reserved_vs_default"]
         print(
-            f"  exported patch threshold {d['patch_threshold_exported']:.3f}; diagnostic frame "
-            f"threshold {d['frame_threshold_diagnostic']:.3f} (largest median score of "
-            f"{d['validation_photos']} validation photos) would warn on "
-            f"{_pct(d['warning_rate_broom'])} % of reserved and "
-            f"{_pct(d['warning_rate_default'])} % of held-out default frames"
+            f"  warning threshold {f['threshold']:.3f} ({f['threshold_rule']}; "
+            f"{f['calibration_frames']} validation photos, false-warning bound "
+            f"{_pct(f['false_warning_bound'])} %); layers {', '.join(f['layers'])}; frame AUC "
+            f"reserved vs default {'n/a' if auc is None else f'{auc:.3f}'}"
         )
     print("\n(d) reserved family: 95 % intervals over repeated samples (simulated reviewer)")
     print(
@@ -585,8 +572,7 @@ def main(argv: list[str] | None = None) -> int:
         cracks = make_frames(folder, plan, surface, seed)
         scans[surface] = scan_set(model, folder, args.out / f"scan-{surface}", cracks)
         sets[name] = scans[surface]["summary"]
-    say(args.quiet, "calibrating a frame-level familiarity threshold (diagnostic) ...")
-    diagnostic = frame_threshold_diagnostic(model, args.out / "workspace", scans)
+    familiarity = familiarity_summary(screener.get("familiarity"), scans)
     job = scans["broom"]
     thr = job["cells"].threshold
     say(args.quiet, f"repeating samples ({plan.reps} per size) ...")
@@ -607,7 +593,7 @@ def main(argv: list[str] | None = None) -> int:
         ),
         "screener": screener,
         "sets": sets,
-        "familiarity_frame_diagnostic": diagnostic,
+        "familiarity": familiarity,
         "intervals": intervals,
         "end_to_end": e2e,
         "wall_minutes": round((time.perf_counter() - t0) / 60, 2),

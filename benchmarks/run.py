@@ -14,9 +14,12 @@ vary from run to run, ratios much less.
    (PIL decode, crop, torchvision transforms, eager model, one batch per frame);
 5. training (benchmarks/train_bench.py): `trainkit.learning.training.train` against a plain
    ImageFolder/DataLoader loop (2 workers and 0) on the same patches, both against the
-   model-only bound, with the held-out accuracy each reaches in the same wall time.
+   model-only bound, with the held-out accuracy each reaches in the same wall time;
+6. the unfamiliar-surface output: ONNX Runtime on the exported demo network with and
+   without the familiarity ensemble (stage taps + per-layer Mahalanobis), same patches.
 
-`python benchmarks/run.py [memory_format|inference|tiling|scan|training ...]` runs a subset;
+`python benchmarks/run.py [memory_format|inference|tiling|scan|training|familiarity ...]`
+runs a subset;
 `--quick` runs the training subset at smoke-test size (under a minute).
 """
 
@@ -400,6 +403,48 @@ def bench_train_step(batch: int = 32, size: int = 224, rounds: int = 5) -> dict:
     }
 
 
+def bench_familiarity(n: int = 256, size: int = 128) -> dict:
+    """The cost of the familiarity output: the demo network exported with and without it."""
+    import onnx
+    import onnxruntime as ort
+
+    from trainkit.judging.export import network_to_onnx
+    from trainkit.judging.familiarity_graph import fit_graph
+    from trainkit.learning.config import load_train_config
+    from trainkit.learning.network import build_network
+    from trainkit.learning.steps import head_module_name, stage_module_names
+
+    torch.manual_seed(0)
+    cfg = load_train_config("demo")
+    network = build_network(cfg, 6, load_weights=False).eval()
+    rng = np.random.default_rng(0)
+    images = rng.integers(0, 256, (n, size, size, 3), dtype=np.uint8)
+    graph, fam = fit_graph(
+        network, head_module_name(cfg.backbone), images[:192], rng.integers(0, 6, 192),
+        images[192:], val_photos=np.repeat(np.arange(8), 8)[: n - 192],
+        stages=stage_module_names(cfg.backbone),
+    )  # fmt: skip
+    with tempfile.TemporaryDirectory() as d:
+        sess = {}
+        for name, net in (("plain", network), ("with_familiarity", graph)):
+            path = Path(d) / f"{name}.onnx"
+            onnx.save(network_to_onnx(net, size), str(path))
+            sess[name] = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+
+        def run(name):
+            return lambda: [
+                sess[name].run(None, {"image": images[i : i + 64]}) for i in range(0, n, 64)
+            ]
+
+        med = alternate({k: run(k) for k in sess}, rounds=7)
+    return {
+        "what": f"{cfg.backbone} (demo recipe) in ONNX Runtime, {n} patches of {size} px, "
+        f"batch 64; familiarity over {len(fam['layers'])} layers",
+        "patches_per_second": {k: round(n / v, 1) for k, v in med.items()},
+        "ratio_with_to_without": round(med["plain"] / med["with_familiarity"], 3),
+    }
+
+
 BENCHMARKS = {
     "memory_format": bench_memory_format,
     "inference": bench_onnx_vs_torch,
@@ -407,6 +452,7 @@ BENCHMARKS = {
     "scan": bench_scan,
     "training": bench_training,
     "train_step": bench_train_step,
+    "familiarity": bench_familiarity,
 }
 #: Keyword arguments that `--quick` passes to the benchmarks that have a smoke-test size.
 QUICK = {"training": {"size": "quick"}}

@@ -78,6 +78,26 @@ def test_true_figures_match_scikit_learn(jt):
     assert f["flagged_share_all_cells"] == pytest.approx(np.mean(p >= 0.5))
 
 
+def test_familiarity_summary_reports_the_export_and_the_frame_auc(jt):
+    # Frame AUC by hand (Mann-Whitney count): of the 2 x 3 (default, reserved) pairs, the
+    # reserved frame scores higher in 5 and ties in none, so AUC = 5 / 6.
+    scans = {
+        "default": {"frame_scores": np.array([1.0, 2.5])},
+        "broom": {"frame_scores": np.array([2.0, 3.0, 4.0])},
+    }
+    exported = {
+        "threshold": 1.9,
+        "threshold_rule": "split-conformal",
+        "calibration_frames": 19,
+        "false_warning_bound": 0.05,
+        "layers": [{"name": "1.blocks.0"}, {"name": "penultimate"}],
+    }
+    f = jt.familiarity_summary(exported, scans)
+    assert f["frame_auc_reserved_vs_default"] == pytest.approx(5 / 6)
+    assert f["layers"] == ["1.blocks.0", "penultimate"] and f["threshold"] == 1.9
+    assert "no familiarity" in jt.familiarity_summary(None, scans)["note"]
+
+
 def test_frames_are_reproducible_and_the_families_differ(jt, tmp_path):
     plan = jt.Plan(1, "demo", 1, 0.0, 2, 96, 128, (10,), 1, 10)
     a = jt.make_frames(tmp_path / "a", plan, "broom", 5)

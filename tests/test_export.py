@@ -55,35 +55,64 @@ def test_parity_with_pytorch_on_real_patches(demo_run):
     assert np.array_equal(ref.argmax(1), got.argmax(1))
 
 
-def test_familiarity_output_is_the_mahalanobis_distance_of_the_penultimate_features(demo_run):
-    """The graph's second output against scipy.spatial.distance.mahalanobis (nearest class
-    mean, in the projected space of a summary fitted again here on the training patches),
-    and the stored threshold against numpy's 99th percentile of the validation scores."""
-    import json
-
+def test_familiarity_output_is_the_feature_ensemble_and_the_threshold_conformal(demo_run):
+    """The graph's second output against an outside path: timm's own stage outputs
+    (``forward_intermediates``, its ``feature_info`` stage ends) and head features
+    (``forward_head(pre_logits=True)``), pooled, a summary fitted again here per layer, and
+    scipy.spatial.distance.mahalanobis; each layer divided by numpy's median of its
+    training distances, averaged. The threshold against the split-conformal rank of the
+    validation photos' medians (numpy quantile, method 'inverted_cdf', at k / n with
+    k = ceil((n + 1)(1 - alpha)); Lei et al. 2018)."""
+    import torch
     from scipy.spatial.distance import mahalanobis
 
     from trainkit.core import familiarity as F
-    from trainkit.judging.familiarity_graph import penultimate_features, split_head
     from trainkit.labels.workspace import Workspace
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
-    from trainkit.learning.training import head_module_name
 
     out, _ = demo_run
     model, ckpt, cs = load_checkpoint(out)
     ws = Workspace.open(out / "workspace")
     train, val, test = (load_patch_set(ws, s, cs) for s in ("train", "val", "test"))
-    body, _ = split_head(model, head_module_name(ckpt["config"]["backbone"]))
-    summary = F.fit(penultimate_features(body, train.images), train.labels, k=64)
-    got = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": test.images})[1]
-    z = summary.project(penultimate_features(body, test.images))
-    prec = summary.precision.astype(np.float64)
-    want = [min(mahalanobis(v, m, prec) for m in summary.class_means.astype(float)) for v in z]
-    assert np.allclose(got, want, rtol=1e-3, atol=1e-3)
+    pre, net = model[0], model[1]
+    assert ckpt["config"]["backbone"] == "efficientnet_lite0"
+
+    @torch.no_grad()
+    def layers(images: np.ndarray) -> list[np.ndarray]:
+        x = pre(torch.from_numpy(images))
+        maps = net.forward_intermediates(x, intermediates_only=True)
+        pen = net.forward_head(net.forward_features(x), pre_logits=True)
+        return [m.mean(dim=(2, 3)).numpy() for m in maps] + [pen.numpy()]
+
+    def dist(summary, feats):
+        z = summary.project(feats)
+        prec = summary.precision.astype(np.float64)
+        return np.array([min(mahalanobis(v, m, prec) for m in summary.class_means) for v in z])
+
     fam = json.loads(read_metadata(out / "model.onnx")["familiarity"])
-    val_scores = F.scores(summary, penultimate_features(body, val.images))
-    assert fam["threshold"] == pytest.approx(float(np.quantile(val_scores, 0.99)), abs=2e-3)
+    assert [layer["name"] for layer in fam["layers"]] == [
+        "1." + f["module"] for f in net.feature_info
+    ] + ["penultimate"]
+    train_feats = layers(train.images)
+    fits = [F.fit(f, train.labels, k=64) for f in train_feats]
+    scales = [np.median(dist(s, f)) for s, f in zip(fits, train_feats, strict=True)]
+    per_layer = [dist(s, f) / c for s, f, c in zip(fits, layers(test.images), scales, strict=True)]
+    want = np.mean(per_layer, axis=0)
+    got = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": test.images})[1]
+    assert np.allclose(got, want, rtol=1e-3, atol=1e-3)
+    # The threshold: the conformal rank of the validation photos' median cell scores.
+    val_cells = ort.InferenceSession(str(out / "model.onnx")).run(None, {"image": val.images})[1]
+    photos = np.array(val.photos)
+    medians = np.array([np.median(val_cells[photos == p]) for p in sorted(set(val.photos))])
+    n, alpha = medians.size, fam["alpha"]
+    k = min(n, int(np.ceil((n + 1) * (1 - alpha))))
+    assert fam["threshold"] == pytest.approx(
+        float(np.quantile(medians, k / n, method="inverted_cdf")), abs=2e-3
+    )
+    assert fam["calibration_frames"] == n and fam["false_warning_bound"] == round(
+        1 - k / (n + 1), 4
+    )
 
 
 def test_opencv_dnn_reads_the_model_and_agrees_with_onnxruntime(demo_run):

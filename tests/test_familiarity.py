@@ -71,11 +71,11 @@ def test_shrinkage_matches_sklearn_ledoit_wolf():
     assert np.allclose(cov, ref_cov)
 
 
-def test_shifted_cloud_separates_and_validation_quantile_flags_about_one_percent():
+def test_shifted_cloud_separates_and_conformal_threshold_flags_about_one_percent():
     x, y = _clouds(3000, 128, seed=5)
     s = F.fit(x, y, k=32)
     val = F.scores(s, _clouds(3000, 128, seed=6)[0])
-    thr = F.threshold_from_validation(val, quantile=0.99)
+    thr, bound = F.frame_threshold(val, alpha=0.01)
     held_out = F.scores(s, _clouds(5000, 128, seed=7)[0])
     shifted = F.scores(s, _clouds(1000, 128, seed=8, shift=2.0)[0])
     # Sanity check: the shifted cloud is told apart (AUC from sklearn's roc_auc_score).
@@ -83,10 +83,72 @@ def test_shifted_cloud_separates_and_validation_quantile_flags_about_one_percent
         np.r_[np.zeros(held_out.size), np.ones(shifted.size)], np.r_[held_out, shifted]
     )
     assert auc > 0.99
-    # About 1 % of held-out in-distribution vectors exceed the 99th validation percentile;
-    # binomial sd with n = 5000 is 0.0014, so [0.4 %, 1.8 %] is about 4 sd either side.
+    # About 1 % of held-out in-distribution vectors exceed it; binomial sd with n = 5000
+    # is 0.0014, so [0.4 %, 1.8 %] is about 4 sd either side.
+    assert bound == pytest.approx(1 - 2971 / 3001)  # k = ceil(3001 * 0.99) = 2971
     assert 0.004 <= np.mean(held_out > thr) <= 0.018
     assert np.mean(shifted > thr) > 0.9
+
+
+CONFORMAL = (
+    "split-conformal threshold: the ceil((n + 1)(1 - alpha))-th smallest calibration score "
+    "(Lei et al. 2018, JASA; Angelopoulos and Bates 2021, 'A gentle introduction to "
+    "conformal prediction', section 1), i.e. numpy's quantile at k / n with "
+    "method='inverted_cdf' (Hyndman and Fan 1996, definition 1: smallest x with F_n(x) >= q)"
+)
+
+
+@pytest.mark.parametrize("n", [19, 20, 57, 200])
+def test_frame_threshold_is_the_conformal_quantile(n):
+    # CONFORMAL, the reference computed with numpy's quantile as in that paper's code.
+    s = np.random.default_rng(n).gamma(3.0, size=n)
+    thr, bound = F.frame_threshold(s, alpha=0.05)
+    q = np.ceil((n + 1) * 0.95) / n
+    assert thr == np.quantile(s, q, method="inverted_cdf")
+    assert 0.0 < bound <= 0.05 + 1e-12
+
+
+def test_frame_threshold_false_warnings_hold_the_bound_by_simulation():
+    # The conformal guarantee (Vovk et al. 2005; Lei et al. 2018): a new exchangeable score
+    # exceeds the threshold with probability 1 - k / (n + 1); with n = 19 and alpha 0.05,
+    # k = 19 and that is exactly 0.05. 4000 seeded repetitions: sd 0.0034, checked +-3 sd.
+    rng = np.random.default_rng(12)
+    hits = []
+    for _ in range(4000):
+        cal = rng.lognormal(size=19)
+        thr, bound = F.frame_threshold(cal)
+        hits.append(rng.lognormal() > thr)
+    assert bound == pytest.approx(0.05)
+    assert 0.04 <= np.mean(hits) <= 0.06
+    # Fewer frames than 1 / alpha - 1: the largest is used, the bound says 1 / (n + 1).
+    assert F.frame_threshold([3.0, 1.0, 2.0]) == (3.0, 0.25)
+
+
+def test_ensemble_is_the_mean_of_distances_over_layer_medians():
+    # Lee et al. (2018) section 2, feature ensemble; the kit's normalisation (divide each
+    # layer by its validation median, average) checked against scipy's mahalanobis per layer.
+    layers = [_clouds(300, d, seed=20 + d) for d in (4, 10)]
+    fits = [F.fit(x, y, k=None, shrink=False) for x, y in layers]
+    val = [_clouds(50, d, seed=40 + d)[0] for d in (4, 10)]
+    probe = [_clouds(7, d, seed=60 + d, shift=1.0)[0] for d in (4, 10)]
+
+    def ref(summary, rows):
+        means = summary.class_means.astype(float) + summary.mean.astype(float)
+        prec = summary.precision.astype(float)
+        return np.array([min(mahalanobis(u, m, prec) for m in means) for u in rows])
+
+    scales = [F.layer_scale(F.scores(s, v)) for s, v in zip(fits, val, strict=True)]
+    assert scales == pytest.approx([np.median(ref(s, v)) for s, v in zip(fits, val, strict=True)])
+    got = F.ensemble_scores([F.scores(s, p) for s, p in zip(fits, probe, strict=True)], scales)
+    want = (ref(fits[0], probe[0]) / scales[0] + ref(fits[1], probe[1]) / scales[1]) / 2
+    assert np.allclose(got, want, rtol=1e-6)
+    # Frames: the median of each photo's cells, photos in sorted order (a worked example).
+    assert F.group_medians([1.0, 9.0, 2.0, 4.0, 3.0], ["b", "a", "b", "a", "b"]).tolist() == [
+        6.5,
+        2.0,
+    ]
+    with pytest.raises(F.FamiliarityError, match="one scale per layer, got 2 layers and 1"):
+        F.ensemble_scores([np.ones(3), np.ones(3)], [1.0])
 
 
 def test_summary_round_trips_through_json_and_frame_median():
@@ -107,8 +169,8 @@ def test_errors_name_the_value():
         F.scores(s, x[:, :7])
     with pytest.raises(F.FamiliarityError, match="k to be an int >= 1"):
         F.fit(x, y, k=0)
-    with pytest.raises(F.FamiliarityError, match="quantile in \\(0, 1\\), got 1.5"):
-        F.threshold_from_validation([1.0, 2.0], quantile=1.5)
+    with pytest.raises(F.FamiliarityError, match="alpha in \\(0, 1\\), got 1.5"):
+        F.frame_threshold([1.0, 2.0], alpha=1.5)
     with pytest.raises(F.FamiliarityError, match="format"):
         F.FamiliaritySummary.from_dict({"format": "other"})
 

@@ -45,8 +45,9 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
         fam = res.get("familiarity")
         console.print(
             f"contract {res['contract']}: frames unlike the training data are flagged when their "
-            f"cells' median familiarity exceeds {fam['threshold']:.2f} (the 99th percentile of "
-            f"{fam['threshold_from_patches']} validation patches)"
+            f"cells' median familiarity exceeds {fam['threshold']:.2f} (calibrated on "
+            f"{fam['calibration_frames']} validation photos: at most "
+            f"{fam['false_warning_bound']:.0%} of frames like them are flagged)"
             if fam
             else f"contract {res['contract']}: no familiarity output ("
             + (

@@ -16,6 +16,17 @@ Versions:
   ``threshold``, ``rule``, how it was fitted). A frame whose cells' median familiarity
   exceeds the threshold looks unlike the training data. Version-1 models still load; they
   give no familiarity and so no unfamiliar-surface warning.
+
+  Migration note (kit 2 Dec 2026, same version: the rule an older reader applies is
+  unchanged and still right): the ``familiarity`` output of models exported from then on
+  is the feature ensemble of :mod:`trainkit.core.familiarity`, the mean over the network's
+  stage ends and penultimate layer of each layer's distance divided by its median on the
+  training patches (about 1 for a familiar patch; earlier models gave the penultimate
+  distance alone, in the tens), and ``familiarity.threshold`` is calibrated on frames (a
+  split-conformal quantile of the validation photos' medians) instead of being the 99th
+  percentile of validation patches. New informative keys: ``score``, ``threshold_rule``,
+  ``alpha``, ``false_warning_bound``, ``calibration_frames``, ``layers``. Compare
+  familiarity values only between cells of models exported the same way.
 """
 
 from __future__ import annotations
@@ -99,7 +110,8 @@ class ModelInfo:
             ``{"name": "random initialisation"}``.
         preprocess: the normalisation inside the graph (mean and std per RGB channel).
         familiarity: from version 2: ``threshold`` (cells' median above it: unfamiliar),
-            ``rule`` and how it was fitted; None for version-1 models.
+            ``rule`` and how it was fitted (``alpha`` and ``false_warning_bound`` of the
+            frame threshold, ``layers``); None for version-1 models.
         version: the contract version.
         extra: any further keys, as stored (strings).
     """

@@ -266,19 +266,30 @@ def _graph_with_familiarity(model, ckpt: dict, class_set, input_px: int):
     from trainkit.judging.familiarity_graph import fit_graph
     from trainkit.labels.workspace import Workspace, WorkspaceError
     from trainkit.learning.adapt import load_subset
-    from trainkit.learning.steps import head_module_name
+    from trainkit.learning.data import load_patch_set
+    from trainkit.learning.steps import head_module_name, stage_module_names
 
     try:
         ws = Workspace.open(ckpt["experiment"]["workspace"])
-        # an adapted model's job cells count: their surface is now familiar
+        # An adapted model's job training cells count (their surface is now familiar); the
+        # frame threshold stays calibrated on whole validation photos, not on a job's
+        # scattered sampled cells.
         train = load_subset(ws, "train", class_set, ckpt["experiment"], input_px=input_px)
-        val = load_subset(ws, "val", class_set, ckpt["experiment"], input_px=input_px)
+        val = load_patch_set(ws, "val", class_set, input_px=input_px)
     except (WorkspaceError, KeyError, OSError):
         return model, None
     if len(train) < 2 or len(val) == 0:
         return model, None
-    head = head_module_name(ckpt["config"]["backbone"])
-    return fit_graph(model, head, train.images, train.labels, val.images)
+    backbone = ckpt["config"]["backbone"]
+    return fit_graph(
+        model,
+        head_module_name(backbone),
+        train.images,
+        train.labels,
+        val.images,
+        val_photos=val.photos,
+        stages=stage_module_names(backbone) or None,
+    )
 
 
 def weights_record(ckpt: dict) -> dict:

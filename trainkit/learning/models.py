@@ -175,6 +175,10 @@ class Backbone:
         interpolation: the resampling the weights' authors used to reach ``native_px``.
         torchvision_weights: torchvision's weight enum name (weights from torch's hub cache).
         packaged_weights: ImageNet weights from a package of the package index.
+        stages: modules whose outputs end the network's stages, for the unfamiliar-surface
+            ensemble (``trainkit.judging.familiarity_graph.stage_ends``): a container
+            (``nn.Sequential``) stands for its children; the last one at each spatial
+            resolution is tapped.
     """
 
     build: Callable[[int], nn.Module]
@@ -185,6 +189,7 @@ class Backbone:
     interpolation: str = "bilinear"
     torchvision_weights: str | None = None
     packaged_weights: PackagedWeights | None = None
+    stages: tuple[str, ...] = ()
 
 
 LITE0_WEIGHTS = PackagedWeights(
@@ -197,19 +202,31 @@ LITE0_WEIGHTS = PackagedWeights(
 
 #: name -> registry record; ``create_model(name, ...)`` builds from it.
 BACKBONES: dict[str, Backbone] = {
-    "tiny_cnn": Backbone(_tiny_cnn, "classifier."),
+    "tiny_cnn": Backbone(_tiny_cnn, "classifier.", stages=("features",)),
     "mobilenet_v3_small": Backbone(
-        _mobilenet_v3_small, "classifier.3.", torchvision_weights="MobileNet_V3_Small_Weights"
+        _mobilenet_v3_small,
+        "classifier.3.",
+        torchvision_weights="MobileNet_V3_Small_Weights",
+        stages=("features",),
     ),
     "mobilenet_v3_large": Backbone(
-        _mobilenet_v3_large, "classifier.3.", torchvision_weights="MobileNet_V3_Large_Weights"
+        _mobilenet_v3_large,
+        "classifier.3.",
+        torchvision_weights="MobileNet_V3_Large_Weights",
+        stages=("features",),
     ),
-    "resnet18": Backbone(_resnet18, "fc.", torchvision_weights="ResNet18_Weights"),
+    "resnet18": Backbone(
+        _resnet18,
+        "fc.",
+        torchvision_weights="ResNet18_Weights",
+        stages=("relu", "layer1", "layer2", "layer3", "layer4"),
+    ),
     "efficientnet_b0": Backbone(
         _efficientnet_b0,
         "classifier.1.",
         interpolation="bicubic",
         torchvision_weights="EfficientNet_B0_Weights",
+        stages=("features",),
     ),
     "efficientnet_lite0": Backbone(
         _tf_efficientnet_lite0,
@@ -219,12 +236,19 @@ BACKBONES: dict[str, Backbone] = {
         native_px=224,
         interpolation="bicubic",
         packaged_weights=LITE0_WEIGHTS,
+        stages=("blocks",),
     ),
     "shufflenet_v2_x1_0": Backbone(
-        _shufflenet_v2_x1_0, "fc.", torchvision_weights="ShuffleNet_V2_X1_0_Weights"
+        _shufflenet_v2_x1_0,
+        "fc.",
+        torchvision_weights="ShuffleNet_V2_X1_0_Weights",
+        stages=("conv1", "stage2", "stage3", "stage4", "conv5"),
     ),
     "regnet_x_400mf": Backbone(
-        _regnet_x_400mf, "fc.", torchvision_weights="RegNet_X_400MF_Weights"
+        _regnet_x_400mf,
+        "fc.",
+        torchvision_weights="RegNet_X_400MF_Weights",
+        stages=("stem", "trunk_output"),
     ),
 }
 

@@ -21,7 +21,7 @@ from trainkit.core.cores import usable_cores
 from trainkit.core.taxonomy import apply_d4
 from trainkit.learning.config import TrainConfig
 from trainkit.learning.data import Augmenter, PatchSet, batches
-from trainkit.learning.models import HEADS
+from trainkit.learning.models import HEADS, backbone_record
 from trainkit.metrics import recall_at_false_alarm
 
 # ----- small named helpers ---------------------------------------------------------
@@ -129,6 +129,11 @@ def stage_of(epoch: int, cfg: TrainConfig) -> str:
 def head_module_name(backbone: str) -> str:
     """Dotted name of the classification head inside the network (Preprocess is module 0)."""
     return "1." + HEADS[backbone].rstrip(".")
+
+
+def stage_module_names(backbone: str) -> list[str]:
+    """Dotted names inside the network of the backbone record's ``stages`` (Preprocess is module 0)."""
+    return ["1." + name for name in backbone_record(backbone).stages]
 
 
 def set_stage(
