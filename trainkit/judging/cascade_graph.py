@@ -13,8 +13,8 @@ Layout of the graph (contract ``trainkit-screener-3``, :mod:`trainkit.core.contr
 4. outputs ``probabilities`` (N, C), ``familiarity`` (N,) from the first stage and
    ``reached`` (N,) bool = ``passed``.
 
-The two networks are exported separately with :func:`trainkit.judging.export.network_to_onnx`
-and then joined with onnx.helper; :func:`run_cascade_torch` is the same computation in
+The two networks are exported separately (``trainkit.judging.export.network_to_onnx``) and
+then joined here with onnx.helper; :func:`run_cascade_torch` is the same computation in
 PyTorch, for the export's parity check and the tests.
 """
 
@@ -71,15 +71,15 @@ def _prefixed(proto, prefix: str):
     return onnx.compose.add_prefix(proto, prefix)
 
 
-def cascade_to_onnx(stage1, main, patch_px: int, pass_threshold: float, *, opset: int):
+def cascade_to_onnx(stage1, main, patch_px: int, pass_threshold: float):
     """The one-graph cascade as an ONNX ModelProto (no metadata set here).
 
     Args:
-        stage1: the first stage with its familiarity output (a ``ScreenerGraph``).
-        main: the main network (Preprocess + backbone, logits out).
+        stage1: the first stage's exported graph (ModelProto) with the outputs
+            ``probabilities`` (N, 2) and ``familiarity`` (N,).
+        main: the main network's exported graph (ModelProto), output ``probabilities``.
         patch_px: the input size S of both.
         pass_threshold: in [0, 1].
-        opset: the ONNX opset of both exports.
 
     Raises:
         ValueError: ``pass_threshold`` outside [0, 1].
@@ -87,12 +87,9 @@ def cascade_to_onnx(stage1, main, patch_px: int, pass_threshold: float, *, opset
     import onnx
     from onnx import TensorProto, helper, numpy_helper
 
-    from trainkit.judging.export import network_to_onnx
-
     if not 0.0 <= float(pass_threshold) <= 1.0:
         raise ValueError(f"pass_threshold must be in [0, 1], got {pass_threshold}")
-    one = _prefixed(network_to_onnx(stage1, patch_px, opset=opset), "s1/")
-    two = _prefixed(network_to_onnx(main, patch_px, opset=opset), "s2/")
+    one, two = _prefixed(stage1, "s1/"), _prefixed(main, "s2/")
     num_classes = int(two.graph.output[0].type.tensor_type.shape.dim[1].dim_value)
     if num_classes < 2:
         raise ValueError(f"the main network's output has no fixed class count: {num_classes}")
@@ -165,3 +162,109 @@ def cascade_to_onnx(stage1, main, patch_px: int, pass_threshold: float, *, opset
     model = helper.make_model(graph, opset_imports=list(one.opset_import))
     model.ir_version = one.ir_version
     return model
+
+
+def cascade_plan(ckpt: dict, metrics: dict | None, class_set, input_px: int, fit):
+    """What the export needs for a cascade, or (None, why there is none).
+
+    A cascade is exported only when the checkpoint has a first stage, the evaluation chose its
+    pass threshold and its gate passed, and the first stage's familiarity could be fitted
+    (contract 3 gives every cell a familiarity).
+
+    Args:
+        ckpt: the checkpoint (its ``cascade`` record).
+        metrics: ``evaluation/metrics.json`` or None.
+        fit: ``fit(network, head_name) -> (graph, familiarity or None)``; the export's one
+            call of :func:`trainkit.judging.familiarity_graph.fit_graph`.
+
+    Returns:
+        (``{"stage1", "familiarity", "meta", "headline"}``, None) or (None, reason or None
+        when the recipe asked for no cascade).
+    """
+    record = ckpt.get("cascade")
+    if record is None:
+        return None, None
+    block = (metrics or {}).get("cascade")
+    if not block:
+        return None, "the cascade was not evaluated (run `trainkit evaluate`); exported without it"
+    if not block["gate"]["passed"]:
+        return None, block["gate"]["verdict"]
+    from trainkit.learning.cascade import load_stage1, stage1_head_name
+    from trainkit.learning.config import CascadeConfig
+
+    first = load_stage1(record)
+    graph, familiarity = fit(first, stage1_head_name(CascadeConfig(**record["config"])))
+    if familiarity is None:
+        return None, "no familiarity for the first stage (training or validation patches not found)"
+    main, cas = block["main"], block["cascade"]
+    meta = {
+        "pass_threshold": round(float(block["pass_threshold"]), 6),
+        "threshold_source": block["threshold_source"],
+        "stage1": {k: record["config"][k] for k in ("backbone", "input_px")},
+        "loss": record.get("loss"),
+        "validation": block["validation"],
+        "test": {
+            "recall": cas["recall"],
+            "false_alarm_rate": cas["false_alarm_rate"],
+            "main_recall": main["recall"],
+            "main_false_alarm_rate": main["false_alarm_rate"],
+            "passed_share": block["passed_share"],
+        },
+    }
+    headline = _cascade_headline(metrics, block)
+    return {"stage1": graph, "familiarity": familiarity, "meta": meta, "headline": headline}, None
+
+
+def _cascade_headline(metrics: dict, block: dict) -> dict:
+    """The metadata's headline test figures: the cascade's (what the file does), the main
+    network's beside them."""
+    s, cas = metrics["screening"], block["cascade"]
+    ci = cas["recall_interval"]
+    return {
+        "split": metrics["split"],
+        "patches": metrics["patches"],
+        "screening_recall": cas["recall"],
+        "screening_recall_interval": [ci["low"], ci["high"]],
+        "interval_method": ci["method"],
+        "false_alarm_rate": cas["false_alarm_rate"],
+        "accuracy": metrics["accuracy"],
+        "figures_of": "the cascade (first stage, then the main network on the cells it passes)",
+        "main_network": {
+            "screening_recall": s["recall"],
+            "false_alarm_rate": s["false_alarm_rate"],
+        },
+    }
+
+
+def check_cascade_parity(main, cascade: dict, path, images: np.ndarray, atol: float):
+    """ONNX Runtime against :func:`run_cascade_torch` on ``images``; returns (max |dp|,
+    familiarity's max relative difference).
+
+    Raises:
+        ValueError: the cells reaching the main network differ, probabilities differ by more
+            than ``atol`` or the familiarity by more than 1e-3 relative (the message says
+            which; the export turns it into its own error).
+    """
+    import onnxruntime as ort
+
+    from trainkit.core.contract import INPUT_NAME
+
+    t = cascade["meta"]["pass_threshold"]
+    ref_p, ref_f, ref_r = run_cascade_torch(cascade["stage1"], main, images, t)
+    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    got_p, got_f, got_r = sess.run(None, {INPUT_NAME: images})
+    if not np.array_equal(ref_r, got_r):
+        raise ValueError(
+            f"ONNX cascade passes {int(got_r.sum())} of {len(images)} patches to the main network, "
+            f"PyTorch {int(ref_r.sum())}; model not written"
+        )
+    max_diff = float(np.max(np.abs(ref_p - got_p)))
+    if max_diff > atol:
+        raise ValueError(
+            f"ONNX cascade output differs from PyTorch on {len(images)} patches: max |dp| = "
+            f"{max_diff:.2e} (allowed {atol:.0e}); model not written"
+        )
+    rel = float(np.max(np.abs(ref_f - got_f) / np.maximum(np.abs(ref_f), 1.0)))
+    if rel > 1e-3:
+        raise ValueError(f"familiarity: ONNX differs from PyTorch by {rel:.2e} (relative)")
+    return max_diff, rel

@@ -30,7 +30,14 @@ from trainkit.learning.models import backbone_record, create_model, weights_prov
 from trainkit.learning.network import Preprocess, TrainingError
 from trainkit.learning.steps import get_lr, head_module_name, predict_proba
 
-__all__ = ["CASCADE_FORMAT", "build_stage1", "stage1_head_name", "train_stage1", "load_stage1"]
+__all__ = [
+    "CASCADE_FORMAT",
+    "build_stage1",
+    "stage1_head_name",
+    "distillation_loss",
+    "train_stage1",
+    "load_stage1",
+]
 
 #: The ``format`` of the first stage's record inside ``checkpoint.pt``.
 CASCADE_FORMAT = "trainkit-cascade-1"
@@ -61,6 +68,22 @@ def _divisors(n: int) -> list[int]:
 def stage1_head_name(cfg: CascadeConfig) -> str:
     """Dotted name of the first stage's head (the backbone is module 2, after the pooling)."""
     return "2." + head_module_name(cfg.backbone).split(".", 1)[1]
+
+
+def distillation_loss(
+    logits: torch.Tensor, p_main: torch.Tensor, is_crack: torch.Tensor, teacher_weight: float
+) -> torch.Tensor:
+    """Mean soft cross-entropy of two-class ``logits`` against ``q = w * p_main + (1 - w) * y``.
+
+    Args:
+        logits: (n, 2) first-stage logits (none, crack).
+        p_main: (n,) the main network's screening probability.
+        is_crack: (n,) 1.0 for a true crack patch, else 0.0.
+        teacher_weight: w in [0, 1].
+    """
+    q = teacher_weight * p_main + (1.0 - teacher_weight) * is_crack
+    target = torch.stack([1.0 - q, q], dim=1)
+    return -(target * torch.log_softmax(logits, dim=1)).sum(1).mean()
 
 
 def _random_symmetry(batch: np.ndarray, rng: np.random.Generator) -> np.ndarray:
@@ -105,9 +128,8 @@ def train_stage1(
         note(f"cascade: scoring {len(train_images)} training patches with the main network")
     with torch.no_grad():
         p_main = 1.0 - predict_proba(main.eval(), train_images, num_classes=num_classes)[:, 0]
-    y = (np.asarray(train_labels) != 0).astype(np.float32)
-    q = cfg.teacher_weight * p_main + (1.0 - cfg.teacher_weight) * y
-    target = torch.from_numpy(np.stack([1.0 - q, q], axis=1).astype(np.float32))
+    p_main = torch.from_numpy(p_main.astype(np.float32))
+    y = torch.from_numpy((np.asarray(train_labels) != 0).astype(np.float32))
     optimizer = torch.optim.AdamW(net.parameters(), lr=cfg.lr, weight_decay=1e-4)
     steps_per_epoch = max(1, len(train_images) // cfg.batch_size)
     total, step, history = steps_per_epoch * cfg.epochs, 0, []
@@ -121,7 +143,7 @@ def train_stage1(
             lr = get_lr(step, total_steps=total, warmup_steps=steps_per_epoch, peak_lr=cfg.lr)
             for group in optimizer.param_groups:
                 group["lr"] = lr
-            loss = -(target[idx] * torch.log_softmax(net(x), dim=1)).sum(1).mean()
+            loss = distillation_loss(net(x), p_main[idx], y[idx], cfg.teacher_weight)
             optimizer.zero_grad(set_to_none=True)
             loss.backward()
             optimizer.step()
