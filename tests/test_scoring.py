@@ -66,6 +66,7 @@ def test_cascade_gate_accepts_a_faithful_first_stage_and_refuses_a_bad_one():
     rng = np.random.default_rng(0)
     cv, pv = _cells(rng, 2000, 0.1)
     ct, pt = _cells(rng, 2000, 0.1)
+
     # a faithful first stage: high wherever the main network flags (0.55), low elsewhere
     def faithful(p):
         return np.where(p >= 0.55, 0.9, 0.1) + rng.uniform(-0.05, 0.05, p.size)
@@ -82,8 +83,9 @@ def test_cascade_gate_accepts_a_faithful_first_stage_and_refuses_a_bad_one():
     cas, main = bad["cascade"], bad["main"]
     assert cas["fn"] == main["fn"] + len(missed)  # counted by hand: each missed crack is lost
     assert not bad["gate"]["passed"]
-    assert bad["gate"]["verdict"].startswith("REFUSED") and "without the cascade" in (
-        bad["gate"]["verdict"]
+    assert (
+        bad["gate"]["verdict"].startswith("REFUSED")
+        and "without the cascade" in (bad["gate"]["verdict"])
     )
     assert bad["recall_drop"] == pytest.approx(len(missed) / ct.sum())
 

@@ -259,7 +259,7 @@ def cascade_block(
     confidence: float = 0.95,
     method: str = "wilson",
     share: float = CASCADE_PASS_SHARE,
-    max_recall_drop: float = CASCADE_MAX_RECALL_DROP,
+    max_recall_drop: float | None = None,
 ) -> dict:
     """The cascade's figures beside the main network's, and its gate.
 
@@ -268,6 +268,8 @@ def cascade_block(
             per cell of validation and of the evaluated subset.
         main_threshold: the main network's operating threshold (the cascade flags a cell when
             the first stage passes it and the main network flags it).
+        max_recall_drop: the gate's largest allowed recall drop (None:
+            :data:`CASCADE_MAX_RECALL_DROP`).
 
     Returns:
         ``pass_threshold``, ``threshold_source``, ``validation`` (passed share of flagged and of
@@ -275,6 +277,8 @@ def cascade_block(
         rates on the evaluated subset; ``cascade`` with ``recall_interval``),
         ``passed_share`` (cells reaching the main network), ``recall_drop``, ``gate``.
     """
+    if max_recall_drop is None:
+        max_recall_drop = CASCADE_MAX_RECALL_DROP
     s1v, pv, cv = (np.asarray(a) for a in val)
     t, source = cascade_pass_threshold(s1v, pv >= main_threshold, cv, share=share)
     s1t, pt, ct = (np.asarray(a) for a in test)

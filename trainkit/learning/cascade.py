@@ -147,7 +147,7 @@ def train_stage1(
             optimizer.zero_grad(set_to_none=True)
             loss.backward()
             optimizer.step()
-            losses.append(float(loss))
+            losses.append(float(loss.detach()))
             step += 1
         history.append({"epoch": epoch, "loss": float(np.mean(losses))})
         if note:
