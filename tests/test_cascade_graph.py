@@ -151,6 +151,8 @@ def test_an_accepted_cascade_is_exported_as_one_graph_and_the_screener_counts(
     headline = json.loads(meta["test_metrics"])
     assert headline["screening_recall"] == block["cascade"]["recall"]  # what the file does
     assert headline["main_network"]["screening_recall"] == metrics["screening"]["recall"]
+    assert "## Cascade" in (exp / "model-card.md").read_text()
+    assert "what the exported file does" in (exp / "evaluation" / "report.html").read_text()
     # the Screener: reached cells are those the first stage alone (ONNX Runtime) passes
     frame = np.asarray(Image.open(sorted((demo / "frames").glob("*.jpg"))[0]).convert("RGB"))
     with Screener(exp / "model.onnx") as screener:

@@ -112,9 +112,16 @@ def _sample_patches(ckpt: dict, input_px: int, n: int = 32) -> np.ndarray:
 
 
 def export_experiment(
-    exp_dir: str | Path, *, opset: int = DEFAULT_OPSET, out: str | Path | None = None
+    exp_dir: str | Path,
+    *,
+    opset: int = DEFAULT_OPSET,
+    out: str | Path | None = None,
+    cascade: bool = True,
 ) -> dict:
     """Export ``EXP/checkpoint.pt`` to ``EXP/model.onnx`` (or ``out``); returns a summary.
+
+    With a first stage in the checkpoint whose evaluation passed the cascade gate, the file is
+    the one-graph cascade (contract 3); ``cascade=False`` exports the main network alone.
 
     Raises:
         ExportError: the checker or the parity check failed.
@@ -138,7 +145,11 @@ def export_experiment(
     def fit(network, head):
         return _graph_with_familiarity(network, head, ckpt, class_set, input_px)
 
-    cascade, cascade_note = cascade_plan(ckpt, metrics, class_set, input_px, fit)
+    if cascade:
+        cascade, cascade_note = cascade_plan(ckpt, metrics, class_set, input_px, fit)
+    else:
+        cascade_note = "exported without the cascade as asked" if ckpt.get("cascade") else None
+        cascade = None
     checks = skipped = None
     if cascade is not None:
         try:
