@@ -79,8 +79,10 @@ def test_one_graph_equals_the_stages_run_apart(stages, which):
     np.testing.assert_allclose(got_p, torch_p, atol=1e-5)
     np.testing.assert_allclose(got_f, ref_f, rtol=1e-6)
     np.testing.assert_allclose(got_f, torch_f, rtol=1e-4)
-    # cells not passed carry exactly the fixed clean vector; familiarity covers every cell
-    assert np.array_equal(got_p[~got_r], np.tile(clean_vector(6), (int((~got_r).sum()), 1)))
+    # cells not passed carry exactly P(none) = 1 (written out here, not taken from the module);
+    # familiarity covers every cell
+    clean = np.array([1, 0, 0, 0, 0, 0], np.float32)
+    assert np.array_equal(got_p[~got_r], np.tile(clean, (int((~got_r).sum()), 1)))
     assert got_f.shape == (len(images),) and np.isfinite(got_f).all()
 
 

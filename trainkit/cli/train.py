@@ -75,6 +75,12 @@ def train(
             f"{bv['val_balanced_accuracy']:.3f}); {res['median_images_per_second']:.0f} images/s; "
             f"checkpoint in {exp_dir}"
         )
+        if res.get("cascade_seconds") is not None:
+            ctx.console.print(
+                f"cascade first stage ({cfg.cascade.backbone} at {cfg.cascade.input_px} px) "
+                f"distilled in {res['cascade_seconds']:.0f} s; `trainkit evaluate` chooses its "
+                "pass threshold and checks it"
+            )
 
 
 def _train_with_progress(bar: ProgressHandle, ws, exp_dir: Path, cfg, *, resume: bool) -> dict:
