@@ -24,7 +24,14 @@ import numpy as np
 
 from trainkit.core.contract import FAMILIARITY_NAME, INPUT_NAME, OUTPUT_NAME, REACHED_NAME
 
-__all__ = ["clean_vector", "cascade_to_onnx", "run_cascade_torch"]
+__all__ = [
+    "clean_vector",
+    "cascade_to_onnx",
+    "run_cascade_torch",
+    "all_nodes",
+    "cascade_plan",
+    "check_cascade_parity",
+]
 
 
 def clean_vector(num_classes: int) -> np.ndarray:
@@ -62,6 +69,15 @@ def run_cascade_torch(stage1, main, images: np.ndarray, pass_threshold: float, b
             fams.append(fam.numpy())
             reached.append(passed.numpy())
     return np.concatenate(probs), np.concatenate(fams), np.concatenate(reached)
+
+
+def all_nodes(graph):
+    """The nodes of an ONNX ``graph`` and of its subgraphs (an If's branches)."""
+    for node in graph.node:
+        yield node
+        for attr in node.attribute:
+            if attr.g.node:
+                yield from all_nodes(attr.g)
 
 
 def _prefixed(proto, prefix: str):
@@ -236,9 +252,10 @@ def _cascade_headline(metrics: dict, block: dict) -> dict:
     }
 
 
-def check_cascade_parity(main, cascade: dict, path, images: np.ndarray, atol: float):
+def check_cascade_parity(main, cascade: dict, path, images: np.ndarray, atol: float, main_proto):
     """ONNX Runtime against :func:`run_cascade_torch` on ``images``; returns (max |dp|,
-    familiarity's max relative difference).
+    familiarity's max relative difference). The main network's own graph (``main_proto``) is
+    checked on every image too, since the cascade may pass few of them to it.
 
     Raises:
         ValueError: the cells reaching the main network differ, probabilities differ by more
@@ -246,9 +263,19 @@ def check_cascade_parity(main, cascade: dict, path, images: np.ndarray, atol: fl
             which; the export turns it into its own error).
     """
     import onnxruntime as ort
+    import torch
 
     from trainkit.core.contract import INPUT_NAME
 
+    with torch.no_grad():
+        ref_main = torch.softmax(main(torch.from_numpy(images)), dim=1).numpy()
+    alone = ort.InferenceSession(main_proto.SerializeToString(), providers=["CPUExecutionProvider"])
+    diff = float(np.max(np.abs(alone.run(None, {INPUT_NAME: images})[0] - ref_main)))
+    if diff > atol:
+        raise ValueError(
+            f"ONNX main network differs from PyTorch on {len(images)} patches: max |dp| = "
+            f"{diff:.2e} (allowed {atol:.0e}); model not written"
+        )
     t = cascade["meta"]["pass_threshold"]
     ref_p, ref_f, ref_r = run_cascade_torch(cascade["stage1"], main, images, t)
     sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])

@@ -30,6 +30,7 @@ from trainkit.core.contract import (
 )
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
+from trainkit.judging.cascade_graph import all_nodes, cascade_plan
 
 __all__ = ["export_experiment", "ExportError", "DEFAULT_OPSET", "PARITY_ATOL", "read_metadata"]
 
@@ -129,27 +130,25 @@ def export_experiment(
 
     from trainkit import __version__
     from trainkit.learning.network import load_checkpoint
+    from trainkit.learning.steps import head_module_name
 
     folder = Experiment(exp_dir)
     folder.migrate()
     exp = folder.path
-    from trainkit.learning.steps import head_module_name
-
     model, ckpt, class_set = load_checkpoint(exp)
     input_px = int(ckpt["input_px"])
     target = Path(out) if out else folder.model_path
     metrics = folder.read_metrics()
     info = _model_info(ckpt, class_set, input_px, metrics, __version__)
-    from trainkit.judging.cascade_graph import cascade_plan
 
     def fit(network, head):
         return _graph_with_familiarity(network, head, ckpt, class_set, input_px)
 
-    if cascade:
-        cascade, cascade_note = cascade_plan(ckpt, metrics, class_set, input_px, fit)
-    else:
-        cascade_note = "exported without the cascade as asked" if ckpt.get("cascade") else None
-        cascade = None
+    cascade, cascade_note = (
+        cascade_plan(ckpt, metrics, class_set, input_px, fit)
+        if cascade
+        else (None, "exported without the cascade as asked" if ckpt.get("cascade") else None)
+    )
     checks = skipped = None
     if cascade is not None:
         try:
@@ -253,7 +252,8 @@ def _write_checked(
 
         px, threshold = info.patch_px, cascade["meta"]["pass_threshold"]
         first = network_to_onnx(cascade["stage1"], px, opset=opset)
-        proto = cascade_to_onnx(first, network_to_onnx(graph, px, opset=opset), px, threshold)
+        main_proto = network_to_onnx(graph, px, opset=opset)
+        proto = cascade_to_onnx(first, main_proto, px, threshold)
     else:
         proto = network_to_onnx(graph, info.patch_px, opset=opset)
     meta = encode_metadata(info)
@@ -263,7 +263,7 @@ def _write_checked(
     with atomic_path(target) as tmp:
         onnx.save(proto, tmp)
         onnx.checker.check_model(str(tmp), full_check=True)
-        left = [n.name for n in _all_nodes(proto.graph) if n.op_type == "BatchNormalization"]
+        left = [n.name for n in all_nodes(proto.graph) if n.op_type == "BatchNormalization"]
         if left:
             raise ExportError(
                 f"{len(left)} BatchNormalization nodes were not folded into convolutions: {left[:3]}"
@@ -271,30 +271,21 @@ def _write_checked(
         # Parity against PyTorch on real patches.
         images = _sample_patches(ckpt, info.patch_px)
         if cascade:
-            max_diff, fam_diff = _cascade_parity(graph, cascade, tmp, images)
+            max_diff, fam_diff = _cascade_parity(graph, cascade, tmp, images, main_proto)
         else:
             max_diff, fam_diff = _check_parity(graph, tmp, images, two=familiarity is not None)
     return meta, (max_diff, fam_diff, left, images)
-
-
-def _all_nodes(graph):
-    """The nodes of ``graph`` and of its subgraphs (an If's branches)."""
-    for node in graph.node:
-        yield node
-        for attr in node.attribute:
-            if attr.g.node:
-                yield from _all_nodes(attr.g)
 
 
 class _FamiliarityMismatch(ExportError):
     """The familiarity output of the ONNX graph does not reproduce PyTorch's."""
 
 
-def _cascade_parity(main, cascade: dict, path: Path, images: np.ndarray):
+def _cascade_parity(main, cascade: dict, path: Path, images: np.ndarray, main_proto):
     from trainkit.judging.cascade_graph import check_cascade_parity
 
     try:
-        return check_cascade_parity(main, cascade, path, images, PARITY_ATOL)
+        return check_cascade_parity(main, cascade, path, images, PARITY_ATOL, main_proto)
     except ValueError as exc:
         if str(exc).startswith("familiarity"):
             raise _FamiliarityMismatch(f"{exc}; model not written") from None
