@@ -21,8 +21,8 @@ TOP_LEVEL_KEYS = {
     "metrics_version", "split", "patches", "photos", "class_names", "accuracy",
     "confusion_matrix", "confusion_matrix_row_normalised", "per_class", "screening",
     "expected_calibration_error", "calibration", "by_photo", "by_group", "by_scale",
-    "interval_method", "confidence", "comparison", "gate", "experiment", "workspace", "model",
-    "checkpoint_epoch", "data_digest", "evaluated_digest", "kit_version", "created", "caution",
+    "interval_method", "confidence", "comparison", "gate", "cascade", "experiment", "workspace",
+    "model", "checkpoint_epoch", "data_digest", "evaluated_digest", "kit_version", "created", "caution",
 }  # fmt: skip
 SCREENING_KEYS = {
     "threshold", "threshold_source", "threshold_independent", "target_recall", "max_false_alarms",

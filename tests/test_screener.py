@@ -298,3 +298,47 @@ def test_contract_2_needs_its_familiarity_threshold(tmp_path):
     )
     with pytest.raises(ScreenerError, match="needs metadata familiarity.threshold"):
         Screener(path)
+
+
+def _cascade_model(tmp_path, pass_threshold, *, meta_cascade=True):
+    """A contract-3 cascade joined from two brightness graphs: the first stage (with
+    familiarity) passes dark cells; the main network gives their probabilities."""
+    from trainkit.judging.cascade_graph import cascade_to_onnx
+
+    first = onnx.load(brightness_model(tmp_path / "s1.onnx", familiarity=5.0))
+    main = onnx.load(brightness_model(tmp_path / "s2.onnx"))
+    proto = cascade_to_onnx(first, main, S, pass_threshold)
+    meta = {p.key: p.value for p in first.metadata_props}
+    meta["trainkit.format"] = "trainkit-screener-3"
+    if meta_cascade:
+        meta["cascade"] = json.dumps({"pass_threshold": pass_threshold})
+    onnx.helper.set_model_props(proto, meta)
+    onnx.save(proto, tmp_path / "cascade.onnx")
+    return tmp_path / "cascade.onnx"
+
+
+def test_cascade_model_reports_the_cells_that_reached_the_main_network(tmp_path):
+    """Contract 3: ``reached`` per cell equals the first stage's own decision (its graph run
+    alone in ONNX Runtime); unpassed cells get P(none) = 1; contract 2 still loads."""
+    import onnxruntime as ort
+
+    path = _cascade_model(tmp_path, 0.5)
+    frame = np.full((2 * S, 4 * S, 3), 160, np.uint8)
+    frame[:S, :S] = 40  # dark: crack probability above 0.5, passed
+    frame[S:, 2 * S : 3 * S] = 90
+    with Screener(path) as sc:
+        assert sc.info.cascade == {"pass_threshold": 0.5} and sc.notes == []
+        fp = sc.cut(frame)
+        cm = sc.crack_map_from_patches(fp)
+    alone = ort.InferenceSession(str(tmp_path / "s1.onnx"), providers=["CPUExecutionProvider"])
+    p1 = alone.run(None, {"image": fp.patches})[0]
+    expected = (1 - p1[:, 0] >= 0.5).reshape(2, 4)
+    assert expected.sum() == 2 and np.array_equal(cm.reached, expected)
+    assert cm.main_model_cells == 2 and cm.to_dict()["main_model_cells"] == 2
+    assert np.all(cm.class_probabilities[~cm.reached] == [1.0, 0.0])
+    assert cm.familiarity.shape == (2, 4)  # every cell, passed or not
+    v2 = Screener(brightness_model(tmp_path / "v2.onnx", familiarity=5.0))
+    cm2 = v2.crack_map(frame)
+    assert cm2.reached is None and cm2.main_model_cells == 8  # the main network saw every cell
+    with pytest.raises(ScreenerError, match="needs metadata cascade.pass_threshold"):
+        Screener(_cascade_model(tmp_path, 0.5, meta_cascade=False))

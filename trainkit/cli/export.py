@@ -56,7 +56,22 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
             )
             + "), so no unfamiliar-surface warning"
         )
-        if quantize:
+        cas = res.get("cascade")
+        if cas:
+            t = cas["test"]
+            console.print(
+                f"cascade: a {cas['stage1']['backbone']} first stage at {cas['stage1']['input_px']} px "
+                f"passes cells scoring at least {cas['pass_threshold']:.4f} to the main network "
+                f"({t['passed_share']:.1%} of test patches); test recall {t['recall']:.3f} "
+                f"(main network alone {t['main_recall']:.3f})"
+            )
+        elif res.get("cascade_skipped"):
+            console.print(f"no cascade: {res['cascade_skipped']}")
+        if quantize and cas:
+            from trainkit.judging.export import INT8_CASCADE_SKIP
+
+            console.print(INT8_CASCADE_SKIP)
+        elif quantize:
             with console.status("quantizing to int8 and checking recall and speed"):
                 q = quantize_experiment(exp_dir)
             console.print(

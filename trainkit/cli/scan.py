@@ -90,6 +90,12 @@ def scan(
             f"{res['errors']} unreadable in this run -> {res['frames_file']}"
         )
         ctx.console.print(recorded_line(res))
+        if res["cells"] and res["main_model_cells"] < res["cells"]:  # a cascade model
+            ctx.console.print(
+                f"the main network scored {res['main_model_cells']} of {res['cells']} cells "
+                f"({res['main_model_cells'] / res['cells']:.1%}); the cascade's first stage "
+                "passed no others"
+            )
         if res.get("unfamiliar_recorded"):
             ctx.console.print(
                 f"{res['unfamiliar_recorded']} frames look unlike the model's training data: "

@@ -121,5 +121,15 @@ def print_evaluation(console: Console, res: dict, out: Path) -> None:
         )
     if res["gate"]:
         console.print(res["gate"]["verdict"])
+    cas = res.get("cascade")
+    if cas:
+        if cas.get("cascade"):
+            console.print(
+                f"cascade: recall {cas['cascade']['recall']:.3f}, false-alarm rate "
+                f"{cas['cascade']['false_alarm_rate']:.3f} (main network alone "
+                f"{cas['main']['recall']:.3f}, {cas['main']['false_alarm_rate']:.3f}); "
+                f"{cas['passed_share']:.1%} of patches reach the main network"
+            )
+        console.print(f"cascade {cas['gate']['verdict']}")
     console.print(f"report: {out / 'report.html'}")
     console.print(f"[dim]{res['caution']}[/dim]")

@@ -118,6 +118,12 @@ def train(
                 f"again with {Experiment(exp_dir).model_path}; then trainkit sample + review + verify that "
                 "scan (frames learned from are left out)"
             )
+        if res.get("cascade_seconds") is not None:
+            ctx.console.print(
+                f"cascade first stage ({cfg.cascade.backbone} at {cfg.cascade.input_px} px) "
+                f"distilled in {res['cascade_seconds']:.0f} s; `trainkit evaluate` chooses its "
+                "pass threshold and checks it"
+            )
 
 
 def _adaptation_line(a) -> str:

@@ -27,6 +27,14 @@ Versions:
   percentile of validation patches. New informative keys: ``score``, ``threshold_rule``,
   ``alpha``, ``false_warning_bound``, ``calibration_frames``, ``layers``. Compare
   familiarity values only between cells of models exported the same way.
+- ``trainkit-screener-3`` (migration note: written only for a two-stage cascade; models
+  without one stay version 2, so version-2 readers keep reading them; a reader of version 2
+  that checks for exactly two outputs must accept a third one): a third output ``reached``,
+  bool (N,), true where the cell was passed by the cheap first stage and so scored by the
+  main network; cells not passed carry the fixed clean vector (P(none) = 1) in
+  ``probabilities``, and their ``familiarity`` comes from the first stage (every cell has
+  one). The metadata key ``cascade`` (JSON) says how: ``pass_threshold`` on the first
+  stage's ``1 - P(none)``, its network, and the validation figures that chose it.
 """
 
 from __future__ import annotations
@@ -46,6 +54,8 @@ __all__ = [
     "OUTPUT_NAME",
     "FAMILIARITY_NAME",
     "FAMILIARITY_SINCE",
+    "CASCADE_VERSION",
+    "REACHED_NAME",
     "REQUIRED_KEYS",
     "ContractError",
     "contract_number",
@@ -57,10 +67,12 @@ __all__ = [
 
 #: Metadata key holding the contract version.
 FORMAT_KEY = "trainkit.format"
-#: The version this kit writes.
+#: The version this kit writes for a single-stage model.
 CONTRACT_VERSION = "trainkit-screener-2"
+#: The version this kit writes for a two-stage cascade (the ``reached`` output).
+CASCADE_VERSION = "trainkit-screener-3"
 #: Versions this kit reads.
-READABLE_VERSIONS = ("trainkit-screener-1", "trainkit-screener-2")
+READABLE_VERSIONS = ("trainkit-screener-1", "trainkit-screener-2", "trainkit-screener-3")
 #: The first version whose models carry the ``familiarity`` output.
 FAMILIARITY_SINCE = "trainkit-screener-2"
 #: The graph's one input: uint8 (N, S, S, 3) RGB, N dynamic.
@@ -69,6 +81,8 @@ INPUT_NAME = "image"
 OUTPUT_NAME = "probabilities"
 #: The graph's second output from version 2: float32 (N,), larger is less familiar.
 FAMILIARITY_NAME = "familiarity"
+#: The third output from version 3: bool (N,), true where the main network scored the cell.
+REACHED_NAME = "reached"
 #: Keys every readable model carries.
 REQUIRED_KEYS = (FORMAT_KEY, "class_names", "patch_px", "threshold")
 
@@ -112,6 +126,9 @@ class ModelInfo:
         familiarity: from version 2: ``threshold`` (cells' median above it: unfamiliar),
             ``rule`` and how it was fitted (``alpha`` and ``false_warning_bound`` of the
             frame threshold, ``layers``); None for version-1 models.
+        cascade: version 3 only: ``pass_threshold`` (first stage's ``1 - P(none)`` at or above
+            it: the main network runs), the first stage's network and how the threshold was
+            chosen; None for single-stage models.
         version: the contract version.
         extra: any further keys, as stored (strings).
     """
@@ -130,6 +147,7 @@ class ModelInfo:
     weights: dict | None = None
     preprocess: dict | None = None
     familiarity: dict | None = None
+    cascade: dict | None = None
     version: str = CONTRACT_VERSION
     extra: dict[str, str] = field(default_factory=dict)
 
@@ -150,6 +168,7 @@ _KNOWN = (
     "weights",
     "preprocess",
     "familiarity",
+    "cascade",
     "input",
     "output",
 )
@@ -189,6 +208,11 @@ def encode_metadata(info: ModelInfo) -> dict[str, str]:
         if not info.familiarity or "threshold" not in info.familiarity:
             raise ContractError(f"contract {info.version} needs familiarity with a threshold")
         meta["familiarity"] = json.dumps(info.familiarity)
+    if (info.version == CASCADE_VERSION) != bool(info.cascade):
+        raise ContractError(f"contract {info.version} and cascade {info.cascade!r} do not match")
+    if info.cascade:
+        _check_cascade(info.cascade, "model")
+        meta["cascade"] = json.dumps(info.cascade)
     meta.update(info.extra)
     return meta
 
@@ -234,6 +258,7 @@ def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
             weights=json.loads(meta.get("weights", "null")),
             preprocess=json.loads(meta.get("preprocess", "null")),
             familiarity=json.loads(meta.get("familiarity", "null")),
+            cascade=json.loads(meta.get("cascade", "null")),
             version=version,
             extra={k: v for k, v in meta.items() if k not in _KNOWN},
         )
@@ -246,11 +271,25 @@ def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
         and isinstance(info.familiarity.get("threshold"), float | int)
     ):
         raise ContractError(f"{name}: contract {version} needs metadata familiarity.threshold")
+    if version == CASCADE_VERSION:
+        _check_cascade(info.cascade, name)
     if len(info.angle_centres) != len(info.class_names):
         raise ContractError(
             f"{name}: {len(info.angle_centres)} angle centres for {len(info.class_names)} classes"
         )
     return info
+
+
+def _check_cascade(cascade: Any, name: str) -> None:
+    if not (
+        isinstance(cascade, dict)
+        and isinstance(cascade.get("pass_threshold"), float | int)
+        and 0.0 <= cascade["pass_threshold"] <= 1.0
+    ):
+        raise ContractError(
+            f"{name}: contract {CASCADE_VERSION} needs metadata cascade.pass_threshold in [0, 1], "
+            f"got {cascade!r}"
+        )
 
 
 def _pair(v: Any) -> list[float] | None:

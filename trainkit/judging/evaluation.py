@@ -58,6 +58,17 @@ key                                    meaning
                                        ``disagreements``, ``disagreements_csv``
 ``gate``                               ``null``, or ``required_recall``,
                                        ``recall_lower_bound``, ``passed``, ``verdict``
+``cascade``                            ``null`` without a first stage; else the two-stage figures
+                                       (:func:`trainkit.judging.scoring.cascade_block`):
+                                       ``pass_threshold``, ``threshold_source``, ``validation``
+                                       (``passed_of_flagged``, ``passed_of_cracks``,
+                                       ``passed_share``), ``main`` and ``cascade`` (screening
+                                       counts and rates at the main threshold; what the exported
+                                       file does is ``cascade`` when its gate passed),
+                                       ``passed_share`` (cells reaching the main network),
+                                       ``recall_drop``, ``gate`` {``max_recall_drop``,
+                                       ``passed``, ``verdict``}, ``network``, ``loss``,
+                                       ``training_seconds``
 ``experiment`` / ``workspace``         absolute paths of the experiment and the workspace used
 ``model``                              ``checkpoint``, ``backbone``, ``epoch``, ``weights`` (it started from)
 ``checkpoint_epoch`` / ``data_digest``  best epoch; SHA-256 of the training and validation data
@@ -90,6 +101,7 @@ from trainkit.judging.comparison import (
 from trainkit.judging.scoring import (
     CAUTION,
     Scored,
+    cascade_block,
     choose_threshold,
     json_ready,
     score_predictions,
@@ -164,6 +176,7 @@ class _Run:
     val: Scored
     threshold: float
     threshold_source: str
+    stage1: tuple[np.ndarray, np.ndarray] | None = None  # first stage's screening (test, val)
 
     def side(self) -> Side:
         return Side(str(self.exp), self.test, self.keys, self.threshold, self.threshold_source)
@@ -217,7 +230,34 @@ def _run_experiment(exp_dir: str | Path, opts: EvaluationOptions, workspace) -> 
     threshold, source = choose_threshold(
         val, target_recall=opts.target_recall, max_false_alarms=opts.max_false_alarms
     )
-    return _Run(exp, ckpt, class_set, ws, data, keys, test, val, threshold, source)
+    stage1 = None
+    if ckpt.get("cascade") is not None:
+        from trainkit.learning.cascade import load_stage1
+
+        first = load_stage1(ckpt["cascade"])
+        stage1 = tuple(_scored(first, d, 2).screening for d in (data, val_data))
+    return _Run(exp, ckpt, class_set, ws, data, keys, test, val, threshold, source, stage1)
+
+
+def _cascade_figures(run: _Run, opts: EvaluationOptions) -> dict | None:
+    """The cascade's block of metrics.json (None without a first stage)."""
+    if run.stage1 is None:
+        return None
+    s1_test, s1_val = run.stage1
+    block = cascade_block(
+        (s1_val, run.val.screening, run.val.is_crack),
+        (s1_test, run.test.screening, run.test.is_crack),
+        run.threshold,
+        confidence=opts.confidence,
+        method=opts.interval_method,
+    )
+    record = run.ckpt["cascade"]
+    block.update(
+        network=record["config"],
+        loss=record.get("loss"),
+        training_seconds=record.get("seconds"),
+    )
+    return block
 
 
 def _evaluated_digest(keys, labels: np.ndarray, names: list[str]) -> str:
@@ -271,6 +311,7 @@ def evaluate_experiment(
             require_recall=opts.require_recall,
             temperature_scaling=opts.temperature_scaling,
         )
+        result["cascade"] = _cascade_figures(run, opts)
         comparison = arrays = None
         if against is not None:
             # The second experiment reads the same workspace when one was given (it moved).

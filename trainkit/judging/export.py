@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.contract import (
+    CASCADE_VERSION,
     CONTRACT_VERSION,
     FAMILIARITY_NAME,
     FORMAT_KEY,
@@ -29,6 +30,7 @@ from trainkit.core.contract import (
 )
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
+from trainkit.judging.cascade_graph import all_nodes, cascade_plan
 
 __all__ = ["export_experiment", "ExportError", "DEFAULT_OPSET", "PARITY_ATOL", "read_metadata"]
 
@@ -111,9 +113,16 @@ def _sample_patches(ckpt: dict, input_px: int, n: int = 32) -> np.ndarray:
 
 
 def export_experiment(
-    exp_dir: str | Path, *, opset: int = DEFAULT_OPSET, out: str | Path | None = None
+    exp_dir: str | Path,
+    *,
+    opset: int = DEFAULT_OPSET,
+    out: str | Path | None = None,
+    cascade: bool = True,
 ) -> dict:
     """Export ``EXP/checkpoint.pt`` to ``EXP/model.onnx`` (or ``out``); returns a summary.
+
+    With a first stage in the checkpoint whose evaluation passed the cascade gate, the file is
+    the one-graph cascade (contract 3); ``cascade=False`` exports the main network alone.
 
     Raises:
         ExportError: the checker or the parity check failed.
@@ -121,23 +130,50 @@ def export_experiment(
 
     from trainkit import __version__
     from trainkit.learning.network import load_checkpoint
+    from trainkit.learning.steps import head_module_name, stage_module_names
 
     folder = Experiment(exp_dir)
     folder.migrate()
     exp = folder.path
     model, ckpt, class_set = load_checkpoint(exp)
     input_px = int(ckpt["input_px"])
-    graph, familiarity = _graph_with_familiarity(model, ckpt, class_set, input_px)
     target = Path(out) if out else folder.model_path
     metrics = folder.read_metrics()
     info = _model_info(ckpt, class_set, input_px, metrics, __version__)
-    skipped = None
-    try:
-        meta, checks = _write_checked(graph, familiarity, info, ckpt, target, opset)
-    except _FamiliarityMismatch as exc:  # the add-on must not cost the screener itself
-        skipped = f"{exc}; exported without the familiarity output (contract 1)"
-        meta, checks = _write_checked(model, None, info, ckpt, target, opset)
-        familiarity = None
+
+    def fit(network, head):
+        return _graph_with_familiarity(network, head, ckpt, class_set, input_px)
+
+    cascade, cascade_note = (
+        cascade_plan(ckpt, metrics, class_set, input_px, fit)
+        if cascade
+        else (None, "exported without the cascade as asked" if ckpt.get("cascade") else None)
+    )
+    checks = skipped = None
+    if cascade is not None:
+        try:
+            meta, checks = _write_checked(
+                model, cascade["familiarity"], info, ckpt, target, opset, cascade=cascade
+            )
+            familiarity = cascade["familiarity"]
+        except _FamiliarityMismatch as exc:
+            cascade, cascade_note = None, f"{exc}; exported without the cascade"
+    if checks is None:
+        backbone = ckpt["config"]["backbone"]
+        graph, familiarity = _graph_with_familiarity(
+            model,
+            head_module_name(backbone),
+            ckpt,
+            class_set,
+            input_px,
+            stage_module_names(backbone) or None,
+        )
+        try:
+            meta, checks = _write_checked(graph, familiarity, info, ckpt, target, opset)
+        except _FamiliarityMismatch as exc:  # the add-on must not cost the screener itself
+            skipped = f"{exc}; exported without the familiarity output (contract 1)"
+            meta, checks = _write_checked(model, None, info, ckpt, target, opset)
+            familiarity = None
     max_diff, fam_diff, left, images = checks
     summary = {
         "model": str(target),
@@ -148,6 +184,8 @@ def export_experiment(
         "familiarity_max_rel_diff": fam_diff,
         "familiarity": familiarity,
         "familiarity_skipped": skipped,
+        "cascade": None if cascade is None else cascade["meta"],
+        "cascade_skipped": cascade_note,
         "contract": meta[FORMAT_KEY],
         "batchnorm_nodes": len(left),
         "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
@@ -187,21 +225,44 @@ def _model_info(ckpt: dict, class_set, input_px: int, metrics: dict | None, vers
     )
 
 
-def _write_checked(graph, familiarity: dict | None, info, ckpt: dict, target: Path, opset: int):
+def _write_checked(
+    graph,
+    familiarity: dict | None,
+    info,
+    ckpt: dict,
+    target: Path,
+    opset: int,
+    *,
+    cascade: dict | None = None,
+):
     """Export ``graph``, set its metadata, check it (checker, folded BatchNorm, parity with
-    PyTorch) and only then put it at ``target``; returns (metadata, check figures)."""
+    PyTorch) and only then put it at ``target``; returns (metadata, check figures).
+
+    With ``cascade`` (from :func:`_cascade_plan`) ``graph`` is the main network and the file
+    is the one-graph cascade of :mod:`trainkit.judging.cascade_graph` (contract 3)."""
     import dataclasses
 
     import onnx
 
     from trainkit import __version__
 
+    version = CONTRACT_VERSION if familiarity else "trainkit-screener-1"
     info = dataclasses.replace(
         info,
         familiarity=familiarity,
-        version=CONTRACT_VERSION if familiarity else "trainkit-screener-1",
+        cascade=cascade["meta"] if cascade else None,
+        version=CASCADE_VERSION if cascade else version,
+        test_metrics=cascade["headline"] if cascade else info.test_metrics,
     )
-    proto = network_to_onnx(graph, info.patch_px, opset=opset)
+    if cascade:
+        from trainkit.judging.cascade_graph import cascade_to_onnx
+
+        px, threshold = info.patch_px, cascade["meta"]["pass_threshold"]
+        first = network_to_onnx(cascade["stage1"], px, opset=opset)
+        main_proto = network_to_onnx(graph, px, opset=opset)
+        proto = cascade_to_onnx(first, main_proto, px, threshold)
+    else:
+        proto = network_to_onnx(graph, info.patch_px, opset=opset)
     meta = encode_metadata(info)
     onnx.helper.set_model_props(proto, meta)
     proto.producer_name = "trainkit"
@@ -209,19 +270,33 @@ def _write_checked(graph, familiarity: dict | None, info, ckpt: dict, target: Pa
     with atomic_path(target) as tmp:
         onnx.save(proto, tmp)
         onnx.checker.check_model(str(tmp), full_check=True)
-        left = [n.name for n in proto.graph.node if n.op_type == "BatchNormalization"]
+        left = [n.name for n in all_nodes(proto.graph) if n.op_type == "BatchNormalization"]
         if left:
             raise ExportError(
                 f"{len(left)} BatchNormalization nodes were not folded into convolutions: {left[:3]}"
             )
         # Parity against PyTorch on real patches.
         images = _sample_patches(ckpt, info.patch_px)
-        max_diff, fam_diff = _check_parity(graph, tmp, images, two=familiarity is not None)
+        if cascade:
+            max_diff, fam_diff = _cascade_parity(graph, cascade, tmp, images, main_proto)
+        else:
+            max_diff, fam_diff = _check_parity(graph, tmp, images, two=familiarity is not None)
     return meta, (max_diff, fam_diff, left, images)
 
 
 class _FamiliarityMismatch(ExportError):
     """The familiarity output of the ONNX graph does not reproduce PyTorch's."""
+
+
+def _cascade_parity(main, cascade: dict, path: Path, images: np.ndarray, main_proto):
+    from trainkit.judging.cascade_graph import check_cascade_parity
+
+    try:
+        return check_cascade_parity(main, cascade, path, images, PARITY_ATOL, main_proto)
+    except ValueError as exc:
+        if str(exc).startswith("familiarity"):
+            raise _FamiliarityMismatch(f"{exc}; model not written") from None
+        raise ExportError(str(exc)) from None
 
 
 def _check_parity(
@@ -260,14 +335,19 @@ def _check_parity(
     return max_diff, rel
 
 
-def _graph_with_familiarity(model, ckpt: dict, class_set, input_px: int):
+def _graph_with_familiarity(
+    model, head: str, ckpt: dict, class_set, input_px: int, stages: list[str] | None = None
+):
     """The network with its familiarity output (contract 2) when the experiment's workspace
-    has training and validation patches; else the plain network and None (contract 1)."""
+    has training and validation patches; else the plain network and None (contract 1).
+
+    ``head`` is the dotted name of ``model``'s classification head (the main network's, or
+    the cascade's first stage, whose familiarity then covers every cell); ``stages`` names its
+    stage ends for the feature ensemble (None: found by the generic rule of fit_graph)."""
     from trainkit.judging.familiarity_graph import fit_graph
     from trainkit.labels.workspace import Workspace, WorkspaceError
     from trainkit.learning.adapt import load_subset
     from trainkit.learning.data import load_patch_set
-    from trainkit.learning.steps import head_module_name, stage_module_names
 
     try:
         ws = Workspace.open(ckpt["experiment"]["workspace"])
@@ -280,15 +360,14 @@ def _graph_with_familiarity(model, ckpt: dict, class_set, input_px: int):
         return model, None
     if len(train) < 2 or len(val) == 0:
         return model, None
-    backbone = ckpt["config"]["backbone"]
     return fit_graph(
         model,
-        head_module_name(backbone),
+        head,
         train.images,
         train.labels,
         val.images,
         val_photos=val.photos,
-        stages=stage_module_names(backbone) or None,
+        stages=stages,
     )
 
 
@@ -343,6 +422,13 @@ def read_metadata(path: str | Path) -> dict[str, str]:
 INT8_MAX_RECALL_DROP = 0.01
 #: The int8 model must be at least this much faster (throughput ratio) to be accepted.
 INT8_MIN_SPEEDUP = 1.05
+#: Why a cascade is not quantized.
+INT8_CASCADE_SKIP = (
+    "int8 skipped: model.onnx is a two-stage cascade, whose main network runs inside an If "
+    "branch on the cells the first stage passes; static calibration and the side-by-side timing "
+    "here were built for one network on every patch and have not been checked on that graph, "
+    "so the float cascade is kept (export a model without a cascade to try int8)"
+)
 
 
 def _time_session(sess, images: np.ndarray, rounds: int = 5) -> float:
@@ -391,8 +477,10 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
     fp32 = folder.model_path
     if not fp32.is_file():
         raise ExportError(f"{fp32} does not exist; export the float model first")
-    train, test = _int8_patches(folder)
     meta = read_metadata(fp32)
+    if "cascade" in meta:
+        raise ExportError(INT8_CASCADE_SKIP)
+    train, test = _int8_patches(folder)
     threshold = float(json.loads(meta["threshold"]))
     rng = np.random.default_rng(0)
     calib = train.images[rng.permutation(len(train))[:calibration_patches]]

@@ -304,6 +304,42 @@ def _metrics(metrics: dict | None) -> list[str]:
     return lines
 
 
+def _cascade(metrics: dict | None, export: dict) -> list[str]:
+    """The two-stage cascade: its figures beside the main network's, and whether the file has it."""
+    c = (metrics or {}).get("cascade")
+    if not c:
+        return []
+    lines = ["## Cascade", ""]
+    if export.get("cascade"):
+        lines.append(
+            "`model.onnx` runs a cheap first stage on every cell and the main network only on "
+            f"the cells scoring at least {_f(c['pass_threshold'], 4)} there (one ONNX graph, "
+            "contract 3); the figures that describe the file are the cascade's."
+        )
+    else:
+        lines.append(
+            "`model.onnx` has no cascade: "
+            + (export.get("cascade_skipped") or c["gate"]["verdict"])
+        )
+    lines.append("")
+    if c.get("pass_threshold") is not None:
+        net = c.get("network") or {}
+        lines += [
+            f"First stage: {net.get('backbone')} at {net.get('input_px')} px, "
+            f"{c.get('loss')}; pass threshold: {c['threshold_source']}.",
+            "",
+            "| on the evaluated subset | recall | false-alarm rate | cells reaching the main network |",
+            "|---|---:|---:|---:|",
+            f"| cascade | {_f(c['cascade']['recall'])} | {_f(c['cascade']['false_alarm_rate'])} | "
+            f"{_f(c['passed_share'])} |",
+            f"| main network alone | {_f(c['main']['recall'])} | "
+            f"{_f(c['main']['false_alarm_rate'])} | 1.000 |",
+            "",
+        ]
+    lines += [f"Cascade gate: {c['gate']['verdict']}", ""]
+    return lines
+
+
 def _threshold(metrics: dict | None, export: dict) -> list[str]:
     lines: list[str] = []  # one paragraph each
     if metrics is None:
@@ -480,6 +516,7 @@ def build_model_card(
     lines += _training_data(experiment, synthetic)
     lines += _model(ckpt, experiment, export)
     lines += _metrics(metrics)
+    lines += _cascade(metrics, export)
     lines += _threshold(metrics, export)
     lines += _jobs(jobs)
     lines += _limits(experiment, metrics, synthetic)

@@ -72,6 +72,7 @@ def write_report(
         _headline(R),
         "<h2>What this report describes</h2>" + _provenance(R, experiment),
         _screening(R, out),
+        _cascade(R),
         _per_class(R),
         _confusion(R, list(class_set.names), out),
         _calibration(R, out),
@@ -286,6 +287,38 @@ threshold. {cost_txt}</p>
 <th>false-alarm rate</th><th>false alarms</th><th>precision</th><th>share flagged</th></tr>
 {rows}</table>
 {_img_tag(out / "screening_curves.png", "precision-recall and ROC curves")}"""
+
+
+def _cascade(R: dict) -> str:
+    """The two-stage cascade beside the main network alone (none without a first stage)."""
+    c = R.get("cascade")
+    if not c:
+        return ""
+    cls = "pass" if c["gate"]["passed"] else "fail"
+    verdict = f'<p class="verdict {cls}">{_e(c["gate"]["verdict"])}</p>'
+    if c.get("pass_threshold") is None:
+        return f"<h2>Cascade</h2>{verdict}"
+    split = _e(R["split"])
+    rows = "".join(
+        f"<tr><td>{label}</td><td>{_m(R, f'cascade.{k}.recall')}</td>"
+        f"<td>{_m(R, f'cascade.{k}.tp')} of {c[k]['tp'] + c[k]['fn']}</td>"
+        f"<td>{_m(R, f'cascade.{k}.false_alarm_rate')}</td>"
+        f"<td>{_m(R, f'cascade.{k}.fp')} of {c[k]['fp'] + c[k]['tn']}</td></tr>"
+        for k, label in (
+            ("cascade", "cascade (what the exported file does)"),
+            ("main", "main network alone"),
+        )
+    )
+    net = c.get("network") or {}
+    return f"""<h2>Cascade: a cheap first stage, then the main network</h2>
+{verdict}
+<p>A {_e(net.get("backbone"))} first stage at {_e(net.get("input_px"))} px passes a cell to the
+main network when its own screening probability is at least {_m(R, "cascade.pass_threshold", ".4f")}
+({_e(c["threshold_source"])}); other cells are reported clean. It passed
+{_m(R, "cascade.passed_share", ".1%")} of the {split} patches. Both rows use the main network's
+threshold {_m(R, "screening.threshold")}.</p>
+<table><tr><th>{split}</th><th>recall</th><th>cracks found</th><th>false-alarm rate</th>
+<th>false alarms</th></tr>{rows}</table>"""
 
 
 def _per_class(R: dict) -> str:

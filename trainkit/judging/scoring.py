@@ -25,6 +25,10 @@ __all__ = [
     "screen_block",
     "calibration_block",
     "acceptance_gate",
+    "CASCADE_PASS_SHARE",
+    "CASCADE_MAX_RECALL_DROP",
+    "cascade_pass_threshold",
+    "cascade_block",
     "score_predictions",
     "json_ready",
 ]
@@ -193,6 +197,136 @@ def acceptance_gate(interval: M.Interval, required: float, *, confidence: float,
         "passed": passed,
         "verdict": verdict,
     }
+
+
+#: Share of validation cells the first stage must pass, of those the main network flags and
+#: of the true crack cells alike.
+CASCADE_PASS_SHARE = 0.995
+#: Largest allowed drop of test screening recall, cascade against the main network alone.
+CASCADE_MAX_RECALL_DROP = 0.005
+
+
+def _highest_keeping(scores: np.ndarray, share: float) -> float:
+    """The highest t with ``mean(scores >= t) >= share`` (the cells allowed below it go first)."""
+    ordered = np.sort(np.asarray(scores, dtype=np.float64))
+    allowed_misses = int(math.floor(round(len(ordered) * (1.0 - share), 9)))
+    return float(ordered[allowed_misses])
+
+
+def cascade_pass_threshold(
+    stage1: np.ndarray,
+    main_flagged: np.ndarray,
+    is_crack: np.ndarray,
+    *,
+    share: float = CASCADE_PASS_SHARE,
+) -> tuple[float | None, str]:
+    """The first stage's pass threshold, chosen on validation, and how, in words.
+
+    The highest threshold on the first stage's score (cells at or above it go on to the main
+    network) that still passes at least ``share`` of the cells the main network flags AND at
+    least ``share`` of the true crack cells: any higher threshold breaks one of the two.
+    None when validation has neither a flagged nor a crack cell.
+
+    Args:
+        stage1: (n,) the first stage's screening probability of the validation cells.
+        main_flagged: (n,) bool, the main network flags the cell at its own threshold.
+        is_crack: (n,) bool, the cell holds a crack.
+        share: in (0, 1].
+    """
+    stage1 = np.asarray(stage1, dtype=np.float64)
+    flagged, crack = np.asarray(main_flagged, bool), np.asarray(is_crack, bool)
+    if not (stage1.shape == flagged.shape == crack.shape and stage1.ndim == 1):
+        raise ValueError(
+            f"expected three arrays of one shape (n,), got {stage1.shape}, {flagged.shape}, "
+            f"{crack.shape}"
+        )
+    if not 0.0 < share <= 1.0:
+        raise ValueError(f"share must be in (0, 1], got {share}")
+    limits = [_highest_keeping(stage1[m], share) for m in (flagged, crack) if m.any()]
+    if not limits:
+        return None, "validation has no flagged and no crack cell"
+    return min(limits), (
+        f"validation subset, highest threshold passing at least {share:g} of the "
+        f"{int(flagged.sum())} cells the main network flags and of the {int(crack.sum())} crack cells"
+    )
+
+
+def cascade_block(
+    val: tuple[np.ndarray, np.ndarray, np.ndarray],
+    test: tuple[np.ndarray, np.ndarray, np.ndarray],
+    main_threshold: float,
+    *,
+    confidence: float = 0.95,
+    method: str = "wilson",
+    share: float = CASCADE_PASS_SHARE,
+    max_recall_drop: float | None = None,
+) -> dict:
+    """The cascade's figures beside the main network's, and its gate.
+
+    Args:
+        val, test: (first-stage screening probability, main screening probability, is_crack)
+            per cell of validation and of the evaluated subset.
+        main_threshold: the main network's operating threshold (the cascade flags a cell when
+            the first stage passes it and the main network flags it).
+        max_recall_drop: the gate's largest allowed recall drop (None:
+            :data:`CASCADE_MAX_RECALL_DROP`).
+
+    Returns:
+        ``pass_threshold``, ``threshold_source``, ``validation`` (passed share of flagged and of
+        crack cells, share of cells passed), ``main`` and ``cascade`` (screening counts and
+        rates on the evaluated subset; ``cascade`` with ``recall_interval``),
+        ``passed_share`` (cells reaching the main network), ``recall_drop``, ``gate``.
+    """
+    if max_recall_drop is None:
+        max_recall_drop = CASCADE_MAX_RECALL_DROP
+    s1v, pv, cv = (np.asarray(a) for a in val)
+    t, source = cascade_pass_threshold(s1v, pv >= main_threshold, cv, share=share)
+    s1t, pt, ct = (np.asarray(a) for a in test)
+    main = screen_block(ct, pt, main_threshold)
+    block = {"pass_threshold": t, "threshold_source": source, "main": main}
+    if t is None:
+        block["gate"] = {
+            "passed": False,
+            "verdict": "REFUSED: the cascade's pass threshold cannot be chosen ("
+            + source
+            + "); the model is exported without the cascade.",
+        }
+        return block
+    passed_v, passed_t = s1v >= t, s1t >= t
+    flagged_v = pv >= main_threshold
+    cascade = screen_block(ct, np.where(passed_t, pt, 0.0), main_threshold)
+    ci = M.recall_interval(
+        cascade["tp"], cascade["tp"] + cascade["fn"], confidence=confidence, method=method
+    )
+    cascade["recall_interval"] = ci.to_dict()
+    drop = float(main["recall"] - cascade["recall"]) if ct.any() else float("nan")
+    ok = bool(np.isfinite(drop) and drop <= max_recall_drop + 1e-12)
+    word, relation = ("ACCEPTED", "within") if ok else ("REFUSED", "not within")
+    verdict = (
+        (
+            f"{word}: the cascade's screening recall on the evaluated subset ({cascade['recall']:.3f}, "
+            f"{cascade['tp']}/{cascade['tp'] + cascade['fn']} cracks found) is {relation} "
+            f"{max_recall_drop:g} of the main network's ({main['recall']:.3f})"
+            + ("." if ok else "; the model is exported without the cascade.")
+        )
+        if ct.any()
+        else (
+            "REFUSED: the evaluated subset has no crack patches, so the cascade's recall cannot be "
+            "compared; the model is exported without the cascade."
+        )
+    )
+    block.update(
+        validation={
+            "passed_of_flagged": float(passed_v[flagged_v].mean()) if flagged_v.any() else None,
+            "passed_of_cracks": float(passed_v[cv].mean()) if cv.any() else None,
+            "passed_share": float(passed_v.mean()),
+        },
+        cascade=cascade,
+        passed_share=float(passed_t.mean()),
+        recall_drop=drop,
+        gate={"max_recall_drop": max_recall_drop, "passed": ok, "verdict": verdict},
+    )
+    return block
 
 
 def score_predictions(

@@ -9,7 +9,14 @@ from typing import Literal
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-__all__ = ["AugmentConfig", "TrainConfig", "ConfigError", "load_train_config", "BUILTIN_RECIPES"]
+__all__ = [
+    "AugmentConfig",
+    "CascadeConfig",
+    "TrainConfig",
+    "ConfigError",
+    "load_train_config",
+    "BUILTIN_RECIPES",
+]
 
 BUILTIN_RECIPES = ("default", "demo", "scratch", "presence", "frozen")
 
@@ -35,6 +42,31 @@ class AugmentConfig(_Strict):
     noise: float = Field(0.2, ge=0.0, le=1.0)
     jpeg: float = Field(0.2, ge=0.0, le=1.0)
     small_rotation_deg: float = Field(0.0, ge=0.0, le=15.0)
+
+
+class CascadeConfig(_Strict):
+    """The cheap first stage trained after the main network; see configs/train/default.yaml."""
+
+    backbone: str = "tiny_cnn"
+    weights: str | None = None
+    input_px: int = Field(64, ge=16, le=1024)
+    epochs: int = Field(6, ge=1, le=1000)
+    batch_size: int = Field(64, ge=2, le=4096)
+    lr: float = Field(3e-3, gt=0.0, le=1.0)
+    teacher_weight: float = Field(0.5, ge=0.0, le=1.0)
+
+    @field_validator("backbone")
+    @classmethod
+    def _known_backbone(cls, v: str) -> str:
+        return _known(v)
+
+
+def _known(v: str) -> str:
+    from trainkit.learning.models import BACKBONES
+
+    if v not in BACKBONES:
+        raise ValueError(f"unknown backbone {v!r}; choose one of: {', '.join(sorted(BACKBONES))}")
+    return v
 
 
 class TrainConfig(_Strict):
@@ -64,17 +96,12 @@ class TrainConfig(_Strict):
     bf16: bool = False
     compile: bool = False
     augment: AugmentConfig = AugmentConfig()
+    cascade: CascadeConfig | None = None
 
     @field_validator("backbone")
     @classmethod
     def _known_backbone(cls, v: str) -> str:
-        from trainkit.learning.models import BACKBONES
-
-        if v not in BACKBONES:
-            raise ValueError(
-                f"unknown backbone {v!r}; choose one of: {', '.join(sorted(BACKBONES))}"
-            )
-        return v
+        return _known(v)
 
     @model_validator(mode="after")
     def _consistent(self) -> TrainConfig:

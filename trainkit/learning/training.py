@@ -491,8 +491,21 @@ def train(
     finally:
         _cv2_threads(cv2_threads)
 
-    # 5) the selected checkpoint
-    return save_checkpoint(folder, state, cfg, class_set, experiment, weights, len(val_set) > 0)
+    # 5) the cascade's first stage, distilled from the selected epoch (when the recipe asks)
+    cascade = None
+    if cfg.cascade is not None:
+        from trainkit.learning.cascade import train_stage1
+
+        model.load_state_dict(state.best["state"])
+        cascade = train_stage1(
+            model, train_set.images, train_set.labels, cfg.cascade,
+            num_classes=class_set.num_classes, seed=cfg.seed, note=note,
+        )  # fmt: skip
+
+    # 6) the selected checkpoint
+    return save_checkpoint(
+        folder, state, cfg, class_set, experiment, weights, len(val_set) > 0, cascade=cascade
+    )
 
 
 def save_checkpoint(
@@ -503,8 +516,11 @@ def save_checkpoint(
     experiment: dict,
     weights: dict,
     has_val: bool,
+    *,
+    cascade: dict | None = None,
 ) -> dict:
-    """Write ``checkpoint.pt`` (the selected epoch) and return the run's summary."""
+    """Write ``checkpoint.pt`` (the selected epoch, and the cascade's first stage when one was
+    trained) and return the run's summary."""
     record = backbone_record(cfg.backbone)
     checkpoint = {
         "format": "trainkit-checkpoint-1",
@@ -519,6 +535,8 @@ def save_checkpoint(
         "selected_on": cfg.select_on if has_val else "train_loss",
         "experiment": experiment,
     }
+    if cascade is not None:
+        checkpoint["cascade"] = cascade
     _save_atomic(checkpoint, folder.checkpoint_path)
     ips = [h["train_images_per_s"] for h in state.history if h["train_images_per_s"] > 0]
     return {
@@ -530,6 +548,7 @@ def save_checkpoint(
         "training_patches": experiment["training_patches"],
         "validation_patches": experiment["validation_patches"],
         "weights": weights,
+        "cascade_seconds": None if cascade is None else cascade["seconds"],
     }
 
 

@@ -48,6 +48,9 @@ class CrackMap:
             the training data), or None for a model without that output.
         unfamiliar: True when the frame looks unlike the training data (median cell
             familiarity above the model's threshold); None without familiarity.
+        reached: (rows, cols) bool, the cell was passed by a cascade's first stage and scored
+            by the main network (unpassed cells hold P(none) = 1); None for a single-stage
+            model, whose main network scores every cell.
     """
 
     probabilities: np.ndarray
@@ -62,6 +65,13 @@ class CrackMap:
     warnings: list[str] = field(default_factory=list)
     familiarity: np.ndarray | None = field(default=None, repr=False)
     unfamiliar: bool | None = None
+    reached: np.ndarray | None = field(default=None, repr=False)
+
+    @property
+    def main_model_cells(self) -> int:
+        """How many cells the main network scored: those a cascade's first stage passed, or
+        every cell of a single-stage model."""
+        return int(self.flagged.size if self.reached is None else np.count_nonzero(self.reached))
 
     @property
     def familiarity_score(self) -> float | None:
@@ -128,6 +138,7 @@ class CrackMap:
             "gsd_mm": self.gsd_mm,
             "max_probability": float(self.probabilities.max()) if self.probabilities.size else 0.0,
             "flagged_cells": int(self.flagged.sum()),
+            "main_model_cells": self.main_model_cells,
             "probabilities": np.round(self.probabilities, 4).tolist(),
             "labels": self.labels.tolist(),
             "boxes": self.boxes.tolist(),

@@ -12,6 +12,10 @@ so every pixel is covered and none is padded. A frame smaller than one cell is
 edge-padded to a single cell. With a stride smaller than the patch the cells
 overlap; :meth:`CrackMap.probability_raster` then averages the probabilities
 where cells overlap.
+
+A cascade model (contract 3) runs its cheap first stage on every cell and the main
+network only on the cells that stage passes, inside the one ONNX call; its third output
+says which cells reached the main network (:attr:`CrackMap.reached`).
 """
 
 from __future__ import annotations
@@ -27,6 +31,7 @@ from trainkit.core.contract import (
     FAMILIARITY_NAME,
     INPUT_NAME,
     OUTPUT_NAME,
+    REACHED_NAME,
     READABLE_VERSIONS,
     ContractError,
     ModelInfo,
@@ -125,7 +130,11 @@ class Screener:
                 f"{self.path.name}: expected one uint8 input named {INPUT_NAME!r}, got "
                 f"{[(i.name, i.type) for i in inputs]}"
             )
-        want = [OUTPUT_NAME] + ([FAMILIARITY_NAME] if self.info.familiarity else [])
+        want = (
+            [OUTPUT_NAME]
+            + ([FAMILIARITY_NAME] if self.info.familiarity else [])
+            + ([REACHED_NAME] if self.info.cascade else [])
+        )
         if [o.name for o in outputs] != want:
             raise ScreenerError(
                 f"{self.path.name}: contract {self.info.version} expects outputs {want}, "
@@ -183,6 +192,13 @@ class Screener:
 
         The familiarity is None for models without that output (contract version 1).
         """
+        outs = self.predict_outputs(patches, batch_size=batch_size)
+        return outs[OUTPUT_NAME], outs.get(FAMILIARITY_NAME)
+
+    def predict_outputs(self, patches: np.ndarray, *, batch_size: int = 8) -> dict[str, np.ndarray]:
+        """Every output of the model by name, for uint8 patches (N, S, S, 3), in input order:
+        ``probabilities``, and ``familiarity`` (contract 2 on) and ``reached`` (cascades,
+        contract 3) when the model has them."""
         patches = np.asarray(patches)
         s = self.patch_px
         if patches.dtype != np.uint8 or patches.ndim != 4 or patches.shape[1:] != (s, s, 3):
@@ -202,11 +218,15 @@ class Screener:
         outs = list(
             self._pool.map(run, chunks) if parallel and len(chunks) > 1 else map(run, chunks)
         )
-        empty = np.zeros((0, len(self.class_names)), dtype=np.float32)
-        probs = np.concatenate([empty, *(o[0] for o in outs)])
-        if len(self._outputs) == 1:
-            return probs, None
-        return probs, np.concatenate([np.zeros(0, np.float32), *(o[1] for o in outs)])
+        empty = {
+            OUTPUT_NAME: np.zeros((0, len(self.class_names)), dtype=np.float32),
+            FAMILIARITY_NAME: np.zeros(0, np.float32),
+            REACHED_NAME: np.zeros(0, bool),
+        }
+        return {
+            name: np.concatenate([empty[name], *(o[i] for o in outs)])
+            for i, name in enumerate(self._outputs)
+        }
 
     def cut(
         self,
@@ -279,8 +299,9 @@ class Screener:
     def crack_map_from_patches(self, fp: FramePatches) -> CrackMap:
         """Run the model on a cut frame (see :meth:`cut`) and build its crack map."""
         rows, cols = fp.boxes.shape[:2]
-        probs, fam = self.predict_all(fp.patches)
-        probs = probs.reshape(rows, cols, -1)
+        outs = self.predict_outputs(fp.patches)
+        probs, fam = outs[OUTPUT_NAME].reshape(rows, cols, -1), outs.get(FAMILIARITY_NAME)
+        reached = outs.get(REACHED_NAME)
         screen = screening_probability(probs)
         warnings = []
         familiarity = None if fam is None else fam.reshape(rows, cols).astype(np.float32)
@@ -316,6 +337,7 @@ class Screener:
             warnings=warnings,
             familiarity=familiarity,
             unfamiliar=unfamiliar,
+            reached=None if reached is None else reached.reshape(rows, cols).astype(bool),
         )
 
     def crack_map(

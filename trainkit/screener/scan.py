@@ -7,7 +7,9 @@ is skipped on restart, and a half-written last line (the process was killed
 mid-write) is dropped and redone. A frame whose content changed, or that could not
 be read at all last time, is scanned again and gets a new line: the LAST line of a
 frame describes it as it now is (earlier lines stay as history). ``flagged.txt``
-lists the frames whose last line is flagged.
+lists the frames whose last line is flagged. Each line counts its ``cells`` and its
+``main_model_cells``: those the main network scored (with a cascade model, the cells its
+first stage passed; with a single-stage model, every cell).
 
 The summary of a run describes the whole output for the frames given, not only this
 run's share: a resumed scan still reports (and exits 1 for) frames recorded as
@@ -101,6 +103,7 @@ def _scan_record(model: Path, screener: Screener) -> dict:
         "data_digest": info.data_digest,
         "kit_version": info.kit_version,
         "familiarity_threshold": (info.familiarity or {}).get("threshold"),
+        "cascade_pass_threshold": (info.cascade or {}).get("pass_threshold"),
         # job frames the model learned from (trainkit train --from): kept out of job checks
         "learned_frames": Experiment(model.parent).learned_frames(),
         "updated": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -113,6 +116,8 @@ def _brief(rec: dict) -> dict:
         "status": rec.get("status"),
         "flagged": bool(rec.get("flagged")),
         "unfamiliar": rec.get("unfamiliar"),
+        "cells": rec.get("cells"),
+        "main_model_cells": rec.get("main_model_cells"),
     }
 
 
@@ -143,6 +148,10 @@ def _recorded_counts(frames: list[Path], latest: dict[str, dict], now: set[str])
         "unreadable": len(bad),
         "unreadable_earlier": sum(f not in now for f in bad),
         "flagged_recorded": sum(bool(r["flagged"]) for _, r in recs),
+        # cells of the recorded frames, and those the main network scored (a cascade's
+        # first stage passed them; every cell of a single-stage model)
+        "cells_recorded": sum(r.get("cells") or 0 for _, r in recs),
+        "main_model_cells_recorded": sum(r.get("main_model_cells") or 0 for _, r in recs),
         # None when the model has no familiarity output (contract version 1)
         "unfamiliar_recorded": sum(bool(r.get("unfamiliar")) for _, r in recs)
         if any(r.get("unfamiliar") is not None for _, r in recs)
@@ -250,6 +259,7 @@ def _finish(
         max_probability=round(float(cm.probabilities.max()), 4),
         flagged_cells=len(cells),
         cells=int(cm.flagged.size),
+        main_model_cells=cm.main_model_cells,
         dominant_class=cm.dominant_class(),
         threshold=cm.threshold,
         warnings=cm.warnings,
@@ -417,9 +427,12 @@ def scan_frames(
     Returns:
         This run's counts: ``frames`` (found in the inputs), ``resumed_skip`` (unchanged since
         their last line), ``scanned``, ``flagged`` and ``errors`` (lines written by this
-        run), ``seconds``, ``frames_per_second``; and what frames.jsonl now says about the
+        run), ``cells`` and ``main_model_cells`` (of this run's frames, those the main network
+        scored: the cells a cascade's first stage passed, else all), ``seconds``,
+        ``frames_per_second``; and what frames.jsonl now says about the
         frames of the inputs (their last lines): ``recorded``, of which ``unreadable``, of
-        which ``unreadable_earlier`` (not written by this run), and ``flagged_recorded``.
+        which ``unreadable_earlier`` (not written by this run), ``flagged_recorded``,
+        ``cells_recorded`` and ``main_model_cells_recorded``.
         ``unreadable`` used to be this run's ``errors``; it now counts the whole output.
     """
     if overlays is True:
@@ -451,6 +464,8 @@ def scan_frames(
         "scanned": 0,
         "flagged": 0,
         "errors": 0,
+        "cells": 0,
+        "main_model_cells": 0,
     }
     t0 = time.perf_counter()
     with screener, frames_path.open("a", encoding="utf-8") as fh:
@@ -464,6 +479,8 @@ def scan_frames(
             counts["scanned"] += 1
             counts["flagged"] += bool(rec.get("flagged"))
             counts["errors"] += rec["status"] != "ok"
+            counts["cells"] += rec.get("cells") or 0
+            counts["main_model_cells"] += rec.get("main_model_cells") or 0
             if progress:
                 progress(counts["resumed_skip"] + counts["scanned"], len(frames))
 
