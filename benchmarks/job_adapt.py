@@ -179,7 +179,10 @@ def main(argv: list[str] | None = None) -> int:
         shutil.copytree(args.reuse / "workspace", args.out / "workspace")
         shutil.copytree(args.reuse / "run", args.out / "run")
         source, screener = args.out / "run", {"reused": str(args.reuse)}
-        model = source / "model.onnx"
+        from trainkit.judging.export import export_experiment
+
+        # exported again with this kit (its familiarity output and threshold as of now)
+        model = Path(export_experiment(source)["model"])
     else:
         model, screener = jt.train_screener(args.out, plan, 7001, args.quiet)
         source = model.parent

@@ -162,7 +162,9 @@ def test_adapt_export_scan_and_the_honest_path(demo_run, tmp_path):
     assert n_val > 0 and len(val) == prov["validation_patches"] == n_val + sum(
         1 for p in ws.patches() if p.subset == "val" and p.label is not None
     )
-    evaluate_experiment(exp2.path, split="test")
+    metrics = evaluate_experiment(exp2.path, split="test", max_false_alarms=0.05)
+    # The budget holds on the job's validation cells too (weighted by inclusion probability).
+    assert "job's" in metrics["screening"]["threshold_source"]
     export_experiment(exp2.path)
     assert "**Adapted** from" in exp2.card_path.read_text(encoding="utf-8")
 

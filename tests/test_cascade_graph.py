@@ -140,7 +140,8 @@ def test_an_accepted_cascade_is_exported_as_one_graph_and_the_screener_counts(
     cascade_experiment, monkeypatch, tmp_path
 ):
     from trainkit.core.contract import CASCADE_VERSION
-    from trainkit.judging.export import ExportError, quantize_experiment, read_metadata
+    from trainkit.judging.export import ExportError, read_metadata
+    from trainkit.judging.quantize import quantize_experiment
     from trainkit.screener.model import Screener
     from trainkit.screener.scan import scan_frames
 

@@ -9,13 +9,8 @@ import onnx
 import onnxruntime as ort
 import pytest
 
-from trainkit.judging.export import (
-    INT8_MAX_RECALL_DROP,
-    INT8_MIN_SPEEDUP,
-    ExportError,
-    quantize_experiment,
-    read_metadata,
-)
+from trainkit.judging.export import ExportError, read_metadata
+from trainkit.judging.quantize import INT8_MAX_RECALL_DROP, INT8_MIN_SPEEDUP, quantize_experiment
 
 
 @pytest.mark.parametrize("batch", [1, 17])

@@ -689,3 +689,32 @@ def test_threshold_for_false_alarms_is_the_roc_point_within_budget(seed):
     below = p[~y][p[~y] < t]
     if below.size:
         assert (p[~y] >= below.max()).mean() > budget
+
+
+def test_weighted_thresholds_match_repeated_patches_and_sklearn_weighted_roc():
+    """Weights = 1 / inclusion probability: a patch of weight k counts as k patches. Checked
+    against the unweighted functions on the repeated data and scikit-learn's roc_curve with
+    sample_weight (the weighted false-alarm and recall rates at the threshold)."""
+    from sklearn.metrics import roc_curve
+
+    rng = np.random.default_rng(11)
+    y = rng.random(60) < 0.3
+    p = np.round(rng.random(60), 2)  # ties on purpose
+    w = rng.integers(1, 5, 60).astype(float)
+    rep_y, rep_p = np.repeat(y, w.astype(int)), np.repeat(p, w.astype(int))
+    for budget in (0.0, 0.05, 0.2, 1.0):
+        t = M.weighted_thresholds(y, p, w, max_false_alarm_rate=budget)
+        assert t == M.threshold_for_false_alarms(rep_y, rep_p, max_false_alarm_rate=budget)
+    for target in (0.5, 0.9, 0.95, 1.0):
+        t = M.weighted_thresholds(y, p, w, target_recall=target)
+        assert t == M.threshold_for_recall(rep_y, rep_p, target_recall=target)
+        fpr, tpr, thr = roc_curve(y, p, sample_weight=w)
+        # at the threshold the weighted recall reaches the target; one crack score higher it does not
+        assert tpr[thr >= t].max() >= target - 1e-12
+        higher = thr > t
+        if higher.any():
+            assert tpr[higher].max() < target
+    with pytest.raises(ValueError, match="exactly one"):
+        M.weighted_thresholds(y, p, w)
+    with pytest.raises(ValueError, match="positive finite weights"):
+        M.weighted_thresholds(y, p, -w, target_recall=0.9)

@@ -26,7 +26,8 @@ __all__ = ["export"]
 @click.pass_obj
 def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
     """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
-    from trainkit.judging.export import export_experiment, quantize_experiment
+    from trainkit.judging.export import export_experiment
+    from trainkit.judging.quantize import quantize_experiment
 
     console = ctx.console
     with user_errors(ctx):
@@ -68,7 +69,7 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
         elif res.get("cascade_skipped"):
             console.print(f"no cascade: {res['cascade_skipped']}")
         if quantize and cas:
-            from trainkit.judging.export import INT8_CASCADE_SKIP
+            from trainkit.judging.quantize import INT8_CASCADE_SKIP
 
             console.print(INT8_CASCADE_SKIP)
         elif quantize:

@@ -82,12 +82,12 @@ def train(
     from trainkit.learning.config import load_train_config
 
     with user_errors(ctx):
-        ws = Workspace.open(ws_dir)
         adaptation = None
         if source is None:
             if jobs:
                 raise click.UsageError("--job needs --from EXP (the experiment to adapt)")
             cfg = load_train_config(config or "default", overrides)
+            ws = Workspace.open(ws_dir)
         else:
             from trainkit.learning.adapt import adapt_recipe, plan_adaptation
 
@@ -97,6 +97,7 @@ def train(
             if Path(exp_dir).resolve() == Path(source).resolve():
                 raise click.UsageError("--out must differ from --from (the source is kept)")
             cfg = adapt_recipe(source, overrides)
+            ws = Workspace.open(ws_dir)
             adaptation = plan_adaptation(ws, source, list(jobs) or None, seed=cfg.seed)
             ctx.console.print(_adaptation_line(adaptation))
         with progress_bar(ctx, "training") as bar:

@@ -105,6 +105,7 @@ from trainkit.judging.scoring import (
     choose_threshold,
     json_ready,
     score_predictions,
+    threshold_for_job_too,
 )
 from trainkit.labels.splits import check_no_leak
 from trainkit.labels.workspace import Workspace
@@ -202,6 +203,22 @@ def _scored(model, data: PatchSet, num_classes: int) -> Scored:
     return Scored(data.labels, probs, logits, list(data.photos), list(data.groups), data.patch_mm)
 
 
+def _job_validation(model, ws, ckpt: dict, class_set) -> tuple[Scored | None, np.ndarray | None]:
+    """An adapted model's job validation cells, scored, with their design weights."""
+    adaptation = ckpt["experiment"].get("adaptation") or {}
+    ids = adaptation.get("cells", {}).get("val")
+    if not ids:
+        return None, None
+    data = load_patch_set(ws, "job-val", class_set, input_px=ckpt["input_px"], ids=set(ids))
+    pi = {
+        c["patch_id"]: c["inclusion_probability"]
+        for job in adaptation.get("jobs", [])
+        for c in ws.job_cells(job)
+    }
+    weights = np.array([1.0 / pi[int(i)] for i in data.patch_ids])
+    return _scored(model, data, class_set.num_classes), weights
+
+
 def _run_experiment(exp_dir: str | Path, opts: EvaluationOptions, workspace) -> _Run:
     from trainkit.learning.network import load_checkpoint
 
@@ -230,6 +247,11 @@ def _run_experiment(exp_dir: str | Path, opts: EvaluationOptions, workspace) -> 
     threshold, source = choose_threshold(
         val, target_recall=opts.target_recall, max_false_alarms=opts.max_false_alarms
     )
+    job, weights = _job_validation(model, ws, ckpt, class_set)
+    threshold, source = threshold_for_job_too(
+        threshold, source, job, weights,
+        target_recall=opts.target_recall, max_false_alarms=opts.max_false_alarms,
+    )  # fmt: skip
     stage1 = None
     if ckpt.get("cascade") is not None:
         from trainkit.learning.cascade import load_stage1

@@ -98,6 +98,42 @@ def choose_threshold(
     return 0.5, "default 0.5 (validation has no crack patches)"
 
 
+def threshold_for_job_too(
+    threshold: float,
+    source: str,
+    job: Scored | None,
+    weights: np.ndarray | None,
+    *,
+    target_recall: float,
+    max_false_alarms: float | None = None,
+) -> tuple[float, str]:
+    """An adapted model's threshold: the validation rule must hold on the job's validation
+    cells too, each weighted by 1 / its inclusion probability so the sample stands for the
+    job's frames (Horvitz-Thompson, Cochran ch. 5). Under a false-alarm budget the higher
+    of the two thresholds is kept, under a recall target the lower one.
+
+    Returns ``(threshold, source)`` unchanged when there is no job cell the rule can use.
+    """
+    if job is None or len(job) == 0:
+        return threshold, source
+    crack = job.is_crack
+    try:
+        if max_false_alarms is not None:
+            t = M.weighted_thresholds(
+                crack, job.screening, weights, max_false_alarm_rate=max_false_alarms
+            )
+            chosen = max(threshold, t)
+        else:
+            t = M.weighted_thresholds(crack, job.screening, weights, target_recall=target_recall)
+            chosen = min(threshold, t)
+    except ValueError:  # no clean (or no crack) job cell: the split's rule alone
+        return threshold, source
+    return float(chosen), (
+        f"{source}, and the same on the job's {len(job)} validation cells (weighted by "
+        f"inclusion probability; their threshold {t:.4g})"
+    )
+
+
 def _plain(d: dict) -> dict:
     return {k: (float(v) if isinstance(v, float | np.floating) else int(v)) for k, v in d.items()}
 

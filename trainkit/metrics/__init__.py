@@ -26,6 +26,7 @@ from trainkit.metrics.screening import (
     screening_scores,
     threshold_for_false_alarms,
     threshold_for_recall,
+    weighted_thresholds,
 )
 
 __all__ = [
@@ -38,6 +39,7 @@ __all__ = [
     "fit_temperature",
     "mcnemar_test",
     "negative_log_likelihood",
+    "weighted_thresholds",
     "per_class_report",
     "recall_at_false_alarm",
     "recall_interval",

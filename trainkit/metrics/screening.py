@@ -147,6 +147,55 @@ def threshold_for_false_alarms(
     return float(np.nextafter(neg[k], np.inf))
 
 
+def weighted_thresholds(
+    y_true_crack: ArrayLike,
+    p_crack: ArrayLike,
+    weights: ArrayLike,
+    *,
+    target_recall: float | None = None,
+    max_false_alarm_rate: float | None = None,
+) -> float:
+    """The thresholds of :func:`threshold_for_recall` / :func:`threshold_for_false_alarms`
+    when each patch stands for ``weights`` patches of a population (a stratified sample:
+    weight = 1 / inclusion probability, the Horvitz-Thompson weights of Cochran ch. 5).
+
+    Exactly one of ``target_recall`` (the largest crack score whose weighted recall reaches
+    it) and ``max_false_alarm_rate`` (the smallest threshold whose weighted false-alarm
+    rate is within it) is given. With equal weights both equal the unweighted functions.
+
+    Raises:
+        ValueError: both or neither rule, no patch of the kind the rule needs, or weights
+            that are not positive and finite.
+    """
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    w = np.asarray(weights, dtype=float)
+    _same_length(y, p, "y_true_crack", "p_crack")
+    if w.shape != p.shape or not np.all(np.isfinite(w)) or np.any(w <= 0):
+        raise ValueError(f"expected {p.size} positive finite weights, got shape {w.shape}")
+    if (target_recall is None) == (max_false_alarm_rate is None):
+        raise ValueError("give exactly one of target_recall and max_false_alarm_rate")
+    if target_recall is not None:
+        if not 0.0 < float(target_recall) <= 1.0:
+            raise ValueError(f"expected target_recall in (0, 1], got {target_recall}")
+        if not y.any():
+            raise ValueError("expected at least one crack patch to set a recall threshold")
+        order = np.argsort(-p[y], kind="stable")
+        scores, cum = p[y][order], np.cumsum(w[y][order])
+        m = int(np.searchsorted(cum, float(target_recall) * cum[-1] * (1 - 1e-12)))
+        return float(scores[min(m, scores.size - 1)])
+    b = _check_budget(max_false_alarm_rate)
+    if y.all():
+        raise ValueError("expected at least one non-crack patch to set a false-alarm threshold")
+    order = np.argsort(-p[~y], kind="stable")
+    scores, cum = p[~y][order], np.cumsum(w[~y][order])
+    # k: how many of the highest-scoring non-crack patches fit within the budget.
+    k = int(np.searchsorted(cum, b * cum[-1] * (1 + 1e-12), side="right"))
+    if k >= scores.size:
+        return 0.0
+    return float(np.nextafter(scores[k], np.inf))
+
+
 def recall_at_false_alarm(y_true_crack: ArrayLike, p_crack: ArrayLike, *, budget: float) -> float:
     """The highest recall any threshold reaches while its false-alarm rate stays within ``budget``.
 
