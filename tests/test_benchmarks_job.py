@@ -110,3 +110,23 @@ def test_frames_are_reproducible_and_the_families_differ(jt, tmp_path):
         assert na.replace("broom-", "") == nd.replace("default-", "")
         assert all(np.array_equal(x.points, y.points) for x, y in zip(ca, cd, strict=True))
         assert (tmp_path / "a" / na).read_bytes() != (tmp_path / "d" / nd).read_bytes()
+
+
+def test_job_adapt_oracle_recall_is_the_best_recall_within_the_budget(jt):
+    """benchmarks/job_adapt.py's reference figure: the best recall at any threshold whose
+    false-alarm rate stays within 10 %, checked by trying every threshold by hand."""
+    sys.path.insert(0, str(REPO / "benchmarks"))
+    spec = importlib.util.spec_from_file_location("job_adapt", REPO / "benchmarks" / "job_adapt.py")
+    ja = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(ja)
+    rng = np.random.default_rng(4)
+    truth = rng.choice([jt.CLEAN, jt.CRACK, jt.AMBIGUOUS], 300, p=[0.6, 0.3, 0.1]).astype(np.int8)
+    p = np.clip(0.35 * (truth == jt.CRACK) + rng.random(300) * 0.7, 0, 1)
+    keep = truth != jt.AMBIGUOUS
+    crack, clean = truth[keep] == jt.CRACK, truth[keep] == jt.CLEAN
+    best = 0.0
+    for t in np.unique(np.r_[p[keep], 1.1]):
+        flagged = p[keep] >= t
+        if flagged[clean].mean() <= 0.10:
+            best = max(best, flagged[crack].mean())
+    assert ja.recall_within(p, truth, 0.10) == pytest.approx(best)
