@@ -230,11 +230,7 @@ def main(argv: list[str] | None = None) -> int:
     result = {
         "benchmark": "job_adapt",
         "mode": "quick" if args.quick else "full",
-        "caution": (
-            "The screener is a triage aid, not an inspection; these figures hold only for "
-            "frames like the synthetic ones made here; defer to local codes and licensed "
-            "engineers."
-        ),
+        "caution": jt.CAUTION,
         "screener": screener,
         "before": {name: figures(s) for name, s in before.items()},
         "adapted": runs,

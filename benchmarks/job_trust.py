@@ -60,6 +60,11 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 REPO = Path(__file__).resolve().parents[1]
 RESULTS = REPO / "benchmarks" / "results" / "job_trust.json"
 
+#: What every results file of the job benchmarks says first.
+CAUTION = (
+    "The screener is a triage aid, not an inspection; these figures hold only for frames "
+    "like the synthetic ones made here; defer to local codes and licensed engineers."
+)
 #: Truth codes of a cell.
 CLEAN, CRACK, AMBIGUOUS = 0, 1, -1
 #: Seeds of the frame plans (the training photos use --seed, 7001 by default).
@@ -586,11 +591,7 @@ def main(argv: list[str] | None = None) -> int:
     result = {
         "benchmark": "job_trust",
         "mode": "quick" if args.quick else "full",
-        "caution": (
-            "The screener is a triage aid, not an inspection; these figures hold only for "
-            "frames like the synthetic ones made here; defer to local codes and licensed "
-            "engineers."
-        ),
+        "caution": CAUTION,
         "screener": screener,
         "sets": sets,
         "familiarity": familiarity,
