@@ -227,14 +227,7 @@ def main(argv: list[str]) -> int:
     rows = []
     for n in sizes:
         idx = np.sort(perm[:n])  # nested subsets: each size holds the smaller ones
-        subset = type(train_all)(
-            images=np.asarray(train_all.images)[idx],
-            labels=train_all.labels[idx],
-            patch_ids=train_all.patch_ids[idx],
-            photos=[train_all.photos[i] for i in idx],
-            groups=[train_all.groups[i] for i in idx],
-            patch_mm=train_all.patch_mm[idx],
-        )
+        subset = train_all.take(idx)
         for name, cfg in recipes().items():
             if args.only and args.only not in name:
                 continue

@@ -194,30 +194,6 @@ def adapt_recipe(source: str | Path, overrides: dict | None = None):
     return TrainConfig.model_validate({**source_config, **ADAPT_DEFAULTS, **given})
 
 
-def _concat(a: PatchSet, b: PatchSet) -> PatchSet:
-    if len(b) == 0:
-        return a
-    return PatchSet(
-        images=np.concatenate([np.asarray(a.images), np.asarray(b.images)]),
-        labels=np.concatenate([a.labels, b.labels]),
-        patch_ids=np.concatenate([a.patch_ids, b.patch_ids]),
-        photos=[*a.photos, *b.photos],
-        groups=[*a.groups, *b.groups],
-        patch_mm=np.concatenate([a.patch_mm, b.patch_mm]),
-    )
-
-
-def _take(s: PatchSet, idx: np.ndarray) -> PatchSet:
-    return PatchSet(
-        images=np.asarray(s.images)[idx],
-        labels=s.labels[idx],
-        patch_ids=s.patch_ids[idx],
-        photos=[s.photos[i] for i in idx],
-        groups=[s.groups[i] for i in idx],
-        patch_mm=s.patch_mm[idx],
-    )
-
-
 def load_subset(
     workspace, subset: str, class_set, experiment: dict | None, *, input_px: int | None = None
 ) -> PatchSet:
@@ -230,7 +206,7 @@ def load_subset(
     if not ids:
         return base
     jobs = load_patch_set(workspace, f"job-{subset}", class_set, input_px=input_px, ids=set(ids))
-    return _concat(base, jobs)
+    return base.concat(jobs)
 
 
 def replay_set(source_train: PatchSet, job_train: PatchSet, ratio: int, seed: int) -> PatchSet:
@@ -238,4 +214,4 @@ def replay_set(source_train: PatchSet, job_train: PatchSet, ratio: int, seed: in
     the source's training patches (``ratio`` per job cell, at most all of them)."""
     keep = min(len(source_train), ratio * len(job_train))
     pick = np.sort(np.random.default_rng(seed).permutation(len(source_train))[:keep])
-    return _concat(_take(source_train, pick), job_train)
+    return source_train.take(pick).concat(job_train)

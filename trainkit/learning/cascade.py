@@ -25,6 +25,7 @@ import numpy as np
 import torch
 from torch import nn
 
+from trainkit.core.taxonomy import apply_d4
 from trainkit.learning.config import CascadeConfig
 from trainkit.learning.models import backbone_record, create_model, weights_provenance
 from trainkit.learning.network import Preprocess, TrainingError
@@ -87,11 +88,11 @@ def distillation_loss(
 
 
 def _random_symmetry(batch: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """A random rotation and flip of each patch (the first stage's label, crack or not, keeps)."""
     out = np.empty_like(batch)
     for i, img in enumerate(batch):
-        k = int(rng.integers(4))
-        img = np.rot90(img, k)
-        out[i] = img[:, ::-1] if rng.integers(2) else img
+        k = int(rng.integers(4))  # drawn before the flip, as the stored seeds expect
+        out[i] = apply_d4(img, k, bool(rng.integers(2)))
     return out
 
 

@@ -49,6 +49,30 @@ class PatchSet:
     def __len__(self) -> int:
         return len(self.labels)
 
+    def take(self, idx: np.ndarray) -> PatchSet:
+        """The patches at positions ``idx``, in that order (images copied out of any memory map)."""
+        return PatchSet(
+            images=np.asarray(self.images)[idx],
+            labels=self.labels[idx],
+            patch_ids=self.patch_ids[idx],
+            photos=[self.photos[i] for i in idx],
+            groups=[self.groups[i] for i in idx],
+            patch_mm=self.patch_mm[idx],
+        )
+
+    def concat(self, other: PatchSet) -> PatchSet:
+        """These patches followed by ``other``'s (``self`` itself when ``other`` is empty)."""
+        if len(other) == 0:
+            return self
+        return PatchSet(
+            images=np.concatenate([np.asarray(self.images), np.asarray(other.images)]),
+            labels=np.concatenate([self.labels, other.labels]),
+            patch_ids=np.concatenate([self.patch_ids, other.patch_ids]),
+            photos=[*self.photos, *other.photos],
+            groups=[*self.groups, *other.groups],
+            patch_mm=np.concatenate([self.patch_mm, other.patch_mm]),
+        )
+
 
 def load_patch_set(
     workspace,
