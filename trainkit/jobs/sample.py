@@ -129,10 +129,11 @@ def scan_model(scan_dir: str | Path) -> dict | None:
     return json.loads(path.read_text(encoding="utf-8")) if path.is_file() else None
 
 
-def learned_frames(scan_dir: str | Path) -> dict[str, str]:
+def learned_frames(scan_record: dict | None) -> dict[str, str]:
     """SHA-256 -> path of the job frames the scan's model learned from (``trainkit train
-    --from``), as the scan recorded them, else as the model's experiment folder says now."""
-    rec = scan_model(scan_dir) or {}
+    --from``), as the scan recorded them (``scan_record``, from :func:`scan_model`), else as
+    the model's experiment folder says now."""
+    rec = scan_record or {}
     if isinstance(rec.get("learned_frames"), dict):
         return rec["learned_frames"]
     return Experiment(Path(rec["model"]).parent).learned_frames() if rec.get("model") else {}
@@ -170,7 +171,7 @@ def sample_scan(
             f"workspace {workspace.root} already holds job {job!r}; pass another --job name"
         )
     table = read_scan_cells(scan_dir)
-    learned = learned_frames(scan_dir)
+    learned = learned_frames(scan_model(scan_dir))
     kept = [f for f in table.frames if f.get("sha256") not in learned]
     left_out = len(table.frames) - len(kept)
     if left_out:

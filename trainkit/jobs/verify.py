@@ -82,7 +82,8 @@ def verify_scan(
         raise VerifyError(f"--require-recall must be in [0, 1], got {require_recall}")
     j = _job_of(workspace, scan_dir, job)
     cells = workspace.job_cells(j["name"])
-    _refuse_learned_frames(scan_dir, j["name"], cells)
+    model = scan_model(scan_dir)
+    _refuse_learned_frames(learned_frames(model), j["name"], cells)
     answered = [c for c in cells if c["answered"] and c["label"] is not None]
     unresolved = [c for c in cells if not (c["answered"] and c["label"] is not None)]
     population = {s["stratum"]: s["cells"] for s in j["design"]["strata"]}
@@ -114,7 +115,6 @@ def verify_scan(
         "created": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "caution": CAUTION,
     }
-    model = scan_model(scan_dir)
     result["model"] = model
     result = json_ready(result)
     atomic_write_json(scan_dir / VERIFICATION_FILE, result, allow_nan=False)
@@ -123,9 +123,8 @@ def verify_scan(
     return result
 
 
-def _refuse_learned_frames(scan_dir: Path, job: str, cells: list[dict]) -> None:
+def _refuse_learned_frames(learned: dict[str, str], job: str, cells: list[dict]) -> None:
     """Refuse a job whose cells come from frames the scan's model learned from."""
-    learned = learned_frames(scan_dir)
     seen = [c for c in cells if c["frame_sha256"] in learned]
     if seen:
         frames = sorted({c["frame"] for c in seen})
