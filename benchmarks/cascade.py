@@ -16,7 +16,7 @@
 4. Recall and false alarms on the frames' cells, cascade against main network alone, and the
    evaluation's test-patch figures and gate verdict.
 
-Usage: python benchmarks/cascade.py OUT [--quick] [--photos 120] [--epochs 12] [--frames 6]
+Usage: python benchmarks/cascade.py OUT [--quick] [--photos 120] [--epochs 12] [--frames 12]
 (--quick: a smoke test of a minute or two on a tiny network and small frames; its figures
 say nothing about speed.)
 """
@@ -50,7 +50,7 @@ class Plan:
     reference_frames: int
 
 
-FULL = Plan(120, "default", {}, (4, 4), 6, 3, 2)
+FULL = Plan(120, "default", {}, (4, 4), 12, 3, 2)  # 12 frames: start-up spread thin
 QUICK = Plan(
     12, "demo",
     {"backbone": "tiny_cnn", "weights": None, "epochs": 1, "head_epochs": 0,
@@ -254,7 +254,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--quick", action="store_true", help="smoke test: tiny network, small frames")
     ap.add_argument("--photos", type=int, help="training photos (full: 120)")
     ap.add_argument("--epochs", type=int, help="main network epochs (full: the recipe's)")
-    ap.add_argument("--frames", type=int, help="frames per crack share (full: 6)")
+    ap.add_argument("--frames", type=int, help="frames per crack share (full: 12)")
     ap.add_argument("--seed", type=int, default=7001)
     args = ap.parse_args(argv)
     plan = QUICK if args.quick else FULL

@@ -44,6 +44,35 @@ def test_pass_threshold_matches_brute_force_and_roc_curve(seed, share):
     assert f"{share:g}" in source and str(int(crack.sum())) in source
 
 
+@pytest.mark.parametrize("seed", range(4))
+@pytest.mark.parametrize("spare", [0.05, 0.2])
+def test_the_spare_share_lowers_the_threshold_to_pass_that_share_of_other_cells(seed, spare):
+    rng = np.random.default_rng(seed)
+    n = 800
+    crack = rng.random(n) < 0.2
+    scores = np.clip(rng.normal(0.2 + 0.6 * crack, 0.1), 0, 1).round(3)
+    flagged = crack & (rng.random(n) < 0.9)
+    others = ~(flagged | crack)
+    t, source = cascade_pass_threshold(scores, flagged, crack, share=0.995, spare_share=spare)
+    # brute force over every distinct score: the highest meeting all three shares
+    best = None
+    for c in np.unique(scores):
+        shares = [np.mean(scores[m] >= c) for m in (flagged, crack)]
+        if min(shares) >= 0.995 and np.mean(scores[others] >= c) >= spare:
+            best = c
+    assert t == pytest.approx(best)
+    # scikit-learn's roc_curve on the other cells as positives gives the margin's limit
+    plain = min(_roc_highest(scores, m, 0.995) for m in (flagged, crack))
+    assert t == pytest.approx(min(plain, _roc_highest(scores, others, spare)))
+    assert t <= plain and f"{spare:g} of the {int(others.sum())} other cells" in source
+    # spare 0 keeps the rule without a margin
+    assert cascade_pass_threshold(scores, flagged, crack, spare_share=0.0)[0] == pytest.approx(
+        _brute_force(scores, flagged, crack, 0.995)
+    )
+    with pytest.raises(ValueError, match="spare_share must be in"):
+        cascade_pass_threshold(scores, flagged, crack, spare_share=1.0)
+
+
 def test_pass_threshold_without_positives_and_bad_input():
     s = np.linspace(0, 1, 10)
     none = np.zeros(10, bool)

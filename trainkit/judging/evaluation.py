@@ -266,14 +266,16 @@ def _cascade_figures(run: _Run, opts: EvaluationOptions) -> dict | None:
     if run.stage1 is None:
         return None
     s1_test, s1_val = run.stage1
+    record = run.ckpt["cascade"]
     block = cascade_block(
         (s1_val, run.val.screening, run.val.is_crack),
         (s1_test, run.test.screening, run.test.is_crack),
         run.threshold,
         confidence=opts.confidence,
         method=opts.interval_method,
+        # first stages written before the margin existed kept none
+        spare_share=float(record["config"].get("spare_pass_share", 0.0)),
     )
-    record = run.ckpt["cascade"]
     block.update(
         network=record["config"],
         loss=record.get("loss"),

@@ -47,13 +47,15 @@ class AugmentConfig(_Strict):
 class CascadeConfig(_Strict):
     """The cheap first stage trained after the main network; see configs/train/default.yaml."""
 
-    backbone: str = "tiny_cnn"
+    backbone: str = "stride4_cnn"
     weights: str | None = None
-    input_px: int = Field(64, ge=16, le=1024)
-    epochs: int = Field(6, ge=1, le=1000)
+    input_px: int = Field(128, ge=16, le=1024)
+    epochs: int = Field(20, ge=1, le=1000)
     batch_size: int = Field(64, ge=2, le=4096)
     lr: float = Field(3e-3, gt=0.0, le=1.0)
     teacher_weight: float = Field(0.5, ge=0.0, le=1.0)
+    jitter: bool = True
+    spare_pass_share: float = Field(0.05, ge=0.0, lt=1.0)
 
     @field_validator("backbone")
     @classmethod

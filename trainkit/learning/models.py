@@ -82,6 +82,49 @@ def _tiny_cnn(num_classes: int) -> nn.Module:
     return TinyCNN(num_classes)
 
 
+class Stride4CNN(nn.Module):
+    """The cascade's first stage: a very cheap CNN that asks "is there a crack anywhere here?".
+
+    Each patch is first standardised per channel (instance normalisation, no learned scale), so
+    a dark, low-contrast surface looks like a bright one; a 4x4 stride-4 stem sees the full
+    128-px patch (a learned patchify keeps hairlines that an average pool would wash out);
+    three conv-BN-ReLU stages with max-pooling; then a global *max* pool, because one
+    crack anywhere in the cell is enough. About 45 k parameters and, in ONNX Runtime, about a
+    tenth of EfficientNet-Lite0's cost per 128-px patch (measured in benchmarks/cascade.py).
+    """
+
+    def __init__(self, num_classes: int, widths: tuple[int, ...] = (16, 32, 48, 64)) -> None:
+        super().__init__()
+
+        def cbr(cin: int, cout: int, k: int = 3, stride: int = 1) -> list[nn.Module]:
+            pad = k // 2 if stride == 1 else 0
+            return [
+                nn.Conv2d(cin, cout, k, stride=stride, padding=pad, bias=False),
+                nn.BatchNorm2d(cout),
+                nn.ReLU(inplace=True),
+            ]
+
+        w = widths
+        # outside ``features``: the familiarity ensemble taps features' children, and a
+        # standardised image's channel means are zero (a layer that says nothing)
+        self.norm = nn.InstanceNorm2d(3)
+        layers: list[nn.Module] = cbr(3, w[0], 4, 4)
+        for i in range(1, len(w)):
+            layers += cbr(w[i - 1], w[i])
+            if i < len(w) - 1:
+                layers.append(nn.MaxPool2d(2))
+        self.features = nn.Sequential(*layers)
+        self.pool = nn.AdaptiveMaxPool2d(1)
+        self.classifier = nn.Sequential(nn.Flatten(), nn.Linear(w[-1], num_classes))
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.classifier(self.pool(self.features(self.norm(x))))
+
+
+def _stride4_cnn(num_classes: int) -> nn.Module:
+    return Stride4CNN(num_classes)
+
+
 def _mobilenet_v3_small(num_classes: int) -> nn.Module:
     from torchvision.models import mobilenet_v3_small
 
@@ -203,6 +246,7 @@ LITE0_WEIGHTS = PackagedWeights(
 #: name -> registry record; ``create_model(name, ...)`` builds from it.
 BACKBONES: dict[str, Backbone] = {
     "tiny_cnn": Backbone(_tiny_cnn, "classifier.", stages=("features",)),
+    "stride4_cnn": Backbone(_stride4_cnn, "classifier.", stages=("features",)),
     "mobilenet_v3_small": Backbone(
         _mobilenet_v3_small,
         "classifier.3.",
