@@ -15,8 +15,11 @@
    eager model) with the same main network; peak memory of each scan command (VmHWM).
 4. Recall and false alarms on the frames' cells, cascade against main network alone, and the
    evaluation's test-patch figures and gate verdict.
+5. The unfamiliar-surface warning of each model on frames of the training family and of a
+   reserved surface (:func:`warning_check`).
 
 Usage: python benchmarks/cascade.py OUT [--quick] [--photos 120] [--epochs 12] [--frames 12]
+       [--warning-only]
 (--quick: a smoke test of a minute or two on a tiny network and small frames; its figures
 say nothing about speed.)
 """
@@ -28,7 +31,7 @@ import json
 import subprocess
 import sys
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -77,7 +80,7 @@ def train_and_export(out: Path, plan: Plan, seed: int) -> dict:
     summary = train(ws, out / "run", cfg, resume=False)
     seconds = time.perf_counter() - t0
     metrics = evaluate_experiment(out / "run")
-    cascade = export_experiment(out / "run")
+    cascade = export_experiment(out / "run", cascade=True)
     main = export_experiment(out / "run", out=out / "main.onnx", cascade=False)
     c = metrics["cascade"]
     return {
@@ -248,6 +251,52 @@ def bench_share(out: Path, facts: dict, plan: Plan, target: float, seed: int) ->
     return result
 
 
+def warning_check(out: Path, facts: dict, n_frames: int, seed: int) -> dict:
+    """The unfamiliar-surface warning, cascade against main network alone, on the same frames.
+
+    A cascade's familiarity comes from its first stage's features (contract 3 gives every
+    cell one), the main network's from its own. Frames of the training family and of the
+    reserved family (surface "broom", never in training; benchmarks/job_trust.py) are scanned
+    with each model; the share of frames warned and the frame-level ROC AUC (scikit-learn's
+    ``roc_auc_score``, reserved frames as positives) are reported.
+    """
+    from job_trust import FULL as TRUST
+    from job_trust import make_frames as family_frames
+    from sklearn.metrics import roc_auc_score
+
+    from trainkit.screener.scan import scan_frames
+
+    plan = replace(TRUST, frames=n_frames)
+    sets = {"default": seed, "broom": seed + 1}
+    folders = {}
+    for surface, s in sets.items():
+        folders[surface] = out / f"warning-frames-{surface}"
+        if not folders[surface].is_dir():
+            family_frames(folders[surface], plan, surface, s)
+    models = {"cascade": facts["cascade_model"], "main alone": facts["main_model"]}
+    result = {}
+    for name, model in models.items():
+        if not model:
+            continue
+        scores = {}
+        for surface, folder in folders.items():
+            scan = out / f"warning-scan-{surface}-{name.replace(' ', '-')}"
+            scan_frames(Path(model), [folder], scan, overlays="none")
+            lines = [json.loads(x) for x in (scan / "frames.jsonl").read_text().splitlines()]
+            scores[surface] = (
+                np.array([r["familiarity_score"] for r in lines], float),
+                np.array([bool(r["unfamiliar"]) for r in lines]),
+            )
+        d, r = scores["default"], scores["broom"]
+        auc = roc_auc_score(np.r_[np.zeros(d[0].size), np.ones(r[0].size)], np.r_[d[0], r[0]])
+        result[name] = {
+            "warned_training_family": f"{int(d[1].sum())}/{d[1].size}",
+            "warned_reserved_family": f"{int(r[1].sum())}/{r[1].size}",
+            "frame_auc_reserved_vs_training_family": round(float(auc), 3),
+        }
+    return result
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("out", type=Path)
@@ -256,6 +305,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--epochs", type=int, help="main network epochs (full: the recipe's)")
     ap.add_argument("--frames", type=int, help="frames per crack share (full: 12)")
     ap.add_argument("--seed", type=int, default=7001)
+    ap.add_argument(
+        "--warning-only", action="store_true",
+        help="only the unfamiliar-surface warning check, on the models an earlier run left in OUT",
+    )  # fmt: skip
     args = ap.parse_args(argv)
     plan = QUICK if args.quick else FULL
     overrides = dict(plan.overrides, **({"epochs": args.epochs} if args.epochs else {}))
@@ -263,6 +316,13 @@ def main(argv: list[str] | None = None) -> int:
                 args.frames or plan.frames, plan.rounds, plan.reference_frames)  # fmt: skip
     args.out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
+    n_warn = 4 if args.quick else 20
+    if args.warning_only:
+        bench = json.loads((args.out / "cascade-bench.json").read_text())
+        bench["warning"] = warning_check(args.out, bench["training"], n_warn, 640_017)
+        (args.out / "cascade-bench.json").write_text(json.dumps(bench, indent=2))
+        print(json.dumps(bench["warning"], indent=2))
+        return 0
     facts = train_and_export(args.out, plan, args.seed)
     print(json.dumps(facts, indent=2), flush=True)
     result = {"quick": args.quick, "training": facts}
@@ -271,6 +331,8 @@ def main(argv: list[str] | None = None) -> int:
             args.out, facts, plan, target, seed
         )
         print(json.dumps(result[f"crack_cells_{int(target * 100)}pct"], indent=2), flush=True)
+    result["warning"] = warning_check(args.out, facts, n_warn, 640_017)
+    print(json.dumps(result["warning"], indent=2), flush=True)
     result["minutes"] = round((time.perf_counter() - t0) / 60, 1)
     (args.out / "cascade-bench.json").write_text(json.dumps(result, indent=2))
     print(f"wrote {args.out / 'cascade-bench.json'} ({result['minutes']} min)")

@@ -133,7 +133,7 @@ def _evaluate_and_export(exp, monkeypatch, max_drop):
 
     monkeypatch.setattr(scoring, "CASCADE_MAX_RECALL_DROP", max_drop)
     metrics = evaluate_experiment(exp)
-    return metrics, export_experiment(exp)
+    return metrics, export_experiment(exp, cascade=True)
 
 
 def test_an_accepted_cascade_is_exported_as_one_graph_and_the_screener_counts(
@@ -200,3 +200,22 @@ def test_a_refused_cascade_is_exported_without_it_and_says_so(cascade_experiment
     assert verdict.startswith("REFUSED") and "exported without the cascade" in verdict
     assert res["contract"] == "trainkit-screener-2" and res["cascade"] is None
     assert res["cascade_skipped"] == verdict
+
+
+def test_an_accepted_cascade_is_written_only_when_asked(cascade_experiment, monkeypatch):
+    """Without cascade=True (`export --cascade`) the file is the main network alone, and the
+    reason names the warning's blindness and the way to ask."""
+    from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT
+    from trainkit.judging.evaluation import evaluate_experiment
+    from trainkit.judging.export import export_experiment
+
+    exp, _ = cascade_experiment
+    monkeypatch.setattr("trainkit.judging.scoring.CASCADE_MAX_RECALL_DROP", 1.0)
+    assert evaluate_experiment(exp)["cascade"]["gate"]["passed"]
+    res = export_experiment(exp)
+    assert res["contract"] == "trainkit-screener-2" and res["cascade"] is None
+    assert (
+        "--cascade" in res["cascade_skipped"] and CASCADE_WARNING_CAVEAT in res["cascade_skipped"]
+    )
+    card = (exp / "model-card.md").read_text()
+    assert "`model.onnx` has no cascade" in card and "--cascade" in card

@@ -23,8 +23,15 @@ __all__ = ["export"]
     default=None,
     help="Also write EXP/model-int8.onnx, kept only if test recall holds and it is faster.",
 )
+@click.option(
+    "--cascade",
+    is_flag=True,
+    help="Write the two-stage cascade (faster scans) when the experiment has one that passed "
+    "its gate. Its unfamiliar-surface warning comes from the cheap first stage and misses new "
+    "surfaces: use it only where the surface is known.",
+)
 @click.pass_obj
-def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
+def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None, cascade: bool) -> None:
     """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
     from trainkit.judging.export import export_experiment
     from trainkit.judging.quantize import quantize_experiment
@@ -32,7 +39,7 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
     console = ctx.console
     with user_errors(ctx):
         with console.status("exporting to ONNX and checking parity"):
-            res = export_experiment(exp_dir, opset=opset)
+            res = export_experiment(exp_dir, opset=opset, cascade=cascade)
         console.print(
             f"wrote {res['model']} ({res['bytes'] / 1e6:.2f} MB, {res['exporter']}); parity max "
             f"|dp| {res['parity_max_abs_diff']:.1e} on {res['parity_patches']} patches; "
@@ -66,6 +73,9 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None) -> None:
                 f"({t['passed_share']:.1%} of test patches); test recall {t['recall']:.3f} "
                 f"(main network alone {t['main_recall']:.3f})"
             )
+            from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT
+
+            console.print(f"caution: {CASCADE_WARNING_CAVEAT}; check each new surface by sampling")
         elif res.get("cascade_skipped"):
             console.print(f"no cascade: {res['cascade_skipped']}")
         if quantize and cas:

@@ -25,6 +25,7 @@ import numpy as np
 from trainkit.core.contract import FAMILIARITY_NAME, INPUT_NAME, OUTPUT_NAME, REACHED_NAME
 
 __all__ = [
+    "CASCADE_WARNING_CAVEAT",
     "clean_vector",
     "cascade_to_onnx",
     "run_cascade_torch",
@@ -32,6 +33,14 @@ __all__ = [
     "cascade_plan",
     "check_cascade_parity",
 ]
+
+
+#: Why the cascade is exported only when asked, said wherever one is written or declined.
+CASCADE_WARNING_CAVEAT = (
+    "a cascade's unfamiliar-surface warning comes from its first stage, which was measured "
+    "nearly blind to a new surface (benchmarks/cascade.py: 0 of 20 frames of a reserved "
+    "surface warned, against 20 of 20 with the main network alone)"
+)
 
 
 def clean_vector(num_classes: int) -> np.ndarray:

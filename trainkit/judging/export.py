@@ -29,7 +29,7 @@ from trainkit.core.contract import (
 )
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
-from trainkit.judging.cascade_graph import all_nodes, cascade_plan
+from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT, all_nodes, cascade_plan
 
 __all__ = ["export_experiment", "ExportError", "DEFAULT_OPSET", "PARITY_ATOL", "read_metadata"]
 
@@ -116,12 +116,13 @@ def export_experiment(
     *,
     opset: int = DEFAULT_OPSET,
     out: str | Path | None = None,
-    cascade: bool = True,
+    cascade: bool = False,
 ) -> dict:
     """Export ``EXP/checkpoint.pt`` to ``EXP/model.onnx`` (or ``out``); returns a summary.
 
-    With a first stage in the checkpoint whose evaluation passed the cascade gate, the file is
-    the one-graph cascade (contract 3); ``cascade=False`` exports the main network alone.
+    With ``cascade=True`` and a first stage in the checkpoint whose evaluation passed the
+    cascade gate, the file is the one-graph cascade (contract 3); otherwise the main network
+    alone. Opt-in because of :data:`~trainkit.judging.cascade_graph.CASCADE_WARNING_CAVEAT`.
 
     Raises:
         ExportError: the checker or the parity check failed.
@@ -146,7 +147,13 @@ def export_experiment(
     cascade, cascade_note = (
         cascade_plan(ckpt, metrics, class_set, input_px, fit)
         if cascade
-        else (None, "exported without the cascade as asked" if ckpt.get("cascade") else None)
+        else (
+            None,
+            f"exported without the cascade (`trainkit export --cascade` writes it): "
+            f"{CASCADE_WARNING_CAVEAT}"
+            if ckpt.get("cascade")
+            else None,
+        )
     )
     checks = skipped = None
     if cascade is not None:

@@ -17,6 +17,7 @@ from typing import Any
 
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_write_text
+from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT
 from trainkit.judging.scoring import CAUTION
 
 __all__ = [
@@ -314,7 +315,9 @@ def _cascade(metrics: dict | None, export: dict) -> list[str]:
         lines.append(
             "`model.onnx` runs a cheap first stage on every cell and the main network only on "
             f"the cells scoring at least {_f(c['pass_threshold'], 4)} there (one ONNX graph, "
-            "contract 3); the figures that describe the file are the cascade's."
+            "contract 3); the figures that describe the file are the cascade's. Caution: "
+            + CASCADE_WARNING_CAVEAT
+            + "; on a new job, sample its cells (`trainkit sample`, `trainkit verify`)."
         )
     else:
         lines.append(
