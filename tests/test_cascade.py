@@ -113,6 +113,21 @@ def test_a_training_run_with_a_cascade_block_stores_the_first_stage(demo_run, tm
     )
 
 
+def test_a_first_stage_that_cannot_be_built_stops_training_before_any_epoch(demo_run, tmp_path):
+    """48 px does not divide the workspace's 128-px patches: refused at the start, so no
+    epoch of the main network is spent and then lost."""
+    from trainkit.labels.workspace import Workspace
+    from trainkit.learning.training import train
+
+    out, _ = demo_run
+    cfg = TrainConfig.model_validate(
+        {**load_train_config("demo").model_dump(), "cascade": {"input_px": 48}}
+    )
+    with pytest.raises(TrainingError, match="input_px 48 does not divide the patch size 128"):
+        train(Workspace.open(out / "workspace"), tmp_path / "exp", cfg)
+    assert not (tmp_path / "exp" / "history.csv").exists()
+
+
 def _line_patches(n: int, px: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Textured grey patches; every third holds one dark 1-px line, horizontal or vertical,
     on a surface whose brightness and contrast differ from patch to patch."""

@@ -419,6 +419,10 @@ def train(
     folder.path.mkdir(parents=True, exist_ok=True)
     folder.migrate()  # folders from before the rename keep resuming
     _check_bf16(cfg)
+    if cfg.cascade is not None:  # a first stage that cannot be built fails now, not after training
+        from trainkit.learning.cascade import build_stage1
+
+        build_stage1(cfg.cascade, workspace.tile_px, load_weights=False)
     torch.set_num_threads(cfg.threads or cpu_threads())
     torch.manual_seed(cfg.seed)
 
