@@ -262,36 +262,36 @@ def warning_check(out: Path, facts: dict, n_frames: int, seed: int) -> dict:
     """
     from job_trust import FULL as TRUST
     from job_trust import make_frames as family_frames
+    from job_trust import scan_set
     from sklearn.metrics import roc_auc_score
-
-    from trainkit.screener.scan import scan_frames
 
     plan = replace(TRUST, frames=n_frames)
     sets = {"default": seed, "broom": seed + 1}
-    folders = {}
-    for surface, s in sets.items():
-        folders[surface] = out / f"warning-frames-{surface}"
-        if not folders[surface].is_dir():
-            family_frames(folders[surface], plan, surface, s)
+    folders = {surface: out / f"warning-frames-{surface}" for surface in sets}
+    cracks = {
+        surface: family_frames(folders[surface], plan, surface, s) for surface, s in sets.items()
+    }
     models = {"cascade": facts["cascade_model"], "main alone": facts["main_model"]}
     result = {}
     for name, model in models.items():
         if not model:
             continue
-        scores = {}
-        for surface, folder in folders.items():
-            scan = out / f"warning-scan-{surface}-{name.replace(' ', '-')}"
-            scan_frames(Path(model), [folder], scan, overlays="none")
-            lines = [json.loads(x) for x in (scan / "frames.jsonl").read_text().splitlines()]
-            scores[surface] = (
-                np.array([r["familiarity_score"] for r in lines], float),
-                np.array([bool(r["unfamiliar"]) for r in lines]),
+        scans = {
+            surface: scan_set(
+                Path(model), folder, out / f"warning-scan-{surface}-{name.replace(' ', '-')}",
+                cracks[surface],
             )
-        d, r = scores["default"], scores["broom"]
-        auc = roc_auc_score(np.r_[np.zeros(d[0].size), np.ones(r[0].size)], np.r_[d[0], r[0]])
+            for surface, folder in folders.items()
+        }  # fmt: skip
+        d, r = (scans[k]["frame_scores"] for k in ("default", "broom"))
+        auc = roc_auc_score(np.r_[np.zeros(d.size), np.ones(r.size)], np.r_[d, r])
+        warned = {
+            k: f"{v['summary']['unfamiliar_frames']}/{v['summary']['frames']}"
+            for k, v in scans.items()
+        }
         result[name] = {
-            "warned_training_family": f"{int(d[1].sum())}/{d[1].size}",
-            "warned_reserved_family": f"{int(r[1].sum())}/{r[1].size}",
+            "warned_training_family": warned["default"],
+            "warned_reserved_family": warned["broom"],
             "frame_auc_reserved_vs_training_family": round(float(auc), 3),
         }
     return result
