@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import importlib.util
+import sys
+from contextlib import contextmanager
 from pathlib import Path
 
 import pytest
@@ -48,3 +51,23 @@ def demo_run(tmp_path_factory, demo_events) -> tuple[Path, dict]:
     out = tmp_path_factory.mktemp("demo")
     headline = run_demo(out, epochs=2, photos=10, progress=Recorder())
     return out, headline
+
+
+@contextmanager
+def benchmark_module(name: str):
+    """A script of benchmarks/ imported as the module ``name`` (the folder is not a package).
+
+    It is registered in ``sys.modules`` while in use (a dataclass looks its module up while
+    it is defined) and the folder is on ``sys.path`` (the scripts import each other).
+    """
+    folder = str(REPO / "benchmarks")
+    spec = importlib.util.spec_from_file_location(name, REPO / "benchmarks" / f"{name}.py")
+    module = importlib.util.module_from_spec(spec)
+    sys.path.insert(0, folder)
+    sys.modules[name] = module
+    try:
+        spec.loader.exec_module(module)
+        yield module
+    finally:
+        sys.modules.pop(name, None)
+        sys.path.remove(folder)

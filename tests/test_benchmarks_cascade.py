@@ -6,32 +6,18 @@ The benchmark itself (training, mosaic frames, timed scans) stays out of the sui
 
 from __future__ import annotations
 
-import importlib.util
 import json
-import sys
-from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import benchmark_module
 from sklearn.metrics import confusion_matrix
-
-REPO = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="module")
 def cb():
-    sys.path.insert(0, str(REPO / "benchmarks"))  # it imports job_trust and run beside it
-    spec = importlib.util.spec_from_file_location(
-        "cascade_bench", REPO / "benchmarks" / "cascade.py"
-    )
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["cascade_bench"] = module  # its dataclass looks its module up while defined
-    try:
-        spec.loader.exec_module(module)
+    with benchmark_module("cascade") as module:
         yield module
-    finally:
-        sys.modules.pop("cascade_bench", None)
-        sys.path.remove(str(REPO / "benchmarks"))
 
 
 def test_cell_figures_count_flags_against_truth(cb, tmp_path):

@@ -6,30 +6,19 @@ The benchmark itself (training, scans, 200 repetitions) stays out of the suite: 
 
 from __future__ import annotations
 
-import importlib.util
-import sys
-from pathlib import Path
-
 import numpy as np
 import pytest
+from conftest import benchmark_module
 from sklearn.metrics import confusion_matrix, recall_score, roc_auc_score
 
 from trainkit.core.grid import grid_boxes
 from trainkit.synth import Crack
 
-REPO = Path(__file__).resolve().parents[1]
-
 
 @pytest.fixture(scope="module")
 def jt():
-    spec = importlib.util.spec_from_file_location("job_trust", REPO / "benchmarks" / "job_trust.py")
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["job_trust"] = module  # its dataclass looks its module up while defined
-    try:
-        spec.loader.exec_module(module)
+    with benchmark_module("job_trust") as module:
         yield module
-    finally:
-        sys.modules.pop("job_trust", None)
 
 
 def line(p0, p1, width=1.0, crack_id=0) -> Crack:
@@ -115,10 +104,8 @@ def test_frames_are_reproducible_and_the_families_differ(jt, tmp_path):
 def test_job_adapt_oracle_recall_is_the_best_recall_within_the_budget(jt):
     """benchmarks/job_adapt.py's reference figure: the best recall at any threshold whose
     false-alarm rate stays within 10 %, checked by trying every threshold by hand."""
-    sys.path.insert(0, str(REPO / "benchmarks"))
-    spec = importlib.util.spec_from_file_location("job_adapt", REPO / "benchmarks" / "job_adapt.py")
-    ja = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(ja)
+    with benchmark_module("job_adapt") as ja:
+        recall_within = ja.recall_within
     rng = np.random.default_rng(4)
     truth = rng.choice([jt.CLEAN, jt.CRACK, jt.AMBIGUOUS], 300, p=[0.6, 0.3, 0.1]).astype(np.int8)
     p = np.clip(0.35 * (truth == jt.CRACK) + rng.random(300) * 0.7, 0, 1)
@@ -129,4 +116,4 @@ def test_job_adapt_oracle_recall_is_the_best_recall_within_the_budget(jt):
         flagged = p[keep] >= t
         if flagged[clean].mean() <= 0.10:
             best = max(best, flagged[crack].mean())
-    assert ja.recall_within(p, truth, 0.10) == pytest.approx(best)
+    assert recall_within(p, truth, 0.10) == pytest.approx(best)

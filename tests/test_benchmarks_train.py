@@ -2,29 +2,23 @@
 
 from __future__ import annotations
 
-import importlib.util
 from collections import Counter
 from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import benchmark_module
 from PIL import Image
 from torchvision.datasets import ImageFolder
 
-REPO = Path(__file__).resolve().parents[1]
+
+@pytest.fixture(scope="module")
+def tb():
+    with benchmark_module("train_bench") as module:
+        yield module
 
 
-def _train_bench():
-    spec = importlib.util.spec_from_file_location(
-        "train_bench", REPO / "benchmarks" / "train_bench.py"
-    )
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
-def test_export_gives_imagefolder_one_folder_per_class_with_the_workspace_counts(tmp_path):
-    tb = _train_bench()
+def test_export_gives_imagefolder_one_folder_per_class_with_the_workspace_counts(tb, tmp_path):
     ws = tb.build_workspace(tmp_path, n_photos=10, tile_px=64)
     counts = tb.export_image_folders(ws, tmp_path / "ref")
     records = [r for r in ws.patches() if r.label is not None]
@@ -45,16 +39,16 @@ def test_export_gives_imagefolder_one_folder_per_class_with_the_workspace_counts
 
 
 @pytest.mark.parametrize("column", ["train_images_per_s", "images_per_second"])
-def test_read_history_takes_either_throughput_column(tmp_path, column):
+def test_read_history_takes_either_throughput_column(tb, tmp_path, column):
     (tmp_path / "history.csv").write_text(
         f"epoch,lr,{column},seconds\n1,0.001,12.5,4\n2,0.002,14,3.5\n", encoding="utf-8"
     )
-    rows = _train_bench().read_history(tmp_path)
+    rows = tb.read_history(tmp_path)
     assert [r["images_per_s"] for r in rows] == [12.5, 14.0]
     assert [r["stage"] for r in rows] == ["full", "full"]  # no stage column: all full
 
 
-def test_read_history_names_the_expected_columns_when_none_is_there(tmp_path):
+def test_read_history_names_the_expected_columns_when_none_is_there(tb, tmp_path):
     (tmp_path / "history.csv").write_text("epoch,lr\n1,0.001\n", encoding="utf-8")
     with pytest.raises(ValueError, match="train_images_per_s, images_per_second"):
-        _train_bench().read_history(tmp_path)
+        tb.read_history(tmp_path)
