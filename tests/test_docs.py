@@ -137,3 +137,36 @@ def test_every_install_hint_names_the_kits_distribution():
         f"install hints must name {DISTRIBUTION!r} (the index's {FORBIDDEN!r} is another "
         "library):\n" + "\n".join(wrong)
     )
+
+
+def test_train_help_says_where_imagenet_weights_come_from():
+    """``--weights imagenet`` reads the packaged file for backbones that have one (models.py)."""
+    from click.testing import CliRunner
+
+    from trainkit.cli import cli
+    from trainkit.learning.models import BACKBONES
+
+    res = CliRunner().invoke(cli, ["train", "--help"], terminal_width=1000)
+    assert res.exit_code == 0, res.output
+    (line,) = [ln for ln in res.output.splitlines() if ln.strip().startswith("--weights")]
+    packaged = [n for n, b in BACKBONES.items() if b.packaged_weights is not None]
+    assert packaged
+    for name in packaged:
+        assert name in line and "packaged" in line, line
+    assert "download" in line  # the torchvision source may fetch a missing file
+
+
+def test_notebook_texts_describe_the_demo_recipe_as_it_is():
+    """What the walkthrough and its README say of the ``demo`` recipe matches configs/train/demo.yaml."""
+    from trainkit.learning.config import load_train_config
+
+    cfg = load_train_config("demo")
+    for path in (ROOT / "notebooks" / "README.md", ROOT / "notebooks" / "walkthrough.ipynb"):
+        text = " ".join(_text_lines(path))
+        claimed = re.findall(r"recipe's (?:own )?(\d+) epochs|cut from its (\d+) epochs", text)
+        assert claimed, path
+        assert {int(a or b) for a, b in claimed} == {cfg.epochs}, path
+        if cfg.weights is not None:  # a pretrained start, not random initialisation
+            assert "random initialisation" not in text, path
+        others = [n for n in ("tiny_cnn", "mobilenet_v3_small", "resnet18") if n != cfg.backbone]
+        assert not any(n in text for n in others), path
