@@ -7,9 +7,9 @@ import shutil
 
 import numpy as np
 import pytest
+from _helpers import make_ws
 from PIL import Image
 
-from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.labels_io import (
     LabelsIOError,
     export_csv,
@@ -18,37 +18,11 @@ from trainkit.labels.labels_io import (
     import_csv,
     import_folders,
 )
-from trainkit.labels.workspace import Workspace
 
 
-def make_ws(root, n_photos=2, per_photo=3, size=32):
-    """A workspace with real (random-pixel) PNG crops, one photo name inside a subfolder."""
-    ws = Workspace.create(root, class_set=load_class_set("orientation"), tile_px=size)
-    rng = np.random.default_rng(0)
-    for i in range(n_photos):
-        name = f"site{i}/p{i}.jpg" if i else f"p{i}.jpg"
-        patches = []
-        for c in range(per_photo):
-            rel = f"patches/{i}/r000_c{c:03d}.png"
-            (ws.root / rel).parent.mkdir(parents=True, exist_ok=True)
-            Image.fromarray(rng.integers(0, 255, (size, size, 3), dtype=np.uint8)).save(
-                ws.root / rel
-            )
-            patches.append(
-                dict(row=0, col=c, x0=size * c, y0=0, x1=size * c + size, y1=size, crop=rel)
-                | dict(patch_mm=None, focus=1.0, clipped=0.0)
-            )
-        ws.add_photo_with_patches(
-            name=name,
-            source_path=f"/x/{name}",
-            width=size * per_photo,
-            height=size,
-            gsd_mm=None,
-            group_id=f"g{i}",
-            sha256=f"{i:064d}",
-            patches=patches,
-        )
-    return ws
+def in_subfolder(i):
+    """Photo names of the workspaces here: every photo but the first in a subfolder."""
+    return f"site{i}/p{i}.jpg" if i else f"p{i}.jpg"
 
 
 def current(ws):
@@ -56,7 +30,7 @@ def current(ws):
 
 
 def test_csv_export_reads_back_into_a_fresh_workspace(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     ids = [r.id for r in ws.patches()]
     ws.add_labels([(ids[0], "vertical"), (ids[1], None), (ids[4], "map")], reviewer="ana")
     ws.add_labels([(ids[0], "none")], reviewer="ben")  # newer: the current label
@@ -67,14 +41,14 @@ def test_csv_export_reads_back_into_a_fresh_workspace(tmp_path):
         ("", "ana"),
         ("map", "ana"),
     ]
-    fresh = make_ws(tmp_path / "b")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
     assert import_csv(fresh, tmp_path / "labels.csv", reviewer="copy") == 3
     assert current(fresh) == current(ws)
     assert {e["origin"] for e in fresh.label_events()} == {"file"}
 
 
 def test_csv_by_patch_id(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "ids.csv"
     p.write_text("patch_id,label\n1,horizontal\n2,\n")
     assert import_csv(ws, p) == 2
@@ -104,7 +78,7 @@ def test_csv_by_patch_id(tmp_path):
     ],
 )
 def test_bad_csv_imports_nothing(tmp_path, text, match):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "bad.csv"
     p.write_text(text)
     with pytest.raises(LabelsIOError, match=match):
@@ -113,7 +87,7 @@ def test_bad_csv_imports_nothing(tmp_path, text, match):
 
 
 def test_folder_export_and_import_round_trip(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     ids = [r.id for r in ws.patches()]
     ws.add_labels([(ids[0], "vertical"), (ids[3], "vertical"), (ids[5], None)], reviewer="ana")
     counts = export_folders(ws, tmp_path / "out")
@@ -124,13 +98,13 @@ def test_folder_export_and_import_round_trip(tmp_path):
         tmp_path / "out" / "vertical" / folder_file_name(rec3.photo, rec3.box, ".png")
     ).is_file()
     assert folder_file_name(rec3.photo, rec3.box, ".png") == "site1~p1.jpg@0_0_32_32.png"
-    fresh = make_ws(tmp_path / "b")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
     assert import_folders(fresh, tmp_path / "out") == 3
     assert current(fresh) == current(ws)
 
 
 def test_folder_import_matches_renamed_files_by_pixels(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     rec = ws.patches()[2]
     (tmp_path / "in" / "map").mkdir(parents=True)
     shutil.copyfile(ws.root / rec.crop, tmp_path / "in" / "map" / "whatever-name.png")
@@ -140,11 +114,11 @@ def test_folder_import_matches_renamed_files_by_pixels(tmp_path):
 
 
 def test_bad_folder_imports_nothing(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     export_root = tmp_path / "out"
     ws.add_labels([(1, "vertical")], reviewer="ana")
     export_folders(ws, export_root)
-    fresh = make_ws(tmp_path / "b")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
     (export_root / "diagonal").mkdir()
     with pytest.raises(
         LabelsIOError, match=r"folder 'diagonal' is not a class .*choose one of: none,"
@@ -160,7 +134,7 @@ def test_bad_folder_imports_nothing(tmp_path):
 def test_one_importer_one_set_of_path_rules(tmp_path):
     # Both key styles go through one importer with one error class; a photo name that
     # could point outside the photo folder is refused whichever way the file is keyed.
-    ws = make_ws(tmp_path / "ws")
+    ws = make_ws(tmp_path / "ws", 2, 3, photo_name=in_subfolder)
     csv_path = tmp_path / "labels.csv"
     csv_path.write_text("photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,vertical\np0.jpg,32,0,64,32,\n")
     assert import_csv(ws, csv_path) == 2
