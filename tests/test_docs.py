@@ -182,3 +182,17 @@ def test_the_package_ships_its_type_marker():
     data = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
     assert "py.typed" in data["tool"]["setuptools"]["package-data"]["trainkit"]
     assert (ROOT / "trainkit" / "py.typed").is_file()
+
+
+#: Phrases of development notes: their figures belong in benchmarks/results/lab_notes.md.
+LAB_NOTE_PHRASES = ("scripts not kept", "script not kept", "development run", "(measured)")
+
+
+def test_package_docstrings_hold_no_lab_notes():
+    found = [
+        f"{path.relative_to(ROOT)}:{number}: {line.strip()}"
+        for path in sorted((ROOT / "trainkit").rglob("*.py"))
+        for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), start=1)
+        if any(p in line.lower() for p in LAB_NOTE_PHRASES)
+    ]
+    assert not found, "move these figures to benchmarks/results/lab_notes.md:\n" + "\n".join(found)
