@@ -115,6 +115,7 @@ def read_rgb(
         im.load()
         pixels = _to_array8(im)
         im.close()  # frees Pillow's pixels now (leaving the block only closes the file)
+    _give_back(pixels)
     return _as_rgb(_upright(pixels, orientation))
 
 
@@ -147,11 +148,34 @@ def read_rgb_reduced(
         im.load()
         pixels = _to_array8(im)
         im.close()
+    _give_back(pixels)
     rgb = _as_rgb(_upright(pixels, orientation))
     full_w, full_h = (h0, w0) if orientation in (5, 6, 7, 8) else (w0, h0)
     if rgb.shape[1] >= full_w:  # the decoder did not reduce
         return rgb, None
     return rgb, (full_h, full_w, full_w / rgb.shape[1])
+
+
+#: After decoding a frame this large (pixels), the freed memory is handed back at once.
+_GIVE_BACK_PIXELS = 16_000_000
+
+
+def _give_back(pixels: np.ndarray) -> None:
+    """Return the memory Pillow freed to the system (glibc's malloc_trim) after a large frame.
+
+    Pillow allocates a decoded image row by row; once the process has freed a few large
+    numpy buffers, glibc keeps such freed rows in its heaps instead of returning them, so a
+    large frame's decoded image would stay resident beside its RGB copy, and one more per
+    decoding thread. Without glibc nothing happens.
+    """
+    if pixels.shape[0] * pixels.shape[1] < _GIVE_BACK_PIXELS:
+        return
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
 
 
 def image_pixels(path: str | Path) -> int | None:
