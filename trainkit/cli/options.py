@@ -38,8 +38,6 @@ F = TypeVar("F", bound=Callable[..., Any])
 class _FinitePositive(click.FloatRange):
     """A float above 0 and finite (click's range lets NaN and infinity through)."""
 
-    name = "positive number"
-
     def convert(self, value: Any, param: Any, ctx: Any) -> Any:
         rv = super().convert(value, param, ctx)
         if rv is not None and not math.isfinite(rv):
