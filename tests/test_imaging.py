@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from PIL import Image
@@ -170,3 +172,106 @@ def test_fast_jpeg_path_refuses_crafted_sizes_like_pillows_path(tmp_path):
     p.write_bytes(data)
     with pytest.raises(PhotoError, match="larger than the limit"):
         read_rgb_fast(p, data=data, max_pixels=100_000_000)
+
+
+def test_every_sixteen_bit_level_matches_the_float_rule(tmp_path):
+    """All 65536 grey levels: the integer path gives round(v / 257) exactly (numpy's float
+    rounding as the reference); 32-bit 'I' values outside 0-65535 are clipped."""
+    levels = np.arange(65536, dtype=np.uint16).reshape(256, 256)
+    Image.fromarray(levels).save(tmp_path / "all.png")
+    out = read_rgb(tmp_path / "all.png")
+    want = np.round(levels / 257.0).astype(np.uint8)
+    np.testing.assert_array_equal(out[..., 0], want)
+    np.testing.assert_array_equal(out[..., 2], want)
+    wide = np.array([[-500, 0, 128, 129, 65535, 70000]], dtype=np.int32)
+    Image.fromarray(wide, mode="I").save(tmp_path / "wide.tif")
+    assert read_rgb(tmp_path / "wide.tif")[0, :, 1].tolist() == [0, 0, 0, 1, 255, 255]
+
+
+@pytest.mark.parametrize("orientation", range(1, 9))
+@pytest.mark.parametrize("mode", ["I;16", "L", "RGBA", "RGB"])
+def test_orientation_applied_after_conversion_matches_pillow(tmp_path, orientation, mode):
+    """The upright pixels equal Pillow's own ImageOps.exif_transpose followed by the colour rule
+    (Pillow as the reference), for every EXIF orientation."""
+    from PIL import ImageOps
+
+    rng = np.random.default_rng(orientation)
+    if mode == "I;16":
+        im = Image.fromarray(rng.integers(0, 65535, (12, 20), dtype=np.uint16))
+    else:
+        im = Image.fromarray(rng.integers(0, 255, (12, 20, 3), dtype=np.uint8)).convert(mode)
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    path = tmp_path / "o.png"
+    im.save(path, exif=exif.tobytes())
+    with Image.open(path) as ref:
+        upright = ImageOps.exif_transpose(ref)
+        if mode == "I;16":
+            want = np.round(np.asarray(upright, dtype=np.float64) / 257.0).astype(np.uint8)
+            want = np.repeat(want[..., None], 3, axis=2)
+        else:
+            want = np.asarray(upright.convert("RGB"))
+    got = read_rgb(path)
+    assert got.flags.writeable and got.dtype == np.uint8
+    np.testing.assert_array_equal(got, want)
+
+
+#: Prints the process's peak resident memory in kB: VmHWM of /proc/self/status (Linux,
+#: proc(5)), which starts afresh at exec; getrusage's ru_maxrss keeps the high-water mark of
+#: the process before exec (the forked test worker's, gigabytes under pytest-xdist).
+PEAK_KB = (
+    "print(next(int(line.split()[1]) for line in open('/proc/self/status') "
+    "if line.startswith('VmHWM:')))"
+)
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="needs Linux /proc")
+def test_sixteen_bit_frame_decodes_without_eight_byte_floats(tmp_path):
+    """Issue 27: a 16-bit grey frame went through float64 (8 bytes a pixel, several copies).
+    An 8000 x 8000 16-bit PNG (64 Mpx, a few hundred kB) decoded in a fresh process peaked
+    near 1.7 GB that way; the integer path holds the 2-byte image, a 1-byte grey copy and
+    the 3-byte RGB result, about 0.4 GB. The bound is generous: 0.7 GB."""
+    import subprocess
+    import sys
+
+    levels = np.full((8000, 8000), 30000, np.uint16)
+    levels[1000:1100] = 5000
+    Image.fromarray(levels).save(tmp_path / "g16.png", compress_level=1)
+    code = (
+        "from trainkit.core.decode import read_rgb; "
+        f"a = read_rgb({str(tmp_path / 'g16.png')!r}); "
+        "assert a.shape == (8000, 8000, 3) and a[1050, 5, 0] == 19 and a[0, 0, 0] == 117; "
+        f"{PEAK_KB}"
+    )
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert res.returncode == 0, res.stderr
+    peak_mb = int(res.stdout) / 1024
+    assert peak_mb < 700, f"decoding peaked at {peak_mb:.0f} MB"
+
+
+def test_multi_page_file_notes_that_page_one_is_used(tmp_path):
+    pages = [Image.fromarray(np.full((8, 8, 3), v, np.uint8)) for v in (10, 20, 30)]
+    pages[0].save(tmp_path / "multi.tif", save_all=True, append_images=pages[1:])
+    notes: list[str] = []
+    out = read_rgb(tmp_path / "multi.tif", notes=notes)
+    assert out[0, 0, 0] == 10
+    assert notes == ["photo multi.tif has 3 pages; only page 1 is used"]
+    single: list[str] = []
+    read_rgb(tmp_path / "multi.tif", notes=single, data=(tmp_path / "multi.tif").read_bytes())
+    assert single == notes
+    Image.new("RGB", (8, 8)).save(tmp_path / "one.tif")
+    none: list[str] = []
+    read_rgb(tmp_path / "one.tif", notes=none)
+    assert none == []
+
+
+def test_find_images_reports_the_files_it_skips(tmp_path):
+    from trainkit.core.decode import find_images
+
+    (tmp_path / "sub").mkdir()
+    for n in ("a.jpg", "sub/b.gif", "c.GIF", "notes.txt", ".hidden.gif"):
+        (tmp_path / n).write_bytes(b"x")
+    skipped: list = []
+    found = find_images([tmp_path], skipped=skipped)
+    assert [p.name for p, _ in found] == ["a.jpg"]
+    assert sorted(p.name for p in skipped) == ["b.gif", "c.GIF", "notes.txt"]  # not hidden ones

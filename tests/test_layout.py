@@ -224,7 +224,7 @@ def run_blocked(blocked: tuple[str, ...], code: str) -> subprocess.CompletedProc
     )
 
 
-def _tiny_model(path: Path, patch_px: int = 8) -> Path:
+def _tiny_model(path: Path, patch_px: int = 16) -> Path:
     """A hand-built ONNX screener: logits (mean/64, -mean/64) over the patch's mean value."""
     import onnx
     from onnx import TensorProto, helper
@@ -268,7 +268,7 @@ def test_screener_runs_without_the_train_extra(tmp_path):
     import onnxruntime as ort
 
     model = _tiny_model(tmp_path / "m.onnx")
-    patches = np.random.default_rng(0).integers(0, 256, (5, 8, 8, 3), dtype=np.uint8)
+    patches = np.random.default_rng(0).integers(0, 256, (5, 16, 16, 3), dtype=np.uint8)
     np.save(tmp_path / "patches.npy", patches)
     blocked = (*HEAVY_PACKAGES, "yaml", "click", "rich")
     res = run_blocked(

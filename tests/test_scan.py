@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -232,3 +234,342 @@ def test_scan_records_familiarity_per_frame_and_counts_unfamiliar_frames(tmp_pat
     assert summary["unfamiliar_recorded"] == len(ok) == 5 and summary["notes"] == []
     v1 = scan_frames(brightness_model(tmp_path / "v1.onnx"), [d], tmp_path / "out1")
     assert v1["unfamiliar_recorded"] is None and "no familiarity output" in v1["notes"][0]
+
+
+# ----- bad frames, bad models and bad options (issue 27) ----------------------------------
+
+
+def strict_lines(path):
+    """frames.jsonl parsed refusing NaN and Infinity (not JSON under RFC 8259, section 6)."""
+    refuse = lambda c: pytest.fail(f"{c} in {path.name}")  # noqa: E731
+    return [json.loads(x, parse_constant=refuse) for x in path.read_text().splitlines()]
+
+
+def _jpeg(arr, quality=92) -> bytes:
+    import io
+
+    buf = io.BytesIO()
+    Image.fromarray(arr).save(buf, format="JPEG", quality=quality)
+    return buf.getvalue()
+
+
+def _with_header_size(data: bytes, width: int, height: int) -> bytes:
+    """The JPEG with the frame size in its SOF0 header replaced (ITU T.81 B.2.2 layout)."""
+    i = data.index(b"\xff\xc0")
+    return data[: i + 5] + height.to_bytes(2, "big") + width.to_bytes(2, "big") + data[i + 9 :]
+
+
+def bad_frame_folder(tmp_path):
+    """Two good 512 x 768 JPEGs (one with a dark cell), a truncated JPEG and a JPEG whose
+    header claims 20000 x 20000 px (a decompression bomb: 400 Mpx in a few kB)."""
+    d = tmp_path / "frames"
+    d.mkdir()
+    arr = np.full((512, 768, 3), 200, np.uint8)
+    (d / "a_good.jpg").write_bytes(_jpeg(arr))
+    arr[128:256, 256:384] = 20
+    (d / "b_good.jpg").write_bytes(_jpeg(arr))
+    noisy = np.random.default_rng(0).integers(0, 255, (512, 768, 3), dtype=np.uint8)
+    full = _jpeg(noisy)
+    (d / "c_truncated.jpg").write_bytes(full[: len(full) // 2])
+    (d / "d_bomb.jpg").write_bytes(_with_header_size(_jpeg(arr[:64, :64]), 20000, 20000))
+    return d
+
+
+def _cascade_with_scale(tmp_path):
+    """The contract-3 cascade of test_screener, its metadata given a patch size in mm."""
+    import onnx
+    from test_screener import _cascade_model
+
+    path = _cascade_model(tmp_path, 0.5)
+    proto = onnx.load(path)
+    meta = {p.key: p.value for p in proto.metadata_props}
+    meta["patch_mm"] = json.dumps(64.0)
+    onnx.helper.set_model_props(proto, meta)
+    onnx.save(proto, path)
+    return path
+
+
+BAD_FRAME_PATHS = {
+    # name: (scan options, cascade model?)
+    "plain": ([], False),
+    "gsd": (["--gsd-mm", "0.5"], False),  # 4x downscale: the reduced-size JPEG decode
+    "gsd, 2 processes": (["--gsd-mm", "0.5", "--workers", "2"], False),
+    "gsd, cascade": (["--gsd-mm", "0.5"], True),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_FRAME_PATHS))
+def test_bad_frames_are_recorded_named_on_stderr_and_the_scan_goes_on(tmp_path, capsys, case):
+    """Issue 27: with --gsd-mm one truncated JPEG stopped the whole scan (exit 2, file not
+    named, no lines) and a 20000 x 20000 header ended in a DecompressionBombError traceback.
+    On every path each is recorded as unreadable with its reason, named on stderr (README:
+    unreadable files are named on stderr), and the good frames are scanned (exit 1)."""
+    from trainkit.cli import main
+
+    options, cascade = BAD_FRAME_PATHS[case]
+    model = (
+        _cascade_with_scale(tmp_path)
+        if cascade
+        else brightness_model(tmp_path / "m.onnx", threshold=0.9, patch_mm=64.0)
+    )
+    d = bad_frame_folder(tmp_path)
+    out = tmp_path / "out"
+    code = main(["-q", "scan", str(d), "--model", str(model), "--out", str(out), *options])
+    err = capsys.readouterr().err.splitlines()
+    assert code == 1, err
+    recs = {Path(r["frame"]).name: r for r in strict_lines(out / "frames.jsonl")}
+    assert sorted(recs) == ["a_good.jpg", "b_good.jpg", "c_truncated.jpg", "d_bomb.jpg"]
+    assert recs["a_good.jpg"]["status"] == recs["b_good.jpg"]["status"] == "ok"
+    trunc, bomb = recs["c_truncated.jpg"], recs["d_bomb.jpg"]
+    assert trunc["status"] == "error" and "c_truncated.jpg cannot be decoded" in trunc["error"]
+    assert bomb["status"] == "error" and "d_bomb.jpg is larger than the limit" in bomb["error"]
+    assert "20000 x 20000" in bomb["error"]
+    assert not any("Traceback" in line for line in err)
+    assert f"trainkit: {trunc['error']}; skipped" in err
+    assert f"trainkit: {bomb['error']}; skipped" in err
+
+
+def test_bad_frames_on_the_dask_engine_with_a_scale(tmp_path):
+    import distributed  # dev extra
+
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9, patch_mm=64.0)
+    d = bad_frame_folder(tmp_path)
+    with distributed.LocalCluster(
+        n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None
+    ) as cluster:
+        res = scan_frames(
+            model, [d], tmp_path / "out", gsd_mm=0.5, engine="dask",
+            scheduler=cluster.scheduler_address,
+        )  # fmt: skip
+    assert (res["scanned"], res["errors"]) == (4, 2)
+    errors = [r["error"] for r in strict_lines(tmp_path / "out" / "frames.jsonl") if "error" in r]
+    assert any("c_truncated.jpg cannot be decoded" in e for e in errors)
+    assert any("d_bomb.jpg is larger than the limit" in e for e in errors)
+
+
+def test_a_model_refused_at_load_leaves_no_output_folder(tmp_path):
+    from trainkit.screener.model import ScreenerError
+
+    model = brightness_model(tmp_path / "m.onnx", meta_extra={"threshold": "NaN"})
+    out = tmp_path / "out"
+    with pytest.raises(ScreenerError, match="threshold is NaN"):
+        scan_frames(model, [frames(tmp_path)], out)
+    assert not out.exists()  # no empty OUT/overlays/ left behind
+
+
+def test_no_nan_or_infinity_in_any_scan_output(tmp_path):
+    """A familiarity the model cannot compute (NaN) is written as null, never as bare NaN;
+    the frame is said to be unfamiliar. frames.jsonl and scan.json parse as strict JSON."""
+    from test_screener import constant_model
+
+    model = constant_model(tmp_path / "m.onnx", (0.9, 0.1), familiarity=float("nan"))
+    out = tmp_path / "out"
+    res = scan_frames(model, [frames(tmp_path, n=2)], out, overlays="none")
+    ok = [r for r in strict_lines(out / "frames.jsonl") if r["status"] == "ok"]
+    assert len(ok) == 2 and all(r["familiarity_score"] is None for r in ok)
+    assert all(r["unfamiliar"] is True for r in ok) and res["unfamiliar_recorded"] == 2
+    json.loads((out / "scan.json").read_text(), parse_constant=lambda c: pytest.fail(c))
+
+
+def test_a_model_giving_nan_stops_the_scan_and_records_no_clean_frame(tmp_path):
+    """NaN probabilities compared as 'below the threshold': every frame looked clean (exit 0).
+    The model is at fault, so the scan stops naming it; no frame is recorded as scored."""
+    from test_screener import constant_model
+
+    from trainkit.screener.model import ScreenerError
+
+    model = constant_model(tmp_path / "m.onnx", (float("nan"), float("nan")))
+    out = tmp_path / "out"
+    with pytest.raises(ScreenerError, match=r"m.onnx gave probabilities with non-finite"):
+        scan_frames(model, [frames(tmp_path, n=2)], out, overlays="none")
+    recs = strict_lines(out / "frames.jsonl")
+    assert not any(r["status"] == "ok" for r in recs)  # broken.jpg's error line at most
+
+
+@pytest.mark.parametrize("content", [[], ["notes.txt", "anim.gif"]])
+def test_a_folder_without_frames_is_an_error_as_in_tile(tmp_path, capsys, content):
+    """`tile` says 'no image files found' (exit 2); `scan` said '0 frames scanned', exit 0."""
+    from trainkit.cli import main
+
+    model = brightness_model(tmp_path / "m.onnx")
+    d = tmp_path / "frames"
+    d.mkdir()
+    for name in content:
+        (d / name).write_bytes(b"GIF89a")
+    out = tmp_path / "out"
+    assert main(["scan", str(d), "--model", str(model), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1 and err[0].startswith(f"trainkit: no image files found in {d}")
+    if content:
+        assert "2 other files" in err[0] and "anim.gif" in err[0]
+    assert not out.exists()
+
+
+def test_skipped_files_and_multi_page_frames_are_said_once(tmp_path, capsys):
+    from trainkit.cli import main
+
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    d = frames(tmp_path, n=2)
+    (d / "broken.jpg").unlink()
+    for name in ("anim.gif", "still.gif", "readme.txt"):
+        (d / name).write_bytes(b"GIF89a")
+    pages = [Image.fromarray(np.full((64, 96, 3), v, np.uint8)) for v in (200, 20, 20)]
+    pages[0].save(d / "stack.tif", save_all=True, append_images=pages[1:])
+    out = tmp_path / "out"
+    cmd = ["-q", "scan", str(d), "--model", str(model), "--out", str(out)]
+    assert main(cmd) == 0
+    err = capsys.readouterr().err.splitlines()
+    skipped = [line for line in err if "skipped" in line]
+    assert len(skipped) == 1, err
+    assert skipped[0].startswith("trainkit: 3 files skipped: not a photo format the kit reads")
+    assert "2 .gif, 1 .txt" in skipped[0] and "e.g. " in skipped[0]
+    assert err.count("trainkit: photo stack.tif has 3 pages; only page 1 is used") == 1
+    rec = next(r for r in strict_lines(out / "frames.jsonl") if r["frame"].endswith(".tif"))
+    assert rec["status"] == "ok" and rec["notes"] == [
+        "photo stack.tif has 3 pages; only page 1 is used"
+    ]
+    assert rec["flagged"] is False  # page 1 is the bright one
+
+
+@pytest.mark.parametrize("value", ["nan", "inf", "0", "-1"])
+def test_gsd_option_must_be_finite_and_positive(tmp_path, capsys, value):
+    from trainkit.cli import main
+
+    model = brightness_model(tmp_path / "m.onnx", patch_mm=16.0)
+    out = tmp_path / "out"
+    d = frames(tmp_path, n=1)
+    code = main(["scan", str(d), "--model", str(model), "--out", str(out), f"--gsd-mm={value}"])
+    assert code == 2
+    assert "--gsd-mm" in capsys.readouterr().err
+    assert not out.exists()
+    with pytest.raises(ValueError, match="gsd_mm must be a finite number above 0"):
+        scan_frames(model, [d], out, gsd_mm=float(value))
+
+
+def test_a_failed_write_names_the_file(tmp_path, monkeypatch):
+    """'No space left on device' said nothing about which file could not be written."""
+    import errno
+    import os
+
+    import trainkit.screener.scan as scan_module
+    from trainkit.screener.model import ScreenerError
+
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    d = frames(tmp_path, n=2)
+    out = tmp_path / "out"
+
+    def full(_fd):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(scan_module.os, "fsync", full)
+    with pytest.raises(ScreenerError) as err:
+        scan_frames(model, [d], out, overlays="none")
+    assert str(out / "frames.jsonl") in str(err.value)
+    assert "No space left on device" in str(err.value)
+    monkeypatch.undo()
+
+    def full_text(path, text):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(scan_module, "atomic_write_text", full_text)
+    with pytest.raises(ScreenerError, match=str(out / "flagged.txt")):
+        scan_frames(model, [d], out, overlays="none")
+
+
+def test_frame_paths_are_absolute_and_older_relative_records_still_resume(tmp_path, monkeypatch):
+    """A scan run with a relative folder stored relative paths: `sample` run from elsewhere
+    could not find the frames. Paths are stored absolute; older relative records resolve
+    against the scan's recorded working folder (else the current one, as before)."""
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    d = frames(tmp_path, n=2)
+    monkeypatch.chdir(tmp_path)
+    scan_frames(model, [Path("frames")], tmp_path / "out", overlays="none")
+    recs = lines(tmp_path / "out" / "frames.jsonl")
+    assert all(Path(r["frame"]).is_absolute() and Path(r["frame"]).is_file() for r in recs)
+    scan_record = json.loads((tmp_path / "out" / "scan.json").read_text())
+    assert scan_record["working_folder"] == str(tmp_path)
+
+    # an older scan's lines: relative to where it ran (tmp_path), its scan.json says so
+    old = tmp_path / "old"
+    old.mkdir()
+    rel = [dict(r, frame=os.path.relpath(r["frame"], tmp_path)) for r in recs]
+    (old / "frames.jsonl").write_text("".join(json.dumps(r) + "\n" for r in rel))
+    (old / "scan.json").write_text(json.dumps({"working_folder": str(tmp_path)}))
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    res = scan_frames(model, [d], old, overlays="none")
+    assert (res["resumed_skip"], res["scanned"], res["recorded"]) == (3, 0, 3)
+    # without a recorded working folder: relative to the current folder, as before
+    (old / "scan.json").unlink()
+    monkeypatch.chdir(tmp_path)
+    res = scan_frames(model, [Path("frames")], old, overlays="none")
+    assert (res["resumed_skip"], res["scanned"]) == (3, 0)
+
+
+def test_decode_ahead_is_bounded_by_pixels(tmp_path, monkeypatch):
+    """Frames are decoded ahead while the model runs, but never more pixels at once than the
+    budget (at least one frame): three large frames are no longer held together."""
+    import trainkit.screener.scan as scan_module
+
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    d = tmp_path / "frames"
+    d.mkdir()
+    sizes = {"a.png": (200, 300), "b.png": (200, 300), "c.png": (40, 30), "d.png": (40, 30)}
+    for name, (h, w) in sizes.items():
+        Image.fromarray(np.full((h, w, 3), 200, np.uint8)).save(d / name)
+    held, peak = [0], [0]
+    decode, finish = scan_module._decode_and_cut, scan_module._finish
+
+    def counting_decode(screener, path, *args):
+        h, w = sizes[path.name]
+        held[0] += h * w
+        peak[0] = max(peak[0], held[0])
+        return decode(screener, path, *args)
+
+    def counting_finish(screener, rec, frame, overlays, overlay_dir):
+        h, w = sizes[Path(rec["frame"]).name]
+        try:
+            return finish(screener, rec, frame, overlays, overlay_dir)
+        finally:
+            held[0] -= h * w
+
+    monkeypatch.setattr(scan_module, "_decode_and_cut", counting_decode)
+    monkeypatch.setattr(scan_module, "_finish", counting_finish)
+    monkeypatch.setattr(scan_module, "DECODE_AHEAD_PIXELS", 70_000)
+    res = scan_frames(model, [d], tmp_path / "out", overlays="none")
+    assert res["scanned"] == 4 and held[0] == 0
+    assert 60_000 < peak[0] <= 70_000  # a large frame and small ones, never both large ones
+    monkeypatch.setattr(scan_module, "DECODE_AHEAD_PIXELS", 10)
+    peak[0] = 0
+    scan_frames(model, [d], tmp_path / "out2", overlays="none")
+    assert peak[0] == 60_000  # below one frame: one at a time
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="needs Linux /proc")
+def test_scan_of_a_large_sixteen_bit_frame_stays_small(tmp_path):
+    """Issue 27: a 463 kB 16-bit 15000 x 15000 PNG peaked at 6.27 GB in `scan`. Here an
+    8000 x 8000 one (64 Mpx; 1.78 GB peak before the fix, measured here) is scanned in a
+    fresh process, overlays on and the frame flagged; generous bound 0.8 GB."""
+    import subprocess
+    import sys
+
+    model = brightness_model(tmp_path / "m.onnx", patch_px=128, threshold=0.9)
+    d = tmp_path / "big"
+    d.mkdir()
+    levels = np.full((8000, 8000), 50000, np.uint16)
+    levels[1000:1128, 1000:1128] = 2000  # one dark cell: the frame is flagged
+    Image.fromarray(levels).save(d / "g16.png", compress_level=1)
+    code = (
+        "import json; from trainkit.screener.scan import scan_frames; "
+        f"r = scan_frames({str(model)!r}, [{str(d)!r}], {str(tmp_path / 'out')!r}); "
+        "peak = next(int(x.split()[1]) for x in open('/proc/self/status') if x[:6] == 'VmHWM:'); "
+        "print(json.dumps([r['scanned'], r['flagged'], r['errors'], peak]))"
+    )  # VmHWM (proc(5)): the peak since exec; ru_maxrss would include the forked worker's
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert res.returncode == 0, res.stderr
+    scanned, flagged, errors, peak_kb = json.loads(res.stdout)
+    assert (scanned, flagged, errors) == (1, 1, 0)
+    assert peak_kb / 1024 < 800, f"the scan peaked at {peak_kb / 1024:.0f} MB"
+    rec = lines(tmp_path / "out" / "frames.jsonl")[0]
+    assert Image.open(rec["overlay"]).size[0] <= 8000

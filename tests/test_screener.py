@@ -342,3 +342,200 @@ def test_cascade_model_reports_the_cells_that_reached_the_main_network(tmp_path)
     assert cm2.reached is None and cm2.main_model_cells == 8  # the main network saw every cell
     with pytest.raises(ScreenerError, match="needs metadata cascade.pass_threshold"):
         Screener(_cascade_model(tmp_path, 0.5, meta_cascade=False))
+
+
+# ----- metadata range checks (issue 27, item 5) ------------------------------------------
+
+#: (metadata overrides, regex the one-line refusal must match): each field named with the bad
+#: value and the valid range. The ranges follow the fields' meaning (DESIGN.md, ONNX model).
+BAD_METADATA = {
+    "threshold NaN": ({"threshold": "NaN"}, r"threshold is NaN; .*0 < threshold < 1"),
+    "threshold 5": ({"threshold": "5"}, r"threshold is 5; .*0 < threshold < 1"),
+    "threshold -1": ({"threshold": "-1"}, r"threshold is -1; .*0 < threshold < 1"),
+    "threshold 0": ({"threshold": "0"}, r"threshold is 0; .*0 < threshold < 1"),
+    "threshold 1": ({"threshold": "1.0"}, r"threshold is 1.0; .*0 < threshold < 1"),
+    "threshold inf": ({"threshold": "Infinity"}, r"threshold is Infinity; "),
+    "threshold text": ({"threshold": '"high"'}, r"threshold is \"high\"; .*a number"),
+    "patch_mm -50": ({"patch_mm": "-50"}, r"patch_mm is -50; .*finite number above 0"),
+    "patch_mm 0": ({"patch_mm": "0"}, r"patch_mm is 0; .*finite number above 0"),
+    "patch_mm NaN": ({"patch_mm": "NaN"}, r"patch_mm is NaN; .*finite number above 0"),
+    "patch_mm inf": ({"patch_mm": "Infinity"}, r"patch_mm is Infinity; "),
+    "patch_px 100000": ({"patch_px": "100000"}, r"patch_px is 100000; .*16 to 1024"),
+    "patch_px 0": ({"patch_px": "0"}, r"patch_px is 0; .*16 to 1024"),
+    "patch_px 8": ({"patch_px": "8"}, r"patch_px is 8; .*16 to 1024"),
+    "patch_px 32.5": ({"patch_px": "32.5"}, r"patch_px is 32.5; .*whole number"),
+    "familiarity NaN": (
+        {"trainkit.format": "trainkit-screener-2", "familiarity": '{"threshold": NaN}'},
+        r"familiarity.threshold is NaN; .*finite number above 0",
+    ),
+    "familiarity inf": (
+        {"trainkit.format": "trainkit-screener-2", "familiarity": '{"threshold": Infinity}'},
+        r"familiarity.threshold is Infinity; .*finite number above 0",
+    ),
+    "familiarity -1": (
+        {"trainkit.format": "trainkit-screener-2", "familiarity": '{"threshold": -1}'},
+        r"familiarity.threshold is -1; .*finite number above 0",
+    ),
+    "one class": ({"class_names": '["none"]'}, r"class_names is \[\"none\"\]; .*at least 2"),
+    "repeated class": (
+        {"class_names": '["none", "crack", "crack"]', "angle_centres": "[null, null, null]"},
+        r"class_names .*repeats 'crack'",
+    ),
+    "empty class name": ({"class_names": '["none", ""]'}, r"class_names .*empty name"),
+    "angle 200": ({"angle_centres": "[null, 200]"}, r"angle_centres is \[null, 200\]; .*0, 180"),
+    "angle NaN": ({"angle_centres": "[null, NaN]"}, r"angle_centres is \[null, NaN\]; .*0, 180"),
+    "gsd range reversed": (
+        {"gsd_mm_range": "[0.6, 0.4]"},
+        r"gsd_mm_range is \[0.6, 0.4\]; .*0 < low <= high",
+    ),
+    "gsd range negative": ({"gsd_mm_range": "[-1, 2]"}, r"gsd_mm_range is \[-1, 2\]; "),
+    "gsd range NaN": ({"gsd_mm_range": "[NaN, 1]"}, r"gsd_mm_range is \[NaN, 1\]; "),
+    "patch_mm range inf": (
+        {"patch_mm_range": "[10, Infinity]"},
+        r"patch_mm_range is \[10, Infinity\]; .*finite",
+    ),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_METADATA))
+def test_metadata_out_of_range_is_refused_in_one_line_naming_the_field(tmp_path, case):
+    """A threshold of NaN or 5 flagged nothing, -1 everything; a familiarity threshold of NaN
+    or infinity switched the warning off; patch_mm -50 made the frame one cell; patch_px
+    100000 ended in a 27.9 GiB allocation. Each is refused at load, naming field and range."""
+    extra, message = BAD_METADATA[case]
+    path = brightness_model(tmp_path / "bad.onnx", meta_extra=extra)
+    with pytest.raises(ScreenerError, match=message) as err:
+        Screener(path)
+    text = str(err.value)
+    assert text.startswith("bad.onnx: metadata ") and "\n" not in text
+
+
+@pytest.mark.parametrize(
+    "kwargs",
+    [
+        {"threshold": 0.001},
+        {"threshold": 0.999},
+        {"meta_extra": {"gsd_mm_range": "[0.2, 0.2]", "patch_mm_range": "[12, 40]"}},
+        {"meta_extra": {"angle_centres": "[null, 179.9]"}},
+        {"patch_mm": 0.5, "familiarity": 0.01},
+    ],
+)
+def test_metadata_inside_the_ranges_loads(tmp_path, kwargs):
+    Screener(brightness_model(tmp_path / "ok.onnx", **kwargs))
+
+
+@pytest.mark.parametrize("patch_px", [16, 1024])
+def test_patch_size_limits_are_inclusive(tmp_path, patch_px):
+    assert Screener(brightness_model(tmp_path / "m.onnx", patch_px=patch_px)).patch_px == patch_px
+
+
+def test_metadata_that_disagrees_with_the_graph_is_refused(tmp_path):
+    """Three class names for a two-column output, and a patch_px unlike the graph's input."""
+    path = brightness_model(
+        tmp_path / "c.onnx",
+        meta_extra={"class_names": '["none", "a", "b"]', "angle_centres": "[null, 0, 90]"},
+    )
+    with pytest.raises(ScreenerError, match=r"3 class names .* 2 columns"):
+        Screener(path)
+    path = brightness_model(tmp_path / "p.onnx", meta_extra={"patch_px": "64"})
+    with pytest.raises(ScreenerError, match=r"patch_px is 64 .* input is 32 x 32"):
+        Screener(path)
+
+
+def constant_model(path, probabilities, *, familiarity=None, threshold=0.5):
+    """A graph whose every patch gets the same output row ``probabilities`` (and, with
+    ``familiarity``, that familiarity), for outputs a broken model could give."""
+    image = helper.make_tensor_value_info("image", TensorProto.UINT8, ["N", S, S, 3])
+    probs = helper.make_tensor_value_info("probabilities", TensorProto.FLOAT, ["N", 2])
+    nodes = [
+        helper.make_node("Cast", ["image"], ["x"], to=TensorProto.FLOAT),
+        helper.make_node("ReduceMean", ["x", "axes"], ["m"], keepdims=0),
+        helper.make_node("Mul", ["m", "zero"], ["z"]),  # (N,) zeros
+        helper.make_node("Unsqueeze", ["z", "ax1"], ["u"]),  # (N, 1)
+        helper.make_node("Add", ["u", "row"], ["probabilities"]),  # (N, 2)
+    ]
+    inits = [
+        helper.make_tensor("axes", TensorProto.INT64, [3], [1, 2, 3]),
+        helper.make_tensor("zero", TensorProto.FLOAT, [], [0.0]),
+        helper.make_tensor("ax1", TensorProto.INT64, [1], [1]),
+        helper.make_tensor("row", TensorProto.FLOAT, [1, 2], list(probabilities)),
+    ]
+    outputs = [probs]
+    if familiarity is not None:
+        nodes.append(helper.make_node("Add", ["z", "fam"], ["familiarity"]))
+        inits.append(helper.make_tensor("fam", TensorProto.FLOAT, [], [familiarity]))
+        outputs.append(helper.make_tensor_value_info("familiarity", TensorProto.FLOAT, ["N"]))
+    graph = helper.make_graph(nodes, "constant", [image], outputs, initializer=inits)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 18)])
+    model.ir_version = 9
+    meta = {
+        "trainkit.format": "trainkit-screener-1" if familiarity is None else "trainkit-screener-2",
+        "class_names": json.dumps(["none", "crack"]),
+        "patch_px": str(S),
+        "threshold": json.dumps(threshold),
+        **({} if familiarity is None else {"familiarity": json.dumps({"threshold": 2.0})}),
+    }
+    onnx.helper.set_model_props(model, meta)
+    onnx.save(model, path)
+    return path
+
+
+@pytest.mark.parametrize(
+    "row, message",
+    [
+        ((float("nan"), float("nan")), r"non-finite"),
+        ((-0.5, 1.5), r"outside \[0, 1\]"),
+        ((0.3, 0.3), r"do not sum to 1"),
+    ],
+)
+def test_model_outputs_that_are_not_probabilities_are_refused(tmp_path, row, message):
+    """NaN scored every cell 'not flagged'; a broken graph must not pass as a clean frame."""
+    scr = Screener(constant_model(tmp_path / "m.onnx", row))
+    with pytest.raises(ScreenerError, match=rf"m.onnx gave .*{message}"):
+        scr.crack_map(np.zeros((64, 64, 3), np.uint8))
+
+
+def test_familiarity_that_cannot_be_computed_warns_instead_of_passing(tmp_path):
+    """A NaN familiarity compared as 'not above the threshold' (no warning): the frame cannot
+    be vouched for, so it is said to be unfamiliar (DESIGN.md, promises)."""
+    scr = Screener(constant_model(tmp_path / "m.onnx", (0.9, 0.1), familiarity=float("nan")))
+    cm = scr.crack_map(np.zeros((64, 64, 3), np.uint8))
+    assert cm.unfamiliar is True
+    assert any("could not be computed" in w for w in cm.warnings)
+    d = json.loads(cm.to_json(), parse_constant=lambda c: pytest.fail(f"{c} in the JSON"))
+    assert d["familiarity_score"] is None and d["unfamiliar"] is True
+
+
+@pytest.mark.parametrize("gsd", [float("nan"), float("inf"), 0.0, -1.0])
+def test_frame_scale_must_be_finite_and_positive(tmp_path, gsd):
+    scr = Screener(brightness_model(tmp_path / "m.onnx", patch_mm=16.0))
+    with pytest.raises(ScreenerError, match=r"gsd_mm must be a finite number above 0"):
+        scr.crack_map(np.zeros((64, 64, 3), np.uint8), gsd_mm=gsd)
+
+
+def test_resampling_is_bounded(tmp_path):
+    """patch_mm 0.001 at 1 mm/px would resample a 64 x 64 frame to 2 million px per side."""
+    scr = Screener(brightness_model(tmp_path / "m.onnx", patch_mm=0.001))
+    with pytest.raises(ScreenerError, match=r"would resample .* pixels, above the limit"):
+        scr.crack_map(np.zeros((64, 64, 3), np.uint8), gsd_mm=1.0)
+
+
+def test_lazy_patches_equal_the_cut_patches(tmp_path):
+    """Patches are cut batch by batch (no frame-sized patch array); the batches put together
+    equal FramePatches.patches, and the crack map is the same as ONNX Runtime on them."""
+    import onnxruntime as ort
+
+    path = brightness_model(tmp_path / "m.onnx")
+    rng = np.random.default_rng(4)
+    frame = rng.integers(0, 256, (100, 150, 3), dtype=np.uint8)
+    with Screener(path, threads=2) as scr:
+        fp = scr.cut(frame, stride=20)
+        cm = scr.crack_map_from_patches(fp)
+    whole = fp.patches
+    assert whole.shape == (len(fp), S, S, 3)
+    np.testing.assert_array_equal(
+        np.concatenate([fp.batch(i, i + 7) for i in range(0, len(fp), 7)]), whole
+    )
+    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
+    want = 1 - sess.run(None, {"image": whole})[0][:, 0]
+    np.testing.assert_allclose(cm.probabilities.ravel(), want, atol=1e-6)

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import math
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any, TypeVar
@@ -32,8 +33,20 @@ __all__ = [
 ]
 
 F = TypeVar("F", bound=Callable[..., Any])
+
+
+class _FinitePositive(click.FloatRange):
+    """A float above 0 and finite (click's range lets NaN and infinity through)."""
+
+    def convert(self, value: Any, param: Any, ctx: Any) -> Any:
+        rv = super().convert(value, param, ctx)
+        if rv is not None and not math.isfinite(rv):
+            self.fail(f"{value!r} is not a finite number above 0.", param, ctx)
+        return rv
+
+
 #: Positive lengths, scales and distances.
-POSITIVE = click.FloatRange(min=0, min_open=True)
+POSITIVE = _FinitePositive(min=0, min_open=True)
 
 
 def gather(cls: type, name: str) -> Callable[[F], F]:

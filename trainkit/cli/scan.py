@@ -2,14 +2,15 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import click
 
 from trainkit.cli.options import gsd_mm_option, json_option, workers_option
-from trainkit.cli.output import Ctx, progress_bar, user_errors
+from trainkit.cli.output import Ctx, progress_bar, user_errors, warn
 from trainkit.core.experiment import Experiment
+from trainkit.core.jsonsafe import dumps
+from trainkit.screener.scan import SCAN_MAX_PIXELS
 
 __all__ = ["scan"]
 
@@ -57,6 +58,14 @@ __all__ = ["scan"]
     metavar="ADDRESS",
     help="Dask scheduler address for --engine dask, e.g. tcp://scheduler-host:8786.",
 )
+@click.option(
+    "--max-megapixels",
+    type=click.FloatRange(min=1),
+    default=SCAN_MAX_PIXELS / 1e6,
+    show_default=True,
+    help="Record larger frames as too large (a frame takes up to 7 bytes a pixel while it is "
+    "decoded); raise it for trusted huge frames on a machine with the memory.",
+)
 @json_option("Print the summary as JSON to stdout.")
 @click.pass_obj
 def scan(
@@ -65,11 +74,14 @@ def scan(
     model: Path,
     out_dir: Path,
     as_json: bool,
+    max_megapixels: float,
     **settings: str | int | None,
 ) -> None:
     """Pre-filter frames with an exported screener: one JSON line per frame in OUT/frames.jsonl.
 
-    Exits 1 while any frame of FRAMES is recorded as unreadable, by this run or an earlier one.
+    Unreadable frames are named on stderr (and recorded) and the scan goes on; files in the
+    folders that are not photos are counted on stderr. Exits 1 while any frame of FRAMES is
+    recorded as unreadable, by this run or an earlier one; 2 when FRAMES holds no image file.
     """
     from trainkit.screener.scan import exit_code, recorded_line, scan_frames
 
@@ -79,10 +91,16 @@ def scan(
         # machine output: only the JSON goes to stdout
         with progress_bar(Ctx(ctx.quiet or as_json, ctx.debug), "scanning frames") as bar:
             res = scan_frames(
-                model, list(frames), out_dir, progress=lambda d, n: bar.update(d, n), **settings
+                model,
+                list(frames),
+                out_dir,
+                progress=lambda d, n: bar.update(d, n),
+                report=warn,
+                max_pixels=int(max_megapixels * 1e6),
+                **settings,
             )
     if as_json:
-        click.echo(json.dumps(res, indent=2))
+        click.echo(dumps(res, indent=2))
     else:
         ctx.console.print(
             f"{res['scanned']} frames scanned ({res['resumed_skip']} already done) at "

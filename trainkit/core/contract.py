@@ -40,11 +40,14 @@ Versions:
 from __future__ import annotations
 
 import json
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, NoReturn
 
 import numpy as np
+
+from trainkit.core.jsonsafe import dumps
 
 __all__ = [
     "CONTRACT_VERSION",
@@ -57,6 +60,7 @@ __all__ = [
     "CASCADE_VERSION",
     "REACHED_NAME",
     "REQUIRED_KEYS",
+    "PATCH_PX_RANGE",
     "ContractError",
     "contract_number",
     "ModelInfo",
@@ -182,51 +186,72 @@ def contract_number(version: str) -> int:
         raise ContractError(f"malformed contract version {version!r}") from None
 
 
+#: Patch sizes in pixels a model may declare (the training recipes' ``input_px`` range):
+#: below it a frame's cells run into the hundreds of thousands, above it one patch batch
+#: takes gigabytes.
+PATCH_PX_RANGE = (16, 1024)
+
+
 def encode_metadata(info: ModelInfo) -> dict[str, str]:
-    """The metadata_props (string -> string) that describe ``info`` under the contract."""
+    """The metadata_props (string -> string) that describe ``info`` under the contract.
+
+    Raises:
+        ContractError: a field out of its range (the same checks as
+            :func:`decode_metadata`: a model the Screener would refuse is never written).
+    """
     if not info.class_names or info.class_names[0] != "none":
         raise ContractError(f"class 0 must be 'none', got {info.class_names[:1]}")
     meta = {
         FORMAT_KEY: info.version,
-        "class_names": json.dumps(list(info.class_names)),
-        "angle_centres": json.dumps(list(info.angle_centres)),
+        "class_names": dumps(list(info.class_names)),
+        "angle_centres": dumps(list(info.angle_centres)),
         "patch_px": str(int(info.patch_px)),
-        "patch_mm": json.dumps(info.patch_mm),
-        "threshold": json.dumps(float(info.threshold)),
+        "patch_mm": dumps(info.patch_mm),
+        "threshold": json.dumps(float(info.threshold)),  # NaN stays NaN: refused below
         "threshold_source": info.threshold_source,
-        "gsd_mm_range": json.dumps(_pair(info.gsd_mm_range)),
-        "patch_mm_range": json.dumps(_pair(info.patch_mm_range)),
+        "gsd_mm_range": dumps(_pair(info.gsd_mm_range)),
+        "patch_mm_range": dumps(_pair(info.patch_mm_range)),
         "kit_version": info.kit_version,
         "data_digest": str(info.data_digest),
-        "test_metrics": json.dumps(info.test_metrics),
-        "weights": json.dumps(info.weights),
-        "preprocess": json.dumps(info.preprocess),
+        "test_metrics": dumps(info.test_metrics),
+        "weights": dumps(info.weights),
+        "preprocess": dumps(info.preprocess),
         "input": _INPUT_TEXT,
         "output": _OUTPUT_TEXT,
     }
     if contract_number(info.version) >= contract_number(FAMILIARITY_SINCE):
         if not info.familiarity or "threshold" not in info.familiarity:
             raise ContractError(f"contract {info.version} needs familiarity with a threshold")
-        meta["familiarity"] = json.dumps(info.familiarity)
+        meta["familiarity"] = json.dumps(info.familiarity)  # a NaN threshold is refused below
     if (info.version == CASCADE_VERSION) != bool(info.cascade):
         raise ContractError(f"contract {info.version} and cascade {info.cascade!r} do not match")
     if info.cascade:
         _check_cascade(info.cascade, "model")
-        meta["cascade"] = json.dumps(info.cascade)
+        meta["cascade"] = dumps(info.cascade)
     meta.update(info.extra)
+    decode_metadata(meta, "the model being exported")  # every range check, before writing
     return meta
 
 
 def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
-    """Read metadata_props back into a :class:`ModelInfo`.
+    """Read metadata_props back into a :class:`ModelInfo`, each field checked against its meaning.
+
+    Ranges: ``threshold`` a number with 0 < t < 1 (0 or less flags every cell, 1 or more
+    none); ``patch_px`` a whole number in :data:`PATCH_PX_RANGE`; ``patch_mm`` null or a
+    finite number above 0; ``class_names`` at least two distinct non-empty names, the first
+    ``none``; ``angle_centres`` one per class, each null or in [0, 180) degrees;
+    ``gsd_mm_range`` and ``patch_mm_range`` null or [low, high] with 0 < low <= high, finite;
+    ``familiarity.threshold`` (contract 2 on) a finite number above 0 (a NaN or infinite
+    one would switch the unfamiliar-surface warning off); ``cascade.pass_threshold``
+    (contract 3) in [0, 1]. Every earlier contract version is read by the same rules.
 
     Args:
         meta: the model's metadata_props as a dict of strings.
         name: the model's file name, used in error messages.
 
     Raises:
-        ContractError: a required key is missing, the version is unknown, or a value
-            is malformed.
+        ContractError: a required key is missing, the version is unknown, or a value is
+            malformed or out of its range (one line: the field, the value, the valid range).
     """
     missing = [k for k in REQUIRED_KEYS if k not in meta]
     if missing:
@@ -239,63 +264,173 @@ def decode_metadata(meta: Mapping[str, str], name: str = "model") -> ModelInfo:
             f"{name} uses contract {version!r}; this kit reads "
             f"{', '.join(READABLE_VERSIONS)} (update trainkit)"
         )
-    try:
-        class_names = [str(c) for c in json.loads(meta["class_names"])]
-        centres = json.loads(meta.get("angle_centres", "null")) or [None] * len(class_names)
-        pmm = json.loads(meta.get("patch_mm", "null"))
-        info = ModelInfo(
-            class_names=class_names,
-            patch_px=int(meta["patch_px"]),
-            threshold=float(json.loads(meta["threshold"])),
-            angle_centres=[None if c is None else float(c) for c in centres],
-            patch_mm=None if pmm is None else float(pmm),
-            threshold_source=meta.get("threshold_source", ""),
-            gsd_mm_range=_read_pair(meta.get("gsd_mm_range")),
-            patch_mm_range=_read_pair(meta.get("patch_mm_range")),
-            kit_version=meta.get("kit_version", ""),
-            data_digest=meta.get("data_digest", ""),
-            test_metrics=json.loads(meta.get("test_metrics", "null")),
-            weights=json.loads(meta.get("weights", "null")),
-            preprocess=json.loads(meta.get("preprocess", "null")),
-            familiarity=json.loads(meta.get("familiarity", "null")),
-            cascade=json.loads(meta.get("cascade", "null")),
-            version=version,
-            extra={k: v for k, v in meta.items() if k not in _KNOWN},
-        )
-    except (ValueError, TypeError) as exc:
-        raise ContractError(f"{name}: malformed trainkit metadata ({exc})") from None
-    if not info.class_names or info.class_names[0] != "none":
-        raise ContractError(f"{name}: class 0 must be 'none', got {info.class_names[:1]}")
-    if contract_number(version) >= contract_number(FAMILIARITY_SINCE) and not (
-        isinstance(info.familiarity, dict)
-        and isinstance(info.familiarity.get("threshold"), float | int)
-    ):
-        raise ContractError(f"{name}: contract {version} needs metadata familiarity.threshold")
+    field_ = _FieldReader(meta, name)
+    class_names = field_.class_names()
+    info = ModelInfo(
+        class_names=class_names,
+        patch_px=field_.patch_px(),
+        threshold=field_.threshold(),
+        angle_centres=field_.angle_centres(len(class_names)),
+        patch_mm=field_.patch_mm(),
+        threshold_source=meta.get("threshold_source", ""),
+        gsd_mm_range=field_.pair("gsd_mm_range", "mm per pixel seen in training"),
+        patch_mm_range=field_.pair("patch_mm_range", "patch coverage in mm seen in training"),
+        kit_version=meta.get("kit_version", ""),
+        data_digest=meta.get("data_digest", ""),
+        test_metrics=field_.json("test_metrics"),
+        weights=field_.json("weights"),
+        preprocess=field_.json("preprocess"),
+        familiarity=field_.json("familiarity"),
+        cascade=field_.json("cascade"),
+        version=version,
+        extra={k: v for k, v in meta.items() if k not in _KNOWN},
+    )
+    if contract_number(version) >= contract_number(FAMILIARITY_SINCE):
+        fam = info.familiarity
+        if not (isinstance(fam, dict) and _is_number(fam.get("threshold"))):
+            raise ContractError(f"{name}: contract {version} needs metadata familiarity.threshold")
+        t = float(fam["threshold"])
+        if not (math.isfinite(t) and t > 0):
+            field_.refuse(
+                "familiarity.threshold",
+                _show(fam["threshold"]),
+                "a finite number above 0 (a frame whose cells' median familiarity is above it "
+                "is unfamiliar; NaN or infinity would switch that warning off)",
+            )
     if version == CASCADE_VERSION:
         _check_cascade(info.cascade, name)
-    if len(info.angle_centres) != len(info.class_names):
-        raise ContractError(
-            f"{name}: {len(info.angle_centres)} angle centres for {len(info.class_names)} classes"
-        )
     return info
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, int | float) and not isinstance(v, bool)
+
+
+def _show(v: Any) -> str:
+    """A value as JSON text (NaN and Infinity as JSON readers that allow them spell them)."""
+    try:
+        text = json.dumps(v)
+    except (TypeError, ValueError):
+        text = repr(v)
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+class _FieldReader:
+    """Reads one metadata field at a time; a bad one is refused naming field, value and range."""
+
+    def __init__(self, meta: Mapping[str, str], name: str) -> None:
+        self.meta = meta
+        self.name = name
+
+    def refuse(self, key: str, shown: str, rule: str) -> NoReturn:
+        raise ContractError(f"{self.name}: metadata {key} is {shown}; it must be {rule}")
+
+    def raw(self, key: str) -> str:
+        text = " ".join(str(self.meta[key]).split())  # one line whatever the file holds
+        return text if len(text) <= 80 else text[:77] + "..."
+
+    def json(self, key: str, default: str = "null") -> Any:
+        try:
+            return json.loads(self.meta.get(key, default))
+        except (ValueError, TypeError) as exc:
+            self.refuse(key, self.raw(key), f"JSON text ({exc})")
+
+    def number(self, key: str, rule: str) -> float | None:
+        """The field as a float (None for null); text that is not a number is refused."""
+        v = self.json(key)
+        if v is None:
+            return None
+        if isinstance(v, str):  # tolerated: a number written as JSON text
+            try:
+                v = float(v)
+            except ValueError:
+                self.refuse(key, self.raw(key), rule)
+        if not _is_number(v):
+            self.refuse(key, self.raw(key), rule)
+        return float(v)
+
+    def threshold(self) -> float:
+        rule = (
+            "a number with 0 < threshold < 1 (a cell is flagged when 1 - P(none) >= threshold: "
+            "0 or less flags every cell, 1 or more none)"
+        )
+        t = self.number("threshold", rule)
+        if t is None or not 0.0 < t < 1.0:  # NaN fails this too
+            self.refuse("threshold", self.raw("threshold"), rule)
+        return t
+
+    def patch_px(self) -> int:
+        lo, hi = PATCH_PX_RANGE
+        rule = f"a whole number from {lo} to {hi} (the model's input size in pixels)"
+        try:
+            px = int(str(self.meta["patch_px"]).strip())
+        except ValueError:
+            self.refuse("patch_px", self.raw("patch_px"), rule)
+        if not lo <= px <= hi:
+            self.refuse("patch_px", self.raw("patch_px"), rule)
+        return px
+
+    def patch_mm(self) -> float | None:
+        rule = "null or a finite number above 0 (mm of surface one patch covers)"
+        v = self.number("patch_mm", rule)
+        if v is not None and not (math.isfinite(v) and v > 0):
+            self.refuse("patch_mm", self.raw("patch_mm"), rule)
+        return v
+
+    def class_names(self) -> list[str]:
+        rule = "a list of at least 2 distinct class names, class 0 'none'"
+        names = self.json("class_names")
+        if not isinstance(names, list) or len(names) < 2:
+            self.refuse("class_names", self.raw("class_names"), rule)
+        if not all(isinstance(c, str) for c in names):
+            self.refuse("class_names", self.raw("class_names"), rule + "; names are text")
+        if any(not c.strip() for c in names):
+            self.refuse("class_names", self.raw("class_names"), rule + "; it has an empty name")
+        seen: set[str] = set()
+        for c in names:
+            if c in seen:
+                self.refuse("class_names", self.raw("class_names"), f"{rule}; it repeats {c!r}")
+            seen.add(c)
+        if names[0] != "none":
+            raise ContractError(f"{self.name}: class 0 must be 'none', got {names[:1]}")
+        return names
+
+    def angle_centres(self, n: int) -> list[float | None]:
+        rule = f"a list of {n} angles, one per class, each null or in [0, 180) degrees"
+        centres = self.json("angle_centres")
+        if centres is None or centres == []:  # older models may omit them
+            return [None] * n
+        if not isinstance(centres, list) or len(centres) != n:
+            self.refuse("angle_centres", self.raw("angle_centres"), rule)
+        for c in centres:
+            if c is not None and not (_is_number(c) and 0.0 <= c < 180.0):  # NaN fails too
+                self.refuse("angle_centres", self.raw("angle_centres"), rule)
+        return [None if c is None else float(c) for c in centres]
+
+    def pair(self, key: str, meaning: str) -> tuple[float, float] | None:
+        rule = f"null or [low, high] with 0 < low <= high, both finite ({meaning})"
+        v = self.json(key)
+        if not v:
+            return None
+        if not (isinstance(v, list) and len(v) == 2 and all(_is_number(x) for x in v)):
+            self.refuse(key, self.raw(key), rule)
+        lo, hi = float(v[0]), float(v[1])
+        if not (math.isfinite(lo) and math.isfinite(hi) and 0 < lo <= hi):
+            self.refuse(key, self.raw(key), rule)
+        return lo, hi
 
 
 def _check_cascade(cascade: Any, name: str) -> None:
     if not (
         isinstance(cascade, dict)
-        and isinstance(cascade.get("pass_threshold"), float | int)
+        and _is_number(cascade.get("pass_threshold"))
         and 0.0 <= cascade["pass_threshold"] <= 1.0
     ):
         raise ContractError(
             f"{name}: contract {CASCADE_VERSION} needs metadata cascade.pass_threshold in [0, 1], "
-            f"got {cascade!r}"
+            f"got {_show(cascade)}"
         )
 
 
 def _pair(v: Any) -> list[float] | None:
     return None if not v else [float(v[0]), float(v[1])]
-
-
-def _read_pair(text: str | None) -> tuple[float, float] | None:
-    v = json.loads(text) if text else None
-    return None if not v else (float(v[0]), float(v[1]))

@@ -1,57 +1,62 @@
 """Decode photos and frames to 8-bit RGB arrays with EXIF orientation applied.
 
-Colour rule: EXIF orientation is applied first; then grey, palette, CMYK and RGBA
-images become 8-bit RGB through Pillow's conversions (alpha is dropped, not
-composited; CMYK uses Pillow's plain inversion, no colour profile); 16-bit grey is
-scaled by its full range (round(value / 257)); 16-bit RGB is reduced to 8 bits by
-Pillow the same way. Memory: the decoded image and one array copy are held, no more.
-Needs only numpy and Pillow; OpenCV, when installed, speeds up plain JPEGs.
+Colour rule: grey, palette, CMYK and RGBA images become 8-bit RGB through Pillow's
+conversions (alpha is dropped, not composited; CMYK uses Pillow's plain inversion, no
+colour profile); 16-bit grey is scaled by its full range (round(value / 257), computed in
+integers; 32-bit integer grey is clipped to 0-255 after the same scaling); 16-bit RGB is
+reduced to 8 bits by Pillow the same way. EXIF orientation is then applied to the 8-bit
+pixels (the same steps as Pillow's ``ImageOps.exif_transpose``). A file with several pages
+or frames (a multi-page TIFF, an animated WebP or PNG) gives its first one, and says so.
+
+Memory: the conversion runs in strips of rows, so a frame costs Pillow's decoded image plus
+the 8-bit result and nothing else: 16-bit grey 3 bytes a pixel (2 + 1), then 4 while the
+grey is expanded to RGB; 8-bit colour 7 (Pillow keeps RGB in 4 bytes a pixel). Needs only
+numpy and Pillow; OpenCV, when installed, speeds up plain JPEGs (3 bytes a pixel).
 """
 
 from __future__ import annotations
 
+import io
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
-from PIL import Image, ImageOps, UnidentifiedImageError
+from PIL import Image, UnidentifiedImageError
 
 IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp", ".bmp")
 
 
 #: Largest image Pillow may open, in pixels (Pillow's own default is about 89 Mpx).
 DEFAULT_MAX_PIXELS = 250_000_000
+#: Pixels converted at a time (rows of the frame): bounds the conversion's extra memory.
+_STRIP_PIXELS = 4_000_000
+_INTEGER_GREY = ("I;16", "I;16B", "I;16L", "I")
+#: Formats whose extra frames are not further pages of the photo (a phone's MPO JPEG holds
+#: the photo first and previews or depth maps after it): no note for those.
+_NOT_PAGES = ("MPO",)
 
 
 class PhotoError(ValueError):
     """A photo that cannot be used; the message says which file and why."""
 
 
-def read_rgb(
-    path: str | Path, *, max_pixels: int = DEFAULT_MAX_PIXELS, data: bytes | None = None
-) -> np.ndarray:
-    """Read an image file as an (H, W, 3) uint8 RGB array with EXIF orientation applied.
-
-    Args:
-        path: the file (named in error messages even when ``data`` is given).
-        max_pixels: decompression-bomb limit; larger images are refused.
-        data: the file's bytes, if already read (saves a second read when hashing).
-
-    Raises:
-        PhotoError: the file is missing, unreadable, truncated or too large.
-    """
-    import io
-
-    path = Path(path)
+@contextmanager
+def _opened(path: Path, data: bytes | None, max_pixels: int) -> Iterator[Image.Image]:
+    """Pillow's image of the file (header read, pixels not yet decoded); every failure while
+    it is open, in the ``with`` body too, becomes one :class:`PhotoError` naming the file."""
     old_limit = Image.MAX_IMAGE_PIXELS
-    Image.MAX_IMAGE_PIXELS = max_pixels
+    # Pillow's own check warns between its limit and twice it (a multi-line warning on
+    # stderr); the size is checked here instead, from the header, before anything decodes.
+    Image.MAX_IMAGE_PIXELS = None
     try:
         src = io.BytesIO(data) if data is not None else path
         with Image.open(src) as im:
             if im.width * im.height > max_pixels:
                 raise Image.DecompressionBombError(f"{im.width} x {im.height} pixels")
-            im.load()
-            upright = ImageOps.exif_transpose(im)
-            return _to_rgb8(upright)
+            yield im
+    except PhotoError:
+        raise
     except FileNotFoundError:
         raise PhotoError(f"photo {path} does not exist") from None
     except Image.DecompressionBombError as exc:
@@ -68,26 +73,159 @@ def read_rgb(
         raise PhotoError(
             f"photo {path.name} cannot be decoded ({what} in a format Pillow reads)"
         ) from None
-    except (OSError, SyntaxError, ValueError) as exc:
+    except MemoryError:
+        raise PhotoError(
+            f"photo {path.name} cannot be decoded (not enough free memory for its pixels)"
+        ) from None
+    except (OSError, SyntaxError, ValueError, EOFError) as exc:
         raise PhotoError(f"photo {path.name} cannot be decoded ({exc})") from None
     finally:
         Image.MAX_IMAGE_PIXELS = old_limit
 
 
-#: EXIF orientation -> numpy steps that make the pixels upright (what PIL's exif_transpose does).
+def _note_pages(im: Image.Image, path: Path, notes: list[str] | None) -> None:
+    pages = getattr(im, "n_frames", 1) if im.format not in _NOT_PAGES else 1
+    if notes is not None and pages > 1:
+        notes.append(f"photo {path.name} has {pages} pages; only page 1 is used")
+
+
+def read_rgb(
+    path: str | Path,
+    *,
+    max_pixels: int = DEFAULT_MAX_PIXELS,
+    data: bytes | None = None,
+    notes: list[str] | None = None,
+) -> np.ndarray:
+    """Read an image file as an (H, W, 3) uint8 RGB array with EXIF orientation applied.
+
+    Args:
+        path: the file (named in error messages even when ``data`` is given).
+        max_pixels: decompression-bomb limit; larger images are refused.
+        data: the file's bytes, if already read (saves a second read when hashing).
+        notes: when given, things worth saying about the file are appended (e.g. that it
+            has several pages and only the first is used).
+
+    Raises:
+        PhotoError: the file is missing, unreadable, truncated or too large.
+    """
+    path = Path(path)
+    with _opened(path, data, max_pixels) as im:
+        _note_pages(im, path, notes)
+        orientation = im.getexif().get(0x0112, 1)
+        im.load()
+        pixels = _to_array8(im)
+        im.close()  # frees Pillow's pixels now (leaving the block only closes the file)
+    _give_back(pixels)
+    return _as_rgb(_upright(pixels, orientation))
+
+
+def read_rgb_reduced(
+    path: str | Path,
+    *,
+    data: bytes,
+    scale: float,
+    max_pixels: int = DEFAULT_MAX_PIXELS,
+    notes: list[str] | None = None,
+) -> tuple[np.ndarray, tuple[int, int, float] | None]:
+    """A JPEG decoded at reduced size (the decoder's 1/2, 1/4 or 1/8 modes) when the caller
+    needs at most ``scale`` of its width; any other file as :func:`read_rgb` gives it.
+
+    Returns:
+        (rgb, None) at full size, or (rgb, (full_height, full_width, k)) when reduced, k
+        being full-size pixels per decoded pixel (upright sizes: EXIF orientation applied).
+
+    Raises:
+        PhotoError: as :func:`read_rgb` (also for a truncated JPEG or a bomb's header).
+    """
+    path = Path(path)
+    if data[:2] != b"\xff\xd8" or not scale < 1:
+        return read_rgb(path, data=data, max_pixels=max_pixels, notes=notes), None
+    with _opened(path, data, max_pixels) as im:
+        _note_pages(im, path, notes)
+        w0, h0 = im.size
+        orientation = im.getexif().get(0x0112, 1)
+        im.draft("RGB", (max(1, int(w0 * scale)), max(1, int(h0 * scale))))
+        im.load()
+        pixels = _to_array8(im)
+        im.close()
+    _give_back(pixels)
+    rgb = _as_rgb(_upright(pixels, orientation))
+    full_w, full_h = (h0, w0) if orientation in (5, 6, 7, 8) else (w0, h0)
+    if rgb.shape[1] >= full_w:  # the decoder did not reduce
+        return rgb, None
+    return rgb, (full_h, full_w, full_w / rgb.shape[1])
+
+
+#: After decoding a frame this large (pixels), the freed memory is handed back at once.
+_GIVE_BACK_PIXELS = 16_000_000
+
+
+def _give_back(pixels: np.ndarray) -> None:
+    """Return the memory Pillow freed to the system (glibc's malloc_trim) after a large frame.
+
+    Pillow allocates a decoded image row by row; once the process has freed a few large
+    numpy buffers, glibc keeps such freed rows in its heaps instead of returning them, so a
+    large frame's decoded image would stay resident beside its RGB copy, and one more per
+    decoding thread. Without glibc nothing happens.
+    """
+    if pixels.shape[0] * pixels.shape[1] < _GIVE_BACK_PIXELS:
+        return
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
+
+
+def image_pixels(path: str | Path) -> int | None:
+    """Width x height from the file's header (nothing decoded), or None if it cannot be read."""
+    old_limit = Image.MAX_IMAGE_PIXELS
+    Image.MAX_IMAGE_PIXELS = None
+    try:
+        with Image.open(path) as im:
+            return int(im.width) * int(im.height)
+    except Exception:  # the decode that follows words the error
+        return None
+    finally:
+        Image.MAX_IMAGE_PIXELS = old_limit
+
+
+#: EXIF orientation -> numpy steps that make the pixels upright (what PIL's exif_transpose does);
+#: they work on (H, W) grey and (H, W, 3) colour arrays alike and return views.
 _ORIENT = {
     2: lambda a: a[:, ::-1],
     3: lambda a: a[::-1, ::-1],
     4: lambda a: a[::-1],
-    5: lambda a: a.transpose(1, 0, 2),
+    5: lambda a: a.swapaxes(0, 1),
     6: lambda a: np.rot90(a, -1),
-    7: lambda a: a[::-1, ::-1].transpose(1, 0, 2),
+    7: lambda a: a[::-1, ::-1].swapaxes(0, 1),
     8: lambda a: np.rot90(a, 1),
 }
 
 
+def _upright(a: np.ndarray, orientation: int) -> np.ndarray:
+    step = _ORIENT.get(orientation)
+    return a if step is None else step(a)
+
+
+def _as_rgb(a: np.ndarray) -> np.ndarray:
+    """(H, W, 3) uint8, C-contiguous and writable: grey is expanded, a view is copied."""
+    if a.ndim == 2:
+        out = np.empty((*a.shape, 3), dtype=np.uint8)
+        out[...] = a[..., None]
+        return out
+    if a.flags.c_contiguous and a.flags.writeable:
+        return a
+    return np.ascontiguousarray(a)
+
+
 def read_rgb_fast(
-    path: str | Path, *, data: bytes, max_pixels: int = DEFAULT_MAX_PIXELS
+    path: str | Path,
+    *,
+    data: bytes,
+    max_pixels: int = DEFAULT_MAX_PIXELS,
+    notes: list[str] | None = None,
 ) -> np.ndarray:
     """:func:`read_rgb` with OpenCV's JPEG decoder for complete 8-bit colour JPEGs.
 
@@ -97,8 +235,6 @@ def read_rgb_fast(
     end-of-image marker, a decoder failure) goes through :func:`read_rgb`, so errors
     and the colour rule stay the same.
     """
-    import io
-
     if data[:2] == b"\xff\xd8" and data.rstrip(b"\x00")[-2:] == b"\xff\xd9":
         old_limit = Image.MAX_IMAGE_PIXELS
         Image.MAX_IMAGE_PIXELS = None  # the size is checked below against max_pixels
@@ -124,7 +260,7 @@ def read_rgb_fast(
                 )  # in place: one frame-sized buffer
                 step = _ORIENT.get(orientation)
                 return rgb if step is None else np.ascontiguousarray(step(rgb))
-    return read_rgb(path, data=data, max_pixels=max_pixels)
+    return read_rgb(path, data=data, max_pixels=max_pixels, notes=notes)
 
 
 def _size(path: Path) -> int:
@@ -134,14 +270,36 @@ def _size(path: Path) -> int:
         return -1
 
 
-def _to_rgb8(im: Image.Image) -> np.ndarray:
-    if im.mode in ("I;16", "I;16B", "I;16L", "I"):
-        arr = np.asarray(im, dtype=np.float64)
-        arr = np.clip(np.round(arr / 257.0), 0, 255).astype(np.uint8)
-        return np.repeat(arr[..., None], 3, axis=2)
-    if im.mode != "RGB":
-        im = im.convert("RGB")
-    return np.array(im, dtype=np.uint8)
+def _to_array8(im: Image.Image) -> np.ndarray:
+    """The loaded image as uint8: (H, W) for grey (8-bit, or 16/32-bit integer scaled by
+    round(v / 257)), else (H, W, 3) RGB; converted strip by strip (see the module docstring)."""
+    w, h = im.size
+    rows = max(1, _STRIP_PIXELS // max(w, 1))
+    whole = rows >= h
+
+    def strips() -> Iterator[tuple[int, Image.Image]]:
+        if whole:
+            yield 0, im
+            return
+        for y0 in range(0, h, rows):
+            yield y0, im.crop((0, y0, w, min(h, y0 + rows)))
+
+    if im.mode in _INTEGER_GREY or im.mode == "L":
+        out = np.empty((h, w), dtype=np.uint8)
+        for y0, part in strips():
+            a = np.asarray(part)
+            if im.mode != "L":  # round(v / 257) exactly: (v + 128) // 257 for integers
+                wide = a.astype(np.int64 if im.mode == "I" else np.uint32)
+                wide += 128
+                wide //= 257
+                a = np.clip(wide, 0, 255)
+            out[y0 : y0 + a.shape[0]] = a
+        return out
+    out = np.empty((h, w, 3), dtype=np.uint8)
+    for y0, part in strips():
+        a = np.asarray(part if part.mode == "RGB" else part.convert("RGB"))
+        out[y0 : y0 + a.shape[0]] = a
+    return out
 
 
 def list_images(paths: list[Path]) -> list[Path]:
@@ -149,21 +307,31 @@ def list_images(paths: list[Path]) -> list[Path]:
     return [p for p, _ in find_images(paths)]
 
 
-def find_images(paths: list[Path]) -> list[tuple[Path, Path | None]]:
+def find_images(
+    paths: list[Path], *, skipped: list[Path] | None = None
+) -> list[tuple[Path, Path | None]]:
     """Image files under the given files and folders, each with the folder it was found in.
 
     Folders are searched recursively in sorted order; symbolic links to folders are not
     followed (no loops). A file given directly has no folder (None). Suffixes are matched
-    case-insensitively against IMAGE_SUFFIXES; other files in a folder are ignored.
+    case-insensitively against IMAGE_SUFFIXES; other files in a folder are left out, and
+    listed in ``skipped`` when it is given (hidden files, whose names start with a dot,
+    are not listed).
     """
     out: list[tuple[Path, Path | None]] = []
     for p in paths:
         p = Path(p)
         if p.is_dir():
-            found = sorted(
-                q for q in p.rglob("*") if q.suffix.lower() in IMAGE_SUFFIXES and q.is_file()
-            )
-            out.extend((q, p) for q in found)
+            found, other = [], []
+            for q in p.rglob("*"):
+                if q.suffix.lower() in IMAGE_SUFFIXES:
+                    if q.is_file():
+                        found.append(q)
+                elif skipped is not None and not q.name.startswith(".") and q.is_file():
+                    other.append(q)
+            out.extend((q, p) for q in sorted(found))
+            if skipped is not None:
+                skipped.extend(sorted(other))
         elif p.is_file():
             out.append((p, None))
         else:

@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass, field
 
 import numpy as np
+
+from trainkit.core.jsonsafe import dumps
 
 #: Overlay tint of flagged cells, from the threshold to probability 1: one blue hue going from
 #: light to dark (stops of ColorBrewer's sequential "Blues" scheme, values from memory). A
@@ -75,7 +76,8 @@ class CrackMap:
 
     @property
     def familiarity_score(self) -> float | None:
-        """The frame's familiarity score: the median of its cells' (None without familiarity)."""
+        """The frame's familiarity score: the median of its cells' (None without familiarity;
+        NaN when the model gave non-finite familiarity, and then :attr:`unfamiliar` is True)."""
         return None if self.familiarity is None else float(np.median(self.familiarity))
 
     @property
@@ -151,8 +153,8 @@ class CrackMap:
         return d
 
     def to_json(self) -> str:
-        """The map as JSON text (see :meth:`to_dict`)."""
-        return json.dumps(self.to_dict())
+        """The map as JSON text (see :meth:`to_dict`); a value that is not finite is null."""
+        return dumps(self.to_dict())
 
     def overlay(self, rgb: np.ndarray, *, show_all: bool = False):
         """A picture read at a glance; returns a PIL image.

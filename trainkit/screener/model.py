@@ -16,13 +16,22 @@ where cells overlap.
 A cascade model (contract 3) runs its cheap first stage on every cell and the main
 network only on the cells that stage passes, inside the one ONNX call; its third output
 says which cells reached the main network (:attr:`CrackMap.reached`).
+
+Memory: a cut frame keeps the (resampled) frame and the cell grid, and patches are cut batch
+by batch as the model asks for them, so no frame-sized array of patches is ever made; a
+large frame is resampled in horizontal strips. Outputs are checked: probabilities that are
+not finite, outside [0, 1] or do not sum to 1 are refused (a broken model must not pass a
+frame as clean), and a frame whose familiarity cannot be computed is said to be unfamiliar.
 """
 
 from __future__ import annotations
 
+import math
 import threading
+from collections import deque
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -47,6 +56,15 @@ __all__ = ["Screener", "CrackMap", "ScreenerError", "FramePatches", "CONTRACT_VE
 
 #: Contract versions this module reads (metadata key ``trainkit.format``).
 CONTRACT_VERSIONS = READABLE_VERSIONS
+#: Largest frame, in pixels, that :meth:`Screener.cut` resamples to (a scale far from the
+#: model's could otherwise ask for an image of any size).
+MAX_RESAMPLED_PIXELS = 160_000_000
+#: Frames above this many pixels are resampled in horizontal strips of about this size
+#: (Pillow's whole-frame copy takes 4 bytes a pixel); smaller ones in one piece.
+RESAMPLE_STRIP_PIXELS = 8_000_000
+#: How far a probability row may sum from 1 (a softmax sums to 1 within float rounding;
+#: an int8 model's quantized output within about 0.01).
+PROBABILITY_SUM_TOLERANCE = 0.05
 
 
 class ScreenerError(ValueError):
@@ -63,13 +81,74 @@ def _mark_worker() -> None:
 
 @dataclass
 class FramePatches:
-    """A frame cut into model-sized patches, ready for :meth:`Screener.crack_map_from_patches`."""
+    """A frame cut into model-sized cells, ready for :meth:`Screener.crack_map_from_patches`.
 
-    patches: np.ndarray
+    The patches are cut on demand (:meth:`batch`), a few at a time, from the (resampled)
+    frame: a large frame never has a second, frame-sized array of patches beside it.
+    :attr:`patches` gives them all at once, for callers that want the array.
+    """
+
     boxes: np.ndarray
     height: int
     width: int
     gsd_mm: float | None
+    source: np.ndarray = field(repr=False)
+    starts: tuple[list[int], list[int]] = field(repr=False)
+    size: int = 0
+
+    def __len__(self) -> int:
+        return len(self.starts[0]) * len(self.starts[1])
+
+    def batch(self, start: int, stop: int) -> np.ndarray:
+        """Patches ``start`` to ``stop`` (row-major cell order) as uint8 (n, S, S, 3)."""
+        ys, xs = self.starts
+        s, src = self.size, self.source
+        stop = min(stop, len(self))
+        out = np.empty((max(0, stop - start), s, s, 3), dtype=np.uint8)
+        for k in range(start, stop):
+            y0, x0 = ys[k // len(xs)], xs[k % len(xs)]
+            p = src[y0 : y0 + s, x0 : x0 + s]
+            if p.shape[:2] != (s, s):  # a frame smaller than one cell: edge-padded
+                p = np.pad(p, ((0, s - p.shape[0]), (0, s - p.shape[1]), (0, 0)), mode="edge")
+            out[k - start] = p
+        return out
+
+    @property
+    def patches(self) -> np.ndarray:
+        """Every patch, (cells, S, S, 3) uint8 (a new array as large as the frame's cells)."""
+        return self.batch(0, len(self))
+
+
+def _resample(rgb: np.ndarray, nw: int, nh: int) -> np.ndarray:
+    """``rgb`` resized to (nh, nw) with Pillow's bilinear filter.
+
+    Frames above :data:`RESAMPLE_STRIP_PIXELS` are resized in horizontal strips, each from
+    the source rows its filter reaches (Pillow's ``box`` argument), so only a strip is ever
+    copied into Pillow; the strips agree with one whole-frame resize up to one grey level
+    (the filter's row positions are rounded differently).
+    """
+    from PIL import Image
+
+    h, w = rgb.shape[:2]
+    if h * w <= RESAMPLE_STRIP_PIXELS and nh * nw <= RESAMPLE_STRIP_PIXELS:
+        return np.asarray(
+            Image.fromarray(np.ascontiguousarray(rgb)).resize((nw, nh), Image.BILINEAR)
+        )
+    sy = h / nh  # source rows per output row
+    reach = (
+        max(sy, 1.0) + 2
+    )  # the bilinear filter's support (1, scaled when shrinking) and a margin
+    rows = max(1, RESAMPLE_STRIP_PIXELS // max(nw, w))
+    out = np.empty((nh, nw, 3), dtype=np.uint8)
+    for r0 in range(0, nh, rows):
+        r1 = min(nh, r0 + rows)
+        y0, y1 = r0 * sy, r1 * sy
+        a, b = max(0, math.floor(y0 - reach)), min(h, math.ceil(y1 + reach) + 1)
+        strip = Image.fromarray(np.ascontiguousarray(rgb[a:b]))
+        out[r0:r1] = np.asarray(
+            strip.resize((nw, r1 - r0), Image.BILINEAR, box=(0, y0 - a, w, y1 - a))
+        )
+    return out
 
 
 class Screener:
@@ -130,6 +209,13 @@ class Screener:
                 f"{self.path.name}: expected one uint8 input named {INPUT_NAME!r}, got "
                 f"{[(i.name, i.type) for i in inputs]}"
             )
+        shape = inputs[0].shape
+        if len(shape) == 4 and all(isinstance(d, int) for d in shape[1:3]):
+            if tuple(shape[1:3]) != (self.info.patch_px, self.info.patch_px):
+                raise ScreenerError(
+                    f"{self.path.name}: metadata patch_px is {self.info.patch_px} but the graph's "
+                    f"input is {shape[1]} x {shape[2]} pixels; they must agree"
+                )
         want = (
             [OUTPUT_NAME]
             + ([FAMILIARITY_NAME] if self.info.familiarity else [])
@@ -141,6 +227,12 @@ class Screener:
                 f"got {[o.name for o in outputs]}"
             )
         self._outputs = want
+        width = outputs[0].shape[-1] if outputs[0].shape else None
+        if isinstance(width, int) and width != len(self.info.class_names):
+            raise ScreenerError(
+                f"{self.path.name}: metadata has {len(self.info.class_names)} class names but "
+                f"the output {OUTPUT_NAME!r} has {width} columns; they must agree"
+            )
         #: Things to say once about this model (e.g. what an older contract lacks).
         self.notes: list[str] = []
         if not self.info.familiarity:
@@ -198,26 +290,49 @@ class Screener:
     def predict_outputs(self, patches: np.ndarray, *, batch_size: int = 8) -> dict[str, np.ndarray]:
         """Every output of the model by name, for uint8 patches (N, S, S, 3), in input order:
         ``probabilities``, and ``familiarity`` (contract 2 on) and ``reached`` (cascades,
-        contract 3) when the model has them."""
+        contract 3) when the model has them.
+
+        Raises:
+            ScreenerError: patches of the wrong shape or type, or outputs that are not what
+                the contract says (probabilities not finite, outside [0, 1] or not summing
+                to 1; a row count or column count unlike the input's and the class set's).
+        """
         patches = np.asarray(patches)
         s = self.patch_px
         if patches.dtype != np.uint8 or patches.ndim != 4 or patches.shape[1:] != (s, s, 3):
             raise ScreenerError(
                 f"expected uint8 patches of shape (n, {s}, {s}, 3), got {patches.dtype} {patches.shape}"
             )
+        return self._run(len(patches), lambda a, b: patches[a:b], batch_size)
+
+    def _run(
+        self, n: int, take: Callable[[int, int], np.ndarray], batch_size: int = 8
+    ) -> dict[str, np.ndarray]:
+        """Run ``take(a, b)`` (patches a to b) through the model in batches, in input order.
+
+        Batches are cut only as workers become free (at most two per worker waiting), so
+        patches never pile up in memory ahead of the model.
+        """
         if getattr(self, "_closed", False):
             raise ScreenerError("this Screener was closed; create a new one")
         parallel = self._pool is not None and not getattr(_local, "worker", False)
         if parallel:  # small inputs still use every core: at most ceil(n / workers) per batch
-            batch_size = max(1, min(batch_size, -(-len(patches) // self.workers)))
-        chunks = [patches[i : i + batch_size] for i in range(0, len(patches), batch_size)]
+            batch_size = max(1, min(batch_size, -(-n // self.workers)))
+        spans = [(i, min(n, i + batch_size)) for i in range(0, n, batch_size)]
 
-        def run(chunk: np.ndarray) -> list[np.ndarray]:
-            return self._session.run(self._outputs, {INPUT_NAME: chunk})
+        def run(span: tuple[int, int]) -> list[np.ndarray]:
+            chunk = take(*span)
+            return self._checked(self._session.run(self._outputs, {INPUT_NAME: chunk}), len(chunk))
 
-        outs = list(
-            self._pool.map(run, chunks) if parallel and len(chunks) > 1 else map(run, chunks)
-        )
+        if parallel and len(spans) > 1:
+            outs, waiting, todo = [], deque(), iter(spans)
+            for span in todo:
+                waiting.append(self._pool.submit(run, span))
+                if len(waiting) >= 2 * self.workers:
+                    outs.append(waiting.popleft().result())
+            outs.extend(f.result() for f in waiting)
+        else:
+            outs = [run(span) for span in spans]
         empty = {
             OUTPUT_NAME: np.zeros((0, len(self.class_names)), dtype=np.float32),
             FAMILIARITY_NAME: np.zeros(0, np.float32),
@@ -227,6 +342,38 @@ class Screener:
             name: np.concatenate([empty[name], *(o[i] for o in outs)])
             for i, name in enumerate(self._outputs)
         }
+
+    def _checked(self, outs: list[np.ndarray], n: int) -> list[np.ndarray]:
+        """The outputs of one batch of ``n`` patches, refused unless they follow the contract."""
+        probs = np.asarray(outs[0])
+        c = len(self.class_names)
+        if probs.shape != (n, c):
+            raise ScreenerError(
+                f"{self.path.name} gave {OUTPUT_NAME} of shape {probs.shape} for {n} patches; "
+                f"the contract says ({n}, {c}), one column per class"
+            )
+        bad = None
+        if not np.all(np.isfinite(probs)):
+            bad = f"non-finite values (NaN or infinity) for {int((~np.isfinite(probs)).any(1).sum())} of {n} patches"
+        elif probs.min() < -1e-4 or probs.max() > 1 + 1e-4:
+            bad = f"values outside [0, 1] (from {probs.min():.4g} to {probs.max():.4g})"
+        else:
+            sums = probs.sum(axis=1, dtype=np.float64)
+            worst = float(np.abs(sums - 1).max()) if n else 0.0
+            if worst > PROBABILITY_SUM_TOLERANCE:
+                bad = f"rows that do not sum to 1 (off by up to {worst:.3g})"
+        if bad:
+            raise ScreenerError(
+                f"{self.path.name} gave {OUTPUT_NAME} with {bad}: the model is broken, not "
+                "this frame; export it again"
+            )
+        for name, out in zip(self._outputs[1:], outs[1:], strict=True):
+            if np.asarray(out).shape != (n,):
+                raise ScreenerError(
+                    f"{self.path.name} gave {name} of shape {np.asarray(out).shape} for {n} "
+                    f"patches; the contract says ({n},)"
+                )
+        return outs
 
     def cut(
         self,
@@ -262,29 +409,31 @@ class Screener:
         factor = 1.0 / pixel_scale  # model pixels per full-size frame pixel
         work = rgb
         if gsd_mm is not None:
-            if not gsd_mm > 0:
-                raise ScreenerError(f"gsd_mm must be positive, got {gsd_mm}")
+            try:
+                scale = float(gsd_mm)
+            except (TypeError, ValueError):
+                scale = math.nan
+            if not (math.isfinite(scale) and scale > 0):
+                raise ScreenerError(f"gsd_mm must be a finite number above 0, got {gsd_mm}")
+            gsd_mm = scale
             if self.patch_mm:
                 # model pixels per pixel of rgb, whose own scale is gsd_mm * pixel_scale
                 step = s / (self.patch_mm / (gsd_mm * pixel_scale))
                 factor = step / pixel_scale
                 if abs(step - 1.0) > 1e-3:
-                    from PIL import Image
-
                     nw, nh = max(1, round(w * step)), max(1, round(h * step))
-                    work = np.asarray(Image.fromarray(rgb).resize((nw, nh), Image.BILINEAR))
+                    if nw * nh > MAX_RESAMPLED_PIXELS:
+                        raise ScreenerError(
+                            f"a scale of {gsd_mm:g} mm/px with the model's patch of "
+                            f"{self.patch_mm:g} mm would resample this frame to {nw} x {nh} "
+                            f"pixels, above the limit of {MAX_RESAMPLED_PIXELS}: check --gsd-mm"
+                        )
+                    work = _resample(rgb, nw, nh)
         wh, ww = work.shape[:2]
         ys, xs = axis_starts(wh, s, stride), axis_starts(ww, s, stride)
-        patches = np.empty((len(ys) * len(xs), s, s, 3), dtype=np.uint8)
         boxes = np.empty((len(ys), len(xs), 4), dtype=np.int64)
-        k = 0
         for r, y0 in enumerate(ys):
             for c, x0 in enumerate(xs):
-                p = work[y0 : y0 + s, x0 : x0 + s]
-                if p.shape[:2] != (s, s):
-                    p = np.pad(p, ((0, s - p.shape[0]), (0, s - p.shape[1]), (0, 0)), mode="edge")
-                patches[k] = p
-                k += 1
                 x1, y1 = min(x0 + s, ww), min(y0 + s, wh)
                 boxes[r, c] = [
                     int(round(x0 / factor)),
@@ -293,13 +442,19 @@ class Screener:
                     min(full_h, int(round(y1 / factor))),
                 ]
         return FramePatches(
-            patches=patches, boxes=boxes, height=full_h, width=full_w, gsd_mm=gsd_mm
+            boxes=boxes,
+            height=full_h,
+            width=full_w,
+            gsd_mm=gsd_mm,
+            source=work,
+            starts=(ys, xs),
+            size=s,
         )
 
     def crack_map_from_patches(self, fp: FramePatches) -> CrackMap:
         """Run the model on a cut frame (see :meth:`cut`) and build its crack map."""
         rows, cols = fp.boxes.shape[:2]
-        outs = self.predict_outputs(fp.patches)
+        outs = self._run(len(fp), fp.batch)
         probs, fam = outs[OUTPUT_NAME].reshape(rows, cols, -1), outs.get(FAMILIARITY_NAME)
         reached = outs.get(REACHED_NAME)
         screen = screening_probability(probs)
@@ -309,7 +464,14 @@ class Screener:
         if familiarity is not None:
             limit = float(self.info.familiarity["threshold"])
             score, unfamiliar = frame_score(familiarity, limit)
-            if unfamiliar:
+            if not math.isfinite(score):  # cannot be vouched for: never silently familiar
+                unfamiliar = True
+                warnings.append(
+                    "the familiarity of this frame could not be computed (the model gave "
+                    "non-finite values): treat it as unlike the training data; check this job "
+                    "with `trainkit sample` and `trainkit verify`"
+                )
+            elif unfamiliar:
                 warnings.append(
                     f"this frame looks unlike the model's training data (familiarity score "
                     f"{score:.1f} above {limit:.1f}): its recall figures do not apply here; "

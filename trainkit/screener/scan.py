@@ -15,6 +15,23 @@ The summary of a run describes the whole output for the frames given, not only t
 run's share: a resumed scan still reports (and exits 1 for) frames recorded as
 unreadable by an earlier run (:func:`recorded_line`, :func:`exit_code`).
 
+Frames are recorded by absolute path (older scans stored the path as given; those lines
+are read relative to the working folder recorded in ``scan.json``, else the current one).
+A frame that cannot be read, decoded or cut is recorded as unreadable with the reason and
+named through ``report``, on every engine and option, and the scan goes on; nothing is
+written (not even the output folder) until the model has loaded. A model whose outputs
+break the contract (NaN probabilities, say) stops the scan instead: no frame is recorded as
+scored by it. A failed write (a full disk, say) stops the scan with the path named: every
+finished line stays.
+
+Memory: a frame is decoded with at most :data:`SCAN_MAX_PIXELS` pixels (larger ones are
+recorded as too large; ``max_pixels`` raises the limit), its cells are cut batch by batch
+as the model runs, and frames are decoded ahead only while the frames in flight hold at
+most :data:`DECODE_AHEAD_PIXELS` pixels (one frame always goes). Overlays of frames above
+:data:`OVERLAY_MAX_PIXELS` are drawn on the frame shrunk by a whole factor (recorded as
+``overlay_scale``). A scan at the default limit stays under 1.5 GB of memory whatever
+the frames' format.
+
 Engines: ``local`` overlaps decoding and cutting of the next frames (a thread
 pool; Pillow releases the GIL while decoding) with inference on the current one,
 or with ``workers > 1`` runs one process per worker; ``dask`` sends frames to the
@@ -26,9 +43,11 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import multiprocessing
 import os
 import time
+from collections import Counter, deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
@@ -36,10 +55,18 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.cores import usable_cores
-from trainkit.core.decode import PhotoError, find_images, read_rgb_fast
+from trainkit.core.decode import (
+    IMAGE_SUFFIXES,
+    PhotoError,
+    find_images,
+    image_pixels,
+    read_rgb_fast,
+    read_rgb_reduced,
+)
 from trainkit.core.experiment import Experiment
-from trainkit.core.fsutil import atomic_path, atomic_write_json, atomic_write_text
-from trainkit.screener.model import FramePatches, Screener
+from trainkit.core.fsutil import atomic_path, atomic_write_text
+from trainkit.core.jsonsafe import dumps
+from trainkit.screener.model import FramePatches, Screener, ScreenerError
 
 __all__ = [
     "scan_frames",
@@ -52,6 +79,9 @@ __all__ = [
     "OVERLAY_CHOICES",
     "ENGINES",
     "EXIT_UNREADABLE",
+    "ScanError",
+    "SCAN_MAX_PIXELS",
+    "frame_path",
 ]
 
 FRAMES_FILE = "frames.jsonl"
@@ -64,12 +94,30 @@ ENGINES = ("local", "dask")
 
 #: Exit code while any frame of the inputs is recorded as unreadable (the CLI's "skipped" code).
 EXIT_UNREADABLE = 1
+#: Largest frame the scan decodes, in pixels. Decoding takes up to 7 bytes a pixel at its
+#: peak (Pillow holds 8-bit colour in 4 bytes a pixel while it is copied out; OpenCV's JPEG
+#: decoder about 6), so this keeps the scan under 1.5 GB. Lower than the kit's tiling limit
+#: (250 Mpx, a 16-bit grey or JPEG frame of that size would still fit, an 8-bit colour PNG
+#: not); ``max_pixels`` (``--max-megapixels``) raises it.
+SCAN_MAX_PIXELS = 160_000_000
+#: Frames decoded ahead of the model may hold at most this many pixels between them
+#: (about 150 MB of 8-bit RGB); the next frame always goes once nothing else is held.
+DECODE_AHEAD_PIXELS = 50_000_000
+#: Overlays of larger frames are drawn on the frame shrunk by a whole factor to fit.
+OVERLAY_MAX_PIXELS = 25_000_000
 
 
-def read_latest(path: Path) -> dict[str, dict]:
-    """Frame path -> ``{"sha256", "status", "flagged"}`` of its LAST line in frames.jsonl.
+class ScanError(ScreenerError):
+    """The scan cannot go on (an output cannot be written, an option is out of range)."""
 
-    A torn last line (no newline, or not JSON) is truncated away in place.
+
+def read_latest(path: Path, base: str | Path | None = None) -> dict[str, dict]:
+    """Absolute frame path -> ``{"sha256", "status", "flagged", ...}`` of its LAST line in
+    frames.jsonl.
+
+    A torn last line (no newline, or not JSON) is truncated away in place. Older scans
+    stored frame paths as given on the command line: those are made absolute against
+    ``base`` (the scan's recorded working folder), else against the current folder.
     """
     latest: dict[str, dict] = {}
     if not path.exists():
@@ -83,7 +131,7 @@ def read_latest(path: Path) -> dict[str, dict]:
                 rec = json.loads(raw)
             except json.JSONDecodeError:
                 break
-            latest[rec["frame"]] = _brief(rec)
+            latest[_absolute(rec["frame"], base)] = _brief(rec)
             good_bytes += len(raw)
     if good_bytes != path.stat().st_size:
         with path.open("r+b") as fh:
@@ -91,8 +139,29 @@ def read_latest(path: Path) -> dict[str, dict]:
     return latest
 
 
-def _scan_record(model: Path, screener: Screener) -> dict:
-    """Which model scanned (for the job check that may follow)."""
+def _absolute(frame: str | Path, base: str | Path | None = None) -> str:
+    return os.path.abspath(os.path.join(base, frame) if base else frame)
+
+
+def frame_path(scan_dir: str | Path, recorded: str) -> Path:
+    """The file a frames.jsonl line names: absolute as recorded, or (an older scan's
+    relative path) resolved against the working folder recorded in the scan's scan.json,
+    else against the current folder."""
+    return Path(_absolute(recorded, _working_folder(Path(scan_dir))))
+
+
+def _working_folder(out: Path) -> str | None:
+    try:
+        rec = json.loads((out / SCAN_FILE).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    folder = rec.get("working_folder") if isinstance(rec, dict) else None
+    return folder if isinstance(folder, str) else None
+
+
+def _scan_record(model: Path, screener: Screener, working_folder: str) -> dict:
+    """Which model scanned (for the job check that may follow), and the folder that older
+    relative frame paths in frames.jsonl are relative to."""
     import datetime as _dt
 
     info = screener.info
@@ -107,6 +176,7 @@ def _scan_record(model: Path, screener: Screener) -> dict:
         # job frames the model learned from (trainkit train --from): kept out of job checks
         "learned_frames": Experiment(model.parent).learned_frames(),
         "updated": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "working_folder": working_folder,
     }
 
 
@@ -118,6 +188,7 @@ def _brief(rec: dict) -> dict:
         "unfamiliar": rec.get("unfamiliar"),
         "cells": rec.get("cells"),
         "main_model_cells": rec.get("main_model_cells"),
+        "error": rec.get("error"),
     }
 
 
@@ -194,9 +265,13 @@ def exit_code(summary: dict) -> int:
 
 
 def _decode_and_cut(
-    screener: Screener, path: Path, gsd_mm: float | None
+    screener: Screener, path: Path, gsd_mm: float | None, max_pixels: int = SCAN_MAX_PIXELS
 ) -> tuple[dict, FramePatches | None, object]:
-    """Read, hash, decode and cut one frame; returns (record so far, patches or None, rgb)."""
+    """Read, hash, decode and cut one frame; returns (record so far, patches or None, rgb).
+
+    Any failure is recorded in the record (status ``error`` and the reason), never raised:
+    one bad frame does not stop a scan, whatever the engine or options.
+    """
     t0 = time.perf_counter()
     rec: dict = {"frame": str(path)}
     try:
@@ -205,56 +280,75 @@ def _decode_and_cut(
         rec.update(status="error", error=f"frame {path.name} cannot be read ({exc})")
         return rec, None, None
     rec["sha256"] = hashlib.sha256(data).hexdigest()
+    notes: list[str] = []
     try:
-        rgb, reduced = _read_for_model(screener, path, data, gsd_mm)
+        rgb, reduced = _read_for_model(screener, path, data, gsd_mm, max_pixels, notes)
+        del data
         if reduced is None:
             fp = screener.cut(rgb, gsd_mm=gsd_mm)
         else:  # decoded at reduced size: the Screener reports boxes in full-size pixels
             fp = screener.cut(rgb, gsd_mm=gsd_mm, full_size=reduced[:2])
-            rgb = None  # overlays need the full frame: decode again only if one is drawn
-    except (PhotoError, ValueError) as exc:
+        if reduced is not None or fp.source is not rgb:
+            rgb = None  # reduced or resampled: an overlay decodes the full frame again
+    except (PhotoError, ScreenerError) as exc:
         rec.update(status="error", error=str(exc))
         return rec, None, None
+    except Exception as exc:  # any other failure of one frame: recorded, the scan goes on
+        rec.update(
+            status="error",
+            error=f"frame {path.name} cannot be scanned ({type(exc).__name__}: {exc})",
+        )
+        return rec, None, None
+    if notes:
+        rec["notes"] = notes
     rec["seconds_decode"] = round(time.perf_counter() - t0, 4)
     return rec, fp, rgb
 
 
-def _read_for_model(screener: Screener, path: Path, data: bytes, gsd_mm: float | None):
+def _read_for_model(
+    screener: Screener,
+    path: Path,
+    data: bytes,
+    gsd_mm: float | None,
+    max_pixels: int,
+    notes: list[str],
+):
     """Decode a frame; a JPEG that the model will downscale at least 2x is decoded at reduced size.
 
     Returns (rgb, None) normally, or (rgb, (full_height, full_width, k)) when the JPEG
     decoder's reduced-size mode was used, k being full-size pixels per decoded pixel.
     """
-    if gsd_mm is None or not screener.patch_mm or data[:2] != b"\xff\xd8":
-        return read_rgb_fast(path, data=data), None
-    factor = screener.patch_px / (screener.patch_mm / gsd_mm)  # model px per frame px
-    if factor > 0.5:
-        return read_rgb_fast(path, data=data), None
-    import io
-
-    from PIL import Image, ImageOps
-
-    with Image.open(io.BytesIO(data)) as im:
-        w0, h0 = im.size
-        orientation = im.getexif().get(0x0112, 1)
-        im.draft("RGB", (max(1, int(w0 * factor)), max(1, int(h0 * factor))))
-        small = ImageOps.exif_transpose(im.convert("RGB"))
-    full_w, full_h = (h0, w0) if orientation in (5, 6, 7, 8) else (w0, h0)
-    if small.size[0] >= full_w:  # the decoder did not reduce
-        return np.asarray(small), None
-    return np.asarray(small), (full_h, full_w, full_w / small.size[0])
+    if gsd_mm is not None and screener.patch_mm and data[:2] == b"\xff\xd8":
+        factor = screener.patch_px / (screener.patch_mm / gsd_mm)  # model px per frame px
+        if factor <= 0.5:
+            return read_rgb_reduced(
+                path, data=data, scale=factor, max_pixels=max_pixels, notes=notes
+            )
+    return read_rgb_fast(path, data=data, max_pixels=max_pixels, notes=notes), None
 
 
 def _finish(
-    screener: Screener, rec: dict, fp: FramePatches, rgb, overlays: str, overlay_dir: Path | None
+    screener: Screener, rec: dict, frame: list, overlays: str, overlay_dir: Path | None
 ) -> dict:
+    """Score a cut frame and complete its record (and overlay).
+
+    ``frame`` is ``[patches, rgb]`` from :func:`_decode_and_cut`; it is emptied here, so that
+    the cut frame is freed once the model has scored it (before an overlay may decode the
+    frame again).
+    """
+    fp, rgb = frame
+    frame.clear()
     t0 = time.perf_counter()
+    # A model whose outputs break the contract (NaN, say) raises here and stops the scan:
+    # the fault is the model's, and no frame may be recorded as scored by it.
     cm = screener.crack_map_from_patches(fp)
+    width, height = fp.width, fp.height
+    del fp  # the (resampled) frame is not needed any more
     cells = cm.flagged_cells()
     rec.update(
         status="ok",
-        width=fp.width,
-        height=fp.height,
+        width=width,
+        height=height,
         flagged=bool(cells),
         max_probability=round(float(cm.probabilities.max()), 4),
         flagged_cells=len(cells),
@@ -276,31 +370,106 @@ def _finish(
         seconds_model=round(time.perf_counter() - t0, 4),
     )
     if overlay_dir is not None and (overlays == "all" or (overlays == "flagged" and cells)):
-        if rgb is None:
-            rgb = read_rgb_fast(Path(rec["frame"]), data=Path(rec["frame"]).read_bytes())
-        name = f"{Path(rec['frame']).stem}-{rec['sha256'][:8]}-overlay.jpg"
-        with atomic_path(overlay_dir / name) as tmp:
-            cm.overlay(rgb).save(tmp, quality=88)
-        rec["overlay"] = str(overlay_dir / name)
+        _write_overlay(rec, cm, rgb, overlay_dir)
     return rec
 
 
+def _write_overlay(rec: dict, cm, rgb, overlay_dir: Path) -> None:
+    """Draw and write the frame's overlay (shrunk when the frame is large, see
+    :data:`OVERLAY_MAX_PIXELS`); a frame that cannot be read again gets a warning instead."""
+    frame = Path(rec["frame"])
+    if rgb is None:
+        try:
+            data = frame.read_bytes()
+            if hashlib.sha256(data).hexdigest() != rec["sha256"]:
+                raise PhotoError(f"photo {frame.name} changed while it was scanned")
+            rgb = read_rgb_fast(frame, data=data, max_pixels=rec["width"] * rec["height"])
+        except (OSError, PhotoError) as exc:
+            rec["warnings"] = [*rec["warnings"], f"no overlay drawn ({exc})"]
+            return
+    h, w = rgb.shape[:2]
+    k = math.ceil(math.sqrt(h * w / OVERLAY_MAX_PIXELS)) if h * w > OVERLAY_MAX_PIXELS else 1
+    if k > 1:
+        import dataclasses
+
+        edges = np.concatenate([cm.boxes[..., :2] // k, -(-cm.boxes[..., 2:] // k)], axis=-1)
+        cm, rgb = dataclasses.replace(cm, boxes=edges), _shrink(rgb, k)
+        rec["overlay_scale"] = k
+    picture = cm.overlay(rgb)
+    del rgb
+    name = f"{frame.stem}-{rec['sha256'][:8]}-overlay.jpg"
+    with _writing(overlay_dir / name), atomic_path(overlay_dir / name) as tmp:
+        picture.save(tmp, quality=88)
+    rec["overlay"] = _absolute(overlay_dir / name)
+
+
+def _shrink(rgb: np.ndarray, k: int) -> np.ndarray:
+    """``rgb`` made k times smaller by averaging k x k blocks (Pillow's ``reduce``), in
+    strips of whole blocks, so only a strip is ever copied into Pillow."""
+    from PIL import Image
+
+    h, w = rgb.shape[:2]
+    rows = k * max(1, 4_000_000 // max(1, w * k))
+    parts = [
+        np.asarray(Image.fromarray(np.ascontiguousarray(rgb[y : y + rows])).reduce(k))
+        for y in range(0, h, rows)
+    ]
+    return np.concatenate(parts)
+
+
 def _scan_one(
-    screener: Screener, path: Path, gsd_mm, overlays: str, overlay_dir: Path | None
+    screener: Screener,
+    path: Path,
+    gsd_mm,
+    overlays: str,
+    overlay_dir: Path | None,
+    max_pixels: int = SCAN_MAX_PIXELS,
 ) -> dict:
-    rec, fp, rgb = _decode_and_cut(screener, path, gsd_mm)
-    if fp is None:
+    rec, *frame = _decode_and_cut(screener, path, gsd_mm, max_pixels)
+    if frame[0] is None:
         return rec
-    return _finish(screener, rec, fp, rgb, overlays, overlay_dir)
+    return _finish(screener, rec, frame, overlays, overlay_dir)
+
+
+class _Writing:
+    """Turns an OSError while writing ``path`` into a :class:`ScanError` that names it."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+
+    def __enter__(self) -> None:
+        return None
+
+    def __exit__(self, kind, exc, tb) -> None:
+        if isinstance(exc, OSError):
+            why = exc.strerror or str(exc)
+            raise ScanError(
+                f"cannot write {self.path} ({why}); the frames finished so far are kept: "
+                "free space (or fix the folder) and run the same scan again to continue"
+            ) from None
+
+
+def _writing(path: Path) -> _Writing:
+    return _Writing(path)
 
 
 # ----- engines ---------------------------------------------------------------------------
 
 
 def _local_pipelined(
-    screener: Screener, paths: list[Path], gsd_mm, overlays, overlay_dir, ahead: int = 2
+    screener: Screener,
+    paths: list[Path],
+    gsd_mm,
+    overlays,
+    overlay_dir,
+    ahead: int = 2,
+    max_pixels: int = SCAN_MAX_PIXELS,
 ) -> Iterator[dict]:
     """Decode and cut up to ``ahead`` frames in background threads while the model runs.
+
+    The frames in flight (decoding, decoded, or being scored) hold at most
+    :data:`DECODE_AHEAD_PIXELS` pixels between them by their headers; the next frame always
+    goes once nothing else is held, so large frames are taken one at a time.
 
     With several cores the decoding is queued on the Screener's own worker threads,
     between the model's batches, so no more threads run than there are cores. (Side by
@@ -311,19 +480,35 @@ def _local_pipelined(
     shared = screener.executor
     own = None if shared is not None else ThreadPoolExecutor(1, "trainkit-decode")
     pool = shared or own
+    todo = deque(paths)
+    pending: deque = deque()  # (future, pixels) in frame order
+    held = 0  # pixels of the frames submitted and not yet finished
+
+    def fill(current: int) -> None:
+        nonlocal held
+        while todo and len(pending) + (current > 0) <= ahead:
+            px = image_pixels(todo[0]) or 0
+            if held > 0 and held + px > DECODE_AHEAD_PIXELS:
+                return
+            held += px
+            p = todo.popleft()
+            pending.append((pool.submit(_decode_and_cut, screener, p, gsd_mm, max_pixels), px))
+
     try:
-        pending = []
-        it = iter(paths)
-        for p in it:
-            pending.append(pool.submit(_decode_and_cut, screener, p, gsd_mm))
-            if len(pending) > ahead:
-                break
-        while pending:
-            rec, fp, rgb = pending.pop(0).result()
-            nxt = next(it, None)
-            if nxt is not None:
-                pending.append(pool.submit(_decode_and_cut, screener, nxt, gsd_mm))
-            yield rec if fp is None else _finish(screener, rec, fp, rgb, overlays, overlay_dir)
+        while todo or pending:
+            fill(0)
+            fut, px = pending.popleft()
+            rec, *frame = fut.result()
+            del fut  # it holds the result too: the frame is freed as soon as _finish lets go
+            fill(px)  # the next frames decode while the model scores this one
+            try:
+                if frame[0] is None:
+                    yield rec
+                else:
+                    yield _finish(screener, rec, frame, overlays, overlay_dir)
+            finally:
+                frame.clear()
+                held -= px
     finally:
         if own is not None:
             own.shutdown(wait=True, cancel_futures=True)
@@ -340,13 +525,25 @@ def _worker_screener(model: str, threads: int) -> Screener:
 
 
 def _pool_task(args: tuple) -> dict:
-    model, threads, path, gsd, overlays, ov = args
+    model, threads, path, gsd, overlays, ov, max_pixels = args
     return _scan_one(
-        _worker_screener(model, threads), Path(path), gsd, overlays, Path(ov) if ov else None
+        _worker_screener(model, threads),
+        Path(path),
+        gsd,
+        overlays,
+        Path(ov) if ov else None,
+        max_pixels,
     )
 
 
-def dask_scan_task(model: str, path: str, gsd_mm, overlays: str, overlay_dir: str | None) -> dict:
+def dask_scan_task(
+    model: str,
+    path: str,
+    gsd_mm,
+    overlays: str,
+    overlay_dir: str | None,
+    max_pixels: int = SCAN_MAX_PIXELS,
+) -> dict:
     """One frame on a Dask worker (the Screener is cached per worker process)."""
     return _scan_one(
         _worker_screener(model, 1),
@@ -354,19 +551,22 @@ def dask_scan_task(model: str, path: str, gsd_mm, overlays: str, overlay_dir: st
         gsd_mm,
         overlays,
         Path(overlay_dir) if overlay_dir else None,
+        max_pixels,
     )
 
 
-def _local_pool(model, paths, gsd_mm, overlays, overlay_dir, workers) -> Iterator[dict]:
+def _local_pool(model, paths, gsd_mm, overlays, overlay_dir, workers, max_pixels) -> Iterator[dict]:
     threads = max(1, usable_cores() // workers)
     ctx = multiprocessing.get_context("forkserver")  # fork could deadlock on runtime threads
     ov = str(overlay_dir) if overlay_dir else None
-    jobs = [(str(model), threads, str(p), gsd_mm, overlays, ov) for p in paths]
+    jobs = [(str(model), threads, str(p), gsd_mm, overlays, ov, max_pixels) for p in paths]
     with ProcessPoolExecutor(workers, mp_context=ctx) as pool:
         yield from pool.map(_pool_task, jobs, chunksize=2)
 
 
-def _dask(model, paths, gsd_mm, overlays, overlay_dir, scheduler: str) -> Iterator[dict]:
+def _dask(
+    model, paths, gsd_mm, overlays, overlay_dir, scheduler: str, max_pixels: int
+) -> Iterator[dict]:
     try:
         from distributed import Client, as_completed
     except ImportError:
@@ -387,6 +587,7 @@ def _dask(model, paths, gsd_mm, overlays, overlay_dir, scheduler: str) -> Iterat
                 gsd_mm,
                 overlays,
                 ov,
+                max_pixels,
                 pure=False,
             )
             for p in paths
@@ -411,6 +612,8 @@ def scan_frames(
     engine: str = "local",
     scheduler: str | None = None,
     progress: Callable[[int, int], None] | None = None,
+    report: Callable[[str], None] | None = None,
+    max_pixels: int = SCAN_MAX_PIXELS,
 ) -> dict:
     """Scan frames into ``out_dir/frames.jsonl``, ``flagged.txt`` and overlays.
 
@@ -423,40 +626,78 @@ def scan_frames(
         overlays: "flagged" (overlay images of flagged frames), "all" or "none".
         engine: "local" or "dask" (then ``scheduler`` is the scheduler's address).
         progress: called with (done, total) after each frame.
+        report: called with one line for each thing the user should hear about: files in
+            the folders that are not photos the kit reads (one line for all), each frame
+            recorded as unreadable (by this run, or by an earlier one and unchanged since),
+            each frame's notes (e.g. only page 1 of a multi-page file is used).
+        max_pixels: frames with more pixels are recorded as too large
+            (:data:`SCAN_MAX_PIXELS`; the memory a frame takes grows with it).
 
     Returns:
         This run's counts: ``frames`` (found in the inputs), ``resumed_skip`` (unchanged since
         their last line), ``scanned``, ``flagged`` and ``errors`` (lines written by this
         run), ``cells`` and ``main_model_cells`` (of this run's frames, those the main network
         scored: the cells a cascade's first stage passed, else all), ``seconds``,
-        ``frames_per_second``; and what frames.jsonl now says about the
-        frames of the inputs (their last lines): ``recorded``, of which ``unreadable``, of
-        which ``unreadable_earlier`` (not written by this run), ``flagged_recorded``,
-        ``cells_recorded`` and ``main_model_cells_recorded``.
+        ``frames_per_second``, ``skipped_files`` (files in the folders that are not photos);
+        and what frames.jsonl now says about the frames of the inputs (their last lines):
+        ``recorded``, of which ``unreadable``, of which ``unreadable_earlier`` (not written
+        by this run), ``flagged_recorded``, ``cells_recorded`` and
+        ``main_model_cells_recorded``.
         ``unreadable`` used to be this run's ``errors``; it now counts the whole output.
+
+    Raises:
+        PhotoError: the inputs hold no image file (as ``trainkit tile`` says it).
+        ScreenerError: the model cannot be used (nothing is written then).
+        ScanError: an option is out of range, or an output cannot be written (the path is
+            named; finished lines are kept).
     """
+    say = report or (lambda _line: None)
     if overlays is True:
         overlays = "flagged"
     elif overlays is False:
         overlays = "none"
     if overlays not in OVERLAY_CHOICES:
-        raise ValueError(
+        raise ScanError(
             f"invalid overlays {overlays!r}; choose one of: {', '.join(OVERLAY_CHOICES)}"
         )
     if engine not in ENGINES:
-        raise ValueError(f"invalid engine {engine!r}; choose one of: {', '.join(ENGINES)}")
+        raise ScanError(f"invalid engine {engine!r}; choose one of: {', '.join(ENGINES)}")
     if engine == "dask" and not scheduler:
-        raise ValueError("the dask engine needs --scheduler ADDRESS (e.g. tcp://127.0.0.1:8786)")
+        raise ScanError("the dask engine needs --scheduler ADDRESS (e.g. tcp://127.0.0.1:8786)")
+    if gsd_mm is not None:
+        try:
+            gsd_mm = float(gsd_mm)
+        except (TypeError, ValueError):
+            gsd_mm = math.nan
+        if not (math.isfinite(gsd_mm) and gsd_mm > 0):
+            raise ScanError(f"gsd_mm must be a finite number above 0, got {gsd_mm}")
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    skipped: list[Path] = []
+    frames = _find_frames(inputs, out, skipped)
+    if not frames:
+        other = (
+            f" ({_plural(len(skipped), 'other file')}, e.g. {skipped[0].name})" if skipped else ""
+        )
+        raise PhotoError(f"no image files found in {', '.join(map(str, inputs))}{other}")
+    if skipped:
+        say(_skipped_line(skipped))
+    screener = Screener(model)  # validates the model before anything is written
+    working_folder = _working_folder(out) or os.getcwd()
+    with _writing(out):
+        out.mkdir(parents=True, exist_ok=True)
     overlay_dir = out / "overlays" if overlays != "none" else None
     if overlay_dir:
-        overlay_dir.mkdir(exist_ok=True)
+        with _writing(overlay_dir):
+            overlay_dir.mkdir(exist_ok=True)
     frames_path = out / FRAMES_FILE
-    latest = read_latest(frames_path)
-    frames = [p for p, _ in find_images(list(inputs))]
-    screener = Screener(model)  # validates the model before any work starts
+    latest = read_latest(frames_path, working_folder)
     todo = [p for p in frames if _needs_scan(p, latest.get(str(p)))]
+    again = set(todo)
+    for p in frames:
+        last = latest.get(str(p))
+        if p not in again and last and last["status"] != "ok":
+            why = last.get("error") or f"frame {p.name} is unreadable"
+            say(f"{why}; skipped (recorded by an earlier run)")
     written: set[str] = set()
     counts = {
         "frames": len(frames),
@@ -466,14 +707,22 @@ def scan_frames(
         "errors": 0,
         "cells": 0,
         "main_model_cells": 0,
+        "skipped_files": len(skipped),
     }
     t0 = time.perf_counter()
-    with screener, frames_path.open("a", encoding="utf-8") as fh:
+    try:
+        with _writing(frames_path):
+            fh = frames_path.open("a", encoding="utf-8")
+    except ScanError:
+        screener.close()
+        raise
+    with screener, fh:
 
         def write(rec: dict) -> None:
-            fh.write(json.dumps(rec) + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
+            with _writing(frames_path):
+                fh.write(dumps(rec) + "\n")
+                fh.flush()
+                os.fsync(fh.fileno())
             latest[rec["frame"]] = _brief(rec)
             written.add(rec["frame"])
             counts["scanned"] += 1
@@ -481,25 +730,56 @@ def scan_frames(
             counts["errors"] += rec["status"] != "ok"
             counts["cells"] += rec.get("cells") or 0
             counts["main_model_cells"] += rec.get("main_model_cells") or 0
+            if rec["status"] != "ok":
+                say(f"{rec['error']}; skipped")
+            for note in rec.get("notes", []):
+                say(note)
             if progress:
                 progress(counts["resumed_skip"] + counts["scanned"], len(frames))
 
         if engine == "dask":
-            results = _dask(model, todo, gsd_mm, overlays, overlay_dir, scheduler)
+            results = _dask(model, todo, gsd_mm, overlays, overlay_dir, scheduler, max_pixels)
         elif workers <= 1:
-            results = _local_pipelined(screener, todo, gsd_mm, overlays, overlay_dir)
+            results = _local_pipelined(
+                screener, todo, gsd_mm, overlays, overlay_dir, max_pixels=max_pixels
+            )
         else:
-            results = _local_pool(model, todo, gsd_mm, overlays, overlay_dir, workers)
+            results = _local_pool(model, todo, gsd_mm, overlays, overlay_dir, workers, max_pixels)
         for rec in results:
             write(rec)
     seconds = time.perf_counter() - t0
     flagged = sorted(f for f, r in latest.items() if r["flagged"])
-    atomic_write_text(out / FLAGGED_FILE, "".join(f"{f}\n" for f in flagged))
+    with _writing(out / FLAGGED_FILE):
+        atomic_write_text(out / FLAGGED_FILE, "".join(f"{f}\n" for f in flagged))
     counts["seconds"] = round(seconds, 3)
     counts["frames_per_second"] = round(counts["scanned"] / seconds, 3) if seconds > 0 else 0.0
     counts["frames_file"] = str(frames_path)
     counts["inputs"] = [str(p) for p in inputs]
     counts["notes"] = list(screener.notes)
-    atomic_write_json(out / SCAN_FILE, _scan_record(Path(model), screener))
+    record = _scan_record(Path(model), screener, working_folder)
+    with _writing(out / SCAN_FILE):
+        atomic_write_text(out / SCAN_FILE, dumps(record, indent=2))
     counts.update(_recorded_counts(frames, latest, written))
     return counts
+
+
+def _find_frames(inputs: list[Path], out: Path, skipped: list[Path]) -> list[Path]:
+    """The image files of the inputs as absolute paths, leaving out the scan's own output
+    folder (its overlays are not frames); other files in the folders go to ``skipped``."""
+    own = _absolute(out)
+    found = []
+    for p, _ in find_images(list(inputs), skipped=skipped):
+        a = Path(_absolute(p))
+        if not (str(a) == own or str(a).startswith(own + os.sep)):
+            found.append(a)
+    skipped[:] = [q for q in skipped if not _absolute(q).startswith(own + os.sep)]
+    return found
+
+
+def _skipped_line(skipped: list[Path]) -> str:
+    by_suffix = Counter(q.suffix.lower() or "(no suffix)" for q in skipped)
+    kinds = ", ".join(f"{n} {s}" for s, n in sorted(by_suffix.items(), key=lambda t: (-t[1], t[0])))
+    return (
+        f"{_plural(len(skipped), 'file')} skipped: not a photo format the kit reads ({kinds}; "
+        f"e.g. {skipped[0]}); it reads {', '.join(IMAGE_SUFFIXES)}"
+    )
