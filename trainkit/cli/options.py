@@ -8,15 +8,19 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import math
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any, TypeVar
 
 import click
 
+from trainkit.core.errors import TrainkitError
 from trainkit.intake.scale import ScaleOptions
 
 __all__ = [
+    "FiniteFloatRange",
+    "POSITIVE",
     "gather",
     "json_option",
     "seed_option",
@@ -32,8 +36,20 @@ __all__ = [
 ]
 
 F = TypeVar("F", bound=Callable[..., Any])
+
+
+class FiniteFloatRange(click.FloatRange):
+    """click's FloatRange, refusing NaN and infinity (which compare False with every bound)."""
+
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None):
+        rv = super().convert(value, param, ctx)
+        if not math.isfinite(rv):
+            self.fail(f"{value!r} is not a finite number", param, ctx)
+        return rv
+
+
 #: Positive lengths, scales and distances.
-POSITIVE = click.FloatRange(min=0, min_open=True)
+POSITIVE = FiniteFloatRange(min=0, min_open=True)
 
 
 def gather(cls: type, name: str) -> Callable[[F], F]:
@@ -168,7 +184,7 @@ def parse_size(
     """Parse ``AxB`` into two integers, each within ``bounds`` (inclusive) when given.
 
     Raises:
-        ValueError: naming the option, the expected form and what came.
+        TrainkitError: naming the option, the expected form and what came.
     """
     try:
         a, b = (int(v) for v in text.lower().split("x"))
@@ -176,5 +192,5 @@ def parse_size(
         a = b = None
     if a is None or (bounds and not all(bounds[0] <= v <= bounds[1] for v in (a, b))):
         each = f" ({bounds[0]}-{bounds[1]} each)" if bounds else ""
-        raise ValueError(f"{option} must look like {example}{each}, got {text!r}")
+        raise TrainkitError(f"{option} must look like {example}{each}, got {text!r}")
     return a, b

@@ -46,6 +46,8 @@ from typing import Any
 
 import numpy as np
 
+from trainkit.core.errors import TrainkitError
+
 __all__ = [
     "CONTRACT_VERSION",
     "READABLE_VERSIONS",
@@ -90,7 +92,7 @@ _INPUT_TEXT = "image: uint8 (N, S, S, 3) RGB, S = patch_px; resize is the caller
 _OUTPUT_TEXT = "probabilities: float32 (N, C) softmax; screening probability = 1 - p[none]"
 
 
-class ContractError(ValueError):
+class ContractError(TrainkitError):
     """Metadata that does not follow the contract; the message says which key and why."""
 
 

@@ -15,6 +15,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
+from trainkit.core.errors import TrainkitError
+
 IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp", ".bmp")
 
 
@@ -22,7 +24,7 @@ IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp", ".bmp")
 DEFAULT_MAX_PIXELS = 250_000_000
 
 
-class PhotoError(ValueError):
+class PhotoError(TrainkitError):
     """A photo that cannot be used; the message says which file and why."""
 
 

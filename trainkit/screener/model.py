@@ -39,6 +39,7 @@ from trainkit.core.contract import (
     screening_probability,
 )
 from trainkit.core.cores import usable_cores
+from trainkit.core.errors import TrainkitError
 from trainkit.core.familiarity import frame_score
 from trainkit.core.grid import axis_starts
 from trainkit.screener.crackmap import CrackMap
@@ -49,7 +50,7 @@ __all__ = ["Screener", "CrackMap", "ScreenerError", "FramePatches", "CONTRACT_VE
 CONTRACT_VERSIONS = READABLE_VERSIONS
 
 
-class ScreenerError(ValueError):
+class ScreenerError(TrainkitError):
     """The model file or the input frame cannot be used; the message says why."""
 
 

@@ -39,7 +39,7 @@ from trainkit.core.cores import usable_cores
 from trainkit.core.decode import PhotoError, find_images, read_rgb_fast
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_json, atomic_write_text
-from trainkit.screener.model import FramePatches, Screener
+from trainkit.screener.model import FramePatches, Screener, ScreenerError
 
 __all__ = [
     "scan_frames",
@@ -370,14 +370,14 @@ def _dask(model, paths, gsd_mm, overlays, overlay_dir, scheduler: str) -> Iterat
     try:
         from distributed import Client, as_completed
     except ImportError:
-        raise ValueError(
+        raise ScreenerError(
             "the dask engine needs dask.distributed: pip install 'trainkit[dask]'"
         ) from None
     ov = str(overlay_dir.resolve()) if overlay_dir else None
     try:
         client = Client(scheduler, timeout=30)
     except OSError as exc:
-        raise ValueError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
+        raise ScreenerError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
     try:
         futures = [
             client.submit(
@@ -440,13 +440,13 @@ def scan_frames(
     elif overlays is False:
         overlays = "none"
     if overlays not in OVERLAY_CHOICES:
-        raise ValueError(
+        raise ScreenerError(
             f"invalid overlays {overlays!r}; choose one of: {', '.join(OVERLAY_CHOICES)}"
         )
     if engine not in ENGINES:
-        raise ValueError(f"invalid engine {engine!r}; choose one of: {', '.join(ENGINES)}")
+        raise ScreenerError(f"invalid engine {engine!r}; choose one of: {', '.join(ENGINES)}")
     if engine == "dask" and not scheduler:
-        raise ValueError("the dask engine needs --scheduler ADDRESS (e.g. tcp://127.0.0.1:8786)")
+        raise ScreenerError("the dask engine needs --scheduler ADDRESS (e.g. tcp://127.0.0.1:8786)")
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     overlay_dir = out / "overlays" if overlays != "none" else None
