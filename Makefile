@@ -10,7 +10,7 @@ DEMO_OUT ?= demo-output
 # Test workers: one per core; each test process uses one BLAS/torch thread.
 TEST_WORKERS ?= 2
 
-.PHONY: demo test lint format bench clean venv
+.PHONY: demo test lint typecheck format bench clean venv
 
 venv: $(STAMP)
 
@@ -34,6 +34,10 @@ lint: $(STAMP)
 	$(BIN)/ruff check trainkit tests benchmarks docs notebooks
 	$(BIN)/ruff format --check trainkit tests benchmarks
 
+# Rooms checked so far; the others join as their errors are fixed.
+typecheck: $(STAMP)
+	$(BIN)/mypy trainkit/core trainkit/screener trainkit/metrics trainkit/jobs
+
 format: $(STAMP)
 	$(BIN)/ruff format trainkit tests benchmarks
 	$(BIN)/ruff check --fix trainkit tests benchmarks
@@ -42,4 +46,4 @@ bench: $(STAMP)
 	$(BIN)/python benchmarks/run.py
 
 clean:
-	rm -rf $(DEMO_OUT) .pytest_cache build *.egg-info
+	rm -rf $(DEMO_OUT) .pytest_cache .mypy_cache build *.egg-info

@@ -5,7 +5,7 @@ Everything is invented with the kit's own generator (trainkit.synth; no real pho
 1. A screener trained on the usual synth surface (benchmarks/job_trust.py's part (a):
    the demo recipe, EfficientNet-Lite0 from ImageNet), or an existing job_trust working
    folder given with ``--reuse`` (its ``run/``, ``workspace/`` and ``frames-broom/``).
-2. The job: frames of the reserved surface family (``SynthOptions(surface="broom")``),
+2. The job: frames of the reserved surface family (``broom``, benchmarks/reserved.py),
    in two disjoint sets made with different seeds: *job frames*, scanned and sampled
    (``sample_scan``: N cells, stratified over the screening probability), answered by a
    simulated reviewer from the generator's truth (orientation classes; ambiguous cells

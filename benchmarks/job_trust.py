@@ -8,11 +8,10 @@ Everything is invented with the kit's own generator (trainkit.synth; no real pho
     validation at the false-alarm budget, and exported (ONNX contract 2: familiarity
     output and threshold);
 (b) two sets of frames nobody trained on: held-out frames of the default family, and
-    frames of the reserved family ``SynthOptions(surface="broom")`` (another paste,
-    exposed aggregate, a broom finish, a colour cast and a softer, noisier camera; see
-    trainkit/synth/reserved.py). Each cell of the scan grid gets its truth from the
-    generator's own label rules (``derive_patch_label`` with the presence class set on
-    the cell's box): crack, clean, or ambiguous (a crack stub shorter than the minimum
+    frames of the reserved family ``broom`` (another paste, exposed aggregate, a broom
+    finish, a colour cast and a softer, noisier camera; see benchmarks/reserved.py).
+    Each cell of the scan grid gets its truth from the generator's own label rules
+    (``derive_patch_label`` with the presence class set on the cell's box): crack, clean, or ambiguous (a crack stub shorter than the minimum
     length, or a crack edge just outside the cell); ambiguous cells are left out of the
     truth and counted;
 (c) both sets are scanned with ``trainkit.screener.scan.scan_frames``: the share of
@@ -258,18 +257,21 @@ def _short(row: dict) -> dict:
 
 
 def make_frames(folder: Path, plan: Plan, surface: str, seed: int) -> dict[str, list]:
-    """Write the frames of one family as JPEG (quality 90, like the training photos).
+    """Write the frames of one family (``"default"`` or ``"broom"``) as JPEG (quality 90,
+    like the training photos).
 
     Returns:
         Frame file name -> its crack polylines.
     """
     from PIL import Image
+    from reserved import FAMILIES
 
     from trainkit.core.fsutil import atomic_path
     from trainkit.synth import SynthOptions, generate_photo, photo_specs
 
     folder.mkdir(parents=True, exist_ok=True)
-    base = SynthOptions(height=plan.frame_h, width=plan.frame_w, surface=surface)
+    family = FAMILIES[surface]
+    base = SynthOptions(height=plan.frame_h, width=plan.frame_w, surface=family)
     cracks = {}
     for spec in photo_specs(np.random.default_rng(seed), plan.frames, base):
         photo = generate_photo(spec.seed, spec.options)

@@ -1,4 +1,5 @@
-"""The pure helpers of benchmarks/job_trust.py: per-cell truth and the census figures.
+"""The pure helpers of benchmarks/job_trust.py (per-cell truth, the census figures) and the
+reserved surface family of benchmarks/reserved.py that its frames use.
 
 The benchmark itself (training, scans, 200 repetitions) stays out of the suite: even its
 --quick run takes about a minute on 2 cores.
@@ -6,19 +7,30 @@ The benchmark itself (training, scans, 200 repetitions) stays out of the suite: 
 
 from __future__ import annotations
 
+import json
+from dataclasses import replace
+
+import cv2
 import numpy as np
 import pytest
 from conftest import benchmark_module
 from sklearn.metrics import confusion_matrix, recall_score, roc_auc_score
 
 from trainkit.core.grid import grid_boxes
-from trainkit.synth import Crack
+from trainkit.core.taxonomy import load_class_set
+from trainkit.synth import Crack, SynthOptions, generate_photo, write_dataset
 
 
 @pytest.fixture(scope="module")
 def jt():
     with benchmark_module("job_trust") as module:
         yield module
+
+
+@pytest.fixture(scope="module")
+def broom():
+    with benchmark_module("reserved") as module:
+        yield module.BROOM
 
 
 def line(p0, p1, width=1.0, crack_id=0) -> Crack:
@@ -117,3 +129,57 @@ def test_job_adapt_oracle_recall_is_the_best_recall_within_the_budget(jt):
         if flagged[clean].mean() <= 0.10:
             best = max(best, flagged[crack].mean())
     assert recall_within(p, truth, 0.10) == pytest.approx(best)
+
+
+# ----- the reserved surface family (benchmarks/reserved.py) ---------------------------------
+
+
+def test_broom_surface_changes_pixels_not_cracks_and_is_reproducible(broom) -> None:
+    opts = SynthOptions(height=160, width=224, scene="multi")
+    reserved = replace(opts, surface=broom)
+    a, b = generate_photo(21, reserved), generate_photo(21, reserved)
+    assert np.array_equal(a.image, b.image)  # same seed, same pixels
+    assert not np.array_equal(a.image, generate_photo(22, reserved).image)
+    d = generate_photo(21, opts)
+    # Another surface, the same crack truth (the geometry has its own random stream).
+    assert np.array_equal(a.mask, d.mask) and a.to_json_dict() == d.to_json_dict()
+    diff = np.abs(a.image.astype(float) - d.image.astype(float))
+    assert diff.mean() > 10.0  # not a nudge: a different palette, texture, light and camera
+    # The default surface draws no broom stream: the explicit default is the implicit one.
+    assert np.array_equal(d.image, generate_photo(21, replace(opts, surface="default")).image)
+
+
+def test_broom_surface_is_warmer_and_noisier_than_the_default(broom) -> None:
+    """Colour and grain measured with OpenCV on crack-free, distractor-free frames: the
+    reserved paste is warmer (mean red over mean blue, numpy) and its camera leaves more
+    fine noise (residual of a 5x5 median filter, cv2.medianBlur)."""
+    red_blue, grain = {}, {}
+    for name, surface in (("default", "default"), ("broom", broom)):
+        rb, gr = [], []
+        for seed in range(6):
+            img = generate_photo(
+                seed,
+                SynthOptions(
+                    height=128, width=128, scene="none", distractors=False, surface=surface
+                ),
+            ).image
+            rgb = img.astype(float)
+            rb.append(rgb[:, :, 0].mean() / rgb[:, :, 2].mean())
+            grey = cv2.cvtColor(img, cv2.COLOR_RGB2GRAY)
+            gr.append(np.abs(grey.astype(float) - cv2.medianBlur(grey, 5)).mean())
+        red_blue[name], grain[name] = np.mean(rb), np.mean(gr)
+    assert red_blue["broom"] > red_blue["default"] + 0.03
+    assert grain["broom"] > grain["default"]
+
+
+def test_a_dataset_of_the_reserved_family_names_it_in_its_manifest(broom, tmp_path) -> None:
+    write_dataset(
+        tmp_path / "d",
+        n_photos=1,
+        seed=3,
+        tile_px=64,
+        options=SynthOptions(height=64, width=64, surface=broom),
+        class_set=load_class_set("presence"),
+    )
+    manifest = json.loads((tmp_path / "d" / "manifest.json").read_text(encoding="utf-8"))
+    assert manifest["options"]["surface"] == "broom"

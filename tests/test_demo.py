@@ -177,3 +177,52 @@ def test_demo_module_does_not_import_the_command_line():
     ]
     assert "trainkit.core.fsutil" in names  # the walk saw the imports
     assert not [n for n in names if n.startswith(("trainkit.cli", "click", "rich"))]
+
+
+def _first_photos_split(n: int) -> dict[str, str]:
+    """The demo's split of the labelled patches of the tiny dataset's first ``n`` photos."""
+    from trainkit.core.decode import list_images
+    from trainkit.demo import DEMO_SPLIT, tiny_dataset_dir
+    from trainkit.labels.splits import assign_groups
+
+    data = tiny_dataset_dir()
+    keep = {f.name for f in list_images([data / "photos"])[:n]}
+    with (data / "labels.csv").open(encoding="utf-8") as fh:
+        rows = [r for r in csv.DictReader(fh) if r["photo"] in keep and r["label"]]
+    return assign_groups([r["label"] for r in rows], [r["photo"] for r in rows], **DEMO_SPLIT)
+
+
+def test_min_photos_is_the_fewest_the_demos_split_accepts():
+    """MIN_PHOTOS comes from the split itself: one photo fewer fails, every count up to 40 splits."""
+    from trainkit.demo import MIN_PHOTOS, TINY_DATASET
+    from trainkit.labels.splits import SplitError
+
+    with pytest.raises(SplitError, match="for validation: that needs at least 5 groups"):
+        _first_photos_split(MIN_PHOTOS - 1)
+    for n in range(MIN_PHOTOS, TINY_DATASET["n_photos"] + 1):
+        assert set(_first_photos_split(n).values()) == {"train", "val", "test"}, n
+
+
+def test_demo_refuses_too_few_photos_at_the_option_check(tmp_path, monkeypatch):
+    import trainkit.demo
+    from trainkit.demo import MIN_PHOTOS
+
+    calls = []
+    monkeypatch.setattr(trainkit.demo, "run_demo", lambda *a, **k: calls.append(k))
+    out = tmp_path / "demo"
+    res = CliRunner().invoke(cli, ["demo", "--out", str(out), "--photos", str(MIN_PHOTOS - 1)])
+    assert res.exit_code == 2, res.output  # a usage error: nothing ran
+    assert f"at least {MIN_PHOTOS}" in res.output and f"got {MIN_PHOTOS - 1}" in res.output
+    assert not calls and not out.exists()
+    res = CliRunner().invoke(cli, ["demo", "--out", str(out), "--photos", str(MIN_PHOTOS)])
+    assert res.exit_code == 0, res.output
+    assert calls[0]["photos"] == MIN_PHOTOS
+
+
+def test_run_demo_refuses_too_few_photos_before_it_writes(tmp_path):
+    from trainkit.demo import MIN_PHOTOS, run_demo
+    from trainkit.labels.splits import SplitError
+
+    with pytest.raises(SplitError, match=f"at least {MIN_PHOTOS} photos"):
+        run_demo(tmp_path / "demo", photos=MIN_PHOTOS - 1)
+    assert not (tmp_path / "demo").exists()

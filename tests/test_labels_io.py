@@ -7,11 +7,11 @@ import shutil
 
 import numpy as np
 import pytest
+from _helpers import make_ws
 from PIL import Image
 
 from trainkit.core.csvfile import CsvFileError
 from trainkit.core.errors import TrainkitError
-from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.labels_io import (
     LabelsIOError,
     export_csv,
@@ -20,37 +20,11 @@ from trainkit.labels.labels_io import (
     import_csv,
     import_folders,
 )
-from trainkit.labels.workspace import Workspace
 
 
-def make_ws(root, n_photos=2, per_photo=3, size=32):
-    """A workspace with real (random-pixel) PNG crops, one photo name inside a subfolder."""
-    ws = Workspace.create(root, class_set=load_class_set("orientation"), tile_px=size)
-    rng = np.random.default_rng(0)
-    for i in range(n_photos):
-        name = f"site{i}/p{i}.jpg" if i else f"p{i}.jpg"
-        patches = []
-        for c in range(per_photo):
-            rel = f"patches/{i}/r000_c{c:03d}.png"
-            (ws.root / rel).parent.mkdir(parents=True, exist_ok=True)
-            Image.fromarray(rng.integers(0, 255, (size, size, 3), dtype=np.uint8)).save(
-                ws.root / rel
-            )
-            patches.append(
-                dict(row=0, col=c, x0=size * c, y0=0, x1=size * c + size, y1=size, crop=rel)
-                | dict(patch_mm=None, focus=1.0, clipped=0.0)
-            )
-        ws.add_photo_with_patches(
-            name=name,
-            source_path=f"/x/{name}",
-            width=size * per_photo,
-            height=size,
-            gsd_mm=None,
-            group_id=f"g{i}",
-            sha256=f"{i:064d}",
-            patches=patches,
-        )
-    return ws
+def in_subfolder(i):
+    """Photo names of the workspaces here: every photo but the first in a subfolder."""
+    return f"site{i}/p{i}.jpg" if i else f"p{i}.jpg"
 
 
 def current(ws):
@@ -58,7 +32,7 @@ def current(ws):
 
 
 def test_csv_export_reads_back_into_a_fresh_workspace(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     ids = [r.id for r in ws.patches()]
     ws.add_labels([(ids[0], "vertical"), (ids[1], None), (ids[4], "map")], reviewer="ana")
     ws.add_labels([(ids[0], "none")], reviewer="ben")  # newer: the current label
@@ -69,14 +43,14 @@ def test_csv_export_reads_back_into_a_fresh_workspace(tmp_path):
         ("unsure", "ana"),  # the word, so that reading it back records an unsure answer
         ("map", "ana"),
     ]
-    fresh = make_ws(tmp_path / "b")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
     assert import_csv(fresh, tmp_path / "labels.csv", reviewer="copy") == 3
     assert current(fresh) == current(ws)
     assert {e["origin"] for e in fresh.label_events()} == {"file"}
 
 
 def test_csv_by_patch_id(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "ids.csv"
     p.write_text("patch_id,label\n1,horizontal\n2,unsure\n")
     assert import_csv(ws, p) == 2
@@ -106,7 +80,7 @@ def test_csv_by_patch_id(tmp_path):
     ],
 )
 def test_bad_csv_imports_nothing(tmp_path, text, match):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "bad.csv"
     p.write_text(text)
     with pytest.raises(LabelsIOError, match=match):
@@ -115,7 +89,7 @@ def test_bad_csv_imports_nothing(tmp_path, text, match):
 
 
 def test_folder_export_and_import_round_trip(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     ids = [r.id for r in ws.patches()]
     ws.add_labels([(ids[0], "vertical"), (ids[3], "vertical"), (ids[5], None)], reviewer="ana")
     counts = export_folders(ws, tmp_path / "out")
@@ -126,13 +100,13 @@ def test_folder_export_and_import_round_trip(tmp_path):
         tmp_path / "out" / "vertical" / folder_file_name(rec3.photo, rec3.box, ".png")
     ).is_file()
     assert folder_file_name(rec3.photo, rec3.box, ".png") == "site1~p1.jpg@0_0_32_32.png"
-    fresh = make_ws(tmp_path / "b")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
     assert import_folders(fresh, tmp_path / "out") == 3
     assert current(fresh) == current(ws)
 
 
 def test_folder_import_matches_renamed_files_by_pixels(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     rec = ws.patches()[2]
     (tmp_path / "in" / "map").mkdir(parents=True)
     shutil.copyfile(ws.root / rec.crop, tmp_path / "in" / "map" / "whatever-name.png")
@@ -142,11 +116,11 @@ def test_folder_import_matches_renamed_files_by_pixels(tmp_path):
 
 
 def test_bad_folder_imports_nothing(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     export_root = tmp_path / "out"
     ws.add_labels([(1, "vertical")], reviewer="ana")
     export_folders(ws, export_root)
-    fresh = make_ws(tmp_path / "b")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
     (export_root / "diagonal").mkdir()
     with pytest.raises(
         LabelsIOError, match=r"folder 'diagonal' is not a class .*choose one of: none,"
@@ -162,7 +136,7 @@ def test_bad_folder_imports_nothing(tmp_path):
 def test_one_importer_one_set_of_path_rules(tmp_path):
     # Both key styles go through one importer with one error class; a photo name that
     # could point outside the photo folder is refused whichever way the file is keyed.
-    ws = make_ws(tmp_path / "ws")
+    ws = make_ws(tmp_path / "ws", 2, 3, photo_name=in_subfolder)
     csv_path = tmp_path / "labels.csv"
     csv_path.write_text(
         "photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,vertical\np0.jpg,32,0,64,32,unsure\n"
@@ -191,7 +165,7 @@ def test_one_importer_one_set_of_path_rules(tmp_path):
 
 def test_a_utf8_byte_order_mark_is_accepted(tmp_path):
     # Spreadsheets saving "CSV UTF-8" put U+FEFF first; it is not part of the first column name.
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "bom.csv"
     p.write_bytes("patch_id,label\n1,horizontal\n".encode("utf-8-sig"))
     assert import_csv(ws, p) == 1
@@ -199,7 +173,7 @@ def test_a_utf8_byte_order_mark_is_accepted(tmp_path):
 
 
 def test_a_latin1_file_is_refused_naming_the_file_line_and_encoding(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "latin.csv"
     p.write_bytes(
         "photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,none\nfa\xe7ade.jpg,0,0,32,32,none\n".encode(
@@ -214,7 +188,7 @@ def test_a_latin1_file_is_refused_naming_the_file_line_and_encoding(tmp_path):
 
 
 def test_an_oversized_field_is_one_error_naming_the_file_and_line(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "huge.csv"
     p.write_text("patch_id,label\n1,none\n2," + "x" * (csv.field_size_limit() + 1) + "\n")
     with pytest.raises(CsvFileError, match=r"label file huge\.csv line 3: a field is longer than"):
@@ -223,7 +197,7 @@ def test_an_oversized_field_is_one_error_naming_the_file_and_line(tmp_path):
 
 
 def test_rows_without_a_label_are_skipped_and_counted_not_made_unsure(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "some.csv"
     p.write_text("patch_id,label\n1,horizontal\n2,\n3,  \n4,unsure\n,\n")
     res = import_csv(ws, p)
@@ -236,7 +210,7 @@ def test_rows_without_a_label_are_skipped_and_counted_not_made_unsure(tmp_path):
 
 
 def test_repeated_rows_count_once_and_contradicting_rows_are_refused(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "rep.csv"
     p.write_text("patch_id,label\n1,map\n2,none\n1,map\n1,map\n")
     res = import_csv(ws, p)
@@ -255,7 +229,7 @@ def test_repeated_rows_count_once_and_contradicting_rows_are_refused(tmp_path):
 def test_importing_the_same_labels_again_adds_nothing(tmp_path):
     from trainkit.labels.review import find_conflicts
 
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "labels.csv"
     p.write_text("patch_id,label\n1,map\n2,none\n3,unsure\n")
     assert import_csv(ws, p) == 3
@@ -275,10 +249,10 @@ def test_importing_the_same_labels_again_adds_nothing(tmp_path):
 
 
 def test_importing_the_same_folders_again_adds_nothing(tmp_path):
-    ws = make_ws(tmp_path / "a")
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     ws.add_labels([(1, "vertical"), (4, None)], reviewer="ana")
     export_folders(ws, tmp_path / "out")
-    fresh = make_ws(tmp_path / "b")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
     assert import_folders(fresh, tmp_path / "out") == 2
     again = import_folders(fresh, tmp_path / "out")
     assert (again, again.unchanged) == (0, 2) and len(fresh.label_events()) == 2

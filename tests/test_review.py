@@ -8,7 +8,7 @@ import sys
 
 import numpy as np
 import pytest
-from _crops import workspace_of_crops
+from _helpers import make_ws
 from PIL import Image
 
 from trainkit.core.taxonomy import load_class_set
@@ -27,10 +27,9 @@ from trainkit.labels.workspace import Workspace, WorkspaceError
 CS = load_class_set("orientation")
 
 
-def make_ws(root, n=6, size=16, skip=()):
-    """One photo with n patches and real PNG crops; patches at indices in ``skip`` have review_skip."""
-    images = [np.full((size, size, 3), 10 * c, np.uint8) for c in range(n)]
-    return workspace_of_crops(root, images, skip=skip)
+def grey(i, c):
+    """Crop c of the workspaces here: a flat 16-px square, 10 grey levels per column."""
+    return np.full((16, 16, 3), 10 * c, np.uint8)
 
 
 def events_from_table(table, labels):
@@ -95,7 +94,7 @@ def test_agreement_uses_each_reviewers_latest_own_label_and_skips_settlements():
 
 
 def test_conflicts_and_their_settlement(tmp_path):
-    ws = make_ws(tmp_path / "ws")
+    ws = make_ws(tmp_path / "ws", 1, 6, size=16, crop=grey)
     ws.add_labels([(1, "vertical"), (2, "none"), (3, "map")], reviewer="ana")
     ws.add_labels([(1, "map"), (2, "none"), (3, None)], reviewer="ben")  # unsure does not conflict
     assert find_conflicts(ws.label_events()) == {1: {"ana": "vertical", "ben": "map"}}
@@ -121,7 +120,7 @@ def test_margins():
 
 
 def test_uncertainty_order_is_lowest_margin_first_ties_in_photo_order(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=6, skip=(3,))  # patch id 4
+    ws = make_ws(tmp_path / "ws", 1, 6, size=16, crop=grey, skip=(3,))  # patch id 4
     ws.add_labels([(6, "none")], reviewer="x")
     probs = {
         1: np.array([0.9, 0.1, 0, 0, 0, 0]),  # margin 0.8
@@ -149,7 +148,7 @@ def test_uncertainty_order_is_lowest_margin_first_ties_in_photo_order(tmp_path):
 
 
 def test_audit_sample_is_seeded_and_leaves_out_own_labels(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=6)
+    ws = make_ws(tmp_path / "ws", 1, 6, size=16, crop=grey)
     ws.add_labels([(i, "none") for i in range(1, 6)], reviewer="ana")
     ws.add_labels([(2, "none")], reviewer="ben")
     ev = ws.label_events()
@@ -198,7 +197,7 @@ def test_bad_sheet_answers(text, match):
 
 
 def test_session_answer_skip_undo_and_history(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=5)
+    ws = make_ws(tmp_path / "ws", 1, 5, size=16, crop=grey)
     s = Session(ws, "ana", build_queue(ws.patches(), reviewer="ana"))
     s.answer("none")  # 1
     s.answer("vertical")  # 2
@@ -220,7 +219,7 @@ def test_session_answer_skip_undo_and_history(tmp_path):
 
 
 def test_session_sheet_answers_and_undo(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=6)
+    ws = make_ws(tmp_path / "ws", 1, 6, size=16, crop=grey)
     s = Session(ws, "ana", build_queue(ws.patches(), reviewer="ana"))
     s.answer_many({0: "none", 2: "map", 3: "none"})  # offset 1 (patch 2) left open
     assert s.current().id == 2
@@ -234,7 +233,7 @@ def test_session_sheet_answers_and_undo(tmp_path):
 
 
 def test_model_suggestion_accepted_with_its_source(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=2)
+    ws = make_ws(tmp_path / "ws", 1, 2, size=16, crop=grey)
     probs = {1: np.array([0.1, 0.1, 0.1, 0.6, 0.05, 0.05]), 2: np.full(6, 1 / 6)}
     s = Session(ws, "ana", [1, 2], suggestions=probs)
     assert s.suggestion(1) == ("vertical", pytest.approx(0.6))
@@ -245,7 +244,7 @@ def test_model_suggestion_accepted_with_its_source(tmp_path):
 
 
 def test_labels_from_another_reviewer_leave_the_queue(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=3)
+    ws = make_ws(tmp_path / "ws", 1, 3, size=16, crop=grey)
     s = Session(ws, "ana", [1, 2, 3], check_fresh=True)
     ws.add_labels([(1, "none")], reviewer="ben")  # ben labels patch 1 while ana's session runs
     assert s.current().id == 2
@@ -253,7 +252,7 @@ def test_labels_from_another_reviewer_leave_the_queue(tmp_path):
 
 def test_empty_reviewer_is_refused(tmp_path):
     with pytest.raises(ReviewError, match="reviewer name must not be empty"):
-        Session(make_ws(tmp_path / "ws", n=1), " ", [1])
+        Session(make_ws(tmp_path / "ws", 1, 1, size=16, crop=grey), " ", [1])
 
 
 # ----- store -----------------------------------------------------------------------------------------
@@ -268,7 +267,7 @@ for i in range(int(sys.argv[3])):
 
 
 def test_two_reviewer_processes_at_once_keep_every_event(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=6)
+    ws = make_ws(tmp_path / "ws", 1, 6, size=16, crop=grey)
     n = 150
     procs = [
         subprocess.Popen([sys.executable, "-c", _WRITER, str(ws.root), name, str(n)])
@@ -281,7 +280,7 @@ def test_two_reviewer_processes_at_once_keep_every_event(tmp_path):
 
 
 def test_open_adds_review_tables_to_an_older_workspace_and_refuses_newer(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=1)
+    ws = make_ws(tmp_path / "ws", 1, 1, size=16, crop=grey)
     con = sqlite3.connect(ws.db_path)
     con.execute("DROP TABLE review_skips")
     con.commit()

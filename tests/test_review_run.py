@@ -4,9 +4,8 @@ from __future__ import annotations
 
 import io
 
-import numpy as np
 import pytest
-from _crops import workspace_of_crops
+from _helpers import make_ws
 from rich.console import Console
 
 from trainkit.labels.review import ReviewError
@@ -19,19 +18,13 @@ from trainkit.labels.review_run import (
 )
 
 
-def make_ws(root, n=4, skip=()):
-    rng = np.random.default_rng(0)
-    images = [rng.integers(0, 255, (32, 32, 3), dtype=np.uint8) for _ in range(n)]
-    return workspace_of_crops(root, images, skip=skip)
-
-
 def plain_console() -> tuple[Console, io.StringIO]:
     out = io.StringIO()
     return Console(file=out, width=100, highlight=False), out
 
 
 def test_unlabelled_queue_leaves_out_flagged_patches_and_empties(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=4, skip=(1,))
+    ws = make_ws(tmp_path / "ws", 1, 4, skip=(1,))
     by_col = {r.col: r.id for r in ws.patches()}
     session = prepare_session(ws, ReviewRequest(reviewer="ana"))
     assert session.queue == [by_col[0], by_col[2], by_col[3]]  # photo order, col 1 skipped
@@ -40,7 +33,7 @@ def test_unlabelled_queue_leaves_out_flagged_patches_and_empties(tmp_path):
 
 
 def test_conflict_queue_settles_the_disagreeing_reviewers(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=2)
+    ws = make_ws(tmp_path / "ws", 1, 2)
     a, b = sorted(r.id for r in ws.patches())
     ws.add_labels([(a, "none"), (b, "map")], reviewer="ana")
     ws.add_labels([(a, "vertical"), (b, "map")], reviewer="ben")
@@ -54,7 +47,7 @@ def test_unknown_queue_is_refused_with_the_choices():
 
 
 def test_sheet_run_to_the_end(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=3)
+    ws = make_ws(tmp_path / "ws", 1, 3)
     request = ReviewRequest(reviewer="ana b/c", sheet=True, grid=(2, 1))
     answers = iter(["all none", "all map"])  # two sheets of 2 + 1 patches
     console, out = plain_console()
@@ -70,7 +63,7 @@ def test_sheet_run_to_the_end(tmp_path):
 
 
 def test_quitting_a_run_tells_how_to_resume(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=3)
+    ws = make_ws(tmp_path / "ws", 1, 3)
     request = ReviewRequest(reviewer="ana")  # keys asked for, but the console is no terminal
 
     def no_more_input():

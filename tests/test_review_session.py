@@ -5,11 +5,10 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
-from pathlib import Path
 
 import numpy as np
 import pexpect
-from _crops import workspace_of_crops
+from _helpers import make_ws
 
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.workspace import Workspace
@@ -17,16 +16,13 @@ from trainkit.labels.workspace import Workspace
 TIMEOUT = 20
 
 
-def make_ws(root: Path, n: int = 8, size: int = 32) -> Workspace:
-    """A workspace of n patches with real crops: a dark vertical line on odd patches."""
-    rng = np.random.default_rng(0)
-    images = []
-    for c in range(n):
-        img = np.clip(150 + 10 * rng.standard_normal((size, size, 3)), 0, 255).astype(np.uint8)
-        if c % 2:
-            img[:, size // 2] = 30
-        images.append(img)
-    return workspace_of_crops(root, images)
+def lined(i: int, c: int) -> np.ndarray:
+    """Crop c of the workspaces here: grey noise (seeded by c), a dark vertical line when c is odd."""
+    img = np.clip(150 + 10 * np.random.default_rng(c).standard_normal((32, 32, 3)), 0, 255)
+    img = img.astype(np.uint8)
+    if c % 2:
+        img[:, 16] = 30
+    return img
 
 
 def spawn(ws: Workspace, *args: str, rows: int = 45, cols: int = 100):
@@ -50,7 +46,7 @@ def shown(child, patch_id: int, done: int, remaining: int) -> None:
 
 
 def test_label_undo_skip_quit_and_resume(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=6)
+    ws = make_ws(tmp_path / "ws", 1, 6, crop=lined)
     child = spawn(ws, "--reviewer", "ana")
     shown(child, 1, 0, 6)
     child.expect("0 none  1 horizontal  2 diagonal_rising  3 vertical")  # keys shown on screen
@@ -111,7 +107,7 @@ def test_label_undo_skip_quit_and_resume(tmp_path):
 
 
 def test_contact_sheet_answers_and_small_terminal_fallback(tmp_path):
-    ws = make_ws(tmp_path / "ws", n=8)
+    ws = make_ws(tmp_path / "ws", 1, 8, crop=lined)
     child = spawn(ws, "--reviewer", "ben", "--grid", "3x2", rows=20, cols=50)
     child.expect("smaller than 60x34: using contact-sheet mode")
     child.expect(r"\(6 patches, numbered 1-6\)")
@@ -203,7 +199,7 @@ def test_session_killed_between_keystrokes_loses_nothing_finished(tmp_path):
     the fourth patch with the right progress."""
     import signal
 
-    ws = make_ws(tmp_path / "ws", n=6)
+    ws = make_ws(tmp_path / "ws", 1, 6, crop=lined)
     child = spawn(ws, "--reviewer", "ana")
     shown(child, 1, 0, 6)
     for pid, key in ((1, "0"), (2, "3"), (3, "0")):
@@ -226,7 +222,7 @@ def _labels_in_queue_order(ws: Workspace) -> list[tuple[int, str | None]]:
 def test_keys_typed_ahead_in_one_burst_are_all_applied_in_order(tmp_path):
     """Issue 14: `003u15q` written in ONE burst, before the first screen is even drawn. Every
     key is applied in order (the `u` takes back the `3`) and the typed-ahead `q` still quits."""
-    ws = make_ws(tmp_path / "ws", n=6)
+    ws = make_ws(tmp_path / "ws", 1, 6, crop=lined)
     child = spawn(ws, "--reviewer", "ana")
     child.send("003u15q")  # one write, straight after start: typed faster than any redraw
     child.expect(r"ana: 4 labels this session .* 2 left; run the same command to resume")
@@ -249,7 +245,7 @@ def test_keys_typed_ahead_while_a_screen_is_drawn(tmp_path):
     may take: the result is the same."""
     import time
 
-    ws = make_ws(tmp_path / "ws", n=6)
+    ws = make_ws(tmp_path / "ws", 1, 6, crop=lined)
     child = spawn(ws, "--reviewer", "ana")
     shown(child, 1, 0, 6)
     for key in "003u15q":

@@ -5,44 +5,15 @@ from __future__ import annotations
 import sqlite3
 
 import pytest
+from _helpers import make_ws
 
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import SplitError, assign_groups, check_no_leak, split_workspace
 from trainkit.labels.workspace import Workspace, WorkspaceError
 
 
-def make_ws(tmp_path, n_photos=3, per_photo=4):
-    ws = Workspace.create(tmp_path / "ws", class_set=load_class_set("orientation"), tile_px=32)
-    for i in range(n_photos):
-        ws.add_photo_with_patches(
-            name=f"p{i}.jpg",
-            source_path=f"/x/p{i}.jpg",
-            width=128,
-            height=32,
-            gsd_mm=0.5,
-            group_id=f"g{i}",
-            sha256="0" * 64,
-            patches=[
-                {
-                    "row": 0,
-                    "col": c,
-                    "x0": 32 * c,
-                    "y0": 0,
-                    "x1": 32 * c + 32,
-                    "y1": 32,
-                    "crop": f"patches/p{i}/{c}.png",
-                    "patch_mm": 16.0,
-                    "focus": 50.0,
-                    "clipped": 0.0,
-                }
-                for c in range(per_photo)
-            ],
-        )
-    return ws
-
-
 def test_current_label_is_the_newest_event_and_history_is_kept(tmp_path):
-    ws = make_ws(tmp_path)
+    ws = make_ws(tmp_path / "ws", 3, 4, gsd_mm=0.5)
     pid = ws.patches()[0].id
     ws.add_labels([(pid, "vertical")], reviewer="ana")
     ws.add_labels([(pid, "map")], reviewer="ben")
@@ -54,7 +25,7 @@ def test_current_label_is_the_newest_event_and_history_is_kept(tmp_path):
 
 
 def test_wal_mode_and_schema(tmp_path):
-    ws = make_ws(tmp_path)
+    ws = make_ws(tmp_path / "ws", 3, 4, gsd_mm=0.5)
     con = sqlite3.connect(ws.db_path)
     assert con.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
     con.close()
@@ -63,7 +34,7 @@ def test_wal_mode_and_schema(tmp_path):
 
 
 def test_bad_labels_and_mismatched_workspace(tmp_path):
-    ws = make_ws(tmp_path)
+    ws = make_ws(tmp_path / "ws", 3, 4, gsd_mm=0.5)
     with pytest.raises(ValueError, match="unknown class 'crack'; choose one of: none, horizontal"):
         ws.add_labels([(1, "crack")], reviewer="x")
     with pytest.raises(ValueError, match="invalid label origin"):
@@ -75,7 +46,7 @@ def test_bad_labels_and_mismatched_workspace(tmp_path):
 
 
 def test_split_keeps_groups_together_and_is_seeded(tmp_path):
-    ws = make_ws(tmp_path, n_photos=12, per_photo=4)
+    ws = make_ws(tmp_path / "ws", 12, 4, gsd_mm=0.5)
     names = ["none", "vertical", "map", "none"]
     ws.add_labels([(r.id, names[r.col]) for r in ws.patches()], reviewer="t")
     rep = split_workspace(ws, seed=3)
@@ -89,7 +60,7 @@ def test_split_keeps_groups_together_and_is_seeded(tmp_path):
 
 
 def test_status_counts(tmp_path):
-    ws = make_ws(tmp_path, n_photos=2, per_photo=3)
+    ws = make_ws(tmp_path / "ws", 2, 3, gsd_mm=0.5)
     recs = ws.patches()
     ws.add_labels([(recs[0].id, "map"), (recs[1].id, None), (recs[2].id, "none")], reviewer="t")
     info = ws.summary()
@@ -104,7 +75,7 @@ def test_too_few_groups_is_a_clear_error():
 
 
 def test_leak_is_refused(tmp_path):
-    ws = make_ws(tmp_path, n_photos=1, per_photo=2)
+    ws = make_ws(tmp_path / "ws", 1, 2, gsd_mm=0.5)
     recs = ws.patches()
     ws.add_labels([(r.id, "none") for r in recs], reviewer="t")
     ws.set_split({recs[0].id: "train", recs[1].id: "test"}, {})
@@ -128,7 +99,7 @@ def test_version_1_workspace_is_migrated_to_the_new_origin_words(tmp_path):
     # build one by hand from a new one (SQLite's own ALTER TABLE ... RENAME COLUMN).
     import sqlite3
 
-    ws = make_ws(tmp_path)
+    ws = make_ws(tmp_path / "ws", 3, 4, gsd_mm=0.5)
     ids = [r.id for r in ws.patches()]
     ws.add_labels([(ids[0], "none")], reviewer="ana")
     ws.add_labels([(ids[1], "map")], reviewer="ana", origin="file")

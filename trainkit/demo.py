@@ -17,10 +17,25 @@ from typing import Any, Protocol
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_text
 
-__all__ = ["run_demo", "DemoProgress", "TaskHandle", "TINY_DATASET", "tiny_dataset_dir"]
+__all__ = [
+    "run_demo",
+    "DemoProgress",
+    "TaskHandle",
+    "DEMO_SPLIT",
+    "MIN_PHOTOS",
+    "TINY_DATASET",
+    "tiny_dataset_dir",
+]
 
 #: How tiny_dataset/ was made: `trainkit synth tiny_dataset --photos 40 --seed 2026 --size 768x512 --tile-px 128`.
 TINY_DATASET = {"n_photos": 40, "seed": 2026, "width": 768, "height": 512, "tile_px": 128}
+#: How the demo splits its photos (grouped by photo; see trainkit.labels.splits).
+DEMO_SPLIT = {"test_fraction": 0.2, "val_fraction": 0.15, "seed": 0}
+#: Fewest photos the demo accepts. The split holds out a test fold of 5 (1 / 0.2) and then
+#: a validation fold of 5 (round(0.8 / 0.15)), each needing that many photos; on the tiny
+#: dataset's first 6 photos the test fold takes 2, leaving 4, so 7 is the fewest that split
+#: (tests/test_demo.py splits 6 and 7 to 40 to check it).
+MIN_PHOTOS = 7
 #: Seeds of the fresh frames the demo scans (never used for the tiny dataset's photos).
 FRAME_SEEDS = (900_001, 900_002, 900_003, 900_004, 900_005, 900_006)
 #: Scene of each fresh frame, in the order of FRAME_SEEDS.
@@ -90,6 +105,15 @@ class DemoProgress:
 
     def evaluated(self, metrics: dict[str, Any], folder: Path) -> None:
         """The test evaluation finished; ``metrics`` is metrics.json, written in ``folder``."""
+
+
+def too_few_photos(photos: int) -> str:
+    """Why ``photos`` is too few for the demo (the message of the option check and of run_demo)."""
+    test, val = DEMO_SPLIT["test_fraction"], DEMO_SPLIT["val_fraction"]
+    return (
+        f"the demo's split by photo needs at least {MIN_PHOTOS} photos (a {test:.0%} test fold "
+        f"needs 5, then a {val:.0%} validation fold 5 of the photos left), got {photos}"
+    )
 
 
 def tiny_dataset_dir() -> Path | None:
@@ -251,15 +275,22 @@ def run_demo(
     Args:
         out_dir: the demo folder (an experiment folder; created, resumed when present).
         epochs: override the demo recipe's epochs.
-        photos: use only the first N photos of the tiny dataset (quicker, noisier).
+        photos: use only the first N photos of the tiny dataset (quicker, noisier; at
+            least :data:`MIN_PHOTOS`).
         progress: where to report steps, progress and results (default: nowhere).
 
     Returns:
         The headline figures, also written to ``out_dir/demo-summary.json``.
+
+    Raises:
+        SplitError: fewer than :data:`MIN_PHOTOS` photos asked for (nothing is written).
     """
     from trainkit.judging.evaluation import evaluate_experiment
     from trainkit.judging.export import export_experiment
-    from trainkit.labels.splits import split_workspace
+    from trainkit.labels.splits import SplitError, split_workspace
+
+    if photos is not None and photos < MIN_PHOTOS:
+        raise SplitError(too_few_photos(photos))
 
     progress = progress or DemoProgress()
     t_start = time.perf_counter()
@@ -283,7 +314,7 @@ def run_demo(
     next_step()
     _load_labels(progress, ws, data, out, files, subset=bool(photos))
     next_step()
-    progress.split_done(split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0))
+    progress.split_done(split_workspace(ws, **DEMO_SPLIT))
     next_step()
     trained = _train(progress, ws, out, epochs)
     next_step()

@@ -13,7 +13,7 @@ from rich.console import Console
 from trainkit.cli.options import epochs_option
 from trainkit.cli.output import Ctx, ProgressHandle, progress_bar, user_errors
 from trainkit.cli.tables import epoch_line, print_evaluation, print_split
-from trainkit.demo import DemoProgress
+from trainkit.demo import MIN_PHOTOS, DemoProgress, too_few_photos
 
 __all__ = ["demo", "ConsoleDemoProgress"]
 
@@ -55,6 +55,12 @@ class ConsoleDemoProgress(DemoProgress):
         print_evaluation(self._console, metrics, folder)
 
 
+def _check_photos(_ctx: click.Context, _param: click.Parameter, value: int | None) -> int | None:
+    if value is not None and value < MIN_PHOTOS:
+        raise click.BadParameter(too_few_photos(value))
+    return value
+
+
 @click.command(epilog="Example: trainkit demo --out demo-output")
 @click.option(
     "--out",
@@ -67,9 +73,10 @@ class ConsoleDemoProgress(DemoProgress):
 @epochs_option("Override the demo recipe's epochs.")
 @click.option(
     "--photos",
-    type=click.IntRange(6, 100000),
+    type=int,
+    callback=_check_photos,
     default=None,
-    help="Use only the first N photos of the tiny dataset (quicker, noisier).",
+    help=f"Use only the first N photos of the tiny dataset (quicker, noisier; N >= {MIN_PHOTOS}).",
 )
 @click.pass_obj
 def demo(ctx: Ctx, out_dir: Path, epochs: int | None, photos: int | None) -> None:

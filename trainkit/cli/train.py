@@ -49,8 +49,8 @@ __all__ = ["train"]
 @click.option(
     "--weights",
     default=None,
-    help="imagenet (no network: the packaged file for efficientnet_lite0, the torch hub cache "
-    "for torchvision backbones), torchvision (may download), or a .pth state dict.",
+    help="imagenet (efficientnet_lite0: its packaged file; torchvision backbones: torch's hub "
+    "cache; no network), torchvision (downloads a missing file), or a .pth state dict.",
 )
 @epochs_option("Override the number of epochs.")
 @click.option(

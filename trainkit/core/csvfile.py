@@ -77,14 +77,16 @@ class CsvRows:
 
     def _not_utf8(self) -> str:
         raw = self.path.read_bytes()
+        where, what = f"{self._what} {self.path.name}", "not UTF-8 text"
         try:
             raw.decode("utf-8-sig")
-            line, byte = "?", ""
-        except UnicodeDecodeError as exc:
-            line, byte = raw[: exc.start].count(b"\n") + 1, f" (byte 0x{raw[exc.start]:02x})"
+        except UnicodeDecodeError as exc:  # the first byte that is not UTF-8, and its line
+            line = raw[: exc.start].count(b"\n") + 1
+            where += f" line {line}"
+            what += f" (byte 0x{raw[exc.start]:02x})"
         return (
-            f"{self._what} {self.path.name} line {line}: not UTF-8 text{byte}, perhaps Latin-1 "
-            "or Windows-1252; save it as UTF-8 (in a spreadsheet: CSV UTF-8) and try again"
+            f"{where}: {what}, perhaps Latin-1 or Windows-1252; save it as UTF-8 (in a "
+            "spreadsheet: CSV UTF-8) and try again"
         )
 
 

@@ -14,10 +14,8 @@ logistic regression fitted on validation outliers; without outlier data this kit
 each layer's distance by its median on the training patches (:func:`layer_scale`) and
 averages (:func:`ensemble_scores`), so a typical training patch scores about 1 (the
 validation photos are kept apart for the frame threshold, so its guarantee holds).
-Measured on the job-trust benchmark's EfficientNet-Lite0 (2 Dec 2026): the penultimate
-layer alone separated reserved-surface cells from usual ones with ROC AUC 0.76, the
-early stages' pooled features with 0.99-1.00 (a new surface changes colour and texture
-statistics that the classifier's last layer learns to ignore).
+The early stages are there because a new surface changes colour and texture statistics
+that the classifier's last layer learns to ignore (benchmarks/results/lab_notes.md).
 
 Choices of this kit (documented, not from the paper):
 
@@ -25,8 +23,8 @@ Choices of this kit (documented, not from the paper):
   principal components (PCA fitted on the training features, ``k = 64`` by default), so
   the summary stored inside the ONNX model stays small (``k x d`` + ``k x k`` + classes).
   A change of surface that moves features only along directions outside the kept ``k``
-  is not seen (measured in the tests: a shift of 1.0 in every one of 128 dimensions
-  scored AUC 0.88 with k = 32, a shift of 2.0 above 0.99); raise ``k`` or pass None;
+  is not seen, and a small shift in many dimensions is seen only in part
+  (benchmarks/results/lab_notes.md); raise ``k`` or pass None;
 - shrinkage: the tied covariance is shrunk toward a scaled identity with the
   Ledoit-Wolf coefficient (Ledoit and Wolf 2004, "A well-conditioned estimator for
   large-dimensional covariance matrices", J. Multivariate Analysis 88), computed here in

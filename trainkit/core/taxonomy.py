@@ -18,6 +18,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
+from typing import cast, overload
 
 import numpy as np
 import yaml
@@ -46,6 +47,10 @@ D4_ELEMENTS: tuple[tuple[int, bool], ...] = tuple((k, f) for f in (False, True) 
 BUILTIN_CLASS_SETS = ("orientation", "presence")
 
 
+@overload
+def angle_difference(a: float, b: float) -> float: ...
+@overload
+def angle_difference(a: float | np.ndarray, b: float | np.ndarray) -> float | np.ndarray: ...
 def angle_difference(a: float | np.ndarray, b: float | np.ndarray) -> float | np.ndarray:
     """Smallest absolute difference between undirected angles in degrees (0..90)."""
     d = np.abs((np.asarray(a, dtype=float) - np.asarray(b, dtype=float)) % 180.0)
@@ -171,7 +176,7 @@ class ClassSet:
         oriented = self.oriented_indices
         if not oriented:
             return int(self.catchall_index)  # type: ignore[arg-type]
-        dists = [angle_difference(angle_deg, self.angle_centres[i]) for i in oriented]
+        dists = [angle_difference(angle_deg, cast(float, self.angle_centres[i])) for i in oriented]
         return int(oriented[int(np.argmin(dists))])
 
     def boundary_distance(self, angle_deg: float) -> float:
@@ -184,7 +189,9 @@ class ClassSet:
         oriented = self.oriented_indices
         if len(oriented) < 2:
             return float("inf")
-        dists = sorted(angle_difference(angle_deg, self.angle_centres[i]) for i in oriented)
+        dists = sorted(
+            angle_difference(angle_deg, cast(float, self.angle_centres[i])) for i in oriented
+        )
         return float((dists[1] - dists[0]) / 2.0)
 
     # ----- remapping under D4 ------------------------------------------------------

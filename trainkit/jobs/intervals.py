@@ -20,7 +20,7 @@
 - ``"jeffreys"``: the same with one set of draws and ``Beta(x + 0.5, n - x + 0.5)`` rates
   (Webber's fixed-hyperparameter form; the value 0.5 recalled from memory). It
   under-covers recall when a miss is seen in the large ``rest`` stratum, and badly with
-  the ``rest`` bands (one half pseudo-count per band: recall coverage 0.65-0.91 measured).
+  the ``rest`` bands (one half pseudo-count per band; see benchmarks/results/lab_notes.md).
 - ``"korn-graubard"``: Clopper-Pearson on the effective sample size (Korn and Graubard
   1998, Survey Methodology 24(2)), the usual survey interval for proportions near 0 or 1.
 - ``"wald"``: estimate ± z·se, for comparison only.

@@ -156,7 +156,8 @@ def cascade_to_onnx(stage1, main, patch_px: int, pass_threshold: float):
     ]
     out_info = helper.make_tensor_value_info("c/then_out", TensorProto.FLOAT, ["N", num_classes])
     # The main network's weights live inside the branch: as outer-scope values ONNX Runtime
-    # does not treat them as constants there, and the branch ran 4x slower (measured).
+    # does not treat them as constants there, and the branch ran several times slower
+    # (benchmarks/results/lab_notes.md).
     then_graph = helper.make_graph(
         then_nodes, "main_network", [], [out_info], initializer=list(two.graph.initializer)
     )

@@ -272,9 +272,8 @@ def fit_graph(
     labels = np.asarray(train_labels)
     summaries = [F.fit(f, labels, k=k) for f in train_feats]
     # Scales from the training patches: the validation photos stay untouched by the score,
-    # so the conformal threshold below keeps its guarantee (measured in the tests: scales
-    # from 6 validation photos put their own medians at the bottom of the in-distribution
-    # spread, and half of new grey frames were warned about).
+    # so the conformal threshold below keeps its guarantee (scales from the validation
+    # photos broke it: benchmarks/results/lab_notes.md).
     scales = [F.layer_scale(F.scores(s, f)) for s, f in zip(summaries, train_feats, strict=True)]
     val_dist = [F.scores(s, f) for s, f in zip(summaries, val_feats, strict=True)]
     val_cells = F.ensemble_scores(val_dist, scales)

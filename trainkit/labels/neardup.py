@@ -32,13 +32,12 @@ __all__ = [
 
 HASH_BITS = 64
 HASH_NAME = "pHash 64-bit (ImageHash)"
-#: Largest Hamming distance, in bits of 64, at which two crops count as near-duplicates.
-#: Measured on this kit's synthetic concrete (40 photos, 128- and 224-px tiles; the cases
-#: kept as tests are in tests/test_neardup.py): 6 bits catch the same tile shifted by
-#: 1 px (99-100 %) or 2 px (90-99 %) and JPEG re-encodes at quality 60 (99.8-100 %),
-#: while no pair of unrelated tiles (208,000 pairs) came closer than 8 bits. A pHash
-#: distance is even (each hash has 32 of its 64 bits set, barring ties), so 6 and 7
-#: behave alike. Flat crops (blank, clipped) hash alike and are reported as pairs.
+#: Largest Hamming distance, in bits of 64, at which two crops count as near-duplicates:
+#: 6 bits catch the same tile shifted by a pixel or two and JPEG re-encodes, below the
+#: closest unrelated tiles (benchmarks/results/lab_notes.md; the cases kept as tests are in
+#: tests/test_neardup.py). A pHash distance is even (each hash has 32 of its 64 bits set,
+#: barring ties), so 6 and 7 behave alike. Flat crops (blank, clipped) hash alike and are
+#: reported as pairs.
 DEFAULT_MAX_DISTANCE = 6
 #: Pairs compared per block of the Hamming search (bounds the memory to a few tens of MB).
 _BLOCK_PAIRS = 1 << 22

@@ -13,10 +13,9 @@ Cross-entropy is linear in its target, so this equals ``w`` times the distillati
 ``1 - w`` times the usual loss on the true labels. Augmentation: a random symmetry of the
 square per patch (the screening question does not change under it) and, with
 ``cascade.jitter``, a random contrast (x0.6-1.4 about the patch mean) and brightness (+-40
-levels) per patch. That simple jitter, not the main network's albumentations block, because
-it was measured better for this question (development runs on one trained screener, scripts
-not kept: with the main block's shadows and blur the first stage scored clean test cells up
-to 0.8-0.9, with the jitter up to 0.3-0.6, at similar crack scores). The pass threshold
+levels) per patch. That simple jitter, not the main network's albumentations block: with
+the block's shadows and blur the first stage scored clean cells much higher at similar crack
+scores (benchmarks/results/lab_notes.md). The pass threshold
 is not chosen here: evaluation chooses it on validation, beside the main network's own
 threshold (:func:`trainkit.judging.scoring.cascade_pass_threshold`).
 """

@@ -96,9 +96,8 @@ class Stride4CNN(nn.Module):
     a dark, low-contrast surface looks like a bright one; a 4x4 stride-4 stem sees the full
     128-px patch (a learned patchify keeps hairlines that an average pool would wash out);
     three conv-BN-ReLU stages with max-pooling; then a global *max* pool, because one
-    crack anywhere in the cell is enough. In ONNX Runtime on 2 cores it scored 4,900-5,700
-    patches/s against EfficientNet-Lite0's 460 at 128 px (development runs, scripts not kept):
-    about a tenth of the cost.
+    crack anywhere in the cell is enough. It costs about a tenth of EfficientNet-Lite0 per
+    patch at 128 px (benchmarks/results/lab_notes.md).
     """
 
     def __init__(self, num_classes: int, widths: tuple[int, ...] = (16, 32, 48, 64)) -> None:
@@ -189,7 +188,7 @@ def _tf_efficientnet_lite0(num_classes: int) -> nn.Module:
     m = timm.create_model("tf_efficientnet_lite0", pretrained=False, num_classes=num_classes)
     # A new head with PyTorch's default Linear initialisation, as the torchvision backbones
     # get: timm's TensorFlow-style init (uniform in +-1/sqrt(num_classes)) gives a 6-class
-    # head logits in the tens on pretrained features (measured: first-epoch loss 4.9).
+    # head logits in the tens on pretrained features (benchmarks/results/lab_notes.md).
     m.classifier = nn.Linear(m.num_features, num_classes)
     return m
 

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -184,7 +184,7 @@ def weighted_thresholds(
         scores, cum = p[y][order], np.cumsum(w[y][order])
         m = int(np.searchsorted(cum, float(target_recall) * cum[-1] * (1 - 1e-12)))
         return float(scores[min(m, scores.size - 1)])
-    b = _check_budget(max_false_alarm_rate)
+    b = _check_budget(cast(float, max_false_alarm_rate))  # not None: exactly one was given
     if y.all():
         raise ValueError("expected at least one non-crack patch to set a false-alarm threshold")
     order = np.argsort(-p[~y], kind="stable")

@@ -1,8 +1,8 @@
 """ONNX-only inference: load an exported screener and turn a frame into a patch-level crack map.
 
 This module imports neither torch nor torchvision nor OpenCV: a downstream tool
-needs only numpy, pillow and onnxruntime (``pip install --no-deps trainkit`` plus
-``pip install numpy pillow onnxruntime``).
+needs only numpy, pillow and onnxruntime (``pip install trainkit-concrete``, whose
+plain install brings exactly those three).
 
 Cell rule: cells are ``patch_px`` squares (or, when the frame's scale ``gsd_mm``
 and the model's ``patch_mm`` are known, squares covering ``patch_mm`` of surface,

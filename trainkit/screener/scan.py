@@ -371,7 +371,7 @@ def _dask(model, paths, gsd_mm, overlays, overlay_dir, scheduler: str) -> Iterat
         from distributed import Client, as_completed
     except ImportError:
         raise ScreenerError(
-            "the dask engine needs dask.distributed: pip install 'trainkit[dask]'"
+            "the dask engine needs dask.distributed: pip install 'trainkit-concrete[dask]'"
         ) from None
     ov = str(overlay_dir.resolve()) if overlay_dir else None
     try:

@@ -2,7 +2,8 @@
 
 The package is split by job; this module re-exports the names other code uses:
 
-- :mod:`~trainkit.synth.options`: generator version, scene kinds, :class:`SynthOptions`.
+- :mod:`~trainkit.synth.options`: generator version, scene kinds, :class:`SynthOptions`,
+  :class:`SurfaceFamily` (a surface family from outside the kit).
 - :mod:`~trainkit.synth.truth`: :class:`Crack` polylines and :class:`SynthPhoto`.
 - :mod:`~trainkit.synth.geometry`: screen angles and exact clipping to boxes.
 - :mod:`~trainkit.synth.paths`: random crack geometry (walks, branches, widths, map networks).
@@ -20,7 +21,7 @@ from __future__ import annotations
 from trainkit.synth.dataset import ASSET_OWNER, STRUCTURES, photo_specs, scene_plan, write_dataset
 from trainkit.synth.geometry import clipped_lengths
 from trainkit.synth.labels import LabelRules, PatchTruth, derive_patch_label
-from trainkit.synth.options import GENERATOR_VERSION, SCENE_MIX, SCENES, SynthOptions
+from trainkit.synth.options import GENERATOR_VERSION, SCENE_MIX, SCENES, SurfaceFamily, SynthOptions
 from trainkit.synth.photo import generate_photo
 from trainkit.synth.raster import render_cracks
 from trainkit.synth.truth import Crack, SynthPhoto
@@ -35,6 +36,7 @@ __all__ = [
     "ASSET_OWNER",
     "STRUCTURES",
     "Crack",
+    "SurfaceFamily",
     "SynthOptions",
     "SynthPhoto",
     "LabelRules",

@@ -160,8 +160,10 @@ def _options_record(options: SynthOptions) -> dict:
     """The options as written to the manifest; ``surface`` only when it is not the default,
     so manifests made before the option existed stay byte-identical."""
     record = asdict(options)
-    if record["surface"] == "default":
+    if options.surface == "default":
         del record["surface"]
+    else:
+        record["surface"] = options.surface.name
     return record
 
 

@@ -3,13 +3,21 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
 from trainkit.core.errors import TrainkitError
 
-__all__ = ["GENERATOR_VERSION", "SCENES", "SCENE_MIX", "SURFACES", "SynthError", "SynthOptions"]
+__all__ = [
+    "GENERATOR_VERSION",
+    "SCENES",
+    "SCENE_MIX",
+    "SurfaceFamily",
+    "SynthError",
+    "SynthOptions",
+]
 
 
 class SynthError(TrainkitError):
@@ -22,11 +30,28 @@ GENERATOR_VERSION = "trainkit.synth 1.0"
 #: Scene kinds accepted by :class:`SynthOptions` (``random`` resolves to one of the others).
 SCENES = ("none", "single", "multi", "map", "random")
 
-#: Surface families accepted by :class:`SynthOptions`. ``default`` is the family of every
-#: dataset, demo frame and test of the kit; ``broom`` is reserved for
-#: ``benchmarks/job_trust.py`` (a surface no training data has: see
-#: :mod:`trainkit.synth.reserved`) and must never be used for the demo or the tiny dataset.
-SURFACES = ("default", "broom")
+
+@dataclass(frozen=True)
+class SurfaceFamily:
+    """A surface family other than the kit's own ``"default"``: its paste and its camera.
+
+    The kit makes every dataset, demo frame and test photo from the default family; a
+    family from outside (``benchmarks/reserved.py`` defines the job-trust benchmark's
+    ``broom``) makes photos that no training data of the kit is made from.
+
+    Attributes:
+        name: the family's name, recorded in manifests.
+        surface: ``surface(rng, h, w) -> (rgb, light)``, the (H, W, 3) float32 concrete and
+            its (H, W) lighting field, like :func:`~trainkit.synth.surface.concrete_surface`.
+        camera: ``camera(rng, rgb, blur_sigma, noise_sigma) -> image``, the lit float RGB
+            (cracks drawn) to the (H, W, 3) uint8 image; None keeps the default optics and
+            sensor noise.
+    """
+
+    name: str
+    surface: Callable[[np.random.Generator, int, int], tuple[np.ndarray, np.ndarray]]
+    camera: Callable[[np.random.Generator, np.ndarray, float, float], np.ndarray] | None = None
+
 
 #: Scene mix used for ``scene="random"`` and by :func:`write_dataset`.
 SCENE_MIX: tuple[tuple[str, float], ...] = (
@@ -52,9 +77,9 @@ class SynthOptions:
         noise_sigma: sensor noise in grey levels.
         jpeg_quality: if set, the returned image went through JPEG at this quality.
         gsd_mm: scale in mm per pixel, recorded for widths/lengths in mm.
-        surface: surface family, one of :data:`SURFACES`; ``broom`` (reserved for the
-            job-trust benchmark) changes the paste, aggregate, texture, light and camera
-            but not the cracks, their truth or the distractors.
+        surface: ``"default"`` (the kit's surface family) or a :class:`SurfaceFamily`, which
+            changes the paste, texture, light and camera but not the cracks, their truth
+            or the distractors.
     """
 
     height: int = 512
@@ -67,7 +92,7 @@ class SynthOptions:
     noise_sigma: float = 2.0
     jpeg_quality: int | None = None
     gsd_mm: float | None = None
-    surface: str = "default"
+    surface: str | SurfaceFamily = "default"
 
     def __post_init__(self) -> None:
         for name in ("height", "width"):
@@ -93,9 +118,9 @@ class SynthOptions:
             raise SynthError(
                 f"SynthOptions.jpeg_quality: expected 1..100 or None, got {self.jpeg_quality!r}"
             )
-        if self.surface not in SURFACES:
+        if self.surface != "default" and not isinstance(self.surface, SurfaceFamily):
             raise SynthError(
-                f"SynthOptions.surface: expected one of {SURFACES}, got {self.surface!r}"
+                f"SynthOptions.surface: expected 'default' or a SurfaceFamily, got {self.surface!r}"
             )
         if self.gsd_mm is not None and not (self.gsd_mm > 0 and math.isfinite(self.gsd_mm)):
             raise SynthError(f"SynthOptions.gsd_mm: expected > 0 or None, got {self.gsd_mm!r}")

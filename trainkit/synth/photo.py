@@ -10,10 +10,9 @@ from PIL import Image
 
 from trainkit.synth.distractors import draw_distractors
 from trainkit.synth.noise import smooth_noise
-from trainkit.synth.options import SCENE_MIX, SynthOptions
+from trainkit.synth.options import SCENE_MIX, SurfaceFamily, SynthOptions
 from trainkit.synth.paths import make_cracks
 from trainkit.synth.raster import render_cracks
-from trainkit.synth.reserved import broom_camera, broom_surface
 from trainkit.synth.surface import concrete_surface
 from trainkit.synth.truth import SynthPhoto
 
@@ -66,8 +65,8 @@ def generate_photo(seed: int, options: SynthOptions = _DEFAULT_OPTIONS) -> Synth
     cracks = make_cracks(r_geo, scene, options)
     coverage, mask, angle = render_cracks(cracks, h, w)
 
-    broom = options.surface == "broom"  # the benchmark's reserved family
-    rgb, light = broom_surface(r_surf, h, w) if broom else concrete_surface(r_surf, h, w)
+    family = options.surface if isinstance(options.surface, SurfaceFamily) else None
+    rgb, light = (family.surface if family else concrete_surface)(r_surf, h, w)
     if options.distractors:
         draw_distractors(r_dist, rgb, light)
     if cracks:
@@ -75,8 +74,8 @@ def generate_photo(seed: int, options: SynthOptions = _DEFAULT_OPTIONS) -> Synth
         depth_field = depth * (1.0 + 0.08 * smooth_noise(r_geo, h, w, 80.0))
         rgb *= (1.0 - np.clip(depth_field, 0.4, 0.92) * coverage)[:, :, None]
     rgb *= light[:, :, None]
-    if broom:
-        image = broom_camera(r_noise, rgb, options.blur_sigma, options.noise_sigma)
+    if family and family.camera:
+        image = family.camera(r_noise, rgb, options.blur_sigma, options.noise_sigma)
     else:
         if options.blur_sigma > 0:
             rgb = cv2.GaussianBlur(rgb, (0, 0), options.blur_sigma)

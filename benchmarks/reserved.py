@@ -1,10 +1,11 @@
-"""The benchmark's reserved surface family: broom-finished warm paste seen by another camera.
+"""The benchmarks' reserved surface family: broom-finished warm paste seen by another camera.
 
-``SynthOptions(surface="broom")`` makes photos that no training data, demo or tiny
-dataset of the kit is made from: it is reserved for ``benchmarks/job_trust.py``, which
-checks whether a screener trained on the default family notices that these frames are
-unfamiliar and how well a job's acceptance sample estimates its recall on them. Keep it
-out of every other use, or the benchmark stops measuring a surface the model never saw.
+``SynthOptions(surface=BROOM)`` makes photos that no training data, demo or tiny dataset
+of the kit is made from: it lives here, outside the package, for ``job_trust.py`` (and
+``job_adapt.py`` and ``cascade.py``, which reuse its frames), which checks whether a
+screener trained on the default family notices that these frames are unfamiliar and how
+well a job's acceptance sample estimates its recall on them. Keep it out of every other
+use, or the benchmarks stop measuring a surface the model never saw.
 
 How it differs from the default family (:mod:`~trainkit.synth.surface`), all invented:
 
@@ -30,10 +31,11 @@ import cv2
 import numpy as np
 from PIL import Image
 
+from trainkit.synth import SurfaceFamily
 from trainkit.synth.lighting import uneven_lighting
 from trainkit.synth.noise import smooth_noise
 
-__all__ = ["broom_surface", "broom_camera"]
+__all__ = ["BROOM", "FAMILIES", "broom_surface", "broom_camera"]
 
 #: Stone colours of the exposed aggregate (RGB multipliers of the paste grey).
 _STONES = np.array(
@@ -147,3 +149,9 @@ def broom_camera(
     rgb += chroma * np.float32(rng.uniform(2.0, 4.0))
     image = np.clip(np.rint(rgb), 0, 255).astype(np.uint8)
     return _jpeg(image, int(rng.integers(55, 76)))
+
+
+#: The reserved family, for ``SynthOptions(surface=BROOM)``.
+BROOM = SurfaceFamily("broom", broom_surface, broom_camera)
+#: The benchmarks' frame sets by name: the kit's own family and the reserved one.
+FAMILIES: dict[str, str | SurfaceFamily] = {"default": "default", "broom": BROOM}
