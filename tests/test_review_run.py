@@ -80,7 +80,7 @@ def test_quitting_a_run_tells_how_to_resume(tmp_path):
 def test_ctrl_c_in_key_mode_ends_the_run_as_interrupted_with_answers_kept(tmp_path):
     from trainkit.labels.review_ui import run_keys
 
-    ws = make_ws(tmp_path / "ws", n=3)
+    ws = make_ws(tmp_path / "ws", 1, 3)
     session = prepare_session(ws, ReviewRequest(reviewer="ana"))
     keys = iter(["1", "\x03", "2"])  # one answer, then Ctrl-C (a byte in key mode)
     console, _ = plain_console()

@@ -267,7 +267,7 @@ def test_keys_typed_ahead_while_a_screen_is_drawn(tmp_path):
 
 def test_ctrl_c_saves_and_exits_with_the_interrupted_code(tmp_path):
     """Ctrl-C in key mode is not a normal quit: answers are kept, the exit code is 130."""
-    ws = make_ws(tmp_path / "ws", n=4)
+    ws = make_ws(tmp_path / "ws", 1, 4, crop=lined)
     child = spawn(ws, "--reviewer", "ana")
     shown(child, 1, 0, 4)
     child.send("3")
