@@ -245,7 +245,7 @@ BAD_PHOTOS = [
 
 @st.composite
 def label_row(draw):
-    """(fields by column, fields kept, (photo and box valid?, label valid?)), known by construction."""
+    """(fields by column, fields kept, photo and box valid?), known by construction."""
     ok = True
     if draw(st.booleans()):
         photo = draw(st.sampled_from(sorted(BOXES)))
@@ -262,11 +262,37 @@ def label_row(draw):
     else:
         box, ok = ["0", "0", {"float": "32.0", "empty": "", "word": "x"}[box_kind], "32"], False
     label = draw(st.sampled_from([*CLASSES, "", " vertical ", "bogus", "Horizontal", "crack"]))
-    label_ok = label.strip() in (*CLASSES, "")
     fields = dict(zip(COLUMNS, [photo, *box, label], strict=True))
-    # Missing fields: the row stops early (a missing label means unsure, as an empty one).
+    # Missing fields: the row stops early (a missing label is an empty one: no answer).
     keep = draw(st.sampled_from([6, 6, 6, 5, 3, 1]))
-    return fields, keep, (ok, label_ok)
+    return fields, keep, ok
+
+
+def _expected_import(rows, order, lookup, last):
+    """What the importer must do with these rows, worked out row by row from its rules.
+
+    Returns (first bad line or None, label events to add in order). Rules (labels_io's
+    docstring): a row with every field blank is skipped; the place must be valid; an empty
+    or missing label is skipped; a label must be a class name (or ``unsure``); a patch
+    named again with the same label counts once, with another label is an error; a label
+    the same reviewer and origin gave the patch last is not added again.
+    """
+    seen = {}
+    for line, (fields, keep, ok) in enumerate(rows, start=2):  # line 1 is the header
+        present = {c: fields[c] for c in order[:keep]}
+        if not any(v.strip() for v in present.values()):
+            continue
+        if not ok or set(order[keep:]) - {"label"}:
+            return line, None
+        label = present.get("label", "").strip()
+        if not label:
+            continue
+        if label not in CLASSES:
+            return line, None
+        pid = lookup[(fields["photo"], tuple(int(fields[k]) for k in ("x0", "y0", "x1", "y1")))]
+        if seen.setdefault(pid, label) != label:
+            return line, None
+    return None, [(pid, lab) for pid, lab in seen.items() if last.get(pid, "-") != lab]
 
 
 @settings(
@@ -286,24 +312,19 @@ def test_label_import_is_all_or_nothing_with_the_line_number(
         for fields, keep, _ in rows:
             present = order[:keep]
             w.writerow([fields[c] for c in present])
-    expected_ok = []
-    for _fields, keep, (ok, label_ok) in rows:
-        missing = set(order[keep:])
-        expected_ok.append(ok and not (missing - {"label"}) and ("label" in missing or label_ok))
     before = label_ws.label_events()
-    if all(expected_ok):
+    last = {
+        e["patch_id"]: e["label"]
+        for e in before
+        if (e["reviewer"], e["origin"]) == ("import", "file")
+    }
+    bad_line, want = _expected_import(rows, order, label_ws.patch_lookup(), last)
+    if bad_line is None:
         n = import_csv(label_ws, path)
         after = label_ws.label_events()
-        assert n == len(rows) and len(after) == len(before) + n
-        lookup = label_ws.patch_lookup()
-        want = []
-        for fields, keep, _ in rows:
-            label = fields["label"].strip() if "label" in order[:keep] else ""
-            box = tuple(int(fields[k]) for k in ("x0", "y0", "x1", "y1"))
-            want.append((lookup[(fields["photo"], box)], label or None))
+        assert n == len(want) and len(after) == len(before) + n
         assert [(e["patch_id"], e["label"]) for e in after[len(before) :]] == want
     else:
-        first_bad = expected_ok.index(False) + 2  # line 1 is the header
-        with pytest.raises(LabelsIOError, match=rf"^labels\.csv line {first_bad}: "):
+        with pytest.raises(LabelsIOError, match=rf"^labels\.csv line {bad_line}: "):
             import_csv(label_ws, path)
         assert label_ws.label_events() == before  # nothing from a failed import

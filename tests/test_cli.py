@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import csv
 import json
 import re
 import subprocess
@@ -115,3 +116,167 @@ def test_damaged_database_is_one_line_not_a_traceback(tmp_path, capsys):
         err.startswith("trainkit: the workspace database could not be used")
         and "Traceback" not in err
     )
+
+
+def _photos(folder, n=2, size=(100, 150)):
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(0)
+    for i in range(n):
+        Image.fromarray(rng.integers(0, 255, (*size, 3), dtype=np.uint8)).save(folder / f"p{i}.png")
+    return folder
+
+
+def test_tile_defaults_to_the_default_recipes_patch_size(tmp_path, capsys):
+    from trainkit.labels.workspace import Workspace
+    from trainkit.learning.config import load_train_config
+
+    photos = _photos(tmp_path / "photos", n=1, size=(300, 300))
+    assert main(["-q", "tile", str(photos), "--workspace", str(tmp_path / "ws")]) == 0
+    patch_px = load_train_config("default").patch_px
+    assert Workspace.open(tmp_path / "ws").tile_px == patch_px
+    assert main(["tile", "--help"]) == 0
+    out = capsys.readouterr().out
+    assert f"[default: {patch_px};" in out and "--tile-px 224" not in out
+
+
+def test_train_warns_when_the_workspace_patches_differ_from_the_recipe(
+    tmp_path, capsys, monkeypatch
+):
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.labels.workspace import Workspace
+
+    Workspace.create(tmp_path / "ws", class_set=load_class_set("orientation"), tile_px=224)
+    result = {
+        "best_epoch": 1,
+        "best_val": {"val_recall_at_fa": 1.0, "val_balanced_accuracy": 1.0},
+        "median_images_per_second": 10.0,
+    }
+    monkeypatch.setattr("trainkit.learning.training.train", lambda *a, **k: result)
+    assert main(["-q", "train", str(tmp_path / "ws"), "--out", str(tmp_path / "e")]) == 0
+    err = capsys.readouterr().err
+    assert "the workspace's patches are 224 px but the recipe is made for 128 px" in err
+    assert "(224/128)^2 = 3.1x" in err  # (224 / 128)^2 = 3.0625
+
+
+def test_importing_the_same_labels_with_tile_again_adds_no_events(tmp_path, capsys):
+    photos = _photos(tmp_path / "photos")
+    labels = tmp_path / "labels.csv"
+    labels.write_text("photo,x0,y0,x1,y1,label\np0.png,0,0,64,64,none\np1.png,64,0,128,64,map\n")
+    args = ["tile", str(photos), "-w", str(tmp_path / "ws"), "--tile-px", "64"]
+    assert main([*args, "--import-labels", str(labels)]) == 0
+    assert "imported 2 labels" in capsys.readouterr().out
+    assert main([*args, "--import-labels", str(labels)]) == 0
+    out = " ".join(capsys.readouterr().out.split())  # the console wraps long lines
+    assert "imported 0 labels" in out and "2 already recorded with the same label" in out
+    from trainkit.labels.workspace import Workspace
+
+    assert len(Workspace.open(tmp_path / "ws").label_events()) == 2
+
+
+def test_an_oversized_csv_field_is_one_line_not_a_crash(tmp_path, capsys):
+    photos = _photos(tmp_path / "photos", n=1)
+    assert main(["-q", "tile", str(photos), "-w", str(tmp_path / "ws"), "--tile-px", "64"]) == 0
+    huge = tmp_path / "huge.csv"
+    huge.write_text("patch_id,label\n1,none\n2," + "x" * 200_000 + "\n")
+    assert main(["review", str(tmp_path / "ws"), "--import-csv", str(huge)]) == 2
+    err = capsys.readouterr().err
+    assert err.splitlines() == [
+        f"trainkit: label file huge.csv line 3: a field is longer than {csv.field_size_limit()} "
+        "characters (is it the right file, with matching quotes?)"
+    ]
+
+
+def test_a_decompression_bomb_header_is_one_skip_line(tmp_path):
+    """A PNG header claiming 20000 x 20000 pixels (a few hundred bytes) is skipped in one line."""
+    import struct
+    import zlib
+
+    def chunk(kind, data):
+        return (
+            struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data))
+        )
+
+    photos = _photos(tmp_path / "photos", n=1)
+    ihdr = struct.pack(">IIBBBBB", 20000, 20000, 8, 2, 0, 0, 0)
+    (photos / "bomb.png").write_bytes(
+        b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", ihdr) + chunk(b"IDAT", zlib.compress(b"\0" * 99))
+    )
+    # A real process: pytest would catch the Python warning that used to reach stderr.
+    args = ["-q", "tile", str(photos), "-w", str(tmp_path / "ws"), "--tile-px", "64"]
+    res = subprocess.run(
+        [sys.executable, "-m", "trainkit", *args], capture_output=True, text=True, timeout=120
+    )
+    assert res.returncode == 1
+    (line,) = res.stderr.splitlines()  # Pillow's DecompressionBombWarning used to add two lines
+    assert line.startswith("trainkit: photo bomb.png is larger than the limit") and line.endswith(
+        "; skipped"
+    )
+
+
+def test_the_confusion_matrix_says_it_counts_the_likeliest_class(demo_run):
+    """The matrix uses argmax, the headline the threshold: both places say so in one sentence."""
+    import io
+
+    from rich.console import Console
+
+    from trainkit.cli.tables import print_evaluation
+
+    out, _ = demo_run
+    res = json.loads((out / "evaluation/metrics.json").read_text(encoding="utf-8"))
+    buf = io.StringIO()
+    print_evaluation(Console(file=buf, width=200), res, out / "evaluation")
+    text = " ".join(buf.getvalue().split())
+    thr = res["screening"]["threshold"]
+    assert (
+        "predicted = the likeliest class; screening instead flags a patch when its crack "
+        f"probability 1 - P(none) reaches the threshold {thr:.3f}"
+    ) in text
+    page = " ".join((out / "evaluation/report.html").read_text(encoding="utf-8").split())
+    assert "columns: predicted class, the model's likeliest class" in page
+    assert (
+        "This is not how the screener decides: it flags a patch when its crack probability" in page
+    )
+
+
+def test_export_says_warned_not_flagged_for_unfamiliar_frames(tmp_path, capsys, monkeypatch):
+    """'Flagged' is the word for cells that may hold a crack; unfamiliar frames get a warning."""
+    exp = tmp_path / "exp"
+    exp.mkdir()
+    res = {
+        "model": str(exp / "model.onnx"),
+        "bytes": 1e6,
+        "exporter": "dynamo",
+        "parity_max_abs_diff": 1e-7,
+        "parity_patches": 8,
+        "threshold": 0.3,
+        "evaluated": True,
+        "contract": "trainkit-screener-2",
+        "familiarity": {"threshold": 1.5, "calibration_frames": 12, "false_warning_bound": 0.1},
+    }
+    monkeypatch.setattr("trainkit.judging.export.export_experiment", lambda *a, **k: res)
+    assert main(["export", str(exp)]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert (
+        "gets an unfamiliar-surface warning when its cells' median familiarity exceeds 1.50" in out
+    )
+    assert "at most 10% of frames like them are warned about" in out
+    assert "flagged" not in out
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ["tile", "PHOTOS", "-w", "WS", "--gsd-mm", "nan"],
+        ["tile", "PHOTOS", "-w", "WS", "--tile-mm", "inf"],
+        ["evaluate", "EXP", "--target-recall", "nan"],
+        ["scan", "PHOTOS", "--model", "EXP", "--out", "WS", "--gsd-mm", "nan"],
+    ],
+)
+def test_nan_and_infinity_are_refused_at_the_option(tmp_path, capsys, args):
+    # NaN compares False with every bound, so a plain click.FloatRange lets it through and
+    # every frame then fails later.
+    photos = _photos(tmp_path / "photos", n=1)
+    swap = {"PHOTOS": str(photos), "WS": str(tmp_path / "ws"), "EXP": str(tmp_path)}
+    assert main([swap.get(a, a) for a in args]) == 2
+    (line,) = capsys.readouterr().err.splitlines()
+    assert "is not a finite number" in line and line.startswith("trainkit: invalid value for")

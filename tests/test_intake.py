@@ -195,6 +195,31 @@ def test_sidecar_errors(tmp_path):
         read_sidecar(p)
 
 
+def test_sidecar_errors_are_the_kits_own_one_line_errors(tmp_path):
+    # A user's mistake in a sidecar is a TrainkitError (one `trainkit:` line), never a crash.
+    from trainkit.core.errors import TrainkitError
+
+    p = tmp_path / "s.csv"
+    for text in ("photo,gsd_mm\na.jpg,abc\n", "gsd_mm\n0.3\n", "photo,roi\na.jpg,1 2 3\n"):
+        p.write_text(text)
+        with pytest.raises(TrainkitError, match="sidecar s.csv"):
+            read_sidecar(p)
+
+
+def test_sidecar_from_a_spreadsheet_bom_latin1_and_oversized_fields(tmp_path):
+    from trainkit.core.csvfile import CsvFileError
+
+    p = tmp_path / "scale.csv"
+    p.write_bytes("photo,gsd_mm,structure\na.jpg,0.3,Pont\n".encode("utf-8-sig"))
+    assert read_sidecar(p) == {"a.jpg": {"gsd_mm": 0.3, "group": "Pont"}}
+    p.write_bytes("photo,gsd_mm,structure\na.jpg,0.3,Pont\nb.jpg,0.3,Fa\xe7ade\n".encode("latin-1"))
+    with pytest.raises(CsvFileError, match=r"sidecar scale\.csv line 3: not UTF-8 text"):
+        read_sidecar(p)
+    p.write_text("photo,gsd_mm,structure\na.jpg,0.3," + "x" * 200_000 + "\n")
+    with pytest.raises(CsvFileError, match=r"sidecar scale\.csv line 2: a field is longer than"):
+        read_sidecar(p)
+
+
 def write_photos(folder, n=3, size=(64, 96)):
     folder.mkdir(parents=True, exist_ok=True)
     paths = []

@@ -10,6 +10,8 @@ import pytest
 from _helpers import make_ws
 from PIL import Image
 
+from trainkit.core.csvfile import CsvFileError
+from trainkit.core.errors import TrainkitError
 from trainkit.labels.labels_io import (
     LabelsIOError,
     export_csv,
@@ -38,7 +40,7 @@ def test_csv_export_reads_back_into_a_fresh_workspace(tmp_path):
     rows = list(csv.DictReader((tmp_path / "labels.csv").open()))
     assert [(r["label"], r["reviewer"]) for r in rows] == [
         ("none", "ben"),
-        ("", "ana"),
+        ("unsure", "ana"),  # the word, so that reading it back records an unsure answer
         ("map", "ana"),
     ]
     fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
@@ -50,7 +52,7 @@ def test_csv_export_reads_back_into_a_fresh_workspace(tmp_path):
 def test_csv_by_patch_id(tmp_path):
     ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
     p = tmp_path / "ids.csv"
-    p.write_text("patch_id,label\n1,horizontal\n2,\n")
+    p.write_text("patch_id,label\n1,horizontal\n2,unsure\n")
     assert import_csv(ws, p) == 2
     assert [(e["patch_id"], e["label"]) for e in ws.label_events()] == [
         (1, "horizontal"),
@@ -136,7 +138,9 @@ def test_one_importer_one_set_of_path_rules(tmp_path):
     # could point outside the photo folder is refused whichever way the file is keyed.
     ws = make_ws(tmp_path / "ws", 2, 3, photo_name=in_subfolder)
     csv_path = tmp_path / "labels.csv"
-    csv_path.write_text("photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,vertical\np0.jpg,32,0,64,32,\n")
+    csv_path.write_text(
+        "photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,vertical\np0.jpg,32,0,64,32,unsure\n"
+    )
     assert import_csv(ws, csv_path) == 2
     recs = ws.patches()
     assert recs[0].label == "vertical" and recs[1].labelled and recs[1].label is None
@@ -154,3 +158,101 @@ def test_one_importer_one_set_of_path_rules(tmp_path):
             import_csv(ws, csv_path)
     # refused files add nothing
     assert sum(len(ws.label_history(r.id)) for r in ws.patches()) == 2
+
+
+# ----- files as people make them: encodings, long fields, empty and repeated rows ---------------
+
+
+def test_a_utf8_byte_order_mark_is_accepted(tmp_path):
+    # Spreadsheets saving "CSV UTF-8" put U+FEFF first; it is not part of the first column name.
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
+    p = tmp_path / "bom.csv"
+    p.write_bytes("patch_id,label\n1,horizontal\n".encode("utf-8-sig"))
+    assert import_csv(ws, p) == 1
+    assert ws.patches()[0].label == "horizontal"
+
+
+def test_a_latin1_file_is_refused_naming_the_file_line_and_encoding(tmp_path):
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
+    p = tmp_path / "latin.csv"
+    p.write_bytes(
+        "photo,x0,y0,x1,y1,label\np0.jpg,0,0,32,32,none\nfa\xe7ade.jpg,0,0,32,32,none\n".encode(
+            "latin-1"
+        )
+    )
+    with pytest.raises(
+        TrainkitError, match=r"label file latin\.csv line 3: not UTF-8 text.*save it as UTF-8"
+    ):
+        import_csv(ws, p)
+    assert ws.label_events() == []
+
+
+def test_an_oversized_field_is_one_error_naming_the_file_and_line(tmp_path):
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
+    p = tmp_path / "huge.csv"
+    p.write_text("patch_id,label\n1,none\n2," + "x" * (csv.field_size_limit() + 1) + "\n")
+    with pytest.raises(CsvFileError, match=r"label file huge\.csv line 3: a field is longer than"):
+        import_csv(ws, p)
+    assert ws.label_events() == []
+
+
+def test_rows_without_a_label_are_skipped_and_counted_not_made_unsure(tmp_path):
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
+    p = tmp_path / "some.csv"
+    p.write_text("patch_id,label\n1,horizontal\n2,\n3,  \n4,unsure\n,\n")
+    res = import_csv(ws, p)
+    assert (res, res.added, res.empty) == (2, 2, 3)  # the blank last row counts as empty too
+    cur = {r.id: (r.labelled, r.label) for r in ws.patches()}
+    assert cur[1] == (True, "horizontal") and cur[4] == (True, None)  # unsure: an answer
+    assert cur[2] == cur[3] == (False, None)  # never labelled: still in the review queue
+    assert "3 rows with an empty label skipped" in res.describe(p)
+    assert "write 'unsure' to record an unsure answer" in res.describe(p)
+
+
+def test_repeated_rows_count_once_and_contradicting_rows_are_refused(tmp_path):
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
+    p = tmp_path / "rep.csv"
+    p.write_text("patch_id,label\n1,map\n2,none\n1,map\n1,map\n")
+    res = import_csv(ws, p)
+    assert (res.added, res.repeated) == (2, 2)
+    assert [e["patch_id"] for e in ws.label_events()] == [1, 2]
+    assert "2 repeated rows counted once" in res.describe(p)
+    p.write_text("patch_id,label\n3,map\n4,none\n3,vertical\n")
+    with pytest.raises(
+        LabelsIOError,
+        match=r"rep\.csv line 4: patch 3 is labelled 'vertical' here and 'map' at rep\.csv line 2",
+    ):
+        import_csv(ws, p)
+    assert len(ws.label_events()) == 2
+
+
+def test_importing_the_same_labels_again_adds_nothing(tmp_path):
+    from trainkit.labels.review import find_conflicts
+
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
+    p = tmp_path / "labels.csv"
+    p.write_text("patch_id,label\n1,map\n2,none\n3,unsure\n")
+    assert import_csv(ws, p) == 3
+    again = import_csv(ws, p)
+    assert (again, again.unchanged) == (0, 3) and len(ws.label_events()) == 3
+    assert "3 already recorded with the same label" in again.describe(p)
+    # A reviewer disagrees on patch 1 and settles it; importing the file again must not
+    # bring the settled disagreement back (it used to add a new, later import event).
+    ws.add_labels([(1, "vertical")], reviewer="ana")
+    ws.add_label_event(1, "vertical", reviewer="cy", settles=["ana", "import"])
+    assert find_conflicts(ws.label_events()) == {}
+    assert import_csv(ws, p) == 0
+    assert find_conflicts(ws.label_events()) == {}
+    # A changed label in the file is a new answer; another reviewer's import is their own.
+    p.write_text("patch_id,label\n2,map\n")
+    assert import_csv(ws, p) == 1 and import_csv(ws, p, reviewer="ben") == 1
+
+
+def test_importing_the_same_folders_again_adds_nothing(tmp_path):
+    ws = make_ws(tmp_path / "a", 2, 3, photo_name=in_subfolder)
+    ws.add_labels([(1, "vertical"), (4, None)], reviewer="ana")
+    export_folders(ws, tmp_path / "out")
+    fresh = make_ws(tmp_path / "b", 2, 3, photo_name=in_subfolder)
+    assert import_folders(fresh, tmp_path / "out") == 2
+    again = import_folders(fresh, tmp_path / "out")
+    assert (again, again.unchanged) == (0, 2) and len(fresh.label_events()) == 2

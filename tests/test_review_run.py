@@ -75,3 +75,18 @@ def test_quitting_a_run_tells_how_to_resume(tmp_path):
     assert "trainkit: not a terminal: using contact-sheet mode" in out.getvalue()
     assert result["outcome"] == "quit" and result["done"] == 0 and result["remaining"] == 3
     assert summary_line(result).endswith("3 left; run the same command to resume")
+
+
+def test_ctrl_c_in_key_mode_ends_the_run_as_interrupted_with_answers_kept(tmp_path):
+    from trainkit.labels.review_ui import run_keys
+
+    ws = make_ws(tmp_path / "ws", 1, 3)
+    session = prepare_session(ws, ReviewRequest(reviewer="ana"))
+    keys = iter(["1", "\x03", "2"])  # one answer, then Ctrl-C (a byte in key mode)
+    console, _ = plain_console()
+    assert run_keys(session, console, getchar=lambda: next(keys)) == "interrupted"
+    assert [e["label"] for e in ws.label_events()] == ["horizontal"]
+    line = summary_line(
+        {"reviewer": "ana", "outcome": "interrupted", "done": 1, "remaining": 2, "per_minute": 1.0}
+    )
+    assert line.endswith("interrupted, 2 left; run the same command to resume")

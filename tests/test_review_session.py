@@ -263,3 +263,18 @@ def test_keys_typed_ahead_while_a_screen_is_drawn(tmp_path):
         (5, "-"),
         (6, "-"),
     ]
+
+
+def test_ctrl_c_saves_and_exits_with_the_interrupted_code(tmp_path):
+    """Ctrl-C in key mode is not a normal quit: answers are kept, the exit code is 130."""
+    ws = make_ws(tmp_path / "ws", 1, 4, crop=lined)
+    child = spawn(ws, "--reviewer", "ana")
+    shown(child, 1, 0, 4)
+    child.send("3")
+    shown(child, 2, 1, 3)
+    child.sendcontrol("c")
+    child.expect(r"ana: 1 labels this session .* interrupted, 3 left; run the same command")
+    child.expect(pexpect.EOF)
+    child.close()
+    assert child.exitstatus == 130
+    assert [(e["patch_id"], e["label"]) for e in ws.label_events()] == [(1, "vertical")]

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 from sklearn.metrics import roc_curve
@@ -124,3 +126,29 @@ def test_cascade_gate_refuses_when_the_threshold_cannot_be_chosen():
     block = cascade_block((z, z, z > 1), (z, z, z > 1), 0.5)
     assert block["pass_threshold"] is None and not block["gate"]["passed"]
     assert "cannot be chosen" in block["gate"]["verdict"]
+
+
+@pytest.mark.parametrize("budget", [None, 0.2])
+def test_an_adapted_models_threshold_names_both_candidates_and_which_is_used(budget):
+    """The evaluation of an adapted model printed the job cells' threshold beside the one in
+    use with no word on which applied; the source now says both and the one used."""
+    from trainkit.judging.scoring import Scored, threshold_for_job_too
+
+    rng = np.random.default_rng(3)
+    labels = rng.integers(0, 2, 60)
+    p_crack = np.clip(0.3 * labels + 0.7 * rng.random(60), 0, 1)
+    probs = np.stack([1 - p_crack, p_crack], axis=1)
+    job = Scored(labels=labels, probs=probs, logits=np.log(probs + 1e-9))
+    t, source = threshold_for_job_too(
+        0.5, "split rule", job, np.ones(60), target_recall=0.9, max_false_alarms=budget
+    )
+    m = re.fullmatch(
+        r"split rule: 0\.5 from the split's validation patches, (\S+) from the job's 60 "
+        r"validation cells \(weighted by inclusion probability\); the (lower|higher) of the "
+        r"two, (\S+), is used so the rule holds on both",
+        source,
+    )
+    assert m, source
+    job_t, which, used = float(m[1]), m[2], float(m[3])
+    assert which == ("higher" if budget else "lower")
+    assert used == pytest.approx(t, abs=5e-4) == (max if budget else min)(0.5, job_t)

@@ -192,9 +192,10 @@ def _load_labels(
     if any(r.labelled for r in ws.patches()):
         progress.line("labels already loaded (resumed demo)")
         return
-    n = import_csv(ws, labels_csv, reviewer="synth-ground-truth")
+    res = import_csv(ws, labels_csv, reviewer="synth-ground-truth")
     progress.line(
-        f"{n} labels loaded (ambiguous patches are stored as 'unsure' and kept out of training)"
+        f"{res.added} labels loaded ({res.empty} patches the truth calls ambiguous have no "
+        "label: they stay unlabelled and out of training)"
     )
 
 

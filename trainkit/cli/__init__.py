@@ -4,8 +4,10 @@ Each command is a short module of this package (parse, call one library function
 print); shared options are in :mod:`~trainkit.cli.options`, the console, progress
 bars, errors and exit codes in :mod:`~trainkit.cli.output`.
 
-Exit codes (the same for every command): 0 all done; 1 done but some inputs were
-skipped; 2 usage error or nothing could be done; 3 an acceptance gate failed.
+Exit codes (the same for every command, see :mod:`~trainkit.cli.codes`): 0 all done;
+1 done but some inputs were skipped; 2 usage error or nothing could be done; 3 an
+acceptance gate failed; 70 the kit crashed (a bug, shown with its traceback); 130
+interrupted by Ctrl-C.
 """
 
 from __future__ import annotations
@@ -13,9 +15,25 @@ from __future__ import annotations
 import importlib
 import sys
 
-from trainkit.cli.codes import EXIT_GATE, EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
+from trainkit.cli.codes import (
+    EXIT_CRASH,
+    EXIT_GATE,
+    EXIT_INTERRUPTED,
+    EXIT_OK,
+    EXIT_SKIPPED,
+    EXIT_USAGE,
+)
 
-__all__ = ["main", "cli", "EXIT_OK", "EXIT_SKIPPED", "EXIT_USAGE", "EXIT_GATE"]
+__all__ = [
+    "main",
+    "cli",
+    "EXIT_OK",
+    "EXIT_SKIPPED",
+    "EXIT_USAGE",
+    "EXIT_GATE",
+    "EXIT_CRASH",
+    "EXIT_INTERRUPTED",
+]
 
 #: Packages of the ``train`` extra the command line itself needs.
 CLI_PACKAGES = ("click", "rich")
@@ -45,18 +63,45 @@ def main(argv: list[str] | None = None) -> int:
     import click
 
     from trainkit.cli.group import cli
+    from trainkit.cli.output import INTERRUPTED, report_crash, user_message
 
     try:
         cli.main(args=argv, prog_name="trainkit", standalone_mode=False)
-    except click.exceptions.Abort:
+    except click.exceptions.Abort as exc:
+        if isinstance(exc.__cause__ or exc.__context__, KeyboardInterrupt):
+            click.echo(f"trainkit: {INTERRUPTED}", err=True)
+            return EXIT_INTERRUPTED
         click.echo("trainkit: aborted", err=True)
         return EXIT_USAGE
     except click.exceptions.ClickException as exc:
-        exc.show()
+        # `trainkit` alone: the help, as click shows it (NoArgsIsHelpError: click 8.2 and later)
+        if isinstance(exc, getattr(click.exceptions, "NoArgsIsHelpError", ())):
+            exc.show()
+        else:
+            click.echo(f"trainkit: {usage_line(exc)}", err=True)
         return EXIT_USAGE
     except SystemExit as exc:
         return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_USAGE
+    except KeyboardInterrupt:
+        click.echo(f"trainkit: {INTERRUPTED}", err=True)
+        return EXIT_INTERRUPTED
+    except Exception as exc:  # raised outside a command's user_errors block
+        message = user_message(exc)
+        if message is None:
+            return report_crash(exc)
+        click.echo(f"trainkit: {message}", err=True)
+        return EXIT_USAGE
     return EXIT_OK
+
+
+def usage_line(exc) -> str:
+    """A click error as the one line every error is: the message, then where help is."""
+    text = exc.format_message().strip().rstrip(".")
+    text = text[:1].lower() + text[1:]
+    ctx = getattr(exc, "ctx", None)
+    if ctx is not None:
+        text += f"; see {ctx.command_path} --help"
+    return " ".join(text.split())  # click's suggestions ("Did you mean ...") come on new lines
 
 
 def __getattr__(name: str):

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import click
 
-from trainkit.cli.options import experiment_argument, json_option
+from trainkit.cli.options import FiniteFloatRange, experiment_argument, json_option
 from trainkit.cli.output import EXIT_GATE, Ctx, user_errors
 from trainkit.cli.tables import print_evaluation
 from trainkit.core.experiment import Experiment
@@ -22,26 +22,26 @@ __all__ = ["evaluate"]
 )
 @click.option(
     "--target-recall",
-    type=click.FloatRange(0, 1, min_open=True),
+    type=FiniteFloatRange(0, 1, min_open=True),
     default=0.95,
     show_default=True,
     help="Screening recall the threshold must reach on validation.",
 )
 @click.option(
     "--max-false-alarms",
-    type=click.FloatRange(0, 1, max_open=True),
+    type=FiniteFloatRange(0, 1, max_open=True),
     default=None,
     help="Instead of --target-recall: the lowest threshold whose validation false-alarm rate "
     "is at most this.",
 )
 @click.option(
     "--require-recall",
-    type=click.FloatRange(0, 1),
+    type=FiniteFloatRange(0, 1),
     default=None,
     help="Gate: exit 3 unless the lower confidence bound of screening recall is at least this.",
 )
 @click.option(
-    "--confidence", type=click.FloatRange(0.5, 1, max_open=True), default=0.95, show_default=True
+    "--confidence", type=FiniteFloatRange(0.5, 1, max_open=True), default=0.95, show_default=True
 )
 @click.option(
     "--interval",

@@ -52,10 +52,11 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None, cascade: b
         )
         fam = res.get("familiarity")
         console.print(
-            f"contract {res['contract']}: frames unlike the training data are flagged when their "
-            f"cells' median familiarity exceeds {fam['threshold']:.2f} (calibrated on "
-            f"{fam['calibration_frames']} validation photos: at most "
-            f"{fam['false_warning_bound']:.0%} of frames like them are flagged)"
+            f"contract {res['contract']}: a frame unlike the training data gets an "
+            f"unfamiliar-surface warning when its cells' median familiarity exceeds "
+            f"{fam['threshold']:.2f} (calibrated on {fam['calibration_frames']} validation "
+            f"photos: at most {fam['false_warning_bound']:.0%} of frames like them are warned "
+            "about)"
             if fam
             else f"contract {res['contract']}: no familiarity output ("
             + (

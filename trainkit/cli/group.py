@@ -5,6 +5,7 @@ from __future__ import annotations
 import click
 
 from trainkit import __version__
+from trainkit.cli.codes import EXIT_CODES
 from trainkit.cli.demo import demo
 from trainkit.cli.evaluate import evaluate
 from trainkit.cli.export import export
@@ -29,7 +30,10 @@ EPILOG_CAUTION = (
 
 @click.group(
     context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100},
-    epilog=EPILOG_CAUTION,
+    epilog="\b\nExit codes:\n"
+    + "\n".join(f"  {code:<4d} {meaning}" for code, meaning in EXIT_CODES.items())
+    + "\n\n"
+    + EPILOG_CAUTION,
 )
 @click.option("-q", "--quiet", is_flag=True, help="No progress bars or chatter (for scripts).")
 @click.option("--debug", is_flag=True, help="Show the full traceback on errors.")

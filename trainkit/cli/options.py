@@ -15,9 +15,12 @@ from typing import Any, TypeVar
 
 import click
 
+from trainkit.core.errors import TrainkitError
 from trainkit.intake.scale import ScaleOptions
 
 __all__ = [
+    "FiniteFloatRange",
+    "POSITIVE",
     "gather",
     "json_option",
     "seed_option",
@@ -35,18 +38,18 @@ __all__ = [
 F = TypeVar("F", bound=Callable[..., Any])
 
 
-class _FinitePositive(click.FloatRange):
-    """A float above 0 and finite (click's range lets NaN and infinity through)."""
+class FiniteFloatRange(click.FloatRange):
+    """click's FloatRange, refusing NaN and infinity (which compare False with every bound)."""
 
-    def convert(self, value: Any, param: Any, ctx: Any) -> Any:
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None):
         rv = super().convert(value, param, ctx)
-        if rv is not None and not math.isfinite(rv):
-            self.fail(f"{value!r} is not a finite number above 0.", param, ctx)
+        if not math.isfinite(rv):
+            self.fail(f"{value!r} is not a finite number", param, ctx)
         return rv
 
 
 #: Positive lengths, scales and distances.
-POSITIVE = _FinitePositive(min=0, min_open=True)
+POSITIVE = FiniteFloatRange(min=0, min_open=True)
 
 
 def gather(cls: type, name: str) -> Callable[[F], F]:
@@ -181,7 +184,7 @@ def parse_size(
     """Parse ``AxB`` into two integers, each within ``bounds`` (inclusive) when given.
 
     Raises:
-        ValueError: naming the option, the expected form and what came.
+        TrainkitError: naming the option, the expected form and what came.
     """
     try:
         a, b = (int(v) for v in text.lower().split("x"))
@@ -189,5 +192,5 @@ def parse_size(
         a = b = None
     if a is None or (bounds and not all(bounds[0] <= v <= bounds[1] for v in (a, b))):
         each = f" ({bounds[0]}-{bounds[1]} each)" if bounds else ""
-        raise ValueError(f"{option} must look like {example}{each}, got {text!r}")
+        raise TrainkitError(f"{option} must look like {example}{each}, got {text!r}")
     return a, b

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import errno
 import sqlite3
 import traceback
 from collections.abc import Iterator
@@ -20,18 +21,30 @@ from rich.progress import (
     TimeRemainingColumn,
 )
 
-from trainkit.cli.codes import EXIT_GATE, EXIT_OK, EXIT_SKIPPED, EXIT_USAGE
+from trainkit.cli.codes import (
+    EXIT_CRASH,
+    EXIT_GATE,
+    EXIT_INTERRUPTED,
+    EXIT_OK,
+    EXIT_SKIPPED,
+    EXIT_USAGE,
+)
+from trainkit.core.errors import TrainkitError
 
 __all__ = [
     "EXIT_OK",
     "EXIT_SKIPPED",
     "EXIT_USAGE",
     "EXIT_GATE",
+    "EXIT_CRASH",
+    "EXIT_INTERRUPTED",
     "Ctx",
     "ProgressHandle",
     "fail",
     "warn",
     "user_errors",
+    "user_message",
+    "report_crash",
     "progress_bar",
 ]
 
@@ -67,25 +80,92 @@ def warn(message: str) -> None:
 
 @contextmanager
 def user_errors(ctx: Ctx) -> Iterator[None]:
-    """Turn the kit's ValueErrors into one `trainkit:` line (a traceback only with --debug)."""
+    """Turn a user's error into one `trainkit:` line and exit; show anything else as a bug.
+
+    The kit's own errors (:class:`~trainkit.core.errors.TrainkitError`), errors of the
+    operating system about a file (missing, no permission, disk full) and an unusable
+    workspace database are one line (the traceback only with ``--debug``), exit code 2;
+    Ctrl-C exits 130 (:data:`EXIT_INTERRUPTED`). Any other exception is a bug in the kit:
+    its traceback is shown with a line asking to report it, exit code 70
+    (:data:`EXIT_CRASH`).
+    """
     try:
         yield
-    except (ValueError, OSError) as exc:
-        if ctx.debug:
-            traceback.print_exc()
-        fail(str(exc))
-    except sqlite3.DatabaseError as exc:
-        if ctx.debug:
-            traceback.print_exc()
-        fail(
-            f"the workspace database could not be used ({exc}); if it is damaged, restore it "
-            "from a copy (workspace.sqlite with its -wal file)"
-        )
+    except (click.exceptions.ClickException, click.exceptions.Exit, click.exceptions.Abort):
+        raise  # usage errors and click's own exits are main()'s business
     except KeyboardInterrupt:
-        fail(
-            "interrupted; finished work is saved, run the same command again to continue",
-            EXIT_USAGE,
-        )
+        fail(INTERRUPTED, EXIT_INTERRUPTED)
+    except Exception as exc:
+        message = user_message(exc)
+        if message is None:
+            raise SystemExit(report_crash(exc)) from None
+        if ctx.debug:
+            traceback.print_exc()
+        fail(message)
+
+
+#: What an interrupted command says (finished work is kept by every command).
+INTERRUPTED = "interrupted; finished work is saved, run the same command again to continue"
+
+
+def user_message(exc: BaseException) -> str | None:
+    """The one-line message for an error the user can act on, or None for a bug in the kit."""
+    if isinstance(exc, TrainkitError):
+        return str(exc)
+    if isinstance(exc, OSError):
+        return _os_error_message(exc)
+    if isinstance(exc, sqlite3.DatabaseError):
+        return _database_message(exc)
+    return None
+
+
+#: errno values that mean "no space left" (a full disk, or a full quota).
+_DISK_FULL = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC)}
+
+
+def _os_error_message(exc: OSError) -> str:
+    """An operating-system error with the file it is about (when the system said which)."""
+    what = exc.strerror or str(exc) or type(exc).__name__
+    if exc.errno in _DISK_FULL:
+        what += " (the disk is full: free some space and run the same command again)"
+    if exc.filename is None:
+        return what
+    where = str(exc.filename) + (f" -> {exc.filename2}" if exc.filename2 is not None else "")
+    return f"{where}: {what}"
+
+
+def _database_message(exc: sqlite3.DatabaseError) -> str | None:
+    """A workspace database that cannot be used, said for what it is; None for a bug."""
+    if isinstance(
+        exc,
+        sqlite3.IntegrityError
+        | sqlite3.ProgrammingError
+        | sqlite3.InterfaceError
+        | sqlite3.InternalError
+        | sqlite3.NotSupportedError
+        | sqlite3.DataError,
+    ):
+        return None  # the database works and refused what the kit asked: the kit's fault
+    head = f"the workspace database could not be used ({exc})"
+    if isinstance(exc, sqlite3.OperationalError):
+        if "locked" in str(exc) or "busy" in str(exc):
+            return head + ": another trainkit run held it for 30 s; run again when it has finished"
+        return head + "; check that its folder exists, is writable and has free space"
+    return head + (
+        ": the file is damaged or not a workspace database; restore it from a copy "
+        "(workspace.sqlite with its -wal file)"
+    )
+
+
+def report_crash(exc: BaseException) -> int:
+    """Show the traceback of an unexpected exception and ask for a report; returns :data:`EXIT_CRASH`."""
+    traceback.print_exception(exc)
+    click.echo(
+        f"trainkit: this is a bug in trainkit ({type(exc).__name__}); please report it with "
+        "the traceback above",
+        err=True,
+    )
+    return EXIT_CRASH
 
 
 class ProgressHandle:

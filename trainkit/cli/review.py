@@ -10,7 +10,7 @@ from rich.console import Console
 from rich.table import Table
 
 from trainkit.cli.options import json_option, parse_size, seed_option, workspace_argument
-from trainkit.cli.output import Ctx, progress_bar, user_errors
+from trainkit.cli.output import EXIT_INTERRUPTED, Ctx, progress_bar, user_errors
 
 __all__ = ["review"]
 
@@ -76,7 +76,8 @@ def _default_reviewer() -> str:
 @click.option(
     "--import-csv",
     type=click.Path(exists=True, dir_okay=False, path_type=Path),
-    help="Import labels from CSV (patch_id,label or photo,x0,y0,x1,y1,label).",
+    help="Import labels from CSV (patch_id,label or photo,x0,y0,x1,y1,label; a label is a "
+    "class name or 'unsure'; rows with an empty label are skipped and counted).",
 )
 @click.option(
     "--import-folder",
@@ -150,7 +151,10 @@ def review(
             ctx.console.print(f"nothing to review in the {queue_kind} queue of {ws.root}")
             return
         console = Console(highlight=False, soft_wrap=True)
-        console.print(summary_line(run_review(ws, request, session, console)))
+        result = run_review(ws, request, session, console)
+        console.print(summary_line(result))
+    if result["outcome"] == "interrupted":  # every answer is saved; say it was not a finish
+        raise SystemExit(EXIT_INTERRUPTED)
 
 
 def _transfer_labels(
@@ -165,11 +169,11 @@ def _transfer_labels(
     from trainkit.labels import labels_io
 
     if import_csv:
-        n = labels_io.import_csv(ws, import_csv, reviewer=reviewer)
-        console.print(f"imported {n} labels from {import_csv} as reviewer {reviewer}")
+        res = labels_io.import_csv(ws, import_csv, reviewer=reviewer)
+        console.print(res.describe(import_csv, reviewer))
     if import_folder:
-        n = labels_io.import_folders(ws, import_folder, reviewer=reviewer)
-        console.print(f"imported {n} labels from {import_folder} as reviewer {reviewer}")
+        res = labels_io.import_folders(ws, import_folder, reviewer=reviewer)
+        console.print(res.describe(import_folder, reviewer))
     if export_csv:
         n = labels_io.export_csv(ws, export_csv)
         console.print(f"wrote {n} current labels to {export_csv}")

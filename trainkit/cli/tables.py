@@ -7,7 +7,7 @@ from pathlib import Path
 from rich.console import Console
 from rich.table import Table
 
-__all__ = ["f3", "epoch_line", "print_split", "print_evaluation"]
+__all__ = ["f3", "epoch_line", "print_split", "print_evaluation", "confusion_note"]
 
 
 def f3(v: float | None) -> str:
@@ -38,6 +38,15 @@ def print_split(console: Console, rep: dict) -> None:
     console.print(t)
 
 
+def confusion_note(threshold: float) -> str:
+    """Why the confusion matrix and the screening figures can disagree, in one sentence."""
+    return (
+        "predicted = the likeliest class; screening instead flags a patch when its crack "
+        f"probability 1 - P(none) reaches the threshold {threshold:.3f}, so a clean patch "
+        "predicted as a crack class here may not be a false alarm below"
+    )
+
+
 def _class_tables(console: Console, res: dict) -> None:
     names = res["class_names"]
     t = Table(
@@ -50,6 +59,7 @@ def _class_tables(console: Console, res: dict) -> None:
     for n, row, nrow in zip(names, res["confusion_matrix"], norm, strict=True):
         t.add_row(n, *[f"{v} {p:4.0%}" for v, p in zip(row, nrow, strict=True)])
     console.print(t)
+    console.print(confusion_note(res["screening"]["threshold"]))
     t2 = Table(
         title=f"Per class (recall interval: {res['interval_method']}, {res['confidence']:.0%})"
     )

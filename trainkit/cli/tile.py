@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
 import click
+from PIL import Image
 
 from trainkit.cli.options import (
+    FiniteFloatRange,
     classes_option,
     gather,
     scale_options,
@@ -16,6 +19,7 @@ from trainkit.cli.options import (
 )
 from trainkit.cli.output import EXIT_SKIPPED, EXIT_USAGE, Ctx, fail, progress_bar, user_errors, warn
 from trainkit.intake.scale import ScaleOptions
+from trainkit.learning.config import recipe_patch_px
 
 __all__ = ["tile", "TileSettings"]
 
@@ -36,7 +40,8 @@ class TileSettings:
 
 
 @click.command(
-    epilog="Example: trainkit tile photos/ --workspace ws --tile-px 224 --sidecar photos/scale.csv"
+    epilog="Example: trainkit tile photos/ --workspace ws --sidecar photos/scale.csv "
+    "--group-by photo"
 )
 @click.argument("photos", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
 @click.option(
@@ -47,16 +52,19 @@ class TileSettings:
     type=click.Path(file_okay=False, path_type=Path),
     help="Workspace folder (created if missing).",
 )
-@tile_px_option("Patch size in pixels (the model's input size).", default=224)
+@tile_px_option(
+    "Patch size in pixels; the network runs at this size (default: the default recipe's patch_px).",
+    default=recipe_patch_px("default"),
+)
 @click.option(
     "--tile-mm",
-    type=click.FloatRange(min=0, min_open=True),
+    type=FiniteFloatRange(min=0, min_open=True),
     default=None,
     help="Cut patches covering this many mm of surface (needs scale), resampled to --tile-px.",
 )
 @click.option(
     "--overlap",
-    type=click.FloatRange(0, 0.9),
+    type=FiniteFloatRange(0, 0.9),
     default=0.0,
     show_default=True,
     help="Overlap between neighbouring patches as a fraction.",
@@ -96,12 +104,13 @@ class TileSettings:
 @click.option(
     "--import-labels",
     type=click.Path(exists=True, dir_okay=False, path_type=Path),
-    help="CSV photo,x0,y0,x1,y1,label of existing labels to load (empty label = unsure).",
+    help="CSV photo,x0,y0,x1,y1,label of existing labels to load (a class name or 'unsure'; "
+    "rows with an empty label are skipped and counted; loading the same file again adds nothing).",
 )
 @workers_option("Parallel processes (default: all cores).")
 @click.option(
     "--max-megapixels",
-    type=click.FloatRange(min=1),
+    type=FiniteFloatRange(min=1),
     default=250.0,
     show_default=True,
     help="Refuse larger images (decompression-bomb guard); raise it for trusted huge files.",
@@ -131,6 +140,9 @@ def tile(
     from trainkit.labels.labels_io import import_csv
     from trainkit.labels.workspace import Workspace
 
+    # The size limit is --max-megapixels, applied to every photo; Pillow's own warning for
+    # images above its limit (but below twice it) would only add two lines to the one-line skip.
+    warnings.filterwarnings("ignore", category=Image.DecompressionBombWarning)
     with user_errors(ctx):
         found = find_images(list(photos))
         if not found:
@@ -158,8 +170,7 @@ def tile(
             warn(p)
         ctx.console.print(_summary(res, settings.skip_flagged, ws.root))
         if import_labels:
-            n = import_csv(ws, import_labels)
-            ctx.console.print(f"imported {n} labels from {import_labels}")
+            ctx.console.print(import_csv(ws, import_labels).describe(import_labels))
     if res["photos_skipped"] and not (
         res["photos_added"] or res["photos_already_present"] or res["photos_moved"]
     ):

@@ -7,7 +7,7 @@ from pathlib import Path
 import click
 
 from trainkit.cli.options import epochs_option, seed_option, workspace_argument
-from trainkit.cli.output import Ctx, ProgressHandle, progress_bar, user_errors
+from trainkit.cli.output import Ctx, ProgressHandle, progress_bar, user_errors, warn
 from trainkit.cli.tables import epoch_line
 
 __all__ = ["train"]
@@ -101,6 +101,8 @@ def train(
             ws = Workspace.open(ws_dir)
             adaptation = plan_adaptation(ws, source, list(jobs) or None, seed=cfg.seed)
             ctx.console.print(_adaptation_line(adaptation))
+        if cfg.patch_px and ws.tile_px != cfg.patch_px:
+            warn(_patch_size_note(ws.tile_px, cfg.patch_px))
         with progress_bar(ctx, "training") as bar:
             res = _train_with_progress(
                 bar, ws, exp_dir, cfg, resume=not restart, adaptation=adaptation
@@ -126,6 +128,16 @@ def train(
                 f"distilled in {res['cascade_seconds']:.0f} s; `trainkit evaluate` chooses its "
                 "pass threshold and checks it"
             )
+
+
+def _patch_size_note(tile_px: int, patch_px: int) -> str:
+    """Why a workspace whose patches differ from the recipe's size deserves a second look."""
+    return (
+        f"the workspace's patches are {tile_px} px but the recipe is made for {patch_px} px; "
+        f"the network runs at the patch size, so each patch costs about "
+        f"({tile_px}/{patch_px})^2 = {(tile_px / patch_px) ** 2:.1f}x the recipe's compute "
+        f"(to train at {patch_px} px, tile into a new workspace with --tile-px {patch_px})"
+    )
 
 
 def _adaptation_line(a) -> str:

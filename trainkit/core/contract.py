@@ -47,6 +47,7 @@ from typing import Any, NoReturn
 
 import numpy as np
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.jsonsafe import dumps
 
 __all__ = [
@@ -94,7 +95,7 @@ _INPUT_TEXT = "image: uint8 (N, S, S, 3) RGB, S = patch_px; resize is the caller
 _OUTPUT_TEXT = "probabilities: float32 (N, C) softmax; screening probability = 1 - p[none]"
 
 
-class ContractError(ValueError):
+class ContractError(TrainkitError):
     """Metadata that does not follow the contract; the message says which key and why."""
 
 

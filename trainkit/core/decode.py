@@ -24,6 +24,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, UnidentifiedImageError
 
+from trainkit.core.errors import TrainkitError
+
 IMAGE_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp", ".bmp")
 
 
@@ -37,7 +39,7 @@ _INTEGER_GREY = ("I;16", "I;16B", "I;16L", "I")
 _NOT_PAGES = ("MPO",)
 
 
-class PhotoError(ValueError):
+class PhotoError(TrainkitError):
     """A photo that cannot be used; the message says which file and why."""
 
 

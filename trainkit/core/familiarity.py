@@ -50,6 +50,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from trainkit.core.errors import TrainkitError
+
 __all__ = [
     "SUMMARY_FORMAT",
     "FamiliarityError",
@@ -71,7 +73,7 @@ RANK_FLOOR = 1e-3
 SUMMARY_FORMAT = "trainkit-familiarity-1"
 
 
-class FamiliarityError(ValueError):
+class FamiliarityError(TrainkitError):
     """Features, labels, options or a stored summary the detector cannot use."""
 
 

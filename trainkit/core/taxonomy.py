@@ -23,8 +23,11 @@ from typing import cast, overload
 import numpy as np
 import yaml
 
+from trainkit.core.errors import TrainkitError
+
 __all__ = [
     "ClassSet",
+    "ClassSetError",
     "D4_ELEMENTS",
     "apply_d4",
     "d4_angle",
@@ -32,6 +35,11 @@ __all__ = [
     "angle_difference",
     "BUILTIN_CLASS_SETS",
 ]
+
+
+class ClassSetError(TrainkitError):
+    """A class set that is not valid or not found; the message names the class and the rule."""
+
 
 #: All eight elements of D4 as (quarter turns counter-clockwise, mirror left-right).
 D4_ELEMENTS: tuple[tuple[int, bool], ...] = tuple((k, f) for f in (False, True) for k in range(4))
@@ -95,31 +103,31 @@ class ClassSet:
 
     def __post_init__(self) -> None:
         if len(self.names) < 2:
-            raise ValueError(
+            raise ClassSetError(
                 f"class set {self.name!r} needs at least 2 classes, got {len(self.names)}"
             )
         if len(set(self.names)) != len(self.names):
-            raise ValueError(
+            raise ClassSetError(
                 f"class set {self.name!r} has repeated class names: {list(self.names)}"
             )
         if len(self.angle_centres) != len(self.names):
-            raise ValueError(
+            raise ClassSetError(
                 f"class set {self.name!r}: expected {len(self.names)} angle centres, got {len(self.angle_centres)}"
             )
         if self.angle_centres[0] is not None:
-            raise ValueError(
+            raise ClassSetError(
                 f"class set {self.name!r}: class 0 ({self.names[0]!r}) is the no-crack class and cannot have an angle"
             )
         for n, c in zip(self.names, self.angle_centres, strict=True):
             if c is not None and not (0.0 <= c < 180.0):
-                raise ValueError(f"class {n!r}: angle_deg must be in [0, 180), got {c}")
+                raise ClassSetError(f"class {n!r}: angle_deg must be in [0, 180), got {c}")
         if len(self.crack_catchall_indices) > 1:
-            raise ValueError(
+            raise ClassSetError(
                 f"class set {self.name!r}: at most one crack class without an angle is allowed, got "
                 f"{[self.names[i] for i in self.crack_catchall_indices]}"
             )
         if not self.oriented_indices and not self.crack_catchall_indices:
-            raise ValueError(f"class set {self.name!r} has no crack class")
+            raise ClassSetError(f"class set {self.name!r} has no crack class")
 
     # ----- derived views -------------------------------------------------------
     @property
@@ -142,11 +150,11 @@ class ClassSet:
         return idx[0] if idx else None
 
     def index(self, name: str) -> int:
-        """Index of a class name; ValueError naming the valid choices otherwise."""
+        """Index of a class name; :class:`ClassSetError` naming the valid choices otherwise."""
         try:
             return self.names.index(name)
         except ValueError:
-            raise ValueError(
+            raise ClassSetError(
                 f"unknown class {name!r}; choose one of: {', '.join(self.names)}"
             ) from None
 
@@ -214,23 +222,25 @@ class ClassSet:
 
 def _class_set_from_mapping(data: dict, source: str) -> ClassSet:
     if not isinstance(data, dict) or "classes" not in data:
-        raise ValueError(f"{source}: expected a mapping with a 'classes' list")
+        raise ClassSetError(f"{source}: expected a mapping with a 'classes' list")
     classes = data["classes"]
     if not isinstance(classes, list):
-        raise ValueError(f"{source}: 'classes' must be a list, got {type(classes).__name__}")
+        raise ClassSetError(f"{source}: 'classes' must be a list, got {type(classes).__name__}")
     names, centres, descs = [], [], []
     for i, item in enumerate(classes):
         if isinstance(item, str):
             item = {"name": item}
         if not isinstance(item, dict) or "name" not in item:
-            raise ValueError(f"{source}: class {i} must have a 'name'")
+            raise ClassSetError(f"{source}: class {i} must have a 'name'")
         unknown = set(item) - {"name", "angle_deg", "description"}
         if unknown:
-            raise ValueError(f"{source}: class {item['name']!r} has unknown keys {sorted(unknown)}")
+            raise ClassSetError(
+                f"{source}: class {item['name']!r} has unknown keys {sorted(unknown)}"
+            )
         names.append(str(item["name"]))
         a = item.get("angle_deg")
         if a is not None and not isinstance(a, int | float):
-            raise ValueError(
+            raise ClassSetError(
                 f"{source}: class {item['name']!r}: angle_deg must be a number, got {a!r}"
             )
         centres.append(None if a is None else float(a))
@@ -256,14 +266,19 @@ def load_class_set(name_or_path: str | Path = "orientation") -> ClassSet:
     else:
         p = Path(name_or_path)
         if not p.is_file():
-            raise ValueError(
+            raise ClassSetError(
                 f"class set {source!r} is neither a built-in ({', '.join(BUILTIN_CLASS_SETS)}) nor a file"
             )
-        text = p.read_text(encoding="utf-8")
+        try:
+            text = p.read_text(encoding="utf-8")
+        except UnicodeDecodeError as exc:
+            raise ClassSetError(
+                f"{source}: not UTF-8 text (byte {exc.start}); save it as UTF-8"
+            ) from None
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
-        raise ValueError(f"{source}: not valid YAML ({exc})") from None
+        raise ClassSetError(f"{source}: not valid YAML ({exc})") from None
     return _class_set_from_mapping(data, source)
 
 

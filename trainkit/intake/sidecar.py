@@ -6,7 +6,11 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.csvfile import read_csv
+from trainkit.core.errors import TrainkitError
 from trainkit.core.grid import Box
+
+__all__ = ["SIDECAR_COLUMNS", "SidecarError", "read_sidecar", "parse_roi", "roi_fraction"]
 
 SIDECAR_COLUMNS = (
     "photo",
@@ -22,6 +26,10 @@ SIDECAR_COLUMNS = (
 )
 
 
+class SidecarError(TrainkitError):
+    """A sidecar row or region of interest that cannot be used; the message names file and line."""
+
+
 def read_sidecar(path: str | Path) -> dict[str, dict]:
     """Read a sidecar CSV keyed by photo (file name, or path relative to the input folder).
 
@@ -29,29 +37,31 @@ def read_sidecar(path: str | Path) -> dict[str, dict]:
     ``sensor_width_mm`` (scale by the pinhole relation; ``distance_m`` alone is used with
     EXIF focal lengths); ``structure``, ``group`` or ``site`` (split group); ``date``
     (capture date, YYYY-MM-DD); ``roi`` (region of interest: ``x0 y0 x1 y1`` for a box or
-    ``x,y x,y x,y ...`` for a polygon, in upright photo pixels).
-    """
-    import csv
+    ``x,y x,y x,y ...`` for a polygon, in upright photo pixels). UTF-8, with or without a
+    byte-order mark.
 
+    Raises:
+        SidecarError: a missing or unknown column, a bad value; naming the file and line.
+        CsvFileError: not UTF-8 text, a field too long, a NUL byte; naming file and line.
+    """
     path = Path(path)
     out: dict[str, dict] = {}
-    with path.open(newline="", encoding="utf-8") as fh:
-        reader = csv.DictReader(fh)
+    with read_csv(path, "sidecar") as reader:
         if reader.fieldnames is None or "photo" not in reader.fieldnames:
-            raise ValueError(
+            raise SidecarError(
                 f"sidecar {path.name}: expected a header with a 'photo' column, got {reader.fieldnames}"
             )
         unknown = [c for c in reader.fieldnames if c not in SIDECAR_COLUMNS]
         if unknown:
-            raise ValueError(
+            raise SidecarError(
                 f"sidecar {path.name}: unknown columns {unknown}; valid: {', '.join(SIDECAR_COLUMNS)}"
             )
-        for i, row in enumerate(reader, start=2):
+        for i, row in reader:
             name = (row.get("photo") or "").strip()
             if not name:
-                raise ValueError(f"sidecar {path.name} line {i}: empty 'photo'")
+                raise SidecarError(f"sidecar {path.name} line {i}: empty 'photo'")
             if Path(name).is_absolute() or ".." in Path(name).parts:
-                raise ValueError(
+                raise SidecarError(
                     f"sidecar {path.name} line {i}: photo {name!r} must be a relative name"
                 )
             rec: dict = {}
@@ -61,11 +71,11 @@ def read_sidecar(path: str | Path) -> dict[str, dict]:
                     try:
                         rec[key] = float(v)
                     except ValueError:
-                        raise ValueError(
+                        raise SidecarError(
                             f"sidecar {path.name} line {i}: {key} {v!r} is not a number"
                         ) from None
                     if not rec[key] > 0:
-                        raise ValueError(
+                        raise SidecarError(
                             f"sidecar {path.name} line {i}: {key} must be positive, got {v}"
                         )
             grp = (row.get("structure") or row.get("group") or row.get("site") or "").strip()
@@ -88,7 +98,7 @@ def _check_date(text: str, where: str) -> str:
     try:
         return dt.date.fromisoformat(text).isoformat()
     except ValueError:
-        raise ValueError(f"{where}: date {text!r} is not YYYY-MM-DD") from None
+        raise SidecarError(f"{where}: date {text!r} is not YYYY-MM-DD") from None
 
 
 def parse_roi(text: str, where: str = "roi") -> np.ndarray:
@@ -103,11 +113,11 @@ def parse_roi(text: str, where: str = "roi") -> np.ndarray:
             return np.array(pts, dtype=float)
         x0, y0, x1, y1 = (float(v) for v in text.split())
     except ValueError:
-        raise ValueError(
+        raise SidecarError(
             f"{where}: region of interest {text!r} must be 'x0 y0 x1 y1' or at least three 'x,y' points"
         ) from None
     if not (x1 > x0 and y1 > y0):
-        raise ValueError(f"{where}: box {text!r} needs x1 > x0 and y1 > y0")
+        raise SidecarError(f"{where}: box {text!r} needs x1 > x0 and y1 > y0")
     return np.array([[x0, y0], [x1, y0], [x1, y1], [x0, y1]], dtype=float)
 
 

@@ -14,6 +14,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from trainkit.core.cores import usable_cores
+from trainkit.core.errors import TrainkitError
 from trainkit.core.grid import PatchBox, crop, iter_patch_boxes, overlap_to_stride
 from trainkit.intake.quality import quality_measures
 from trainkit.intake.scale import ScaleOptions, resolve_scale
@@ -22,7 +23,11 @@ from trainkit.intake.sidecar import _check_date, parse_roi, roi_fraction
 if TYPE_CHECKING:
     from trainkit.labels.workspace import Workspace
 
-__all__ = []
+__all__ = ["TilingError"]
+
+
+class TilingError(TrainkitError):
+    """Tiling options that cannot be used; the message names the option and the valid choices."""
 
 
 # ----- photos into a workspace -------------------------------------------------------
@@ -45,7 +50,7 @@ def tile_photo(
 
     if tile_mm is not None:
         if gsd_mm is None:
-            raise ValueError("tiling by physical size (tile_mm) needs the photo's scale (gsd_mm)")
+            raise TilingError("tiling by physical size (tile_mm) needs the photo's scale (gsd_mm)")
         src_tile = max(1, int(round(tile_mm / gsd_mm)))
     else:
         src_tile = tile_px
@@ -288,17 +293,17 @@ def _check_options(group_by: str, parallel: str, crop_format: str, group_pattern
     import re
 
     if group_by not in ("sidecar", "photo"):
-        raise ValueError(f"invalid group_by {group_by!r}; choose one of: sidecar, photo")
+        raise TilingError(f"invalid group_by {group_by!r}; choose one of: sidecar, photo")
     if parallel not in ("threads", "processes"):
-        raise ValueError(f"invalid parallel mode {parallel!r}; choose one of: threads, processes")
+        raise TilingError(f"invalid parallel mode {parallel!r}; choose one of: threads, processes")
     if crop_format not in CROP_FORMATS:
-        raise ValueError(
+        raise TilingError(
             f"invalid crop format {crop_format!r}; choose one of: {', '.join(CROP_FORMATS)}"
         )
     try:
         return re.compile(group_pattern) if group_pattern else None
     except re.error as exc:
-        raise ValueError(
+        raise TilingError(
             f"--group-pattern {group_pattern!r} is not a valid regular expression ({exc})"
         ) from None
 

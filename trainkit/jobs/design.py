@@ -55,6 +55,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from trainkit.core.errors import TrainkitError
+
 __all__ = [
     "STRATA",
     "DesignError",
@@ -87,7 +89,7 @@ def design_codes(rest_edges: tuple[float, ...] | list[float] = ()) -> tuple[int,
     return (0, 1) + tuple(range(_BAND0, _BAND0 + len(rest_edges) + 1))
 
 
-class DesignError(ValueError):
+class DesignError(TrainkitError):
     """A sampling request the design cannot honour (bad probabilities, sizes, options)."""
 
 

@@ -40,6 +40,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import stats
 
+from trainkit.core.errors import TrainkitError
 from trainkit.jobs.design import STRATA
 from trainkit.jobs.intervals import FLAGGED, korn_graubard, simulated_intervals
 
@@ -67,7 +68,7 @@ INTERVAL_METHODS: tuple[str, ...] = (
 _OLD_LAYOUT = 3
 
 
-class EstimateError(ValueError):
+class EstimateError(TrainkitError):
     """Answers or stratum sizes from which no estimate can be made."""
 
 

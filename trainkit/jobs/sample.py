@@ -23,6 +23,7 @@ from pathlib import Path
 import numpy as np
 
 from trainkit.core.decode import PhotoError, read_rgb
+from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
 from trainkit.core.grid import crop, resize_patch
@@ -48,7 +49,7 @@ SAMPLE_COLUMNS = (
 )  # fmt: skip
 
 
-class SampleError(ValueError):
+class SampleError(TrainkitError):
     """A scan or workspace from which no sample can be drawn; the message says why."""
 
 

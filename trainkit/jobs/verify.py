@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_write_json, atomic_write_text
 from trainkit.jobs.design import STRATA
 from trainkit.jobs.estimate import EstimateError, design_weights, estimate_job, threshold_for_recall
@@ -30,7 +31,7 @@ VERIFICATION_FILE = "verification.json"
 VERIFICATION_REPORT = "verification.html"
 
 
-class VerifyError(ValueError):
+class VerifyError(TrainkitError):
     """A job that cannot be verified yet; the message says what to do."""
 
 

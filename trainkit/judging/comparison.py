@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 
 from trainkit import metrics as M
+from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_path
 from trainkit.judging.scoring import Scored
 
@@ -21,7 +22,7 @@ DISAGREEMENTS_COLUMNS = (
 )  # fmt: skip
 
 
-class ComparisonError(ValueError):
+class ComparisonError(TrainkitError):
     """Two runs that cannot be compared patch by patch; the message says why."""
 
 

@@ -89,6 +89,7 @@ from pathlib import Path
 import numpy as np
 
 from trainkit import metrics as M
+from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_json
 from trainkit.core.taxonomy import ClassSet
@@ -115,7 +116,7 @@ from trainkit.learning.data import PatchSet, load_patch_set
 __all__ = ["evaluate_experiment", "EvaluationOptions", "EvaluationError", "CAUTION"]
 
 
-class EvaluationError(ValueError):
+class EvaluationError(TrainkitError):
     """Evaluation cannot run; the message says why and what to do."""
 
 

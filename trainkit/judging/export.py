@@ -27,6 +27,7 @@ from trainkit.core.contract import (
     ModelInfo,
     encode_metadata,
 )
+from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
 from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT, all_nodes, cascade_plan
@@ -38,7 +39,7 @@ DEFAULT_OPSET = 18
 PARITY_ATOL = 1e-4
 
 
-class ExportError(ValueError):
+class ExportError(TrainkitError):
     """The export failed a check; the message gives the figures."""
 
 

@@ -352,7 +352,10 @@ def _confusion(R: dict, names: list[str], out: Path) -> str:
         )
 
     return f"""<h2>Confusion matrix</h2>
-<p>Rows: true class; columns: predicted class. Counts, then the share of each true class.</p>
+<p>Rows: true class; columns: predicted class, the model's likeliest class. Counts, then the
+share of each true class. This is not how the screener decides: it flags a patch when its crack
+probability (1 &minus; P(none)) reaches the threshold {_m(R, "screening.threshold")}, so a clean
+patch counted under a crack class here may not be a false alarm in the screening figures.</p>
 <table><tr><th class="rowh">true \\ predicted</th>{head}</tr>{rows("confusion_matrix", ".3f")}</table>
 <table><tr><th class="rowh">true \\ predicted</th>{head}</tr>{rows("confusion_matrix_row_normalised", ".2f")}</table>
 {_img_tag(out / CONFUSION_PNG, "confusion matrix")}"""

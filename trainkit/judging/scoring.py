@@ -16,6 +16,7 @@ import numpy as np
 
 from trainkit import metrics as M
 from trainkit.core.contract import screening_probability
+from trainkit.core.errors import TrainkitError
 
 __all__ = [
     "CAUTION",
@@ -128,9 +129,11 @@ def threshold_for_job_too(
             chosen = min(threshold, t)
     except ValueError:  # no clean (or no crack) job cell: the split's rule alone
         return threshold, source
+    which = "higher" if max_false_alarms is not None else "lower"
     return float(chosen), (
-        f"{source}, and the same on the job's {len(job)} validation cells (weighted by "
-        f"inclusion probability; their threshold {t:.4g})"
+        f"{source}: {threshold:.4g} from the split's validation patches, {t:.4g} from the "
+        f"job's {len(job)} validation cells (weighted by inclusion probability); the {which} "
+        f"of the two, {chosen:.4g}, is used so the rule holds on both"
     )
 
 
@@ -165,7 +168,7 @@ def calibration_block(test: Scored, val: Scored | None, *, temperature_scaling: 
     if not temperature_scaling:
         return out
     if val is None or len(val) == 0:
-        raise ValueError(
+        raise TrainkitError(
             "temperature scaling needs validation patches to fit on; the split has none"
         )
     t = M.fit_temperature(val.logits, val.labels)

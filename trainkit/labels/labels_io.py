@@ -1,14 +1,17 @@
 """Import and export of a workspace's labels as CSV and as a folder-per-class copy of the crops.
 
 CSV export columns: ``patch_id, photo, x0, y0, x1, y1, label, reviewer, origin,
-labelled_at`` (the current label; empty label = unsure). CSV import — the kit's one
-label importer, used by ``tile --labels``, ``review --import-csv``, the demo and the
-job samples — takes either ``patch_id, label`` or ``photo, x0, y0, x1, y1, label`` (so
-an export reads back, and so does ``trainkit synth``'s labels.csv). Photo names are
-relative names inside the photo folder: absolute paths, ``..`` and backslashes are
-refused. A label is a class name, or empty or ``unsure`` for an unsure answer; in a
-job's ``sample.csv`` (it has an ``inclusion_probability`` column) an empty label means
-"not answered yet" and the row is skipped.
+labelled_at`` (the current label; ``unsure`` for an unsure answer). CSV import — the
+kit's one label importer, used by ``tile --import-labels``, ``review --import-csv``, the
+demo and the job samples — takes either ``patch_id, label`` or ``photo, x0, y0, x1, y1,
+label`` (so an export reads back, and so does ``trainkit synth``'s labels.csv), in UTF-8
+with or without a byte-order mark. Photo names are relative names inside the photo
+folder: absolute paths, ``..`` and backslashes are refused. A label is a class name or
+``unsure``. A row with an empty label is not an answer: it is skipped and counted (in a
+job's ``sample.csv``, a cell not answered yet; in ``trainkit synth``'s labels.csv, a
+patch the truth calls ambiguous). A patch listed twice with the same label counts once;
+with different labels the file is refused. Importing the same label for a patch again
+under the same reviewer and origin adds nothing, so re-running an import is a no-op.
 
 Folder layout: ``ROOT/<class name>/<photo>@<x0>_<y0>_<x1>_<y1>.<ext>``, with ``/`` in a
 photo's relative name written as ``~``. Import matches a file by that name and, for
@@ -28,11 +31,15 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.csvfile import read_csv
+from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_path
 from trainkit.labels.workspace import Workspace
 
 __all__ = [
     "LabelsIOError",
+    "ImportResult",
+    "UNSURE_WORD",
     "export_csv",
     "export_folders",
     "import_csv",
@@ -56,13 +63,54 @@ _IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".jpg", ".jpeg", ".bmp", ".webp"}
 _NAME_RE = re.compile(r"^(?P<photo>.+)@(?P<x0>\d+)_(?P<y0>\d+)_(?P<x1>\d+)_(?P<y1>\d+)$")
 
 
-#: Label text meaning "looked at, unsure" (an empty label means the same, except in a
-#: job's sample.csv, where it means "not answered yet").
+#: Label text meaning "looked at, unsure" (an empty label is no answer at all).
 UNSURE_WORD = "unsure"
 
 
-class LabelsIOError(ValueError):
+class LabelsIOError(TrainkitError):
     """An import or export that cannot be done; nothing was written."""
+
+
+class ImportResult(int):
+    """The number of label events an import added, with what it left out and why.
+
+    It is an ``int`` (the events added), so code that counts imports keeps working; the
+    attributes say what else the file held.
+
+    Attributes:
+        added: label events added.
+        unchanged: rows whose label the same reviewer and origin had already given that
+            patch, last (nothing added: an import run twice adds nothing the second time).
+        empty: rows with an empty label, skipped (not answered; ``unsure`` is an answer).
+        repeated: rows naming a patch an earlier row of the file named with the same label.
+    """
+
+    added: int
+    unchanged: int
+    empty: int
+    repeated: int
+
+    def __new__(cls, added: int, *, unchanged: int = 0, empty: int = 0, repeated: int = 0):
+        self = super().__new__(cls, added)
+        self.added, self.unchanged, self.empty, self.repeated = added, unchanged, empty, repeated
+        return self
+
+    def describe(self, source: str | Path, reviewer: str | None = None) -> str:
+        """One sentence for the user: what was imported from ``source``, and what was not."""
+        text = f"imported {self.added} labels from {source}" + (
+            f" as reviewer {reviewer}" if reviewer else ""
+        )
+        notes = []
+        if self.unchanged:
+            notes.append(f"{self.unchanged} already recorded with the same label (not added again)")
+        if self.repeated:
+            notes.append(f"{self.repeated} repeated rows counted once")
+        if self.empty:
+            notes.append(
+                f"{self.empty} rows with an empty label skipped (left unlabelled; write "
+                f"'{UNSURE_WORD}' to record an unsure answer)"
+            )
+        return text + ("; " + "; ".join(notes) if notes else "")
 
 
 def _current(ws: Workspace) -> list[tuple]:
@@ -84,7 +132,7 @@ def export_csv(ws: Workspace, path: str | Path) -> int:
             w.writerow(EXPORT_COLUMNS)
             for r, e in rows:
                 w.writerow(
-                    [r.id, r.photo, *r.box, e["label"] or "", e["reviewer"], e["origin"]]
+                    [r.id, r.photo, *r.box, e["label"] or UNSURE_WORD, e["reviewer"], e["origin"]]
                     + [f"{e['created_at']:.3f}"]
                 )
     return len(rows)
@@ -112,38 +160,76 @@ def export_folders(ws: Workspace, root: str | Path) -> dict[str, int]:
     return counts
 
 
-def _check_label(raw: str, names: tuple[str, ...], where: str) -> str | None:
-    label = (raw or "").strip() or None
+def _check_label(label: str, names: tuple[str, ...], where: str) -> str | None:
+    """A non-empty label as stored: a class name, or None for ``unsure``."""
     if label == UNSURE_WORD and UNSURE_WORD not in names:
         return None
-    if label is not None and label not in names:
-        raise LabelsIOError(f"{where}: unknown class {label!r}; choose one of: {', '.join(names)}")
+    if label not in names:
+        raise LabelsIOError(
+            f"{where}: unknown class {label!r}; choose one of: {', '.join(names)} "
+            f"(or {UNSURE_WORD})"
+        )
     return label
+
+
+class _Rows:
+    """The answers of one import, each patch once: repeats counted, contradictions refused."""
+
+    def __init__(self) -> None:
+        self.items: dict[int, tuple[str | None, str]] = {}  # patch id -> (label, where)
+        self.empty = self.repeated = 0
+
+    def add(self, pid: int, label: str | None, where: str) -> None:
+        seen = self.items.get(pid)
+        if seen is None:
+            self.items[pid] = (label, where)
+        elif seen[0] == label:
+            self.repeated += 1
+        else:
+            raise LabelsIOError(
+                f"{where}: patch {pid} is labelled {label or UNSURE_WORD!r} here and "
+                f"{seen[0] or UNSURE_WORD!r} at {seen[1]}; keep one of the two rows"
+            )
+
+    def store(self, ws: Workspace, reviewer: str, origin: str) -> ImportResult:
+        """Add the answers this reviewer and origin have not already given, in one transaction."""
+        last: dict[int, str | None] = {}
+        for e in ws.label_events():  # oldest first: the last one per patch wins
+            if e["reviewer"] == reviewer and e["origin"] == origin:
+                last[e["patch_id"]] = e["label"]
+        new = [
+            (pid, label)
+            for pid, (label, _) in self.items.items()
+            if pid not in last or last[pid] != label
+        ]
+        added = ws.add_labels(new, reviewer=reviewer, origin=origin)
+        return ImportResult(
+            added, unchanged=len(self.items) - len(new), empty=self.empty, repeated=self.repeated
+        )
 
 
 def import_csv(
     ws: Workspace, path: str | Path, *, reviewer: str = "import", origin: str = "file"
-) -> int:
+) -> ImportResult:
     """Import labels from CSV keyed by ``patch_id`` or by ``photo, x0, y0, x1, y1``.
 
-    An empty label means unsure. When both keys are present the patch id is used.
+    A label is a class name or ``unsure``; rows with an empty label are skipped and
+    counted. When both keys are present the patch id is used.
 
     Returns:
-        The number of label events added (one transaction; nothing on error).
+        The label events added (one transaction; nothing on error), with the rows left
+        out: see :class:`ImportResult` and :meth:`ImportResult.describe`.
 
     Raises:
         LabelsIOError: missing columns, a photo name outside the photo folder, unknown
-            patch ids or places, unknown classes; the message names the line.
+            patch ids or places, unknown classes, one patch given two labels; the message
+            names the line.
+        CsvFileError: not UTF-8 text, a field too long, a NUL byte; naming file and line.
     """
     path = Path(path)
     names = ws.class_set.names
-    items: list[tuple[int, str | None]] = []
-    try:
-        fh = path.open(newline="", encoding="utf-8")
-    except OSError as exc:
-        raise LabelsIOError(f"cannot read label file {path} ({exc.strerror or exc})") from None
-    with fh:
-        reader = csv.DictReader(fh)
+    rows = _Rows()
+    with read_csv(path, "label file") as reader:
         cols = set(reader.fieldnames or [])
         by_id = {"patch_id", "label"} <= cols
         if not (by_id or {"photo", "x0", "y0", "x1", "y1", "label"} <= cols):
@@ -152,15 +238,18 @@ def import_csv(
                 f"got {reader.fieldnames}"
             )
         find = _by_id(ws) if by_id else _by_place(ws)
-        # A job's sample.csv lists cells still to answer: there an empty label means "not
-        # answered yet" and the row is skipped; "unsure" records an unsure answer.
-        sample_file = "inclusion_probability" in cols
-        for line, row in enumerate(reader, start=2):
+        for line, row in reader:
             where = f"{path.name} line {line}"
-            if sample_file and not (row["label"] or "").strip():
+            if not any((v or "").strip() for v in row.values() if isinstance(v, str)):
+                rows.empty += 1  # a blank row (a spreadsheet's trailing rows)
                 continue
-            items.append((find(row, where), _check_label(row["label"], names, where)))
-    return ws.add_labels(items, reviewer=reviewer, origin=origin)
+            pid = find(row, where)
+            label = (row["label"] or "").strip()  # None when the row is too short
+            if not label:
+                rows.empty += 1
+                continue
+            rows.add(pid, _check_label(label, names, where), where)
+    return rows.store(ws, reviewer, origin)
 
 
 def _by_id(ws: Workspace):
@@ -217,17 +306,19 @@ def _pixel_digest(path: Path) -> str:
 
 def import_folders(
     ws: Workspace, root: str | Path, *, reviewer: str = "import", origin: str = "file"
-) -> int:
+) -> ImportResult:
     """Import labels from ``ROOT/<class>/`` folders of patch images (``_unsure`` = unsure).
 
     Files are matched by the export file name or, failing that, by identical pixels to a
     workspace crop. Hidden files are ignored.
 
     Returns:
-        The number of label events added (one transaction; nothing on error).
+        The label events added (one transaction; nothing on error), with the files left
+        out (repeats of a patch, labels already recorded): see :class:`ImportResult`.
 
     Raises:
-        LabelsIOError: unknown class folders, files matching no patch, loose files.
+        LabelsIOError: unknown class folders, files matching no patch, loose files, one
+            patch in two class folders.
     """
     root = Path(root)
     if not root.is_dir():
@@ -237,7 +328,7 @@ def import_folders(
         (photo.replace("/", "~"), box): pid for (photo, box), pid in ws.patch_lookup().items()
     }
     by_pixels: dict[str, int] | None = None
-    items: list[tuple[int, str | None]] = []
+    rows = _Rows()
     for entry in sorted(root.iterdir()):
         if entry.name.startswith("."):
             continue
@@ -265,5 +356,5 @@ def import_folders(
                 pid = by_pixels.get(_pixel_digest(f))
             if pid is None:
                 raise LabelsIOError(f"{f}: matches no patch of the workspace by name or pixels")
-            items.append((pid, label))
-    return ws.add_labels(items, reviewer=reviewer, origin=origin)
+            rows.add(pid, label, str(f))
+    return rows.store(ws, reviewer, origin)

@@ -24,6 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.taxonomy import ClassSet
 
 __all__ = ["Orientation", "dominant_orientation", "structure_tensor_sums", "ridge_response"]
@@ -36,7 +37,7 @@ MIN_COHERENCY = 0.35
 MIN_ENERGY = 2e-5
 
 
-class OrientationError(ValueError):
+class OrientationError(TrainkitError):
     """The image given for an orientation estimate cannot be used."""
 
 

@@ -27,6 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.grid import resize_patch
 from trainkit.core.taxonomy import ClassSet
@@ -52,11 +53,11 @@ QUEUES = ("unlabelled", "audit", "conflicts")
 UNSURE_TOKENS = ("x", "unsure")
 
 
-class ReviewError(ValueError):
+class ReviewError(TrainkitError):
     """A review request that cannot be carried out; the message says why."""
 
 
-class SheetAnswerError(ValueError):
+class SheetAnswerError(TrainkitError):
     """A contact-sheet answer that cannot be read; the message names the bad part."""
 
 

@@ -127,8 +127,8 @@ def run_review(
         read_line: where sheet mode reads answer lines (default: the terminal).
 
     Returns:
-        ``reviewer``, ``queue``, ``outcome`` (``finished`` or ``quit``), ``done`` (labels this
-        session), ``remaining`` and ``per_minute``.
+        ``reviewer``, ``queue``, ``outcome`` (``finished``, ``quit`` or ``interrupted`` by
+        Ctrl-C), ``done`` (labels this session), ``remaining`` and ``per_minute``.
     """
     from trainkit.labels.review_ui import choose_mode, run_keys, run_sheet
 
@@ -168,8 +168,7 @@ def summary_line(result: dict) -> str:
         f"{result['reviewer']}: {result['done']} labels this session "
         f"({result['per_minute']:.1f} per min); "
     )
-    return head + (
-        "queue finished"
-        if result["outcome"] == "finished"
-        else f"{result['remaining']} left; run the same command to resume"
-    )
+    if result["outcome"] == "finished":
+        return head + "queue finished"
+    stop = "interrupted, " if result["outcome"] == "interrupted" else ""
+    return head + f"{stop}{result['remaining']} left; run the same command to resume"

@@ -49,6 +49,9 @@ __all__ = [
 MIN_COLS, MIN_ROWS = 60, 34
 #: Lines of text around the preview in key mode.
 _TEXT_LINES = 10
+#: Ctrl-C as key mode reads it (the terminal's signal keys are off): it ends the run as
+#: interrupted, which the command line reports with a non-zero exit code.
+CTRL_C = "\x03"
 _UPPER_HALF = "\u2580"
 #: Sheet colours (RGB): background, number tag, tag text, suggestion text.
 _SHEET_BG, _TAG_BG, _TAG_FG, _NOTE_FG = (24, 26, 30), (250, 204, 21), (20, 20, 20), (180, 220, 255)
@@ -259,7 +262,8 @@ def run_keys(session: Session, console, *, viewer: str | None = None, getchar=No
         getchar: optional function returning the next key (raising EOFError at the end).
 
     Returns:
-        ``"quit"``, ``"finished"`` or ``"sheet"`` (the reviewer switched to sheet mode).
+        ``"quit"`` (q, or Ctrl-D), ``"interrupted"`` (Ctrl-C), ``"finished"`` or ``"sheet"``
+        (the reviewer switched to sheet mode). Every answer is saved as it is given.
     """
     if getchar is not None:
         return _key_loop(session, console, viewer, getchar)
@@ -307,7 +311,9 @@ def _key_loop(session: Session, console, viewer: str | None, getchar) -> str:
             key = getchar()
         except EOFError:
             return "quit"
-        if key in ("q", "Q", "\x03", "\x04"):
+        if key == CTRL_C:
+            return "interrupted"
+        if key in ("q", "Q", "\x04"):
             return "quit"
         if key.isdigit() and int(key) < len(names):
             session.answer(names[int(key)])
@@ -346,7 +352,8 @@ def _key_loop(session: Session, console, viewer: str | None, getchar) -> str:
             console.print(KEY_HELP, highlight=False)
             console.print(_legend(session), style="cyan", highlight=False)
             try:
-                getchar()
+                if getchar() == CTRL_C:
+                    return "interrupted"
             except EOFError:
                 return "quit"
         else:

@@ -18,6 +18,7 @@ from collections.abc import Callable, Iterable, Sequence
 import numpy as np
 from sklearn.model_selection import StratifiedGroupKFold
 
+from trainkit.core.errors import TrainkitError
 from trainkit.labels import neardup
 from trainkit.labels.workspace import PatchRecord, Workspace
 
@@ -35,7 +36,7 @@ __all__ = [
 SUBSETS = ("train", "val", "test")
 
 
-class SplitError(ValueError):
+class SplitError(TrainkitError):
     """A split that cannot be made or that leaks groups across subsets."""
 
 
@@ -86,10 +87,10 @@ def assign_groups(
         seed: random seed; the same inputs and seed give the same split.
     """
     if len(labels) != len(groups):
-        raise ValueError(f"expected as many groups as labels, got {len(groups)} and {len(labels)}")
+        raise SplitError(f"expected as many groups as labels, got {len(groups)} and {len(labels)}")
     for name, v in (("test_fraction", test_fraction), ("val_fraction", val_fraction)):
         if not 0.0 < v < 0.5:
-            raise ValueError(f"{name} must be in (0, 0.5), got {v}")
+            raise SplitError(f"{name} must be in (0, 0.5), got {v}")
     g = np.asarray(groups, dtype=object).astype(str)
     subsets = _patch_subsets(labels, g, test_fraction, val_fraction, seed)
     out: dict[str, str] = {}
@@ -223,7 +224,7 @@ def find_near_duplicates(
         ``dropped`` (patches taken out per subset) and ``dropped_ids``.
     """
     if examples < 0:
-        raise ValueError(f"examples must be >= 0, got {examples}")
+        raise SplitError(f"examples must be >= 0, got {examples}")
     everything = workspace.patches()
     records = [r for r in everything if r.subset in SUBSETS and r.label is not None]
     if not records:

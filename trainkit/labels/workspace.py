@@ -16,6 +16,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.labels.schema import SCHEMA as _SCHEMA
 
@@ -32,7 +33,7 @@ _V1_ORIGINS = {"human": "reviewer", "imported": "file", "model-accepted": "sugge
 UNSURE = None
 
 
-class WorkspaceError(ValueError):
+class WorkspaceError(TrainkitError):
     """A workspace that is missing, of another version, or used inconsistently."""
 
 

@@ -24,6 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.learning.data import PatchSet, load_patch_set
 
@@ -49,7 +50,7 @@ VAL_SHARE = 0.25
 REPLAY_RATIO = 3
 
 
-class AdaptError(ValueError):
+class AdaptError(TrainkitError):
     """An adaptation that cannot run; the message says what is missing."""
 
 

@@ -9,19 +9,22 @@ from typing import Literal
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from trainkit.core.errors import TrainkitError
+
 __all__ = [
     "AugmentConfig",
     "CascadeConfig",
     "TrainConfig",
     "ConfigError",
     "load_train_config",
+    "recipe_patch_px",
     "BUILTIN_RECIPES",
 ]
 
 BUILTIN_RECIPES = ("default", "demo", "scratch", "presence", "frozen")
 
 
-class ConfigError(ValueError):
+class ConfigError(TrainkitError):
     """A configuration that failed validation; the message has one line per bad field."""
 
 
@@ -77,6 +80,7 @@ class TrainConfig(_Strict):
     class_set: str = "orientation"
     backbone: str = "mobilenet_v3_small"
     weights: str | None = None
+    patch_px: int | None = Field(None, ge=16, le=2048)
     epochs: int = Field(20, ge=1, le=1000)
     batch_size: int = Field(32, ge=1, le=4096)
     lr: float = Field(2e-3, gt=0.0, le=1.0)
@@ -138,24 +142,40 @@ def _format_errors(exc: ValidationError, source: str) -> str:
     return "\n".join(lines)
 
 
+def _builtin_text(name: str) -> str:
+    return (
+        resources.files("trainkit").joinpath("configs", "train", f"{name}.yaml").read_text("utf-8")
+    )
+
+
+def recipe_patch_px(name: str = "default") -> int:
+    """The patch size in pixels a built-in recipe is made for (read without building the recipe).
+
+    Reading the one key keeps ``trainkit --help`` from importing torch, which building the
+    recipe does (its backbone name is checked against the registry).
+    """
+    return int(yaml.safe_load(_builtin_text(name))["patch_px"])
+
+
 def load_train_config(
     name_or_path: str | Path = "default", overrides: dict | None = None
 ) -> TrainConfig:
     """Load a built-in recipe by name or a YAML file by path, then apply overrides."""
     source = str(name_or_path)
     if source in BUILTIN_RECIPES:
-        text = (
-            resources.files("trainkit")
-            .joinpath("configs", "train", f"{source}.yaml")
-            .read_text("utf-8")
-        )
+        text = _builtin_text(source)
     else:
         p = Path(name_or_path)
         if not p.is_file():
             raise ConfigError(
                 f"config {source!r} is neither a built-in recipe ({', '.join(BUILTIN_RECIPES)}) nor a file"
             )
-        text = p.read_text(encoding="utf-8")
+        try:
+            text = p.read_text(encoding="utf-8")
+        except UnicodeDecodeError as exc:
+            raise ConfigError(
+                f"{source}: not UTF-8 text (byte {exc.start}); save it as UTF-8"
+            ) from None
     try:
         data = yaml.safe_load(text) or {}
     except yaml.YAMLError as exc:

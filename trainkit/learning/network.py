@@ -7,13 +7,14 @@ from pathlib import Path
 import torch
 from torch import nn
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.learning.config import TrainConfig
 from trainkit.learning.models import IMAGENET_MEAN, IMAGENET_STD, backbone_record, create_model
 
 
-class TrainingError(ValueError):
+class TrainingError(TrainkitError):
     """Training cannot start or continue; the message says why and what to do."""
 
 

@@ -48,6 +48,7 @@ from trainkit.core.contract import (
     screening_probability,
 )
 from trainkit.core.cores import usable_cores
+from trainkit.core.errors import TrainkitError
 from trainkit.core.familiarity import frame_score
 from trainkit.core.grid import axis_starts
 from trainkit.screener.crackmap import CrackMap
@@ -67,7 +68,7 @@ RESAMPLE_STRIP_PIXELS = 8_000_000
 PROBABILITY_SUM_TOLERANCE = 0.05
 
 
-class ScreenerError(ValueError):
+class ScreenerError(TrainkitError):
     """The model file or the input frame cannot be used; the message says why."""
 
 

@@ -570,14 +570,14 @@ def _dask(
     try:
         from distributed import Client, as_completed
     except ImportError:
-        raise ValueError(
+        raise ScreenerError(
             "the dask engine needs dask.distributed: pip install 'trainkit-concrete[dask]'"
         ) from None
     ov = str(overlay_dir.resolve()) if overlay_dir else None
     try:
         client = Client(scheduler, timeout=30)
     except OSError as exc:
-        raise ValueError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
+        raise ScreenerError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
     try:
         futures = [
             client.submit(

@@ -16,7 +16,7 @@ from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.core.grid import grid_boxes
 from trainkit.core.taxonomy import ClassSet
 from trainkit.synth.labels import LabelRules, derive_patch_label
-from trainkit.synth.options import GENERATOR_VERSION, SCENE_MIX, SynthOptions
+from trainkit.synth.options import GENERATOR_VERSION, SCENE_MIX, SynthError, SynthOptions
 from trainkit.synth.photo import generate_photo
 from trainkit.synth.truth import SynthPhoto
 
@@ -171,13 +171,13 @@ def _check_arguments(
     n_photos: int, seed: int, tile_px: int, options: SynthOptions, jpeg_quality: int
 ) -> None:
     if isinstance(n_photos, bool) or not isinstance(n_photos, int) or n_photos < 1:
-        raise ValueError(f"write_dataset: expected n_photos >= 1, got {n_photos!r}")
+        raise SynthError(f"write_dataset: expected n_photos >= 1, got {n_photos!r}")
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-        raise ValueError(f"write_dataset: expected a non-negative int seed, got {seed!r}")
+        raise SynthError(f"write_dataset: expected a non-negative int seed, got {seed!r}")
     if not (1 <= jpeg_quality <= 100):
-        raise ValueError(f"write_dataset: expected jpeg_quality 1..100, got {jpeg_quality!r}")
+        raise SynthError(f"write_dataset: expected jpeg_quality 1..100, got {jpeg_quality!r}")
     if not isinstance(tile_px, int) or not (1 <= tile_px <= min(options.height, options.width)):
-        raise ValueError(
+        raise SynthError(
             f"write_dataset: expected tile_px in 1..{min(options.height, options.width)}, "
             f"got {tile_px!r}"
         )

@@ -8,7 +8,21 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["GENERATOR_VERSION", "SCENES", "SCENE_MIX", "SurfaceFamily", "SynthOptions"]
+from trainkit.core.errors import TrainkitError
+
+__all__ = [
+    "GENERATOR_VERSION",
+    "SCENES",
+    "SCENE_MIX",
+    "SurfaceFamily",
+    "SynthError",
+    "SynthOptions",
+]
+
+
+class SynthError(TrainkitError):
+    """Generator options that cannot be used; the message names the option and its valid range."""
+
 
 #: Recorded in manifests and truth files; bump when the generated pixels change.
 GENERATOR_VERSION = "trainkit.synth 1.0"
@@ -84,29 +98,29 @@ class SynthOptions:
         for name in ("height", "width"):
             v = getattr(self, name)
             if not isinstance(v, int | np.integer) or isinstance(v, bool) or v < 32:
-                raise ValueError(f"SynthOptions.{name}: expected an int >= 32, got {v!r}")
+                raise SynthError(f"SynthOptions.{name}: expected an int >= 32, got {v!r}")
         if self.scene not in SCENES:
-            raise ValueError(f"SynthOptions.scene: expected one of {SCENES}, got {self.scene!r}")
+            raise SynthError(f"SynthOptions.scene: expected one of {SCENES}, got {self.scene!r}")
         if self.crack_angle_deg is not None and not math.isfinite(self.crack_angle_deg):
-            raise ValueError(
+            raise SynthError(
                 f"SynthOptions.crack_angle_deg: expected a finite number or None, "
                 f"got {self.crack_angle_deg!r}"
             )
         if not (0.5 <= self.max_width_px <= 20.0):
-            raise ValueError(
+            raise SynthError(
                 f"SynthOptions.max_width_px: expected 0.5..20, got {self.max_width_px!r}"
             )
         if not (0.0 <= self.blur_sigma <= 10.0):
-            raise ValueError(f"SynthOptions.blur_sigma: expected 0..10, got {self.blur_sigma!r}")
+            raise SynthError(f"SynthOptions.blur_sigma: expected 0..10, got {self.blur_sigma!r}")
         if not (0.0 <= self.noise_sigma <= 50.0):
-            raise ValueError(f"SynthOptions.noise_sigma: expected 0..50, got {self.noise_sigma!r}")
+            raise SynthError(f"SynthOptions.noise_sigma: expected 0..50, got {self.noise_sigma!r}")
         if self.jpeg_quality is not None and not (1 <= self.jpeg_quality <= 100):
-            raise ValueError(
+            raise SynthError(
                 f"SynthOptions.jpeg_quality: expected 1..100 or None, got {self.jpeg_quality!r}"
             )
         if self.surface != "default" and not isinstance(self.surface, SurfaceFamily):
-            raise ValueError(
+            raise SynthError(
                 f"SynthOptions.surface: expected 'default' or a SurfaceFamily, got {self.surface!r}"
             )
         if self.gsd_mm is not None and not (self.gsd_mm > 0 and math.isfinite(self.gsd_mm)):
-            raise ValueError(f"SynthOptions.gsd_mm: expected > 0 or None, got {self.gsd_mm!r}")
+            raise SynthError(f"SynthOptions.gsd_mm: expected > 0 or None, got {self.gsd_mm!r}")
