@@ -216,6 +216,13 @@ def test_the_job_loop_through_the_command_line(tmp_path):
     assert r.exit_code == 3 and "REFUSED" in r.output and "70 answered cells" in r.output
     r = run(cli, ["verify", str(scan_out), "--workspace", str(ws), "--json"])
     assert r.exit_code == 0 and json.loads(r.output)["cells_answered"] == 70
+    more = ["sample", str(scan_out), "--workspace", str(ws), "--seed", "3", "--more", "20"]
+    r = run(cli, [*more, "--cells", "5"])
+    assert r.exit_code == 2 and "give one of them" in r.output
+    r = run(cli, more)
+    assert r.exit_code == 0, r.output
+    assert "20 more cells drawn" in r.output and "the sample now holds 90 cells" in r.output
+    assert "kept the 70 answers typed into" in r.output
 
 
 def test_a_job_check_is_recorded_with_the_model_and_on_its_card(demo_run, tmp_path):
