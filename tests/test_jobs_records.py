@@ -337,13 +337,20 @@ def test_two_verifies_at_once_both_land_in_jobs_json_and_the_card(tmp_path, monk
     assert "| east |" in card and "| west |" in card
 
 
-def test_a_checkpoint_that_cannot_load_leaves_no_record(tmp_path):
-    exp = _experiment(tmp_path, checkpoint=b"not a torch checkpoint")
+@pytest.mark.parametrize("broken", ["checkpoint", "export.json"])
+def test_a_record_that_cannot_load_leaves_no_record(tmp_path, broken):
+    """A refused checkpoint, or an export summary the card is made from that does not
+    parse: verify stops before writing verification files, jobs.json or the card."""
+    if broken == "checkpoint":
+        exp = _experiment(tmp_path, checkpoint=b"not a torch checkpoint")
+    else:
+        exp = _experiment(tmp_path)
+        (exp / "export.json").write_text("{torn")
     out, truth = _job_scan(tmp_path, exp)
     ws = new_ws(tmp_path / "ws")
     sample_scan(out, ws, cells=60, seed=1, job="deck")
     answer_from_truth(ws, truth)
-    with pytest.raises(VerifyError, match="cannot be loaded.*nothing was written"):
+    with pytest.raises(VerifyError, match="cannot be (loaded|written).*nothing was written"):
         verify_scan(out, ws, require_recall=0.5)
     assert not list(out.rglob("verification.*"))
     assert not (exp / "jobs.json").exists() and not (exp / "model-card.md").exists()

@@ -235,6 +235,17 @@ def _experiment_of(model: dict | None) -> tuple | None:
         ) from None
     if not isinstance(ckpt, dict):
         raise VerifyError(f"{path} is not a trainkit checkpoint; nothing was written")
+    from trainkit.judging.model_card import model_card_text
+
+    try:  # the card is rewritten after jobs.json: whatever it reads must load now
+        export = folder.read_export()
+        model_card_text(folder.path, ckpt, export)
+    except (OSError, ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise VerifyError(
+            f"the model card of {folder.path} cannot be written from its files "
+            f"({type(exc).__name__}: {exc}), so the check cannot be recorded there; "
+            "nothing was written"
+        ) from None
     return folder, ckpt
 
 

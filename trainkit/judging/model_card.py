@@ -28,6 +28,7 @@ __all__ = [
     "CARD_NAME",
     "NOT_EVALUATED",
     "build_model_card",
+    "model_card_text",
     "write_model_card",
     "synthetic_training_data",
 ]
@@ -563,6 +564,27 @@ def build_model_card(
     return "\n".join(lines)
 
 
+def model_card_text(exp_dir: str | Path, ckpt: dict, export: dict | None = None) -> str:
+    """The card of an experiment folder as :func:`write_model_card` would write it now.
+
+    Args:
+        exp_dir: the experiment folder.
+        ckpt: the loaded checkpoint dict.
+        export: the export summary (model path, parity, threshold).
+    """
+    folder = Experiment(exp_dir)
+    experiment = folder.read_provenance() or ckpt.get("experiment") or {}
+    return build_model_card(
+        ckpt,
+        experiment=experiment,
+        metrics=folder.read_metrics(),
+        export=export,
+        synthetic=synthetic_training_data(experiment.get("workspace")),
+        name=folder.path.resolve().name,
+        jobs=folder.read_jobs(),
+    )
+
+
 def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None) -> Path:
     """Write ``EXP/model-card.md`` atomically (temporary file, then rename).
 
@@ -574,19 +596,6 @@ def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None
     Returns:
         The path of the card.
     """
-    folder = Experiment(exp_dir)
-    exp = folder.path
-    experiment = folder.read_provenance() or ckpt.get("experiment") or {}
-    metrics = folder.read_metrics()
-    text = build_model_card(
-        ckpt,
-        experiment=experiment,
-        metrics=metrics,
-        export=export,
-        synthetic=synthetic_training_data(experiment.get("workspace")),
-        name=exp.resolve().name,
-        jobs=folder.read_jobs(),
-    )
-    target = folder.card_path
-    atomic_write_text(target, text)
+    target = Experiment(exp_dir).card_path
+    atomic_write_text(target, model_card_text(exp_dir, ckpt, export))
     return target
