@@ -458,25 +458,37 @@ def test_a_scan_folder_whose_name_is_no_job_name_asks_for_one(tmp_path):
         sample_scan(tmp_path / "scan results", new_ws(tmp_path / "ws"), cells=5, seed=1)
 
 
-def test_sample_csv_neutralises_formula_cells_and_reads_back(tmp_path, monkeypatch):
-    """OWASP "CSV Injection": a text cell starting with = + - @ tab or CR gets a leading
-    apostrophe (common practice). Frames scanned by a relative path keep it in frames.jsonl,
-    so a folder named like a formula reaches sample.csv's frame column."""
-    monkeypatch.chdir(tmp_path)
-    model = brightness_model(tmp_path / "m.onnx")
-    frames, truth = make_job(tmp_path, n_frames=2)
-    evil = Path("@SUM(1+1)")
-    frames.rename(evil)
-    scan_frames(model, [evil], tmp_path / "scan")
+def test_sample_csv_neutralises_formula_cells_and_reads_back(scanned, tmp_path):  # noqa: F811
+    """OWASP "CSV Injection" guidance: a text cell starting with = + - @ tab or CR gets a
+    leading apostrophe (common practice). Text typed into sample.csv's label column is
+    carried into the file written by --more: there it is neutralised, once (a second
+    rewrite does not add a second apostrophe), while numbers stay numbers."""
+    out, truth = scanned
     ws = new_ws(tmp_path / "ws")
-    s = sample_scan(tmp_path / "scan", ws, cells=20, seed=1, job="deck")
+    s = sample_scan(out, ws, cells=20, seed=1, job="deck")
+    _fill(s["sample_csv"], truth)
     rows = _rows(s["sample_csv"])
-    assert rows and all(r["frame"].startswith("'@SUM(1+1)/") for r in rows)
-    probs = [float(r["screening_probability"]) for r in rows]  # numbers stay numbers
-    assert all(0.0 <= p <= 1.0 for p in probs)
+    typed = {rows[0]["patch_id"]: '=HYPERLINK("http://x","y")', rows[1]["patch_id"]: "@SUM(1)"}
     for r in rows:
-        box = tuple(int(r[k]) for k in ("x0", "y0", "x1", "y1"))
-        r["label"] = "crack" if truth[(r["frame"].rsplit("/", 1)[1], box)] else "none"
+        r["label"] = typed.get(r["patch_id"], r["label"])
+    with open(s["sample_csv"], "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+    for step in (1, 2):
+        sample_scan(out, ws, more=5, seed=1 + step, job="deck")
+        after = {r["patch_id"]: r for r in _rows(s["sample_csv"])}
+        assert len(after) == 20 + 5 * step
+        for pid, text in typed.items():
+            assert after[pid]["label"] == "'" + text
+        for r in after.values():
+            assert not any(r[k].startswith(("=", "+", "-", "@", "\t", "\r")) for k in r)
+            assert 0.0 <= float(r["screening_probability"]) <= 1.0  # numbers stay numbers
+            assert 0.0 < float(r["inclusion_probability"]) <= 1.0
+    rows = list(after.values())
+    for r in rows:  # the spreadsheet user corrects the two cells; the file imports
+        if r["patch_id"] in typed:
+            r["label"] = "none"
     with open(s["sample_csv"], "w", newline="", encoding="utf-8") as fh:
         w = csv.DictWriter(fh, fieldnames=list(rows[0]))
         w.writeheader()
