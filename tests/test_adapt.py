@@ -183,5 +183,5 @@ def test_adapt_export_scan_and_the_honest_path(demo_run, tmp_path):
     _answer(ws, {**cracks, **more})
     v = verify_scan(tmp_path / "scan2", ws, job="check")
     assert v["cells_answered"] > 0 and v["frames_learned_from_left_out"] == 4
-    page = (tmp_path / "scan2" / "verification.html").read_text(encoding="utf-8")
+    page = Path(v["report"]).read_text(encoding="utf-8")
     assert 'data-metric="frames_learned_from_left_out" data-value="4"' in page

@@ -32,10 +32,47 @@ def test_readers_and_status_of_a_folder_with_metrics_and_jobs(tmp_path):
     )
     exp.record_job({"job": "a", "summary": "first"})
     exp.record_job({"job": "b", "summary": "second"})
-    exp.record_job({"job": "a", "summary": "again"})  # replaces job a, keeps the order of arrival
-    assert [j["summary"] for j in exp.read_jobs()] == ["second", "again"]
+    exp.record_job({"job": "a", "summary": "again"})  # appended: job a's first check stays
+    assert [j["summary"] for j in exp.read_jobs()] == ["first", "second", "again"]
     info = exp.status()
     assert exp.is_experiment() and info["training_patches"] == 12
     assert info["screening_recall"] == "0.750 [0.500, 0.900]" and info["threshold"] == 0.4
-    assert info["jobs_checked"] == 2 and info["latest_job"] == "a: again"
+    assert info["jobs_checked"] == 2 and info["job_checks"] == 3
+    assert info["latest_job"] == "a: again"
     assert info["model.onnx"] == "missing"
+
+
+def test_two_checks_recorded_at_once_both_land(tmp_path, monkeypatch):
+    """jobs.json is read, extended and written again: two writers at once (the window
+    between read and write widened to 0.5 s) must both land, in either order."""
+    import threading
+    import time
+
+    exp = Experiment(tmp_path)
+    exp.record_job({"job": "first", "summary": "kept"})
+    real = Experiment.read_jobs
+
+    def slow_read(self):
+        jobs = real(self)
+        time.sleep(0.5)
+        return jobs
+
+    monkeypatch.setattr(Experiment, "read_jobs", slow_read)
+
+    def at_once(names, **kwargs):
+        writers = [
+            threading.Thread(target=exp.record_job, args=({"job": n, "summary": n},), kwargs=kwargs)
+            for n in names
+        ]
+        for w in writers:
+            w.start()
+        for w in writers:
+            w.join()
+
+    at_once(("a", "b"))
+    assert sorted(j["job"] for j in real(exp)) == ["a", "b", "first"]
+    # What runs under the same lock after the write (the model card) sees every check.
+    cards = []
+    at_once(("c", "d"), then=lambda: cards.append(sorted(j["job"] for j in real(exp))))
+    monkeypatch.undo()
+    assert cards[-1] == ["a", "b", "c", "d", "first"]

@@ -11,6 +11,7 @@ from trainkit.jobs.design import (
     allocate,
     assign_strata,
     design_codes,
+    draw_more,
     draw_sample,
     rest_band_edges,
 )
@@ -181,3 +182,76 @@ def test_banded_allocation_within_sizes_reaches_every_stratum_and_is_seeded(seed
         assert np.all(s.allocated[nonempty] >= 1)
     again = draw_sample(p, 0.5, n, seed=seed)
     assert np.array_equal(s.index, again.index) and s.rest_edges == again.rest_edges
+
+
+# ----- a sample that grows (draw_more) ------------------------------------------------------
+
+
+def test_union_of_two_draws_is_one_srswor_by_enumeration():
+    """Within a stratum of N cells, n1 drawn and then n2 of the N - n1 left: every set of
+    n1 + n2 cells has chance 1 / C(N, n1 + n2), as one simple random sample without
+    replacement of that size (COCHRAN; checked here by enumerating every pair of draws)."""
+    from fractions import Fraction
+    from itertools import combinations
+    from math import comb
+
+    N, n1, n2 = 7, 3, 2
+    chance: dict[frozenset, Fraction] = {}
+    for first in combinations(range(N), n1):
+        left = [i for i in range(N) if i not in first]
+        for second in combinations(left, n2):
+            u = frozenset(first + second)
+            chance[u] = chance.get(u, 0) + Fraction(1, comb(N, n1) * comb(N - n1, n2))
+    assert len(chance) == comb(N, n1 + n2)
+    assert set(chance.values()) == {Fraction(1, comb(N, n1 + n2))}
+
+
+def test_draw_more_gives_every_union_the_same_chance_by_seeded_simulation():
+    """draw_sample then draw_more, 6,000 seeds: within each stratum every set of the combined
+    size turns up equally often (chi-square against uniform, scipy.stats.chisquare), each
+    cell with frequency (n1_h + n2_h) / N_h, the inclusion probability recorded."""
+    from collections import Counter
+    from math import comb
+
+    from scipy.stats import chisquare
+
+    p = np.array([0.9] * 4 + [0.02] * 5)  # flagged: 4 cells; rest: 5 cells (near empty)
+    flagged, rest = Counter(), Counter()
+    hits = np.zeros(p.size)
+    runs = 6000
+    for seed in range(runs):
+        a = draw_sample(p, 0.5, 4, seed=seed, rest_bands=1)
+        taken = np.zeros(p.size, dtype=bool)
+        taken[a.index] = True
+        b = draw_more(p, 0.5, 2, seed=seed + runs, sampled=taken, rest_edges=a.rest_edges)
+        assert not taken[b.index].any()  # a cell drawn before is never drawn again
+        union = np.concatenate([a.index, b.index])
+        hits[union] += 1
+        flagged[frozenset(i for i in union if i < 4)] += 1
+        rest[frozenset(i for i in union if i >= 4)] += 1
+        assert b.inclusion_probability.tolist() == [3 / 4, 3 / 5]
+    assert len(flagged) == comb(4, 3) and len(rest) == comb(5, 3)
+    assert chisquare(list(flagged.values())).pvalue > 1e-3
+    assert chisquare(list(rest.values())).pvalue > 1e-3
+    assert np.allclose(hits / runs, [3 / 4] * 4 + [3 / 5] * 5, atol=0.03)
+
+
+def test_draw_more_counts_every_draw_and_refuses_what_is_not_left():
+    p = _probabilities(2000, seed=4)
+    a = draw_sample(p, 0.5, 100, seed=1)
+    taken = np.zeros(p.size, dtype=bool)
+    taken[a.index] = True
+    b = draw_more(p, 0.5, 150, seed=2, sampled=taken, rest_edges=a.rest_edges)
+    assert b.index.size == 150 and int(b.allocated.sum()) == 250
+    assert np.array_equal(b.population, a.population)  # the first draw's strata, its edges
+    codes = assign_strata(p, 0.5, rest_edges=a.rest_edges)
+    assert np.array_equal(codes[b.index], b.stratum)
+    both = np.concatenate([a.index, b.index])
+    for h in design_codes(a.rest_edges):
+        n_h = int((codes[both] == h).sum())
+        assert b.allocated[h] == n_h
+        assert np.allclose(b.inclusion_probability[b.stratum == h], n_h / a.population[h])
+    with pytest.raises(DesignError, match=r"n in \[1, 1900\]"):
+        draw_more(p, 0.5, 1901, seed=2, sampled=taken, rest_edges=a.rest_edges)
+    with pytest.raises(DesignError, match="sampled as a bool array"):
+        draw_more(p, 0.5, 10, seed=2, sampled=taken[:-1], rest_edges=a.rest_edges)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -16,6 +17,7 @@ from PIL import Image
 from test_screener import S, brightness_model
 
 from trainkit.core.taxonomy import load_class_set
+from trainkit.jobs.files import JobFiles
 from trainkit.jobs.sample import SampleError, read_scan_cells, sample_scan
 from trainkit.jobs.verify import VerifyError, verify_scan
 from trainkit.labels.labels_io import import_csv
@@ -90,9 +92,9 @@ def test_sample_is_reproducible_stratified_and_kept_out_of_splits(scanned, tmp_p
     out, truth = scanned
     ws1, ws2 = new_ws(tmp_path / "a"), new_ws(tmp_path / "b")
     s1 = sample_scan(out, ws1, cells=60, seed=3)
-    rows1 = list(csv.DictReader((out / "sample.csv").open()))
-    s2 = sample_scan(out, ws2, cells=60, seed=3)
-    rows2 = list(csv.DictReader((out / "sample.csv").open()))
+    rows1 = list(csv.DictReader(open(s1["sample_csv"])))
+    s2 = sample_scan(out, ws2, cells=60, seed=3, job="again")
+    rows2 = list(csv.DictReader(open(s2["sample_csv"])))
     key = lambda r: (r["frame"], r["x0"], r["y0"], r["stratum"])  # noqa: E731
     assert sorted(map(key, rows1)) == sorted(map(key, rows2)) and len(rows1) == 60
     assert s1["strata"] == s2["strata"]
@@ -118,8 +120,7 @@ def test_answers_through_sample_csv_equal_answers_in_review(scanned, tmp_path):
     sample_scan(out, ws_a, cells=80, seed=5)
     answer_from_truth(ws_a, truth)
     a = verify_scan(out, ws_a)
-    sample_scan(out, ws_b, cells=80, seed=5)
-    path = out / "sample.csv"
+    path = Path(sample_scan(out, ws_b, cells=80, seed=5, job="b")["sample_csv"])
     rows = list(csv.DictReader(path.open()))
     for r in rows:
         frame = r["frame"].rsplit("/", 1)[1]
@@ -170,9 +171,10 @@ def test_verify_counts_unresolved_cells_and_applies_the_gate(scanned, tmp_path):
     )
     # The brightness model misses the faint cracks: the gate refuses at 0.99.
     assert res["gate"]["passed"] is False and res["gate"]["verdict"].startswith("REFUSED")
-    saved = json.loads((out / "verification.json").read_text())
+    files = JobFiles(out, res["job"])
+    saved = json.loads(files.verification_json.read_text())
     assert saved["estimate"] == res["estimate"]
-    html = (out / "verification.html").read_text()
+    html = files.verification_html.read_text()
     assert "triage aid" in html and html.rstrip().endswith("</html>")
 
 
@@ -199,7 +201,7 @@ def test_the_job_loop_through_the_command_line(tmp_path):
     r = run(cli, ["sample", str(scan_out), "--workspace", str(ws), "--cells", "70", "--seed", "2"])
     assert r.exit_code == 0, r.output
     assert "70 cells drawn" in r.output and "trainkit verify" in r.output
-    path = scan_out / "sample.csv"
+    path = JobFiles(scan_out, "scan").sample_csv
     rows = list(csv.DictReader(path.open()))
     for row in rows:
         box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
@@ -214,6 +216,13 @@ def test_the_job_loop_through_the_command_line(tmp_path):
     assert r.exit_code == 3 and "REFUSED" in r.output and "70 answered cells" in r.output
     r = run(cli, ["verify", str(scan_out), "--workspace", str(ws), "--json"])
     assert r.exit_code == 0 and json.loads(r.output)["cells_answered"] == 70
+    more = ["sample", str(scan_out), "--workspace", str(ws), "--seed", "3", "--more", "20"]
+    r = run(cli, [*more, "--cells", "5"])
+    assert r.exit_code == 2 and "give one of them" in r.output
+    r = run(cli, more)
+    assert r.exit_code == 0, r.output
+    assert "20 more cells drawn" in r.output and "the sample now holds 90 cells" in r.output
+    assert "kept the 70 answers typed into" in r.output
 
 
 def test_a_job_check_is_recorded_with_the_model_and_on_its_card(demo_run, tmp_path):

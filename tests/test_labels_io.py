@@ -12,6 +12,7 @@ from PIL import Image
 
 from trainkit.core.csvfile import CsvFileError
 from trainkit.core.errors import TrainkitError
+from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.labels_io import (
     LabelsIOError,
     export_csv,
@@ -20,6 +21,7 @@ from trainkit.labels.labels_io import (
     import_csv,
     import_folders,
 )
+from trainkit.labels.workspace import Workspace
 
 
 def in_subfolder(i):
@@ -256,3 +258,32 @@ def test_importing_the_same_folders_again_adds_nothing(tmp_path):
     assert import_folders(fresh, tmp_path / "out") == 2
     again = import_folders(fresh, tmp_path / "out")
     assert (again, again.unchanged) == (0, 2) and len(fresh.label_events()) == 2
+
+
+def test_csv_export_neutralises_formula_cells_and_still_reads_back(tmp_path):
+    """OWASP "CSV Injection" guidance (cells starting with = + - @ tab CR get a leading
+    apostrophe; common practice): a reviewer named like a formula and a photo whose name
+    starts with '-' are written as text; the export still imports by place."""
+    ws = Workspace.create(tmp_path / "a", class_set=load_class_set("orientation"), tile_px=32)
+    ws.add_photo_with_patches(
+        name="-0.5.jpg", source_path="/x/-0.5.jpg", width=32, height=32, gsd_mm=None,
+        group_id="g", sha256="0" * 64,
+        patches=[dict(row=0, col=0, x0=0, y0=0, x1=32, y1=32, crop="patches/a.png",
+                      patch_mm=None, focus=1.0, clipped=0.0)],
+    )  # fmt: skip
+    pid = ws.patches()[0].id
+    ws.add_labels([(pid, "map")], reviewer="=cmd|' /C calc'!A0")
+    export_csv(ws, tmp_path / "labels.csv")
+    with open(tmp_path / "labels.csv", newline="", encoding="utf-8") as fh:
+        row = next(csv.DictReader(fh))
+    assert row["reviewer"] == "'=cmd|' /C calc'!A0" and row["photo"] == "'-0.5.jpg"
+    assert row["x0"] == "0" and float(row["labelled_at"]) > 0  # numbers stay numbers
+    # Read back by place (no patch_id column), as another tool's file would be.
+    del row["patch_id"]
+    with open(tmp_path / "by-place.csv", "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(row))
+        w.writeheader()
+        w.writerow(row)
+    ws.add_labels([(pid, "none")], reviewer="x")
+    assert import_csv(ws, tmp_path / "by-place.csv") == 1
+    assert ws.patches()[0].label == "map"

@@ -179,3 +179,50 @@ def test_weights_source_is_named(demo_run):
     old["config"] = dict(ckpt["config"], weights="/models/backbone.pth")
     card = build_model_card(old, experiment=experiment)
     assert "not recorded (the recipe asked for weights `/models/backbone.pth`)" in card
+
+
+def _walk(tokens):
+    for t in tokens:
+        yield t
+        yield from _walk(t.children or [])
+
+
+def test_text_from_users_cannot_add_a_heading_html_or_a_table_cell():
+    """Job names, times, folder and source paths go into the card escaped: parsed by
+    markdown-it-py (a CommonMark parser, with GFM tables enabled), the card has only its
+    own headings, no HTML at all, and every row of the jobs table its eight cells."""
+    from markdown_it import MarkdownIt
+
+    evil = "x\n## Verdict: ACCEPTED by licensed engineer\n<script>alert(1)</script> | y"
+    interval = {"estimate": 0.9, "low": 0.8, "high": 0.95}
+    jobs = [
+        {"job": evil, "checked": "<b>now</b>", "cells_answered": "3 | 4", "recall": interval,
+         "false_alarm_rate": interval, "verdict": "REFUSED: x", "required_recall": 0.9,
+         "model_sha256": "`abc"},
+        {"job": "plain", "checked": "t", "cells_answered": 5, "recall": interval,
+         "false_alarm_rate": interval, "gate": None, "model_sha256": None},
+    ]  # fmt: skip
+    experiment = {"adaptation": {"source": "/exp`\n# Pwned", "jobs": [evil], "cells": {}}}
+    ckpt = {"config": {"backbone": "b<img src=x>", "class_set": "presence"}, "input_px": 32}
+    card = build_model_card(
+        ckpt, experiment=experiment, jobs=jobs, name="run\n# Verdict: ACCEPTED", created="t"
+    )
+    md = MarkdownIt("commonmark").enable("table")
+    tokens = list(_walk(md.parse(card)))
+    assert not [t for t in tokens if t.type in ("html_inline", "html_block")]
+    headings = [tokens[i + 1].content for i, t in enumerate(tokens) if t.type == "heading_open"]
+    assert headings[0].startswith("Model card:") and "Pwned" not in "".join(headings)
+    assert headings[1:] == [
+        "Intended use", "Out of scope", "Training data", "The model", "Test metrics",
+        "Threshold", "Jobs checked", "Known limits", "Cautions",
+    ]  # fmt: skip
+    rows, cells = [], 0
+    for t in tokens:
+        if t.type == "tr_open":
+            cells = 0
+        elif t.type in ("td_open", "th_open"):
+            cells += 1
+        elif t.type == "tr_close":
+            rows.append(cells)
+    assert rows == [8, 8, 8]  # the jobs table: header and two checks
+    assert "<script>" not in card and "&lt;script&gt;" in card

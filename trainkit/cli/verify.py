@@ -17,7 +17,9 @@ __all__ = ["verify"]
 @click.command(epilog="Example: trainkit verify scan-results --workspace ws --require-recall 0.9")
 @scan_argument
 @workspace_option("The workspace holding the job's sample and its answers.")
-@click.option("--job", default=None, help="The job's name (default: the latest sample of SCAN).")
+@click.option(
+    "--job", default=None, help="The job's name (default: the latest job sampled from SCAN)."
+)
 @click.option(
     "--require-recall",
     type=click.FloatRange(0.0, 1.0),
@@ -31,14 +33,15 @@ __all__ = ["verify"]
     show_default=True,
     help="Recall the suggested job threshold should reach.",
 )
-@json_option("Print verification.json to stdout.")
+@json_option("Print the job's verification.json to stdout.")
 @click.pass_obj
 def verify(ctx: Ctx, scan_dir: Path, ws_dir: Path, job, require_recall, target_recall, as_json):
     """Estimate this job's crack recall, false-alarm rate and flagged share at the model's
     threshold, with 95% intervals for stratified sampling, from the answered sample.
 
-    Writes SCAN/verification.json and SCAN/verification.html. Unsure and unanswered cells
-    are reported, not counted. Exits 3 when --require-recall is not met.
+    Writes SCAN/jobs/JOB/verification.json and verification.html and keeps every check of
+    the job (a refusal stays on record beside a later acceptance). Unsure and unanswered
+    cells are reported and listed, not counted. Exits 3 when --require-recall is not met.
     """
     from trainkit.jobs.verify import verdict_line, verify_scan
     from trainkit.labels.workspace import Workspace
@@ -53,11 +56,13 @@ def verify(ctx: Ctx, scan_dir: Path, ws_dir: Path, job, require_recall, target_r
     else:
         ctx.console.print(verdict_line(res), highlight=False)
         sug = res.get("suggested_threshold")
-        if sug:
+        if not sug:
+            ctx.console.print(f"report: {res['report']}", highlight=False)
+        else:
             ctx.console.print(
                 f"threshold for recall {sug['target_recall']:g} on this job: "
                 f"{sug['threshold']:.3f} (flags {sug['flagged_share']:.1%} of cells); "
-                f"report: {scan_dir / 'verification.html'}",
+                f"report: {res['report']}",
                 highlight=False,
             )
         ctx.console.print(res["caution"], style="dim")

@@ -15,7 +15,8 @@ Layout::
       evaluation/            metrics.json, predictions.csv, report.html, plots
       model.onnx             the exported screener; model-int8.onnx when kept
       export.json            what the export measured (parity, contract, familiarity)
-      jobs.json              the jobs this model was checked on (trainkit verify)
+      jobs.json              every check of this model on a job (trainkit verify), append-only
+      .jobs.lock             the lock that serialises writers of jobs.json
       model-card.md          written beside every export, and again after each job check
 
 Migration: folders written before the rename hold ``config.yaml``, ``last.pt`` and
@@ -28,6 +29,8 @@ from __future__ import annotations
 import csv
 import json
 import os
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -58,6 +61,7 @@ class Experiment:
     CARD = "model-card.md"
     EXPORT = "export.json"
     JOBS = "jobs.json"
+    JOBS_LOCK = ".jobs.lock"
     EVALUATION = "evaluation"
     METRICS = "metrics.json"
     PREDICTIONS = "predictions.csv"
@@ -167,12 +171,36 @@ class Experiment:
         """The job checks recorded for this model (``jobs.json``), oldest first."""
         return (_read_json(self.jobs_path) or {}).get("jobs", [])
 
-    def record_job(self, record: dict) -> None:
-        """Add (or replace, by job name) one job check in ``jobs.json``, atomically."""
+    def record_job(self, record: dict, *, then: Callable[[], object] | None = None) -> None:
+        """Append one job check to ``jobs.json`` (atomically, under the folder's jobs lock).
+
+        The record is append-only: a later check of the same job adds a record and never
+        replaces an earlier one, so a refusal stays on file beside a later acceptance.
+
+        Args:
+            record: the check (JSON-ready).
+            then: called after the write while the lock is still held (the model card is
+                rewritten from ``jobs.json`` there, so that two checks at once both reach it).
+        """
         from trainkit.core.fsutil import atomic_write_json
 
-        jobs = [j for j in self.read_jobs() if j.get("job") != record.get("job")]
-        atomic_write_json(self.jobs_path, {"jobs": [*jobs, record]})
+        with self.jobs_lock():
+            jobs = self.read_jobs()
+            atomic_write_json(self.jobs_path, {"jobs": [*jobs, record]}, allow_nan=False)
+            if then is not None:
+                then()
+
+    @contextmanager
+    def jobs_lock(self) -> Iterator[None]:
+        """Hold the folder's exclusive lock on ``jobs.json`` (an OS file lock on
+        ``.jobs.lock``, released when the process ends however it ends)."""
+        self.path.mkdir(parents=True, exist_ok=True)
+        with open(self.path / self.JOBS_LOCK, "a+b") as fh:
+            _lock(fh)
+            try:
+                yield
+            finally:
+                _unlock(fh)
 
     def learned_frames(self) -> dict[str, str]:
         """SHA-256 -> path of the job frames this experiment's model learned from (by
@@ -222,9 +250,39 @@ class Experiment:
         jobs = self.read_jobs()
         if jobs:
             last = jobs[-1]
-            info["jobs_checked"] = len(jobs)
+            info["jobs_checked"] = len({j.get("job") for j in jobs})
+            info["job_checks"] = len(jobs)
             info["latest_job"] = f"{last['job']}: {last['summary']}"
         return info
+
+
+def _lock(fh) -> None:
+    """Block until this process holds an exclusive lock on the open file ``fh``."""
+    try:
+        import fcntl
+    except ImportError:  # Windows
+        import msvcrt
+
+        fh.seek(0)
+        while True:
+            try:
+                msvcrt.locking(fh.fileno(), msvcrt.LK_LOCK, 1)
+                return
+            except OSError:  # LK_LOCK gives up after about 10 s; keep waiting
+                continue
+    fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
+
+
+def _unlock(fh) -> None:
+    try:
+        import fcntl
+    except ImportError:  # Windows
+        import msvcrt
+
+        fh.seek(0)
+        msvcrt.locking(fh.fileno(), msvcrt.LK_UNLCK, 1)
+        return
+    fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
 
 
 def _read_json(path: Path) -> dict | None:

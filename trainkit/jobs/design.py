@@ -30,6 +30,18 @@ threshold ``t``:
 Within each stratum the cells are drawn by simple random sampling without replacement, so
 a cell of stratum h is included with probability ``n_h / N_h`` (recorded per cell).
 
+A sample can grow (:func:`draw_more`, ``trainkit sample --more``): with the strata and
+their edges kept from the first draw, ``m_h`` more cells of stratum h are drawn by simple
+random sampling without replacement from its ``N_h - n_h`` cells not drawn yet. The union
+is then a simple random sample without replacement of ``n_h + m_h`` of the ``N_h`` cells:
+each set U of that size arises from the ``C(n_h + m_h, n_h)`` ways of splitting it into
+the two draws, each of chance ``1 / (C(N_h, n_h) C(N_h - n_h, m_h))``, which is
+``1 / C(N_h, n_h + m_h)`` in all. So the stratified estimators of Cochran ch. 5 apply
+to all the cells with inclusion probability ``(n_h + m_h) / N_h``. The ``m_h`` are fixed
+by the rule below before the cells are drawn, never by the answers; choosing how many
+more cells to ask for after reading an interval is the usual sequential caveat of any
+"answer more" step (common practice accepts it for a sample that only grows).
+
 Allocation of the N cells (a documented rule, not a published optimum):
 
 1. every non-empty stratum first gets ``min(N_h, floor)`` cells, ``floor =
@@ -65,6 +77,7 @@ __all__ = [
     "allocate",
     "assign_strata",
     "design_codes",
+    "draw_more",
     "draw_sample",
     "rest_band_edges",
 ]
@@ -322,6 +335,15 @@ def allocate(
     return alloc
 
 
+def _prior_sd(p: np.ndarray, codes: np.ndarray, floor: float) -> np.ndarray:
+    """Prior standard deviation S_h per stratum code (the rule in the module docstring)."""
+    big = np.bincount(codes, minlength=len(STRATA))
+    sums = np.bincount(codes, weights=p, minlength=len(STRATA))
+    mean = np.divide(sums, big, out=np.full(len(STRATA), 0.5), where=big > 0)
+    q = np.clip(mean, floor, 1.0 - floor)
+    return np.sqrt(q * (1.0 - q))
+
+
 def draw_sample(
     probabilities: ArrayLike,
     threshold: float,
@@ -364,18 +386,14 @@ def draw_sample(
     edges = rest_band_edges(p, threshold, near_fraction=near_fraction, bands=rest_bands)
     codes = assign_strata(p, threshold, near_fraction=near_fraction, rest_edges=edges)
     big = np.bincount(codes, minlength=len(STRATA)).astype(np.int64)
-    sums = np.bincount(codes, weights=p, minlength=len(STRATA))
-    mean = np.divide(sums, big, out=np.full(len(STRATA), 0.5), where=big > 0)
-    q = np.clip(mean, floor, 1.0 - floor)
+    sd = _prior_sd(p, codes, floor)
     used = list(design_codes(edges))
     if isinstance(min_per_stratum, bool) or not isinstance(min_per_stratum, (int, np.integer)):
         raise DesignError(f"expected min_per_stratum to be an int >= 1, got {min_per_stratum!r}")
     if isinstance(n, (int, np.integer)) and not isinstance(n, bool) and min_per_stratum >= 1:
         min_per_stratum = max(1, min(int(min_per_stratum), int(n) // int((big > 0).sum())))
     alloc = np.zeros(len(STRATA), dtype=np.int64)
-    alloc[used] = allocate(
-        big[used], n, prior_sd=np.sqrt(q * (1.0 - q))[used], min_per_stratum=min_per_stratum
-    )
+    alloc[used] = allocate(big[used], n, prior_sd=sd[used], min_per_stratum=min_per_stratum)
     rng = np.random.default_rng(int(seed))
     # One stable sort groups the cells by stratum; each group is drawn from without
     # replacement, so the work is O(n_cells log n_cells) once, not once per stratum.
@@ -396,6 +414,96 @@ def draw_sample(
         inclusion_probability=np.concatenate(probs),
         population=big,
         allocated=alloc,
+        threshold=float(threshold),
+        near_low=float(threshold) * float(near_fraction),
+        seed=int(seed),
+        rest_edges=edges,
+    )
+
+
+def draw_more(
+    probabilities: ArrayLike,
+    threshold: float,
+    n: int,
+    *,
+    seed: int,
+    sampled: ArrayLike,
+    near_fraction: float = 0.2,
+    rest_edges: tuple[float, ...] | list[float] = (),
+    min_per_stratum: int = 20,
+    prior_floor: float = 0.05,
+) -> JobSample:
+    """Draw n more cells of an earlier sample, from the cells it has not drawn yet.
+
+    The strata are those of the earlier sample (its ``near_fraction`` and ``rest_edges``);
+    the n cells are shared out over the cells not yet drawn by the allocation rule of the
+    module docstring (floor, then Neyman weights ``(N_h - n_h) * S_h`` with ``S_h`` from
+    the whole stratum), then drawn by simple random sampling without replacement within
+    each stratum. A cell already drawn, answered or not, is never drawn again.
+
+    Args:
+        probabilities: (n_cells,) screening probability of every cell of the scan (the
+            same cells, in the same order, as the earlier draw saw).
+        threshold: the model's screening threshold t in (0, 1].
+        n: cells wanted now, 1 <= n <= cells not yet drawn.
+        seed: seed of this draw's random generator (a non-negative int).
+        sampled: (n_cells,) bool, True for the cells the earlier draws took.
+        near_fraction: the ``near`` band of the earlier sample.
+        rest_edges: the inner ``rest`` edges stored with the earlier sample.
+        min_per_stratum: floor of new cells per stratum with cells left (lowered for a
+            small n as in :func:`draw_sample`).
+        prior_floor: clip of the prior prevalence in the Neyman weights, in (0, 0.5].
+
+    Returns:
+        A :class:`JobSample` whose ``index`` lists the new cells only; ``allocated`` and
+        ``inclusion_probability`` count every draw: ``(n_h + m_h) / N_h``.
+
+    Raises:
+        DesignError: on malformed arguments, or n larger than the cells not yet drawn.
+    """
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise DesignError(f"expected seed to be a non-negative int, got {seed!r}")
+    floor = _check_unit(prior_floor, "prior_floor")
+    if floor > 0.5:
+        raise DesignError(f"expected prior_floor in (0, 0.5], got {prior_floor!r}")
+    p = _check_probabilities(probabilities)
+    taken = np.asarray(sampled)
+    if taken.shape != p.shape or taken.dtype != bool:
+        raise DesignError(
+            f"expected sampled as a bool array of shape {p.shape}, got {taken.dtype} {taken.shape}"
+        )
+    edges = tuple(float(e) for e in rest_edges)
+    codes = assign_strata(p, threshold, near_fraction=near_fraction, rest_edges=edges)
+    big = np.bincount(codes, minlength=len(STRATA)).astype(np.int64)
+    before = np.bincount(codes[taken], minlength=len(STRATA)).astype(np.int64)
+    room = big - before
+    used = list(design_codes(edges))
+    if isinstance(min_per_stratum, bool) or not isinstance(min_per_stratum, (int, np.integer)):
+        raise DesignError(f"expected min_per_stratum to be an int >= 1, got {min_per_stratum!r}")
+    open_strata = int((room[used] > 0).sum())
+    if isinstance(n, (int, np.integer)) and not isinstance(n, bool) and min_per_stratum >= 1:
+        min_per_stratum = max(1, min(int(min_per_stratum), int(n) // max(open_strata, 1)))
+    if open_strata == 0:
+        raise DesignError("expected cells not yet drawn, got none: every cell was drawn")
+    sd = _prior_sd(p, codes, floor)
+    alloc = np.zeros(len(STRATA), dtype=np.int64)
+    alloc[used] = allocate(room[used], n, prior_sd=sd[used], min_per_stratum=min_per_stratum)
+    rng = np.random.default_rng(int(seed))
+    picks, strata, probs = [], [], []
+    for h in range(len(STRATA)):
+        if alloc[h] == 0:
+            continue
+        members = np.flatnonzero((codes == h) & ~taken)
+        chosen = np.sort(rng.choice(members, size=int(alloc[h]), replace=False))
+        picks.append(chosen)
+        strata.append(np.full(chosen.size, h, dtype=np.int8))
+        probs.append(np.full(chosen.size, (before[h] + alloc[h]) / big[h]))
+    return JobSample(
+        index=np.concatenate(picks).astype(np.int64),
+        stratum=np.concatenate(strata),
+        inclusion_probability=np.concatenate(probs),
+        population=big,
+        allocated=before + alloc,
         threshold=float(threshold),
         near_low=float(threshold) * float(near_fraction),
         seed=int(seed),

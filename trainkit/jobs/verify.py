@@ -1,18 +1,28 @@
 """A job's verification: its recall and false-alarm rate from the answered sample, a verdict, a report.
 
-``trainkit verify SCAN --workspace WS [--require-recall R]`` reads the job's sampled
-cells and their answers from the workspace, estimates the job's crack recall,
+``trainkit verify SCAN --workspace WS [--job NAME] [--require-recall R]`` reads the job's
+sampled cells and their answers from the workspace, estimates the job's crack recall,
 false-alarm rate and flagged share at the model's threshold with 95 % intervals made
 for stratified sampling (:mod:`trainkit.jobs.estimate`), the threshold that would
 reach the target recall on this job with its false-alarm cost, and writes
-``SCAN/verification.json`` and ``SCAN/verification.html``. With ``require_recall`` the
-verdict uses the same gate language as ``trainkit evaluate``: refused when the
-interval's lower bound falls short.
+``SCAN/jobs/<job>/verification.json`` and ``verification.html``
+(:class:`~trainkit.jobs.files.JobFiles`). With ``require_recall`` the verdict uses the
+same gate language as ``trainkit evaluate``: refused when the interval's lower bound
+falls short.
+
+Every check is kept: the workspace appends it to the job's checks (with its bound, time,
+verdict and the model's path and SHA-256), the model's experiment folder appends it to
+``jobs.json`` and its model card lists every check, and ``verification.json`` holds the
+latest one with all earlier ones of the job listed; a refusal stays on record beside a
+later acceptance. Everything a check depends on (the answers, the scan's model record,
+the model's checkpoint when the card is to be rewritten) is loaded before anything is
+written.
 """
 
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 from pathlib import Path
 
 import numpy as np
@@ -21,14 +31,15 @@ from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_write_json, atomic_write_text
 from trainkit.jobs.design import STRATA
 from trainkit.jobs.estimate import EstimateError, design_weights, estimate_job, threshold_for_recall
-from trainkit.jobs.sample import learned_frames, read_scan_cells, scan_model
+from trainkit.jobs.files import VERIFICATION_FILE, VERIFICATION_REPORT, JobFiles
+from trainkit.jobs.sample import check_job_name, learned_frames, read_scan_cells, scan_model
 from trainkit.judging.scoring import CAUTION, json_ready
 from trainkit.labels.workspace import Workspace
 
 __all__ = ["VerifyError", "verify_scan", "VERIFICATION_FILE", "VERIFICATION_REPORT"]
 
-VERIFICATION_FILE = "verification.json"
-VERIFICATION_REPORT = "verification.html"
+#: The verdict recorded for a check run without ``--require-recall``.
+NO_BOUND = "no bound asked"
 
 
 class VerifyError(TrainkitError):
@@ -38,6 +49,7 @@ class VerifyError(TrainkitError):
 def _job_of(ws: Workspace, scan_dir: Path, job: str | None) -> dict:
     jobs = ws.jobs()
     if job is not None:
+        check_job_name(job, error=VerifyError)
         found = [j for j in jobs if j["name"] == job]
         if not found:
             names = ", ".join(j["name"] for j in jobs) or "none"
@@ -62,7 +74,7 @@ def verify_scan(
     target_recall: float = 0.95,
     confidence: float = 0.95,
 ) -> dict:
-    """Estimate a job's figures from its answered sample and write the verification files.
+    """Estimate a job's figures from its answered sample and record the check everywhere.
 
     Args:
         scan_dir: the scan folder the job's sample came from.
@@ -73,10 +85,11 @@ def verify_scan(
         confidence: two-sided level of the intervals.
 
     Returns:
-        The verification dict (as written to verification.json).
+        The verification dict (as written to the job's verification.json).
 
     Raises:
-        VerifyError: no sample, no answers, or a stratum with no answered cell.
+        VerifyError: no sample, no answers, a stratum with no answered cell, or a model
+            checkpoint that cannot be loaded to rewrite its card (nothing is written then).
     """
     scan_dir = Path(scan_dir)
     if require_recall is not None and not 0.0 <= require_recall <= 1.0:
@@ -99,6 +112,10 @@ def verify_scan(
     except EstimateError as exc:
         raise VerifyError(f"job {j['name']!r}: {exc}") from None
     suggestion = _suggested_threshold(scan_dir, answered, population, target_recall)
+    # Everything the records depend on is loaded before the first one is written.
+    model = _model_record(model)
+    experiment = _experiment_of(model)
+    gate = _gate(est, require_recall, confidence)
     result = {
         "job": j["name"],
         "scan": j["scan"],
@@ -110,18 +127,72 @@ def verify_scan(
             "unsure": sum(c["answered"] for c in unresolved),
             "unanswered": sum(not c["answered"] for c in unresolved),
         },
+        "unresolved_cells": [
+            {
+                "patch_id": c["patch_id"],
+                "frame": c["frame"],
+                "box": list(c["box"]),
+                "stratum": c["stratum"],
+                "state": "unsure" if c["answered"] else "unanswered",
+            }
+            for c in unresolved
+        ],  # fmt: skip
         "estimate": est.to_dict(),
         "suggested_threshold": suggestion,
-        "gate": _gate(est, require_recall, confidence),
+        "required_recall": require_recall,
+        "gate": gate,
+        "verdict": gate["verdict"] if gate else NO_BOUND,
         "created": _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "caution": CAUTION,
+        "model": model,
     }
-    result["model"] = model
     result = json_ready(result)
-    atomic_write_json(scan_dir / VERIFICATION_FILE, result, allow_nan=False)
-    atomic_write_text(scan_dir / VERIFICATION_REPORT, job_report(result))
-    result["recorded_in"] = _record_in_experiment(result, model)
+    files = JobFiles(scan_dir, j["name"])
+    workspace.record_verification(j["name"], _history_entry(result))
+    result["history"] = [
+        {k: v for k, v in h.items() if k != "id"} for h in workspace.verifications(j["name"])
+    ]
+    result["recorded_in"] = _record_in_experiment(result, experiment)
+    files.folder.mkdir(parents=True, exist_ok=True)
+    atomic_write_json(files.verification_json, result, allow_nan=False)
+    atomic_write_text(files.verification_html, job_report(result))
+    result["report"] = str(files.verification_html)
     return result
+
+
+def _model_record(model: dict | None) -> dict | None:
+    """The scan's model record with the SHA-256 of the model file as it is now (None when
+    the file is gone; compare ``data_digest``, which the scan recorded from the model)."""
+    if not model:
+        return None
+    path = Path(model.get("model", ""))
+    digest = None
+    if path.is_file():
+        h = hashlib.sha256()
+        with path.open("rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+        digest = h.hexdigest()
+    return {**model, "sha256": digest}
+
+
+def _history_entry(result: dict) -> dict:
+    """What the workspace keeps of one check (append-only)."""
+    est = result["estimate"]
+    model = result.get("model") or {}
+    return {
+        "job": result["job"],
+        "checked": result["created"],
+        "required_recall": result["required_recall"],
+        "passed": (result["gate"] or {}).get("passed"),
+        "verdict": result["verdict"],
+        "gate": result["gate"],
+        "cells_answered": result["cells_answered"],
+        "recall": est["recall"],
+        "false_alarm_rate": est["false_alarm_rate"],
+        "model": {"model": model.get("model"), "sha256": model.get("sha256"),
+                  "data_digest": model.get("data_digest")},
+    }  # fmt: skip
 
 
 def _refuse_learned_frames(learned: dict[str, str], job: str, cells: list[dict]) -> None:
@@ -137,9 +208,13 @@ def _refuse_learned_frames(learned: dict[str, str], job: str, cells: list[dict])
         )
 
 
-def _record_in_experiment(result: dict, model: dict | None) -> str | None:
-    """Add the job to the model's experiment folder (jobs.json, model card) when the scanned
-    model is that folder's own model.onnx; returns the folder, or None."""
+def _experiment_of(model: dict | None) -> tuple | None:
+    """(experiment folder, loaded checkpoint) when the scanned model is that folder's own
+    model.onnx beside a checkpoint (its jobs.json and card then record the check); else None.
+
+    Raises:
+        VerifyError: the checkpoint cannot be loaded (nothing has been written yet).
+    """
     from trainkit.core.experiment import Experiment
 
     if not model:
@@ -147,12 +222,53 @@ def _record_in_experiment(result: dict, model: dict | None) -> str | None:
     folder = Experiment(Path(model["model"]).parent)
     if Path(model["model"]).name != Experiment.MODEL or not folder.checkpoint_path.is_file():
         return None
+    import torch
+
+    path = folder.checkpoint_path
+    # The checkpoint holds tensors and plain containers only: weights_only loading runs no code.
+    try:
+        ckpt = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # refused pickle, truncated zip, not a torch file
+        raise VerifyError(
+            f"{path} cannot be loaded as a trainkit checkpoint ({type(exc).__name__}), so the "
+            "check cannot be recorded on its model card; nothing was written. Restore the "
+            "checkpoint, or scan with a model exported by trainkit"
+        ) from None
+    if not isinstance(ckpt, dict):
+        raise VerifyError(f"{path} is not a trainkit checkpoint; nothing was written")
+    from trainkit.judging.model_card import model_card_text
+
+    try:  # the card is rewritten after jobs.json: whatever it reads must load now
+        export = folder.read_export()
+        model_card_text(folder.path, ckpt, export)
+    except (OSError, ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise VerifyError(
+            f"the model card of {folder.path} cannot be written from its files "
+            f"({type(exc).__name__}: {exc}), so the check cannot be recorded there; "
+            "nothing was written"
+        ) from None
+    return folder, ckpt
+
+
+def _record_in_experiment(result: dict, experiment: tuple | None) -> str | None:
+    """Append the check to the model's experiment folder (jobs.json, then the model card,
+    under the folder's jobs lock); returns the folder, or None."""
+    if experiment is None:
+        return None
+    folder, ckpt = experiment
     est = result["estimate"]
 
     def f(v):
         return "n/a" if v is None else f"{v:.3f}"
 
     r, fa = est["recall"], est["false_alarm_rate"]
+    model = result.get("model") or {}
+
+    def rewrite_card() -> None:
+        from trainkit.judging.model_card import write_model_card
+
+        write_model_card(folder.path, ckpt, folder.read_export())
+
     folder.record_job(
         {
             "job": result["job"],
@@ -162,23 +278,17 @@ def _record_in_experiment(result: dict, model: dict | None) -> str | None:
             "recall": r,
             "false_alarm_rate": fa,
             "flagged_share": est["flagged_share"],
+            "required_recall": result["required_recall"],
             "gate": result["gate"],
+            "verdict": result["verdict"],
+            "model_sha256": model.get("sha256"),
             "summary": f"recall {f(r['estimate'])} [{f(r['low'])}, {f(r['high'])}], false alarms "
-            f"{f(fa['estimate'])} from {result['cells_answered']} cells",
-        }
+            f"{f(fa['estimate'])} from {result['cells_answered']} cells; "
+            + result["verdict"].split(":")[0],
+        },
+        then=rewrite_card,
     )
-    _rewrite_card(folder)
     return str(folder.path)
-
-
-def _rewrite_card(folder) -> None:
-    """Write the model card again so it lists the job just checked."""
-    import torch
-
-    from trainkit.judging.model_card import write_model_card
-
-    ckpt = torch.load(folder.checkpoint_path, map_location="cpu", weights_only=True)
-    write_model_card(folder.path, ckpt, folder.read_export())
 
 
 def _suggested_threshold(
@@ -238,7 +348,18 @@ def verdict_line(result: dict) -> str:
         text += f" ({un['unsure']} unsure and {un['unanswered']} unanswered not counted)"
     if result["gate"]:
         text += ". " + result["gate"]["verdict"]
+    earlier = (result.get("history") or [])[:-1]
+    if earlier:
+        refused = sum(h.get("passed") is False for h in earlier)
+        text += (
+            f" (check {len(earlier) + 1} of this job; the {len(earlier)} earlier ones stay on "
+            f"record{f', {refused} of them refused' if refused else ''})"
+        )
     return text
+
+
+def _fmt(v) -> str:
+    return "n/a" if v is None else f"{float(v):.3f}"
 
 
 def job_report(result: dict) -> str:
@@ -279,6 +400,43 @@ def job_report(result: dict) -> str:
         if left_out
         else ""
     )
+    model = R.get("model") or {}
+    model_html = (
+        "<p>The scan recorded no model (an older scan), so this check names none.</p>"
+        if not model
+        else '<table class="kv">'
+        f"<tr><th>model file</th><td><code>{esc(model.get('model'))}</code></td></tr>"
+        f"<tr><th>SHA-256 of the file when checked</th><td><code>"
+        f"{esc(model.get('sha256') or 'the file is gone')}</code></td></tr>"
+        f"<tr><th>training-data digest it carries</th><td><code>"
+        f"{esc(model.get('data_digest'))}</code></td></tr></table>"
+    )
+    unresolved = R.get("unresolved_cells") or []
+    unresolved_html = (
+        "<p>Every sampled cell is answered.</p>"
+        if not unresolved
+        else "<table><tr><th>patch id</th><th>frame</th><th>box (x0, y0, x1, y1)</th>"
+        "<th>stratum</th><th>state</th></tr>"
+        + "".join(
+            f"<tr><td>{int(c['patch_id'])}</td><td>{esc(c['frame'])}</td>"
+            f"<td>{esc(', '.join(str(int(v)) for v in c['box']))}</td><td>{esc(c['stratum'])}</td>"
+            f"<td>{esc(c['state'])}</td></tr>"
+            for c in unresolved
+        )
+        + "</table>"
+    )
+    history = R.get("history") or []
+    history_html = "".join(
+        f"<tr><td>{esc(h.get('checked'))}</td>"
+        f"<td>{esc('none' if h.get('required_recall') is None else format(h['required_recall'], '.3f'))}</td>"
+        f"<td>{esc(h.get('cells_answered'))}</td>"
+        f"<td>{esc(_fmt((h.get('recall') or {}).get('estimate')))} "
+        f"[{esc(_fmt((h.get('recall') or {}).get('low')))}, "
+        f"{esc(_fmt((h.get('recall') or {}).get('high')))}]</td>"
+        f"<td>{esc(h.get('verdict'))}</td>"
+        f"<td><code>{esc(str((h.get('model') or {}).get('sha256') or 'n/a')[:12])}</code></td></tr>"
+        for h in history
+    )
     body = f"""<h1>Job check &mdash; {esc(R["job"])}</h1>
 <p class="caution"><strong>Read this first.</strong> {esc(R["caution"])} These figures hold
 for this job's frames only, estimated from a random sample of its cells.</p>
@@ -290,13 +448,19 @@ for this job's frames only, estimated from a random sample of its cells.</p>
 {metric(R, "estimate.false_alarm_rate.estimate")}
 ({metric(R, "estimate.false_alarm_rate.low")}&ndash;{metric(R, "estimate.false_alarm_rate.high")});
 share of cells flagged {metric(R, "estimate.flagged_share")} (exact, from the scan).</p>
+<h2>The model checked</h2>{model_html}
 <h2>The sample</h2>
 <p>Cells were drawn at random within strata of the screening probability, so misses in the
 unflagged pile are found with a known chance. {metric(R, "cells_answered")} of
 {metric(R, "cells_sampled")} sampled cells are answered; unsure and unanswered cells are
-not counted and are listed here.{learned_html}</p>
+not counted (they are listed below).{learned_html}</p>
 <table><tr><th>stratum</th><th>cells in the scan</th><th>answered</th><th>cracks</th>
 <th>unsure or unanswered</th></tr>{rows}</table>
+<h2>Unsure and unanswered cells</h2>{unresolved_html}
 <h2>A threshold for this job</h2>{sug_html}
+<h2>Every check of this job</h2>
+<p>Checks are kept, never replaced: a refusal stays on record beside a later acceptance.</p>
+<table><tr><th>checked</th><th>required recall</th><th>answered cells</th>
+<th>recall [95% interval]</th><th>verdict</th><th>model SHA-256</th></tr>{history_html}</table>
 <p class="caution">{esc(R["caution"])}</p>"""
     return page(f"Job check: {R['job']}", body)

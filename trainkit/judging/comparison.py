@@ -11,6 +11,7 @@ import numpy as np
 from trainkit import metrics as M
 from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_path
+from trainkit.core.textsafe import csv_cell
 from trainkit.judging.scoring import Scored
 
 __all__ = ["Side", "ComparisonError", "paired_comparison", "write_disagreements"]
@@ -120,8 +121,9 @@ def write_disagreements(
             right = (int(fa[i] == crack), int(fb[i] == crack))
             w.writerow(
                 [
-                    int(patch_ids[i]), photos[i], groups[i], class_names[labels[i]],
-                    class_names[ca[i]], class_names[cb[i]], repr(float(pa[i])), repr(float(pb[i])),
+                    int(patch_ids[i]), csv_cell(photos[i]), csv_cell(groups[i]),
+                    *(csv_cell(class_names[k[i]]) for k in (labels, ca, cb)),
+                    repr(float(pa[i])), repr(float(pb[i])),
                     int(fa[i]), int(fb[i]), who[right],
                 ]
             )  # fmt: skip

@@ -93,6 +93,7 @@ from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_json
 from trainkit.core.taxonomy import ClassSet
+from trainkit.core.textsafe import csv_cell
 from trainkit.judging.comparison import (
     ComparisonError,
     Side,
@@ -430,8 +431,8 @@ def _write_predictions(path: Path, data: PatchSet, probs: np.ndarray, class_set:
         for i in range(len(data)):
             w.writerow(
                 [
-                    int(data.patch_ids[i]), data.photos[i], data.groups[i],
-                    names[data.labels[i]], names[pred[i]],
+                    int(data.patch_ids[i]), csv_cell(data.photos[i]), csv_cell(data.groups[i]),
+                    csv_cell(names[data.labels[i]]), csv_cell(names[pred[i]]),
                     *[f"{p:.9g}" for p in probs[i]], repr(float(scr[i])),
                 ]
             )  # fmt: skip

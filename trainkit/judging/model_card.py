@@ -5,7 +5,10 @@ The card is plain Markdown made only from what the run recorded: the checkpoint
 ``evaluation/metrics.json`` (when the experiment was evaluated) and the export
 summary. It never invents a figure: without ``metrics.json`` it says plainly that
 the model was not evaluated and shows no metric numbers. Every number it prints
-is rounded to 3 decimals (rates, recalls, thresholds) or given as a count.
+is rounded to 3 decimals (rates, recalls, thresholds) or given as a count. Text that
+came from people (names of jobs, classes, folders, paths) goes through
+:func:`~trainkit.core.textsafe.md_text` or :func:`~trainkit.core.textsafe.md_code`, so it
+shows as written and can never add a line, a heading, a verdict or HTML to the card.
 """
 
 from __future__ import annotations
@@ -17,6 +20,7 @@ from typing import Any
 
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_write_text
+from trainkit.core.textsafe import md_code, md_text
 from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT
 from trainkit.judging.scoring import CAUTION
 
@@ -24,6 +28,7 @@ __all__ = [
     "CARD_NAME",
     "NOT_EVALUATED",
     "build_model_card",
+    "model_card_text",
     "write_model_card",
     "synthetic_training_data",
 ]
@@ -54,25 +59,32 @@ def _pct(conf: Any) -> str:
     return "n/a" if conf is None else f"{100 * float(conf):g}%"
 
 
-def weights_line(ckpt: dict) -> str:
+def weights_line(ckpt: dict, *, markdown: bool = False) -> str:
     """Which weights training started from, in words (name, source, SHA-256 prefix).
 
     Checkpoints from before the weights record existed say what their recipe asked for.
+    With ``markdown`` the recorded text is escaped for the card (the HTML report escapes
+    the plain line itself).
     """
+    text = md_text if markdown else str
+
+    def code(v) -> str:
+        return md_code(v) if markdown else f"`{v}`"
+
     rec = ckpt.get("weights")
     if isinstance(rec, dict):
         if rec.get("name") == "random initialisation":
             return "random initialisation (no pretrained weights)"
-        parts = [rec.get("name", "?")]
+        parts = [text(rec.get("name", "?"))]
         if rec.get("source"):
-            parts.append(f"from {rec['source']}")
+            parts.append(f"from {text(rec['source'])}")
         if rec.get("sha256"):
-            parts.append(f"SHA-256 {str(rec['sha256'])[:8]}...")
+            parts.append(f"SHA-256 {text(str(rec['sha256'])[:8])}...")
         return ", ".join(parts) + "; new classification head"
     asked = (ckpt.get("config") or {}).get("weights")
     if asked is None:
         return "random initialisation (no pretrained weights)"
-    return f"not recorded (the recipe asked for weights `{asked}`); new classification head"
+    return f"not recorded (the recipe asked for weights {code(asked)}); new classification head"
 
 
 def synthetic_training_data(workspace: str | Path | None) -> bool | None:
@@ -148,7 +160,9 @@ def _training_data(experiment: dict, synthetic: bool | None) -> list[str]:
         ]
         for n in names:
             lines.append(
-                f"| {n} | " + " | ".join(str(counts.get(s, {}).get(n, 0)) for s in subsets) + " |"
+                f"| {md_text(n)} | "
+                + " | ".join(str(counts.get(s, {}).get(n, 0)) for s in subsets)
+                + " |"
             )
         lines.append(
             "| **all** | "
@@ -178,7 +192,8 @@ def _training_data(experiment: dict, synthetic: bool | None) -> list[str]:
         f"{_range(experiment.get('patch_mm_range'), 'mm of surface', 1)}"
     )
     lines.append(
-        f"- Data digest (SHA-256 of the training and validation data): `{experiment.get('data_digest')}`"
+        "- Data digest (SHA-256 of the training and validation data): "
+        f"{md_code(experiment.get('data_digest'))}"
     )
     if synthetic:
         lines.append(
@@ -197,8 +212,8 @@ def _adaptation(adapted: dict | None) -> list[str]:
     frames = adapted.get("frames", [])
     cells = adapted.get("cells", {})
     return [
-        f"- **Adapted** from `{adapted['source']}` with the answered cells of job(s) "
-        f"{', '.join(adapted.get('jobs', []))}: {len(cells.get('train', []))} cells trained, "
+        f"- **Adapted** from {md_code(adapted['source'])} with the answered cells of job(s) "
+        f"{md_text(', '.join(adapted.get('jobs', [])))}: {len(cells.get('train', []))} cells trained, "
         f"{len(cells.get('val', []))} validated (other frames), from {len(frames)} frames in "
         f"all, plus {adapted.get('replay')} replayed training patches per job training cell. "
         "Those frames are kept out of this model's job checks (`trainkit sample` leaves them "
@@ -211,7 +226,9 @@ def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
     cfg = ckpt.get("config") or {}
     best_val = ckpt.get("best_val") or {}
     lines = ["## The model", ""]
-    lines.append(f"- Backbone: `{cfg.get('backbone')}`, class set `{cfg.get('class_set')}`")
+    lines.append(
+        f"- Backbone: {md_code(cfg.get('backbone'))}, class set {md_code(cfg.get('class_set'))}"
+    )
     lines.append(
         f"- Input: uint8 RGB patches of {ckpt.get('input_px', experiment.get('input_px'))} x "
         f"{ckpt.get('input_px', experiment.get('input_px'))} px (resizing is the caller's job; "
@@ -223,7 +240,7 @@ def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
         f"peak learning rate {cfg.get('lr')}, seed {cfg.get('seed')}"
     )
     if ckpt.get("selected_on"):
-        lines.append(f"- Epoch selected on: `{ckpt['selected_on']}`")
+        lines.append(f"- Epoch selected on: {md_code(ckpt['selected_on'])}")
     if "val_recall_at_fa" in best_val:
         lines.append(
             f"- Selection score at the best epoch (optimistic: the epoch was chosen on it): "
@@ -238,11 +255,11 @@ def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
     if cfg.get("head_epochs"):
         frozen = " on cached features" if cfg.get("cached_features") else ""
         lines.append(f"- Head-only stage{frozen}: the first {cfg['head_epochs']} epochs")
-    lines.append(f"- Weights it started from: {weights_line(ckpt)}")
+    lines.append(f"- Weights it started from: {weights_line(ckpt, markdown=True)}")
     if export:
         model = export.get("model")
         lines.append(
-            f"- Exported: `{Path(model).name if model else 'model.onnx'}` "
+            f"- Exported: {md_code(Path(model).name if model else 'model.onnx')} "
             f"({export.get('exporter', 'ONNX')}); parity with PyTorch on "
             f"{export.get('parity_patches')} patches, max |dp| "
             f"{float(export.get('parity_max_abs_diff', float('nan'))):.1e}"
@@ -258,7 +275,7 @@ def _metrics(metrics: dict | None) -> list[str]:
     s = metrics["screening"]
     iv = s.get("recall_interval") or {}
     lines.append(
-        f"Evaluated on the `{metrics.get('split')}` subset: {metrics.get('patches')} patches from "
+        f"Evaluated on the {md_code(metrics.get('split'))} subset: {metrics.get('patches')} patches from "
         f"{metrics.get('photos')} photos the model never saw in training."
     )
     lines.append("")
@@ -286,7 +303,7 @@ def _metrics(metrics: dict | None) -> list[str]:
         n = ci.get("n", c.get("support"))
         recall = None if n == 0 else c.get("recall")  # no test patches: recall is undefined
         lines.append(
-            f"| {c['name']} | {_f(recall)} | {_f(c.get('recall_ci_low'))} | "
+            f"| {md_text(c['name'])} | {_f(recall)} | {_f(c.get('recall_ci_low'))} | "
             f"{_f(c.get('recall_ci_high'))} | {ci.get('k', 'n/a')} / {n} |"
         )
     lines.append("")
@@ -422,7 +439,8 @@ def _limits(experiment: dict, metrics: dict | None, synthetic: bool | None) -> l
 
 
 def _jobs(jobs: list[dict] | None) -> list[str]:
-    """The jobs this model was checked on with `trainkit verify`, each with its intervals."""
+    """Every check of this model on a job (`trainkit verify`), oldest first, with its bound
+    and verdict: a refused check stays listed beside a later acceptance."""
     lines = ["## Jobs checked", ""]
     if not jobs:
         return lines + [
@@ -431,18 +449,29 @@ def _jobs(jobs: list[dict] | None) -> list[str]:
             "",
         ]
     lines += [
-        "| job | checked | answered cells | recall (95% interval) | false-alarm rate (95% interval) | verdict |",
-        "|---|---|---|---|---|---|",
+        "| job | checked | required recall | answered cells | recall (95% interval) "
+        "| false-alarm rate (95% interval) | verdict | model SHA-256 |",
+        "|---|---|---:|---:|---|---|---|---|",
     ]
     for j in jobs:
         r, fa = j["recall"], j["false_alarm_rate"]
-        verdict = (j.get("gate") or {}).get("verdict", "no gate asked").split(":")[0]
+        gate = j.get("gate") or {}
+        bound = j.get("required_recall", gate.get("required_recall"))
+        verdict = str(j.get("verdict") or gate.get("verdict") or "no bound asked").split(":")[0]
+        sha = j.get("model_sha256")
         lines.append(
-            f"| {j['job']} | {j['checked']} | {j['cells_answered']} | "
+            f"| {md_text(j['job'])} | {md_text(j['checked'])} | {_f(bound)} | "
+            f"{md_text(j['cells_answered'])} | "
             f"{_f(r['estimate'])} ({_f(r['low'])}-{_f(r['high'])}) | "
-            f"{_f(fa['estimate'])} ({_f(fa['low'])}-{_f(fa['high'])}) | {verdict} |"
+            f"{_f(fa['estimate'])} ({_f(fa['low'])}-{_f(fa['high'])}) | {md_text(verdict)} | "
+            f"{md_text(str(sha)[:12]) if sha else 'n/a'} |"
         )
-    return lines + ["", "Each row holds for that job's frames only.", ""]
+    return lines + [
+        "",
+        "Each row holds for that job's frames only. Every check is kept: a later check of a "
+        "job adds a row and never replaces an earlier one.",
+        "",
+    ]
 
 
 def build_model_card(
@@ -479,7 +508,7 @@ def build_model_card(
     export = export or {}
     created = created or _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     caution = (metrics or {}).get("caution") or _caution()
-    title = f"# Model card: concrete-crack patch screener{f' `{name}`' if name else ''}"
+    title = f"# Model card: concrete-crack patch screener{f' {md_code(name)}' if name else ''}"
     lines = [
         title,
         "",
@@ -535,6 +564,27 @@ def build_model_card(
     return "\n".join(lines)
 
 
+def model_card_text(exp_dir: str | Path, ckpt: dict, export: dict | None = None) -> str:
+    """The card of an experiment folder as :func:`write_model_card` would write it now.
+
+    Args:
+        exp_dir: the experiment folder.
+        ckpt: the loaded checkpoint dict.
+        export: the export summary (model path, parity, threshold).
+    """
+    folder = Experiment(exp_dir)
+    experiment = folder.read_provenance() or ckpt.get("experiment") or {}
+    return build_model_card(
+        ckpt,
+        experiment=experiment,
+        metrics=folder.read_metrics(),
+        export=export,
+        synthetic=synthetic_training_data(experiment.get("workspace")),
+        name=folder.path.resolve().name,
+        jobs=folder.read_jobs(),
+    )
+
+
 def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None) -> Path:
     """Write ``EXP/model-card.md`` atomically (temporary file, then rename).
 
@@ -546,19 +596,6 @@ def write_model_card(exp_dir: str | Path, ckpt: dict, export: dict | None = None
     Returns:
         The path of the card.
     """
-    folder = Experiment(exp_dir)
-    exp = folder.path
-    experiment = folder.read_provenance() or ckpt.get("experiment") or {}
-    metrics = folder.read_metrics()
-    text = build_model_card(
-        ckpt,
-        experiment=experiment,
-        metrics=metrics,
-        export=export,
-        synthetic=synthetic_training_data(experiment.get("workspace")),
-        name=exp.resolve().name,
-        jobs=folder.read_jobs(),
-    )
-    target = folder.card_path
-    atomic_write_text(target, text)
+    target = Experiment(exp_dir).card_path
+    atomic_write_text(target, model_card_text(exp_dir, ckpt, export))
     return target

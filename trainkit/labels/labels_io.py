@@ -34,6 +34,7 @@ import numpy as np
 from trainkit.core.csvfile import read_csv
 from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_path
+from trainkit.core.textsafe import csv_cell, csv_uncell
 from trainkit.labels.workspace import Workspace
 
 __all__ = [
@@ -122,7 +123,11 @@ def _current(ws: Workspace) -> list[tuple]:
 
 
 def export_csv(ws: Workspace, path: str | Path) -> int:
-    """Write the current label of every labelled patch to CSV (atomically); returns rows."""
+    """Write the current label of every labelled patch to CSV (atomically); returns rows.
+
+    Text cells that a spreadsheet would read as a formula get a leading apostrophe
+    (:func:`trainkit.core.textsafe.csv_cell`); :func:`import_csv` reads them back.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     with atomic_path(path) as tmp:
@@ -131,10 +136,9 @@ def export_csv(ws: Workspace, path: str | Path) -> int:
             w = csv.writer(fh)
             w.writerow(EXPORT_COLUMNS)
             for r, e in rows:
-                w.writerow(
-                    [r.id, r.photo, *r.box, e["label"] or UNSURE_WORD, e["reviewer"], e["origin"]]
-                    + [f"{e['created_at']:.3f}"]
-                )
+                text = (r.photo, e["label"] or UNSURE_WORD, e["reviewer"], e["origin"])
+                photo, label, reviewer, origin = (csv_cell(t) for t in text)  # OWASP rule
+                w.writerow([r.id, photo, *r.box, label, reviewer, origin, f"{e['created_at']:.3f}"])
     return len(rows)
 
 
@@ -162,6 +166,8 @@ def export_folders(ws: Workspace, root: str | Path) -> dict[str, int]:
 
 def _check_label(label: str, names: tuple[str, ...], where: str) -> str | None:
     """A non-empty label as stored: a class name, or None for ``unsure``."""
+    if label not in names and csv_uncell(label) in names:
+        label = csv_uncell(label)  # a class name export_csv wrote with the apostrophe rule
     if label == UNSURE_WORD and UNSURE_WORD not in names:
         return None
     if label not in names:
@@ -285,7 +291,7 @@ def _by_place(ws: Workspace):
             box = tuple(int(row[k]) for k in ("x0", "y0", "x1", "y1"))
         except (TypeError, ValueError):
             raise LabelsIOError(f"{where}: box values must be integers") from None
-        pid = lookup.get((photo, box))
+        pid = lookup.get((photo, box), lookup.get((csv_uncell(photo), box)))  # see export_csv
         if pid is None:
             raise LabelsIOError(
                 f"{where}: no patch {box} of photo {photo!r} in the workspace "

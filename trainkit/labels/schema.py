@@ -65,9 +65,20 @@ CREATE TABLE IF NOT EXISTS job_cells (
     patch_id INTEGER PRIMARY KEY REFERENCES patches(id),
     job TEXT NOT NULL REFERENCES jobs(name),
     frame TEXT NOT NULL,                -- the frame's path as the scan recorded it
-    stratum TEXT NOT NULL,              -- flagged | near | rest
-    inclusion_probability REAL NOT NULL,
+    stratum TEXT NOT NULL,              -- flagged | near | rest | rest-1 ... (jobs.design)
+    inclusion_probability REAL NOT NULL,  -- n_h / N_h of its stratum, over every draw of the job
     screening_probability REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS job_verifications (  -- append-only: every check of a job is kept
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    job TEXT NOT NULL REFERENCES jobs(name),
+    created_at REAL NOT NULL,
+    required_recall REAL,               -- the bound asked (verify --require-recall), NULL if none
+    passed INTEGER,                     -- 1 accepted, 0 refused, NULL without a bound
+    verdict TEXT NOT NULL,              -- the verdict in words
+    model TEXT,                         -- the scanned model's path
+    model_sha256 TEXT,                  -- SHA-256 of that file when checked
+    record TEXT NOT NULL                -- JSON: figures, counts and the rest of the check
 );
 CREATE TABLE IF NOT EXISTS split_assignments (
     patch_id INTEGER PRIMARY KEY REFERENCES patches(id),

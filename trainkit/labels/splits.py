@@ -136,8 +136,9 @@ def split_workspace(
 
     Returns a report: group count per subset and class counts per subset.
     """
-    # A job's acceptance-sample cells estimate that job's figures: they never join a split.
-    records = [r for r in workspace.patches() if r.label is not None and r.job is None]
+    # A job's acceptance-sample cells estimate that job's figures: they never join a split,
+    # nor do patches of a job's frames whose job record an interrupted sample never wrote.
+    records = [r for r in workspace.patches() if r.label is not None and not r.of_a_job]
     if not records:
         raise SplitError(f"workspace {workspace.root} has no labelled patches; label some first")
     group_subset = assign_groups(

@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,7 +20,15 @@ from trainkit.core.errors import TrainkitError
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.labels.schema import SCHEMA as _SCHEMA
 
-__all__ = ["Workspace", "WorkspaceError", "PatchRecord", "DB_NAME", "LABEL_ORIGINS"]
+__all__ = [
+    "Workspace",
+    "WorkspaceError",
+    "PatchRecord",
+    "DB_NAME",
+    "LABEL_ORIGINS",
+    "JOB_GROUP_PREFIX",
+    "job_group",
+]
 
 DB_NAME = "workspace.sqlite"
 SCHEMA_VERSION = 2
@@ -31,6 +39,13 @@ LABEL_ORIGINS = ("reviewer", "file", "suggestion")
 _V1_ORIGINS = {"human": "reviewer", "imported": "file", "model-accepted": "suggestion"}
 #: Label value meaning "looked at, unsure": kept out of training and evaluation.
 UNSURE = None
+#: Group of the photos a job's sample cut cells from (``job:<name>``): never in a split.
+JOB_GROUP_PREFIX = "job:"
+
+
+def job_group(job: str) -> str:
+    """The photo group of a job's sampled frames."""
+    return f"{JOB_GROUP_PREFIX}{job}"
 
 
 class WorkspaceError(TrainkitError):
@@ -58,6 +73,12 @@ class PatchRecord:
     subset: str | None
     review_skip: bool = False
     job: str | None = None  # the job whose acceptance sample drew this cell, if any
+
+    @property
+    def of_a_job(self) -> bool:
+        """True for a cell of a job's sample, and for a patch of a job's frame left without
+        its job record (an interrupted sample of an older kit): neither joins a split."""
+        return self.job is not None or self.group.startswith(JOB_GROUP_PREFIX)
 
     @property
     def box_mm(self) -> tuple[float, float, float, float] | None:
@@ -293,7 +314,8 @@ class Workspace:
                 flags=r[14],
                 label=r[15],
                 labelled=bool(r[16]),
-                subset=r[17],
+                # a job's patches are in no subset, whatever an older kit's split table says
+                subset=None if r[19] is not None or r[2].startswith(JOB_GROUP_PREFIX) else r[17],
                 review_skip=bool(r[18]),
                 job=r[19],
             )
@@ -344,7 +366,18 @@ class Workspace:
 
     # ----- splits ------------------------------------------------------------------
     def set_split(self, assignments: dict[int, str], info: dict) -> None:
-        """Replace the split: patch id -> 'train' | 'val' | 'test', plus how it was made."""
+        """Replace the split: patch id -> 'train' | 'val' | 'test', plus how it was made.
+
+        Raises:
+            WorkspaceError: an assigned patch belongs to a job's sample (see
+                :attr:`PatchRecord.of_a_job`); those never join a split.
+        """
+        jobbed = sorted(r.id for r in self.patches() if r.of_a_job and r.id in assignments)
+        if jobbed:
+            raise WorkspaceError(
+                f"{len(jobbed)} patches of job samples (e.g. patch {jobbed[0]}) cannot join a "
+                "split: a job's cells check that job, they do not train or test the model"
+            )
         with self.connect() as con:
             con.execute("DELETE FROM split_assignments")
             con.executemany(
@@ -368,7 +401,8 @@ class Workspace:
         ``labeled`` (class name -> patches whose current label is that class),
         ``unsure`` (labelled but marked unsure), ``unlabeled`` (never labelled) and
         ``splits`` (subset name -> labelled patches in it), ``jobs`` (job name -> its
-        sampled cells and how many are answered), plus descriptive fields.
+        sampled ``cells``: ``answered`` with a class, as ``trainkit verify`` counts them,
+        ``unsure`` and ``unanswered``), plus descriptive fields.
         """
         recs = self.patches()
         names = self.class_set.names
@@ -402,7 +436,9 @@ class Workspace:
             "jobs": {
                 j: {
                     "cells": sum(r.job == j for r in recs),
-                    "answered": sum(r.job == j and r.labelled for r in recs),
+                    "answered": sum(r.job == j and r.label is not None for r in recs),
+                    "unsure": sum(r.job == j and r.labelled and r.label is None for r in recs),
+                    "unanswered": sum(r.job == j and not r.labelled for r in recs),
                 }
                 for j in sorted({r.job for r in recs if r.job is not None})
             },
@@ -516,42 +552,206 @@ class Workspace:
 
     # ----- job samples ---------------------------------------------------------------
 
-    def add_job(
-        self, name: str, *, scan: str, threshold: float, design: dict, cells: list[dict]
-    ) -> None:
-        """Record a job's acceptance sample: its design and each sampled cell.
+    def add_job_sample(
+        self,
+        name: str,
+        *,
+        scan: str,
+        threshold: float,
+        design: dict,
+        frames: list[dict],
+        cells: list[dict],
+        more: bool = False,
+        before_commit: Callable[[list[int]], object] | None = None,
+    ) -> list[int]:
+        """Record a job's sample, or a further draw of it, in one transaction (all or nothing).
+
+        The job's row (or its updated design), its frames and their patches, and its cells
+        are written together: a sample stopped half-way (even by ``kill -9``) leaves nothing.
+        Patches of the job's frames left without a job record by an interrupted sample of an
+        older kit are reused when drawn again (same frame content, same box); those left
+        over that no one labelled, skipped or split are removed.
 
         Args:
             name: the job's name (unique in the workspace).
             scan: the scan folder the cells were drawn from.
             threshold: the model's screening threshold at the scan.
-            design: JSON-ready description of the sampling design.
-            cells: one dict per cell: ``patch_id``, ``frame``, ``stratum``,
-                ``inclusion_probability``, ``screening_probability``.
+            design: JSON-ready description of the sampling design (stored, replacing the
+                previous one on a further draw).
+            frames: one dict per frame with cells in this draw: ``name`` (the photo name),
+                ``source_path``, ``width``, ``height``, ``sha256``, ``size_bytes`` and
+                ``patches`` (as for :meth:`add_photo_with_patches`).
+            cells: one dict per cell drawn now: ``photo``, ``box`` (x0, y0, x1, y1),
+                ``frame``, ``stratum``, ``inclusion_probability``, ``screening_probability``.
+            more: add to the existing job ``name``: ``inclusion`` in ``design`` (stratum
+                -> probability) is then written to the job's earlier cells too.
+            before_commit: called with the cells' patch ids once everything is written and
+                before the commit (the job's sample.csv is written there); if it raises,
+                nothing is committed.
+
+        Returns:
+            The patch id of each cell, in the order of ``cells``.
 
         Raises:
-            WorkspaceError: a job of that name exists.
+            WorkspaceError: the job exists (or, with ``more``, does not), a frame's photo
+                holds other content, or a cell is already in a job.
         """
+        group = job_group(name)
+        patch_cols = "row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped, flags, review_skip"
         with self.connect() as con:
-            if con.execute("SELECT 1 FROM jobs WHERE name = ?", (name,)).fetchone():
+            con.execute("BEGIN IMMEDIATE")  # the checks below and the writes are one transaction
+            exists = con.execute("SELECT 1 FROM jobs WHERE name = ?", (name,)).fetchone()
+            if more and not exists:
+                known = [r[0] for r in con.execute("SELECT name FROM jobs ORDER BY created_at")]
+                raise WorkspaceError(
+                    f"workspace {self.root} holds no job {name!r} to add to; its jobs: "
+                    f"{', '.join(known) or 'none'}"
+                )
+            if not more and exists:
                 raise WorkspaceError(
                     f"workspace {self.root} already holds job {name!r}; choose another name"
                 )
-            con.execute(
-                "INSERT INTO jobs(name, scan, threshold, design, created_at) VALUES (?, ?, ?, ?, ?)",
-                (name, scan, float(threshold), json.dumps(design), time.time()),
-            )
-            con.executemany(
-                "INSERT INTO job_cells(patch_id, job, frame, stratum, inclusion_probability,"
-                " screening_probability) VALUES (?, ?, ?, ?, ?, ?)",
-                [
-                    (
-                        int(c["patch_id"]), name, c["frame"], c["stratum"],
-                        float(c["inclusion_probability"]), float(c["screening_probability"]),
+            if more:
+                con.execute("UPDATE jobs SET design = ? WHERE name = ?", (json.dumps(design), name))
+                for stratum, p in (design.get("inclusion") or {}).items():
+                    con.execute(
+                        "UPDATE job_cells SET inclusion_probability = ? WHERE job = ? AND stratum = ?",
+                        (float(p), name, stratum),
                     )
-                    for c in cells
-                ],
-            )  # fmt: skip
+            else:
+                con.execute(
+                    "INSERT INTO jobs(name, scan, threshold, design, created_at)"
+                    " VALUES (?, ?, ?, ?, ?)",
+                    (name, scan, float(threshold), json.dumps(design), time.time()),
+                )
+            ids: dict[tuple[str, tuple[int, ...]], int] = {}
+            for f in frames:
+                row = con.execute(
+                    "SELECT id, sha256, group_id FROM photos WHERE name = ?", (f["name"],)
+                ).fetchone()
+                if row is not None and (row[1] != f["sha256"] or row[2] != group):
+                    raise WorkspaceError(
+                        f"workspace {self.root} holds a photo {f['name']!r} with other content "
+                        "or of another group; pass another --job name"
+                    )
+                if row is None:
+                    photo_id = int(
+                        con.execute(
+                            "INSERT INTO photos(name, source_path, size_bytes, width, height,"
+                            " gsd_mm, gsd_source, group_id, capture_date, roi, sha256, added_at)"
+                            " VALUES (?, ?, ?, ?, ?, NULL, 'none', ?, NULL, NULL, ?, ?)",
+                            (
+                                f["name"],
+                                f["source_path"],
+                                int(f.get("size_bytes", 0)),
+                                int(f["width"]),
+                                int(f["height"]),
+                                group,
+                                f["sha256"],
+                                time.time(),
+                            ),
+                        ).lastrowid  # fmt: skip
+                    )
+                else:
+                    photo_id = int(row[0])
+                for p in f["patches"]:
+                    box = (int(p["x0"]), int(p["y0"]), int(p["x1"]), int(p["y1"]))
+                    old = con.execute(
+                        "SELECT id FROM patches WHERE photo_id = ? AND x0 = ? AND y0 = ?"
+                        " AND x1 = ? AND y1 = ?",
+                        (photo_id, *box),
+                    ).fetchone()
+                    if old is not None:  # left by an interrupted sample: its crop is this one
+                        con.execute("UPDATE patches SET crop = ? WHERE id = ?", (p["crop"], old[0]))
+                    else:
+                        old = (
+                            con.execute(
+                                f"INSERT INTO patches(photo_id, {patch_cols})"
+                                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                                (photo_id, p["row"], p["col"], *box, p["crop"],
+                                 p.get("patch_mm"), p["focus"], p["clipped"],
+                                 p.get("flags", ""), int(p.get("review_skip", 0))),
+                            ).lastrowid,
+                        )  # fmt: skip
+                    ids[(f["name"], box)] = int(old[0])
+            out = []
+            for c in cells:
+                pid = ids[(c["photo"], tuple(int(v) for v in c["box"]))]
+                taken = con.execute(
+                    "SELECT job FROM job_cells WHERE patch_id = ?", (pid,)
+                ).fetchone()
+                if taken is not None:
+                    raise WorkspaceError(
+                        f"cell {tuple(c['box'])} of {c['photo']!r} is already in job {taken[0]!r}"
+                    )
+                con.execute(
+                    "INSERT INTO job_cells(patch_id, job, frame, stratum, inclusion_probability,"
+                    " screening_probability) VALUES (?, ?, ?, ?, ?, ?)",
+                    (pid, name, c["frame"], c["stratum"], float(c["inclusion_probability"]),
+                     float(c["screening_probability"])),
+                )  # fmt: skip
+                out.append(pid)
+            self._drop_orphans(con, group)
+            if before_commit is not None:
+                before_commit(out)
+        return out
+
+    @staticmethod
+    def _drop_orphans(con: sqlite3.Connection, group: str) -> None:
+        """Remove patches of a job group's frames that are in no job and referenced by
+        nothing (no label, undone label, skip or split), then photos left without patches."""
+        con.execute(
+            """DELETE FROM patches WHERE photo_id IN (SELECT id FROM photos WHERE group_id = ?)
+               AND id NOT IN (SELECT patch_id FROM job_cells)
+               AND id NOT IN (SELECT patch_id FROM label_events)
+               AND id NOT IN (SELECT patch_id FROM undone_label_events)
+               AND id NOT IN (SELECT patch_id FROM review_skips)
+               AND id NOT IN (SELECT patch_id FROM split_assignments)""",
+            (group,),
+        )
+        con.execute(
+            "DELETE FROM photos WHERE group_id = ? AND id NOT IN (SELECT photo_id FROM patches)",
+            (group,),
+        )
+
+    def record_verification(self, job: str, record: dict) -> int:
+        """Append one check of a job (never replacing an earlier one); returns its id.
+
+        Args:
+            job: the job's name.
+            record: JSON-ready; its ``created`` (time), ``gate`` (``required_recall``,
+                ``passed``, ``verdict``, or None), ``verdict`` and ``model`` (``model``,
+                ``sha256``) fill the table's columns, and the whole record is kept.
+        """
+        gate = record.get("gate") or {}
+        model = record.get("model") or {}
+        with self.connect() as con:
+            cur = con.execute(
+                "INSERT INTO job_verifications(job, created_at, required_recall, passed, verdict,"
+                " model, model_sha256, record) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (
+                    job,
+                    time.time(),
+                    gate.get("required_recall"),
+                    None if gate.get("passed") is None else int(bool(gate["passed"])),
+                    record.get("verdict") or gate.get("verdict") or "no bound asked",
+                    model.get("model"),
+                    model.get("sha256"),
+                    json.dumps(record, allow_nan=False),
+                ),
+            )
+            return int(cur.lastrowid)
+
+    def verifications(self, job: str | None = None) -> list[dict]:
+        """Every recorded check (of one job, or of all), oldest first, as recorded."""
+        q = "SELECT id, record FROM job_verifications"
+        args: tuple = ()
+        if job is not None:
+            q += " WHERE job = ?"
+            args = (job,)
+        with self.connect() as con:
+            rows = con.execute(q + " ORDER BY id", args).fetchall()
+        return [{**json.loads(r[1]), "id": int(r[0])} for r in rows]
 
     def jobs(self) -> list[dict]:
         """Every job: name, scan, threshold, design (dict), created_at; oldest first."""
@@ -564,17 +764,21 @@ class Workspace:
 
     def job_cells(self, job: str) -> list[dict]:
         """The cells of one job's sample, with their current label (None = unsure), whether
-        they were answered at all, and the SHA-256 of the frame they were cut from."""
+        they were answered at all, the SHA-256 of the frame they were cut from, and the
+        photo name and box they are stored under."""
         q = """
         SELECT j.patch_id, j.frame, j.stratum, j.inclusion_probability, j.screening_probability,
                (SELECT e.label FROM label_events e WHERE e.patch_id = j.patch_id ORDER BY e.id DESC LIMIT 1),
                EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = j.patch_id),
-               ph.sha256
+               ph.sha256, ph.name, p.x0, p.y0, p.x1, p.y1
         FROM job_cells j JOIN patches p ON p.id = j.patch_id JOIN photos ph ON ph.id = p.photo_id
         WHERE j.job = ? ORDER BY j.patch_id
         """
         keys = ("patch_id", "frame", "stratum", "inclusion_probability",
-                "screening_probability", "label", "answered", "frame_sha256")  # fmt: skip
+                "screening_probability", "label", "answered", "frame_sha256", "photo", "box")  # fmt: skip
         with self.connect() as con:
             rows = con.execute(q, (job,)).fetchall()
-        return [dict(zip(keys, (*r[:6], bool(r[6]), r[7]), strict=True)) for r in rows]
+        return [
+            dict(zip(keys, (*r[:6], bool(r[6]), r[7], r[8], tuple(r[9:13])), strict=True))
+            for r in rows
+        ]
