@@ -64,8 +64,8 @@ QUICK = Plan(
 
 def train_and_export(out: Path, plan: Plan, seed: int) -> dict:
     """Train with the recipe's cascade block, evaluate, export the cascade and the main alone."""
+    from trainkit.export.onnx_file import export_experiment
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
     from trainkit.learning.config import TrainConfig, load_train_config
     from trainkit.learning.training import train
 

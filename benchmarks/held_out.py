@@ -56,7 +56,7 @@ def build_workspace(out: Path, n_photos: int, seed: int):
     from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.labels_io import import_csv
     from trainkit.labels.splits import split_workspace
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
     from trainkit.synth import SynthOptions, write_dataset
 
     cs = load_class_set("orientation")

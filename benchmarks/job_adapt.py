@@ -99,9 +99,9 @@ def figures(scanned: dict) -> dict:
 
 def adapt(out: Path, source: Path, ws, cells: int, job_scan: Path, cracks: dict, quiet: bool):
     """Sample ``cells`` cells of the job scan, answer them, adapt, evaluate, export."""
+    from trainkit.export.onnx_file import export_experiment
     from trainkit.jobs.sample import sample_scan
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
     from trainkit.learning.adapt import adapt_recipe, plan_adaptation
     from trainkit.learning.training import train
 
@@ -179,7 +179,7 @@ def main(argv: list[str] | None = None) -> int:
         shutil.copytree(args.reuse / "workspace", args.out / "workspace")
         shutil.copytree(args.reuse / "run", args.out / "run")
         source, screener = args.out / "run", {"reused": str(args.reuse)}
-        from trainkit.judging.export import export_experiment
+        from trainkit.export.onnx_file import export_experiment
 
         # exported again with this kit (its familiarity output and threshold as of now)
         model = Path(export_experiment(source)["model"])
@@ -204,7 +204,7 @@ def main(argv: list[str] | None = None) -> int:
     }
     runs = []
     for cells in args.cells:
-        from trainkit.labels.workspace import Workspace
+        from trainkit.store.workspace import Workspace
 
         ws_dir = args.out / f"workspace-{cells}"
         shutil.copytree(args.out / "workspace", ws_dir)

@@ -163,7 +163,7 @@ def build_workspace(out: Path, n_photos: int, seed: int, tile_px: int = 128):
     from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.labels_io import import_csv
     from trainkit.labels.splits import split_workspace
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
     from trainkit.synth import SynthOptions, write_dataset
 
     cs = load_class_set("orientation")
@@ -198,8 +198,8 @@ def fit_epochs(ws, recipe: str, minutes: float) -> tuple[int, float]:
 
 def train_screener(out: Path, plan: Plan, seed: int, quiet: bool) -> tuple[Path, dict]:
     """Train, evaluate (threshold from validation) and export; returns the model and facts."""
+    from trainkit.export.onnx_file import export_experiment
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
     from trainkit.learning.config import load_train_config
     from trainkit.learning.training import train
 
@@ -427,7 +427,7 @@ def end_to_end(scan_dir: Path, scanned: dict, ws_dir: Path, cells: int, patch_px
     from trainkit.core.taxonomy import load_class_set
     from trainkit.jobs.sample import sample_scan
     from trainkit.jobs.verify import verify_scan
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     table = scanned["cells"]
     key = {

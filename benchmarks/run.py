@@ -79,7 +79,7 @@ def bench_onnx_vs_torch(n: int = 256, size: int = 128) -> dict:
     import onnx
     import onnxruntime as ort
 
-    from trainkit.judging.export import _wrapper, network_to_onnx
+    from trainkit.export.onnx_file import _wrapper, network_to_onnx
     from trainkit.learning.config import load_train_config
     from trainkit.learning.network import build_network
 
@@ -119,7 +119,7 @@ def bench_tiling(n_photos: int = 12, rounds: int = 2) -> dict:
     from trainkit.core.cores import usable_cores
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
     from trainkit.synth import SynthOptions, generate_photo
 
     cores = usable_cores()
@@ -172,7 +172,7 @@ def _random_screener(path: Path, backbone: str = "mobilenet_v3_small", px: int =
     """A randomly initialised network exported with trainkit's contract (speed only, not accuracy)."""
     import onnx
 
-    from trainkit.judging.export import network_to_onnx
+    from trainkit.export.onnx_file import network_to_onnx
     from trainkit.learning.config import load_train_config
     from trainkit.learning.network import build_network
 
@@ -408,8 +408,8 @@ def bench_familiarity(n: int = 256, size: int = 128) -> dict:
     import onnx
     import onnxruntime as ort
 
-    from trainkit.judging.export import network_to_onnx
-    from trainkit.judging.familiarity_graph import fit_graph
+    from trainkit.export.familiarity_graph import fit_graph
+    from trainkit.export.onnx_file import network_to_onnx
     from trainkit.learning.config import load_train_config
     from trainkit.learning.network import build_network
     from trainkit.learning.steps import head_module_name, stage_module_names

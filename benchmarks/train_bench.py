@@ -70,7 +70,7 @@ def build_workspace(root: Path, *, n_photos: int, tile_px: int = 224):
     from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.labels_io import import_csv
     from trainkit.labels.splits import split_workspace
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
     from trainkit.synth import SynthOptions, write_dataset
 
     class_set = load_class_set("orientation")

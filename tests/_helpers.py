@@ -9,7 +9,7 @@ import numpy as np
 from PIL import Image
 
 from trainkit.core.taxonomy import load_class_set
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 
 def _photo_name(i: int) -> str:

@@ -121,12 +121,12 @@ def test_adapt_export_scan_and_the_honest_path(demo_run, tmp_path):
     from click.testing import CliRunner
 
     from trainkit.cli import cli
+    from trainkit.export.onnx_file import export_experiment
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.adapt import load_subset
     from trainkit.learning.network import load_checkpoint
     from trainkit.screener.scan import scan_frames
+    from trainkit.store.workspace import Workspace
 
     demo, _ = demo_run
     exp = tmp_path / "exp"

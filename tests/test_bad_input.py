@@ -25,7 +25,7 @@ from trainkit.cli import main
 from trainkit.core.taxonomy import load_class_set
 from trainkit.intake.tiling import tile_into_workspace
 from trainkit.labels.labels_io import LabelsIOError, import_csv
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 TILE = 64
 

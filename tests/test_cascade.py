@@ -90,8 +90,8 @@ def test_train_stage1_learns_the_teachers_answer_and_reloads():
 
 
 def test_a_training_run_with_a_cascade_block_stores_the_first_stage(demo_run, tmp_path):
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.training import train
+    from trainkit.store.workspace import Workspace
 
     out, _ = demo_run
     cfg = TrainConfig.model_validate(
@@ -116,8 +116,8 @@ def test_a_training_run_with_a_cascade_block_stores_the_first_stage(demo_run, tm
 def test_a_first_stage_that_cannot_be_built_stops_training_before_any_epoch(demo_run, tmp_path):
     """48 px does not divide the workspace's 128-px patches: refused at the start, so no
     epoch of the main network is spent and then lost."""
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.training import train
+    from trainkit.store.workspace import Workspace
 
     out, _ = demo_run
     cfg = TrainConfig.model_validate(

@@ -14,9 +14,9 @@ import torch
 from PIL import Image
 
 from trainkit.core.contract import FAMILIARITY_NAME, INPUT_NAME, OUTPUT_NAME, REACHED_NAME
-from trainkit.judging.cascade_graph import cascade_to_onnx, clean_vector, run_cascade_torch
-from trainkit.judging.export import network_to_onnx
-from trainkit.judging.familiarity_graph import fit_graph
+from trainkit.export.cascade_graph import cascade_to_onnx, clean_vector, run_cascade_torch
+from trainkit.export.familiarity_graph import fit_graph
+from trainkit.export.onnx_file import network_to_onnx
 from trainkit.learning.cascade import build_stage1, stage1_head_name
 from trainkit.learning.config import CascadeConfig, TrainConfig
 from trainkit.learning.network import build_network
@@ -106,10 +106,10 @@ def cascade_experiment(demo_run, tmp_path_factory):
     """The demo's experiment with a first stage distilled from it (tiny_cnn at 32 px)."""
     import shutil
 
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.cascade import train_stage1
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
+    from trainkit.store.workspace import Workspace
 
     out, _ = demo_run
     exp = tmp_path_factory.mktemp("cascade") / "exp"
@@ -127,9 +127,9 @@ def cascade_experiment(demo_run, tmp_path_factory):
 
 
 def _evaluate_and_export(exp, monkeypatch, max_drop):
+    from trainkit.export.onnx_file import export_experiment
     from trainkit.judging import scoring
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
 
     monkeypatch.setattr(scoring, "CASCADE_MAX_RECALL_DROP", max_drop)
     metrics = evaluate_experiment(exp)
@@ -140,8 +140,8 @@ def test_an_accepted_cascade_is_exported_as_one_graph_and_the_screener_counts(
     cascade_experiment, monkeypatch, tmp_path
 ):
     from trainkit.core.contract import CASCADE_VERSION
-    from trainkit.judging.export import ExportError, read_metadata
-    from trainkit.judging.quantize import quantize_experiment
+    from trainkit.export.onnx_file import ExportError, read_metadata
+    from trainkit.export.quantize import quantize_experiment
     from trainkit.screener.model import Screener
     from trainkit.screener.scan import scan_frames
 
@@ -205,9 +205,9 @@ def test_a_refused_cascade_is_exported_without_it_and_says_so(cascade_experiment
 def test_an_accepted_cascade_is_written_only_when_asked(cascade_experiment, monkeypatch):
     """Without cascade=True (`export --cascade`) the file is the main network alone, and the
     reason names the warning's blindness and the way to ask."""
-    from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT
+    from trainkit.core.caution import CASCADE_WARNING_CAVEAT
+    from trainkit.export.onnx_file import export_experiment
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
 
     exp, _ = cascade_experiment
     monkeypatch.setattr("trainkit.judging.scoring.CASCADE_MAX_RECALL_DROP", 1.0)

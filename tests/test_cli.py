@@ -127,8 +127,8 @@ def _photos(folder, n=2, size=(100, 150)):
 
 
 def test_tile_defaults_to_the_default_recipes_patch_size(tmp_path, capsys):
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.config import load_train_config
+    from trainkit.store.workspace import Workspace
 
     photos = _photos(tmp_path / "photos", n=1, size=(300, 300))
     assert main(["-q", "tile", str(photos), "--workspace", str(tmp_path / "ws")]) == 0
@@ -143,7 +143,7 @@ def test_train_warns_when_the_workspace_patches_differ_from_the_recipe(
     tmp_path, capsys, monkeypatch
 ):
     from trainkit.core.taxonomy import load_class_set
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     Workspace.create(tmp_path / "ws", class_set=load_class_set("orientation"), tile_px=224)
     result = {
@@ -168,7 +168,7 @@ def test_importing_the_same_labels_with_tile_again_adds_no_events(tmp_path, caps
     assert main([*args, "--import-labels", str(labels)]) == 0
     out = " ".join(capsys.readouterr().out.split())  # the console wraps long lines
     assert "imported 0 labels" in out and "2 already recorded with the same label" in out
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     assert len(Workspace.open(tmp_path / "ws").label_events()) == 2
 
@@ -253,7 +253,7 @@ def test_export_says_warned_not_flagged_for_unfamiliar_frames(tmp_path, capsys, 
         "contract": "trainkit-screener-2",
         "familiarity": {"threshold": 1.5, "calibration_frames": 12, "false_warning_bound": 0.1},
     }
-    monkeypatch.setattr("trainkit.judging.export.export_experiment", lambda *a, **k: res)
+    monkeypatch.setattr("trainkit.export.onnx_file.export_experiment", lambda *a, **k: res)
     assert main(["export", str(exp)]) == 0
     out = " ".join(capsys.readouterr().out.split())
     assert (

@@ -12,8 +12,8 @@ from click.testing import CliRunner
 
 from trainkit.cli import cli
 from trainkit.demo import STEPS
-from trainkit.judging.export import read_metadata
-from trainkit.labels.workspace import Workspace
+from trainkit.export.onnx_file import read_metadata
+from trainkit.store.workspace import Workspace
 
 
 def test_demo_leaves_the_experiment_folder(demo_run):

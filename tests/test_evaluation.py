@@ -14,7 +14,7 @@ from scipy import stats
 from sklearn import metrics as skm
 
 from trainkit.judging.evaluation import CAUTION, EvaluationError, evaluate_experiment
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 # The metrics.json contract documented in the trainkit.judging.evaluation module docstring.
 TOP_LEVEL_KEYS = {

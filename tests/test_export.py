@@ -9,8 +9,8 @@ import onnx
 import onnxruntime as ort
 import pytest
 
-from trainkit.judging.export import ExportError, read_metadata
-from trainkit.judging.quantize import INT8_MAX_RECALL_DROP, INT8_MIN_SPEEDUP, quantize_experiment
+from trainkit.export.onnx_file import ExportError, read_metadata
+from trainkit.export.quantize import INT8_MAX_RECALL_DROP, INT8_MIN_SPEEDUP, quantize_experiment
 
 
 @pytest.mark.parametrize("batch", [1, 17])
@@ -36,9 +36,9 @@ def test_parity_with_pytorch_on_real_patches(demo_run):
     """ONNX Runtime against the PyTorch checkpoint on the test patches (within 1e-4, same argmax)."""
     import torch
 
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
+    from trainkit.store.workspace import Workspace
 
     out, _ = demo_run
     model, ckpt, cs = load_checkpoint(out)
@@ -62,9 +62,9 @@ def test_familiarity_output_is_the_feature_ensemble_and_the_threshold_conformal(
     from scipy.spatial.distance import mahalanobis
 
     from trainkit.core import familiarity as F
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
+    from trainkit.store.workspace import Workspace
 
     out, _ = demo_run
     model, ckpt, cs = load_checkpoint(out)
@@ -225,7 +225,7 @@ def test_a_familiarity_mismatch_exports_contract_1_instead_of_failing(
     still exported, as contract 1, and the summary says why."""
     import shutil
 
-    from trainkit.judging import export as E
+    from trainkit.export import onnx_file as E
 
     out, _ = demo_run
     exp = tmp_path / "exp"

@@ -9,7 +9,7 @@ import pytest
 import torch
 from torch import nn
 
-from trainkit.judging.familiarity_graph import fit_graph, split_head, stage_ends
+from trainkit.export.familiarity_graph import fit_graph, split_head, stage_ends
 from trainkit.learning.models import create_model
 from trainkit.learning.network import Preprocess
 from trainkit.learning.steps import head_module_name, stage_module_names
@@ -60,7 +60,7 @@ def test_a_colour_cast_frame_is_warned_and_a_familiar_one_is_not(tmp_path):
     import onnx
 
     from trainkit.core.contract import ModelInfo, decode_metadata, encode_metadata
-    from trainkit.judging.export import network_to_onnx
+    from trainkit.export.onnx_file import network_to_onnx
     from trainkit.screener.model import Screener
 
     s = 32

@@ -20,7 +20,7 @@ from trainkit.intake.scale import (
 )
 from trainkit.intake.sidecar import parse_roi, read_sidecar
 from trainkit.intake.tiling import tile_into_workspace, tile_photo
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 
 def textured(h, w, seed=0):

@@ -30,8 +30,8 @@ from trainkit.jobs.sample import SampleError, sample_scan
 from trainkit.jobs.verify import VerifyError, verdict_line, verify_scan
 from trainkit.labels.labels_io import import_csv
 from trainkit.labels.splits import split_workspace
-from trainkit.labels.workspace import WorkspaceError
 from trainkit.screener.scan import scan_frames
+from trainkit.store.workspace import WorkspaceError
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -138,7 +138,7 @@ def test_an_unanswered_sample_csv_is_replaced_and_the_message_says_so(scanned, t
 
 _KILLER = """
 import os, signal, sys
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 point, scan, ws = sys.argv[1:4]
 if point == "crops":  # after a few crops, before any database write
     import trainkit.intake.quality as q

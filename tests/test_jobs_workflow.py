@@ -23,8 +23,8 @@ from trainkit.jobs.verify import VerifyError, verify_scan
 from trainkit.labels.labels_io import import_csv
 from trainkit.labels.review import build_queue
 from trainkit.labels.splits import split_workspace
-from trainkit.labels.workspace import Workspace
 from trainkit.screener.scan import scan_frames
+from trainkit.store.workspace import Workspace
 
 # Grey level of a cell -> (is it a crack, screening probability of the brightness model)
 #   60: dark crack, flagged;  90: dark stain, a false alarm;  131: faint crack or not, "near";

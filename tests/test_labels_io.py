@@ -21,7 +21,7 @@ from trainkit.labels.labels_io import (
     import_csv,
     import_folders,
 )
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 
 def in_subfolder(i):

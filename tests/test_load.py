@@ -99,7 +99,7 @@ def test_tile_of_500_photos_has_the_right_counts_in_bounded_memory(tmp_path):
         "from trainkit.core.decode import find_images\n"
         "from trainkit.core.taxonomy import load_class_set\n"
         "from trainkit.intake.tiling import tile_into_workspace\n"
-        "from trainkit.labels.workspace import Workspace\n"
+        "from trainkit.store.workspace import Workspace\n"
         "t0 = time.perf_counter()\n"
         f"found = find_images([Path({str(photos)!r})])\n"
         f"ws = Workspace.create({str(ws)!r}, class_set=load_class_set('presence'), tile_px=64)\n"
@@ -116,7 +116,7 @@ def test_tile_of_500_photos_has_the_right_counts_in_bounded_memory(tmp_path):
     assert res["photos_added"] == 500 and res["photos_skipped"] == 0 and res["problems"] == 0
     assert res["patches_added"] == 500 * per_photo
 
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     w = Workspace.open(ws)
     assert sorted(r["name"] for r in w.photos()) == sorted(p.name for p in photos.iterdir())

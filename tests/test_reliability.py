@@ -144,7 +144,7 @@ def test_scan_killed_mid_run_resumes_with_every_frame_exactly_once(tmp_path):
 
 WRITER = """
 import sys
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 ws = Workspace.open(sys.argv[1])
 ids = [r.id for r in ws.patches()][: int(sys.argv[3])]
 for i, pid in enumerate(ids):
@@ -210,7 +210,7 @@ def test_two_labellers_and_a_status_reader_while_tile_adds_photos(tmp_path):
     assert tile.returncode == 0 and "locked" not in tile.stderr.read()
     for w in writers:
         assert w.returncode == 0, w.stderr.read()
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     store = Workspace.open(ws)
     events = [e for r in store.patches() for e in store.label_history(r.id)]
@@ -221,9 +221,9 @@ def test_two_labellers_and_a_status_reader_while_tile_adds_photos(tmp_path):
 
 def test_same_seed_same_training(demo_run, tmp_path):
     """Two runs with one seed (one thread) give identical losses and weights."""
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.config import load_train_config
     from trainkit.learning.training import train
+    from trainkit.store.workspace import Workspace
 
     out, _ = demo_run
     ws = Workspace.open(out / "workspace")

@@ -22,7 +22,7 @@ from trainkit.labels.review import (
     margins,
     parse_sheet_answer,
 )
-from trainkit.labels.workspace import Workspace, WorkspaceError
+from trainkit.store.workspace import Workspace, WorkspaceError
 
 CS = load_class_set("orientation")
 
@@ -259,7 +259,7 @@ def test_empty_reviewer_is_refused(tmp_path):
 
 _WRITER = """
 import sys
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 ws = Workspace.open(sys.argv[1])
 for i in range(int(sys.argv[3])):
     ws.add_label_event(1 + i % 6, "none" if i % 2 else "map", reviewer=sys.argv[2])

@@ -11,7 +11,7 @@ import pexpect
 from _helpers import make_ws
 
 from trainkit.core.taxonomy import load_class_set
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 TIMEOUT = 20
 

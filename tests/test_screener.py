@@ -303,7 +303,7 @@ def test_contract_2_needs_its_familiarity_threshold(tmp_path):
 def _cascade_model(tmp_path, pass_threshold, *, meta_cascade=True):
     """A contract-3 cascade joined from two brightness graphs: the first stage (with
     familiarity) passes dark cells; the main network gives their probabilities."""
-    from trainkit.judging.cascade_graph import cascade_to_onnx
+    from trainkit.export.cascade_graph import cascade_to_onnx
 
     first = onnx.load(brightness_model(tmp_path / "s1.onnx", familiarity=5.0))
     main = onnx.load(brightness_model(tmp_path / "s2.onnx"))

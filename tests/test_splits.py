@@ -25,7 +25,7 @@ from trainkit.labels.splits import (
     find_near_duplicates,
     split_workspace,
 )
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 from trainkit.synth import SynthOptions, generate_photo
 
 TILE = 128

@@ -16,7 +16,6 @@ import torch
 from scipy import stats
 from sklearn.metrics import roc_curve
 
-from trainkit.labels.workspace import Workspace
 from trainkit.learning.config import ConfigError, load_train_config
 from trainkit.learning.network import TrainingError, build_network
 from trainkit.learning.training import (
@@ -28,6 +27,7 @@ from trainkit.learning.training import (
     train,
 )
 from trainkit.metrics import recall_at_false_alarm
+from trainkit.store.workspace import Workspace
 
 # history columns that measure time, not the computation
 _TIMING = {"train_images_per_s", "seconds"}

@@ -9,7 +9,7 @@ from _helpers import make_ws
 
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import SplitError, assign_groups, check_no_leak, split_workspace
-from trainkit.labels.workspace import Workspace, WorkspaceError
+from trainkit.store.workspace import Workspace, WorkspaceError
 
 
 def test_current_label_is_the_newest_event_and_history_is_kept(tmp_path):

@@ -151,7 +151,7 @@ def _tile(progress: DemoProgress, data: Path, out: Path, photos: int | None):
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.sidecar import read_sidecar
     from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     files = list_images([data / "photos"])
     if photos:
@@ -285,8 +285,8 @@ def run_demo(
     Raises:
         SplitError: fewer than :data:`MIN_PHOTOS` photos asked for (nothing is written).
     """
+    from trainkit.export.onnx_file import export_experiment
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.judging.export import export_experiment
     from trainkit.labels.splits import SplitError, split_workspace
 
     if photos is not None and photos < MIN_PHOTOS:

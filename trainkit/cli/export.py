@@ -33,8 +33,8 @@ __all__ = ["export"]
 @click.pass_obj
 def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None, cascade: bool) -> None:
     """Export EXP/model.onnx (uint8 RGB in, probabilities out, metadata inside) and check parity."""
-    from trainkit.judging.export import export_experiment
-    from trainkit.judging.quantize import quantize_experiment
+    from trainkit.export.onnx_file import export_experiment
+    from trainkit.export.quantize import quantize_experiment
 
     console = ctx.console
     with user_errors(ctx):
@@ -74,13 +74,13 @@ def export(ctx: Ctx, exp_dir: Path, opset: int, quantize: str | None, cascade: b
                 f"({t['passed_share']:.1%} of test patches); test recall {t['recall']:.3f} "
                 f"(main network alone {t['main_recall']:.3f})"
             )
-            from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT
+            from trainkit.core.caution import CASCADE_WARNING_CAVEAT
 
             console.print(f"caution: {CASCADE_WARNING_CAVEAT}; check each new surface by sampling")
         elif res.get("cascade_skipped"):
             console.print(f"no cascade: {res['cascade_skipped']}")
         if quantize and cas:
-            from trainkit.judging.quantize import INT8_CASCADE_SKIP
+            from trainkit.export.quantize import INT8_CASCADE_SKIP
 
             console.print(INT8_CASCADE_SKIP)
         elif quantize:

@@ -19,13 +19,9 @@ from trainkit.cli.synth import synth
 from trainkit.cli.tile import tile
 from trainkit.cli.train import train
 from trainkit.cli.verify import verify
+from trainkit.core.caution import SHORT_CAUTION
 
-__all__ = ["cli", "EPILOG_CAUTION"]
-
-EPILOG_CAUTION = (
-    "The screener is a triage aid, not an inspection; its figures hold only for photos "
-    "like its test set. Defer to local codes and licensed engineers."
-)
+__all__ = ["cli"]
 
 
 @click.group(
@@ -33,7 +29,7 @@ EPILOG_CAUTION = (
     epilog="\b\nExit codes:\n"
     + "\n".join(f"  {code:<4d} {meaning}" for code, meaning in EXIT_CODES.items())
     + "\n\n"
-    + EPILOG_CAUTION,
+    + SHORT_CAUTION,
 )
 @click.option("-q", "--quiet", is_flag=True, help="No progress bars or chatter (for scripts).")
 @click.option("--debug", is_flag=True, help="Show the full traceback on errors.")

@@ -122,7 +122,7 @@ def review(
     With --import-*/--export-*/--agreement it does that and exits.
     """
     from trainkit.labels.review_run import ReviewRequest, prepare_session, run_review, summary_line
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     reviewer = reviewer or _default_reviewer()
     with user_errors(ctx):

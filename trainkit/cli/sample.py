@@ -64,7 +64,7 @@ def sample(
     verify then counts them all.
     """
     from trainkit.jobs.sample import sample_scan
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     with user_errors(ctx):
         if seed is None:

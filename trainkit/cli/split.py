@@ -61,7 +61,7 @@ def split(
     two photos); --drop-near-duplicates leaves their val/test member out.
     """
     from trainkit.labels.splits import find_near_duplicates, near_duplicate_lines, split_workspace
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     with user_errors(ctx):
         ws = Workspace.open(ws_dir)

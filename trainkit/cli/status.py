@@ -20,7 +20,7 @@ __all__ = ["status"]
 def status(ctx: Ctx, path: Path, as_json: bool) -> None:
     """Summarise a workspace (photos, patches, labels, split) or an experiment folder."""
     from trainkit.core.experiment import Experiment
-    from trainkit.labels.workspace import DB_NAME, Workspace
+    from trainkit.store.workspace import DB_NAME, Workspace
 
     with user_errors(ctx):
         if (path / DB_NAME).exists():

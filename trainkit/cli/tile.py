@@ -138,7 +138,7 @@ def tile(
     from trainkit.intake.sidecar import read_sidecar
     from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.labels_io import import_csv
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     # The size limit is --max-megapixels, applied to every photo; Pillow's own warning for
     # images above its limit (but below twice it) would only add two lines to the one-line skip.

@@ -79,8 +79,8 @@ def train(
     and validation; the frames are recorded so `trainkit sample` and `verify` keep them out
     of the next check). Resumes from EXP/resume.pt after an interruption unless --restart is given.
     """
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.config import load_train_config
+    from trainkit.store.workspace import Workspace
 
     with user_errors(ctx):
         adaptation = None

@@ -44,7 +44,7 @@ def verify(ctx: Ctx, scan_dir: Path, ws_dir: Path, job, require_recall, target_r
     cells are reported and listed, not counted. Exits 3 when --require-recall is not met.
     """
     from trainkit.jobs.verify import verdict_line, verify_scan
-    from trainkit.labels.workspace import Workspace
+    from trainkit.store.workspace import Workspace
 
     with user_errors(ctx):
         res = verify_scan(

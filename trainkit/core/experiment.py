@@ -1,6 +1,6 @@
 """The experiment folder: its file names, its readers and the migration of older names.
 
-An :class:`Experiment` owns an experiment folder as :class:`~trainkit.labels.workspace.Workspace`
+An :class:`Experiment` owns an experiment folder as :class:`~trainkit.store.workspace.Workspace`
 owns a workspace: every module that reads or writes a file of the folder asks it for
 the path. It imports nothing heavy (no torch), so ``trainkit status`` stays quick.
 

@@ -9,7 +9,6 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -19,9 +18,7 @@ from trainkit.core.grid import PatchBox, crop, iter_patch_boxes, overlap_to_stri
 from trainkit.intake.quality import quality_measures
 from trainkit.intake.scale import ScaleOptions, resolve_scale
 from trainkit.intake.sidecar import _check_date, parse_roi, roi_fraction
-
-if TYPE_CHECKING:
-    from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 __all__ = ["TilingError"]
 

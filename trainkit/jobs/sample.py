@@ -43,8 +43,8 @@ from trainkit.core.grid import crop, resize_patch
 from trainkit.core.textsafe import csv_cell, csv_uncell, token_problem
 from trainkit.jobs.design import STRATA, JobSample, assign_strata, draw_more, draw_sample
 from trainkit.jobs.files import SAMPLE_FILE, JobFiles
-from trainkit.labels.workspace import Workspace
 from trainkit.screener.scan import FRAMES_FILE, SCAN_FILE
+from trainkit.store.workspace import Workspace
 
 __all__ = [
     "SampleError",

@@ -27,14 +27,15 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.caution import CAUTION
 from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_write_json, atomic_write_text
+from trainkit.core.jsonsafe import json_ready
 from trainkit.jobs.design import STRATA
 from trainkit.jobs.estimate import EstimateError, design_weights, estimate_job, threshold_for_recall
 from trainkit.jobs.files import VERIFICATION_FILE, VERIFICATION_REPORT, JobFiles
 from trainkit.jobs.sample import check_job_name, learned_frames, read_scan_cells, scan_model
-from trainkit.judging.scoring import CAUTION, json_ready
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 __all__ = ["VerifyError", "verify_scan", "VERIFICATION_FILE", "VERIFICATION_REPORT"]
 

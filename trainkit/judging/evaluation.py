@@ -89,9 +89,11 @@ from pathlib import Path
 import numpy as np
 
 from trainkit import metrics as M
+from trainkit.core.caution import CAUTION
 from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_json
+from trainkit.core.jsonsafe import json_ready
 from trainkit.core.taxonomy import ClassSet
 from trainkit.core.textsafe import csv_cell
 from trainkit.judging.comparison import (
@@ -101,18 +103,16 @@ from trainkit.judging.comparison import (
     write_disagreements,
 )
 from trainkit.judging.scoring import (
-    CAUTION,
     Scored,
     cascade_block,
     choose_threshold,
-    json_ready,
     score_predictions,
     threshold_for_job_too,
 )
 from trainkit.labels.splits import check_no_leak
-from trainkit.labels.workspace import Workspace
 from trainkit.learning.adapt import load_subset
 from trainkit.learning.data import PatchSet, load_patch_set
+from trainkit.store.workspace import Workspace
 
 __all__ = ["evaluate_experiment", "EvaluationOptions", "EvaluationError", "CAUTION"]
 

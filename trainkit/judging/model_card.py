@@ -18,11 +18,10 @@ import json
 from pathlib import Path
 from typing import Any
 
+from trainkit.core.caution import CASCADE_WARNING_CAVEAT, CAUTION, SHORT_CAUTION
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_write_text
 from trainkit.core.textsafe import md_code, md_text
-from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT
-from trainkit.judging.scoring import CAUTION
 
 __all__ = [
     "CARD_NAME",
@@ -104,7 +103,7 @@ def synthetic_training_data(workspace: str | Path | None) -> bool | None:
     if workspace is None:
         return None
     try:
-        from trainkit.labels.workspace import Workspace
+        from trainkit.store.workspace import Workspace
 
         photos = Workspace.open(workspace).photos()
     except (ValueError, OSError):
@@ -492,7 +491,7 @@ def build_model_card(
         ckpt: the checkpoint dict (``config``, ``best_epoch``, ``input_px``, ``experiment``).
         experiment: the contents of ``experiment.json`` (default: the checkpoint's copy).
         metrics: the contents of ``evaluation/metrics.json``, or None when not evaluated.
-        export: the summary returned by :func:`trainkit.judging.export.export_experiment`.
+        export: the summary returned by :func:`trainkit.export.onnx_file.export_experiment`.
         synthetic: whether the training photos came from ``trainkit.synth`` (None: unknown).
         name: the experiment's name shown in the title.
         kit_version: trainkit version (default: the installed one).
@@ -557,8 +556,7 @@ def build_model_card(
         "",
         f"{caution}",
         "",
-        "The screener is a triage aid, not an inspection. Its figures hold only for photos "
-        "like its test set. Defer to local codes and licensed engineers.",
+        SHORT_CAUTION,
         "",
     ]
     return "\n".join(lines)

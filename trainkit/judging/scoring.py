@@ -15,11 +15,11 @@ from typing import Any
 import numpy as np
 
 from trainkit import metrics as M
+from trainkit.core.caution import CAUTION
 from trainkit.core.contract import screening_probability
 from trainkit.core.errors import TrainkitError
 
 __all__ = [
-    "CAUTION",
     "METRICS_VERSION",
     "Scored",
     "choose_threshold",
@@ -31,17 +31,9 @@ __all__ = [
     "cascade_pass_threshold",
     "cascade_block",
     "score_predictions",
-    "json_ready",
 ]
 
 METRICS_VERSION = 1
-
-CAUTION = (
-    "This screener is a triage aid that decides which photos and regions a person looks at "
-    "first; it is not an inspection. Its figures hold only for photos like its test set "
-    "(same cameras, surfaces, lighting and scale). Defer to local codes and to licensed engineers "
-    "for any judgement about a structure."
-)
 
 
 @dataclass
@@ -470,20 +462,3 @@ def score_predictions(
         "gate": gate,
         "caution": CAUTION,
     }
-
-
-def json_ready(o: Any) -> Any:
-    """``o`` with numpy scalars and arrays made plain and undefined ratios (nan) as None."""
-    if isinstance(o, dict):
-        return {k: json_ready(v) for k, v in o.items()}
-    if isinstance(o, list | tuple):
-        return [json_ready(v) for v in o]
-    if isinstance(o, np.ndarray):
-        return json_ready(o.tolist())
-    if isinstance(o, np.bool_):
-        return bool(o)
-    if isinstance(o, np.integer):
-        return int(o)
-    if isinstance(o, float | np.floating):
-        return float(o) if math.isfinite(o) else None
-    return o

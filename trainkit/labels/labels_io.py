@@ -35,7 +35,7 @@ from trainkit.core.csvfile import read_csv
 from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_path
 from trainkit.core.textsafe import csv_cell, csv_uncell
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 __all__ = [
     "LabelsIOError",

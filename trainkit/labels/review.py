@@ -31,7 +31,7 @@ from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.grid import resize_patch
 from trainkit.core.taxonomy import ClassSet
-from trainkit.labels.workspace import PatchRecord, Workspace
+from trainkit.store.workspace import PatchRecord, Workspace
 
 __all__ = [
     "QUEUES",

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from trainkit.labels.review import QUEUES, ReviewError, Session, build_queue, find_conflicts
-from trainkit.labels.workspace import Workspace
+from trainkit.store.workspace import Workspace
 
 __all__ = ["ReviewRequest", "prepare_session", "run_review", "summary_line", "sheet_path"]
 

@@ -20,7 +20,7 @@ from sklearn.model_selection import StratifiedGroupKFold
 
 from trainkit.core.errors import TrainkitError
 from trainkit.labels import neardup
-from trainkit.labels.workspace import PatchRecord, Workspace
+from trainkit.store.workspace import PatchRecord, Workspace
 
 __all__ = [
     "SplitError",

@@ -226,7 +226,7 @@ class Backbone:
         torchvision_weights: torchvision's weight enum name (weights from torch's hub cache).
         packaged_weights: ImageNet weights from a package of the package index.
         stages: modules whose outputs end the network's stages, for the unfamiliar-surface
-            ensemble (``trainkit.judging.familiarity_graph.stage_ends``): a container
+            ensemble (``trainkit.export.familiarity_graph.stage_ends``): a container
             (``nn.Sequential``) stands for its children; the last one at each spatial
             resolution is tapped.
     """

@@ -24,7 +24,6 @@ from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_text
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import check_no_leak
-from trainkit.labels.workspace import Workspace
 from trainkit.learning.adapt import Adaptation, load_subset, replay_set
 from trainkit.learning.config import TrainConfig
 from trainkit.learning.data import Augmenter, load_patch_set
@@ -48,6 +47,7 @@ from trainkit.learning.steps import (  # re-exported: callers import them from h
     train_head_on_features,
     train_one_epoch,
 )
+from trainkit.store.workspace import Workspace
 
 __all__ = [
     "build_network",

@@ -17,7 +17,7 @@ import numpy as np
 from trainkit.core.contract import INPUT_NAME, OUTPUT_NAME, screening_probability
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
-from trainkit.judging.export import ExportError, read_metadata
+from trainkit.export.onnx_file import ExportError, read_metadata
 
 __all__ = ["quantize_experiment", "INT8_MAX_RECALL_DROP", "INT8_MIN_SPEEDUP"]
 
@@ -138,10 +138,10 @@ def quantize_experiment(exp_dir: str | Path, *, calibration_patches: int = 128) 
 def _int8_patches(folder: Experiment):
     """(train, test) patch sets of the experiment's workspace, for calibration and the check."""
     from trainkit.core.taxonomy import class_set_from_dict
-    from trainkit.labels.workspace import Workspace
     from trainkit.learning.adapt import load_subset
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
+    from trainkit.store.workspace import Workspace
 
     _, ckpt, _ = load_checkpoint(folder.path)
     cs = class_set_from_dict(ckpt["class_set"])

@@ -18,7 +18,7 @@ from pathlib import Path
 
 from trainkit.core.errors import TrainkitError
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
-from trainkit.labels.schema import SCHEMA as _SCHEMA
+from trainkit.store.schema import SCHEMA as _SCHEMA
 
 __all__ = [
     "Workspace",

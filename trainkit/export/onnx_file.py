@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from trainkit.core.caution import CASCADE_WARNING_CAVEAT
 from trainkit.core.contract import (
     CASCADE_VERSION,
     CONTRACT_VERSION,
@@ -30,7 +31,7 @@ from trainkit.core.contract import (
 from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path
-from trainkit.judging.cascade_graph import CASCADE_WARNING_CAVEAT, all_nodes, cascade_plan
+from trainkit.export.cascade_graph import all_nodes, cascade_plan
 
 __all__ = ["export_experiment", "ExportError", "DEFAULT_OPSET", "PARITY_ATOL", "read_metadata"]
 
@@ -63,12 +64,12 @@ def network_to_onnx(network, input_px: int, *, opset: int = DEFAULT_OPSET):
 
     Input ``image``: uint8 (N, S, S, 3) with a dynamic batch; output ``probabilities``, and
     ``familiarity`` too when ``network`` is a
-    :class:`~trainkit.judging.familiarity_graph.ScreenerGraph` (which applies its own
+    :class:`~trainkit.export.familiarity_graph.ScreenerGraph` (which applies its own
     softmax). The exporter's progress lines are kept off the console. No metadata is set here.
     """
     import torch
 
-    from trainkit.judging.familiarity_graph import ScreenerGraph
+    from trainkit.export.familiarity_graph import ScreenerGraph
 
     two = isinstance(network, ScreenerGraph)
     module = network.eval() if two else _wrapper(network)
@@ -94,7 +95,7 @@ def network_to_onnx(network, input_px: int, *, opset: int = DEFAULT_OPSET):
 
 def _sample_patches(ckpt: dict, input_px: int, n: int = 32) -> np.ndarray:
     """Real patches for the parity check: the workspace's test (else any) crops; noise if none."""
-    from trainkit.labels.workspace import Workspace, WorkspaceError
+    from trainkit.store.workspace import Workspace, WorkspaceError
 
     try:
         ws = Workspace.open(ckpt["experiment"]["workspace"])
@@ -123,7 +124,7 @@ def export_experiment(
 
     With ``cascade=True`` and a first stage in the checkpoint whose evaluation passed the
     cascade gate, the file is the one-graph cascade (contract 3); otherwise the main network
-    alone. Opt-in because of :data:`~trainkit.judging.cascade_graph.CASCADE_WARNING_CAVEAT`.
+    alone. Opt-in because of :data:`~trainkit.core.caution.CASCADE_WARNING_CAVEAT`.
 
     Raises:
         ExportError: the checker or the parity check failed.
@@ -246,7 +247,7 @@ def _write_checked(
     PyTorch) and only then put it at ``target``; returns (metadata, check figures).
 
     With ``cascade`` (from :func:`_cascade_plan`) ``graph`` is the main network and the file
-    is the one-graph cascade of :mod:`trainkit.judging.cascade_graph` (contract 3)."""
+    is the one-graph cascade of :mod:`trainkit.export.cascade_graph` (contract 3)."""
     import dataclasses
 
     import onnx
@@ -262,7 +263,7 @@ def _write_checked(
         test_metrics=cascade["headline"] if cascade else info.test_metrics,
     )
     if cascade:
-        from trainkit.judging.cascade_graph import cascade_to_onnx
+        from trainkit.export.cascade_graph import cascade_to_onnx
 
         px, threshold = info.patch_px, cascade["meta"]["pass_threshold"]
         first = network_to_onnx(cascade["stage1"], px, opset=opset)
@@ -296,7 +297,7 @@ class _FamiliarityMismatch(ExportError):
 
 
 def _cascade_parity(main, cascade: dict, path: Path, images: np.ndarray, main_proto):
-    from trainkit.judging.cascade_graph import check_cascade_parity
+    from trainkit.export.cascade_graph import check_cascade_parity
 
     try:
         return check_cascade_parity(main, cascade, path, images, PARITY_ATOL, main_proto)
@@ -351,10 +352,10 @@ def _graph_with_familiarity(
     ``head`` is the dotted name of ``model``'s classification head (the main network's, or
     the cascade's first stage, whose familiarity then covers every cell); ``stages`` names its
     stage ends for the feature ensemble (None: found by the generic rule of fit_graph)."""
-    from trainkit.judging.familiarity_graph import fit_graph
-    from trainkit.labels.workspace import Workspace, WorkspaceError
+    from trainkit.export.familiarity_graph import fit_graph
     from trainkit.learning.adapt import load_subset
     from trainkit.learning.data import load_patch_set
+    from trainkit.store.workspace import Workspace, WorkspaceError
 
     try:
         ws = Workspace.open(ckpt["experiment"]["workspace"])

@@ -13,7 +13,7 @@ Layout of the graph (contract ``trainkit-screener-3``, :mod:`trainkit.core.contr
 4. outputs ``probabilities`` (N, C), ``familiarity`` (N,) from the first stage and
    ``reached`` (N,) bool = ``passed``.
 
-The two networks are exported separately (``trainkit.judging.export.network_to_onnx``) and
+The two networks are exported separately (``trainkit.export.onnx_file.network_to_onnx``) and
 then joined here with onnx.helper; :func:`run_cascade_torch` is the same computation in
 PyTorch, for the export's parity check and the tests.
 """
@@ -25,7 +25,6 @@ import numpy as np
 from trainkit.core.contract import FAMILIARITY_NAME, INPUT_NAME, OUTPUT_NAME, REACHED_NAME
 
 __all__ = [
-    "CASCADE_WARNING_CAVEAT",
     "clean_vector",
     "cascade_to_onnx",
     "run_cascade_torch",
@@ -33,14 +32,6 @@ __all__ = [
     "cascade_plan",
     "check_cascade_parity",
 ]
-
-
-#: Why the cascade is exported only when asked, said wherever one is written or declined.
-CASCADE_WARNING_CAVEAT = (
-    "a cascade's unfamiliar-surface warning comes from its first stage, which was measured "
-    "nearly blind to a new surface (benchmarks/cascade.py: 0 of 20 frames of a reserved "
-    "surface warned, against 20 of 20 with the main network alone)"
-)
 
 
 def clean_vector(num_classes: int) -> np.ndarray:
@@ -55,7 +46,7 @@ def run_cascade_torch(stage1, main, images: np.ndarray, pass_threshold: float, b
 
     Args:
         stage1: uint8 patches -> (softmax (N, 2), familiarity (N,)), e.g. a
-            :class:`~trainkit.judging.familiarity_graph.ScreenerGraph`.
+            :class:`~trainkit.export.familiarity_graph.ScreenerGraph`.
         main: uint8 patches -> logits (N, C) (Preprocess + backbone).
         images: uint8 (N, S, S, 3).
         pass_threshold: first-stage ``1 - P(none)`` at or above which the main network runs.
@@ -201,7 +192,7 @@ def cascade_plan(ckpt: dict, metrics: dict | None, class_set, input_px: int, fit
         ckpt: the checkpoint (its ``cascade`` record).
         metrics: ``evaluation/metrics.json`` or None.
         fit: ``fit(network, head_name) -> (graph, familiarity or None)``; the export's one
-            call of :func:`trainkit.judging.familiarity_graph.fit_graph`.
+            call of :func:`trainkit.export.familiarity_graph.fit_graph`.
 
     Returns:
         (``{"stage1", "familiarity", "meta", "headline"}``, None) or (None, reason or None
