@@ -9,12 +9,13 @@ import math
 import numpy as np
 import pytest
 
+from trainkit import metrics as M
 from trainkit.jobs.design import draw_sample
 from trainkit.jobs.estimate import (
     EstimateError,
     design_weights,
     estimate_job,
-    threshold_for_recall,
+    job_threshold_summary,
 )
 
 COCHRAN5 = "Cochran (1977), Sampling Techniques, 3rd ed., ch. 5 (stratified random sampling)"
@@ -154,7 +155,7 @@ def test_unresolved_cells_are_counted_not_dropped_and_errors_name_the_value():
         estimate_job(STRATA_HAND, ANSWERS_HAND, N_HAND, method="normal")
 
 
-def test_threshold_for_recall_matches_replicated_cells():
+def test_job_threshold_summary_matches_replicated_cells():
     # Horvitz-Thompson: a cell of weight w counts as w cells. With integer weights the
     # weighted answer equals the unweighted brute force on the cells replicated w times.
     rng = np.random.default_rng(4)
@@ -163,13 +164,35 @@ def test_threshold_for_recall_matches_replicated_cells():
     w = rng.integers(1, 6, size=60).astype(float)
     rep_p, rep_y = np.repeat(p, w.astype(int)), np.repeat(y, w.astype(int))
     for target in (0.5, 0.8, 0.95, 1.0):
-        out = threshold_for_recall(p, y, w, target_recall=target)
+        out = job_threshold_summary(p, y, w, target_recall=target)
         # Brute force: the largest crack probability t with recall(t) >= target.
         ok = [t for t in rep_p[rep_y] if (rep_p[rep_y] >= t).mean() >= target]
         assert out["threshold"] == max(ok)
         t = out["threshold"]
         assert out["false_alarm_rate"] == pytest.approx((rep_p[~rep_y] >= t).mean())
         assert out["flagged_share"] == pytest.approx((rep_p >= t).mean())
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_job_threshold_is_the_metrics_weighted_threshold_and_a_brute_force_sweep(seed):
+    # One estimator, one home: the job's threshold is metrics.weighted_thresholds, and both
+    # equal a brute-force sweep over every crack probability of the Horvitz-Thompson
+    # weighted recall (Cochran 1977, ch. 5: weight = 1 / inclusion probability).
+    rng = np.random.default_rng(seed)
+    m = int(rng.integers(5, 90))
+    p = rng.uniform(size=m)
+    if seed % 2:
+        p = np.round(p, 1)  # ties
+    y = rng.random(m) < p
+    y[0] = True
+    w = rng.uniform(0.5, 40.0, size=m)
+    for target in (0.3, 0.5, 0.8, 0.9, 0.95, 1.0, float(rng.uniform(0.01, 1.0))):
+        out = job_threshold_summary(p, y, w, target_recall=target)
+        assert out["threshold"] == M.weighted_thresholds(y, p, w, target_recall=target)
+        recall_at = {t: w[y & (p >= t)].sum() / w[y].sum() for t in p[y]}
+        ok = [t for t, r in recall_at.items() if r >= target * (1 - 1e-12)]
+        assert out["threshold"] == max(ok)
+        assert out["recall"] == pytest.approx(recall_at[out["threshold"]])
 
 
 def test_design_weights_are_inverse_inclusion_probabilities():

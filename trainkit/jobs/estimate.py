@@ -43,19 +43,20 @@ from scipy import stats
 from trainkit.core.errors import TrainkitError
 from trainkit.jobs.design import STRATA
 from trainkit.jobs.intervals import FLAGGED, korn_graubard, simulated_intervals
+from trainkit.metrics import weighted_thresholds
 
 __all__ = [
-    "INTERVAL_METHODS",
+    "JOB_INTERVAL_METHODS",
     "EstimateError",
     "Figure",
     "JobEstimate",
     "design_weights",
     "estimate_job",
+    "job_threshold_summary",
     "stratum_counts",
-    "threshold_for_recall",
 ]
 
-INTERVAL_METHODS: tuple[str, ...] = (
+JOB_INTERVAL_METHODS: tuple[str, ...] = (
     "pooled-beta-binomial",
     "beta-binomial",
     "jeffreys",
@@ -261,7 +262,7 @@ def estimate_job(
         population: stratum sizes N_h (``STRATA`` order, or a name -> size mapping).
         unresolved_strata: stratum of each sampled cell answered unsure or not at all.
         confidence: two-sided level in (0, 1).
-        method: one of ``INTERVAL_METHODS`` (see the module docstring).
+        method: one of ``JOB_INTERVAL_METHODS`` (see the module docstring).
         draws: Monte Carlo draws of the beta-binomial method (>= 1000).
         prior: the beta prior's two hyperparameters (0.5: Jeffreys).
         seed: seed of the Monte Carlo draws (same inputs and seed, same interval).
@@ -272,9 +273,9 @@ def estimate_job(
     Raises:
         EstimateError: on an unknown method, bad options, or answers no estimate can use.
     """
-    if method not in INTERVAL_METHODS:
+    if method not in JOB_INTERVAL_METHODS:
         raise EstimateError(
-            f"unknown interval method {method!r}; choose one of: {', '.join(INTERVAL_METHODS)}"
+            f"unknown interval method {method!r}; choose one of: {', '.join(JOB_INTERVAL_METHODS)}"
         )
     if not isinstance(confidence, (int, float)) or not 0.0 < float(confidence) < 1.0:
         raise EstimateError(f"expected confidence in (0, 1), got {confidence!r}")
@@ -360,7 +361,7 @@ def design_weights(
     return (big / np.maximum(n, 1))[codes].astype(np.float64)
 
 
-def threshold_for_recall(
+def job_threshold_summary(
     probabilities: ArrayLike,
     answers: ArrayLike,
     weights: ArrayLike,
@@ -368,12 +369,12 @@ def threshold_for_recall(
     target_recall: float,
     census_probabilities: ArrayLike | None = None,
 ) -> dict[str, Any]:
-    """The highest threshold whose estimated recall on this job reaches the target.
+    """The highest threshold whose estimated recall on this job reaches the target, with
+    the figures a person weighs it by.
 
-    Recall at t is estimated as the design-weighted share of answered crack cells with
-    ``p >= t`` (Horvitz-Thompson totals, weights 1 / inclusion probability); the answer is
-    a crack cell's probability, the m-th highest with cumulative weight reaching the
-    target. The false-alarm rate at t is the weighted share of answered clean cells with
+    The threshold itself is :func:`trainkit.metrics.weighted_thresholds` (recall at t is
+    the design-weighted share of answered crack cells with ``p >= t``, Horvitz-Thompson
+    totals, weights 1 / inclusion probability). The false-alarm rate at t is the weighted share of answered clean cells with
     ``p >= t``; the flagged share is exact when the census of all cells' probabilities is
     given, else weighted. The threshold is chosen on these same cells, so its recall is an
     optimistic point estimate: check it again on cells it was not chosen on.
@@ -405,11 +406,9 @@ def threshold_for_recall(
         raise EstimateError("no answered crack cell: a recall threshold needs at least one")
     if np.any(w <= 0) or not np.all(np.isfinite(w)):
         raise EstimateError("expected positive finite design weights")
+    t = weighted_thresholds(y, p, w, target_recall=float(target_recall))
     order = np.argsort(-p[y], kind="stable")
     crack_p, crack_w = p[y][order], w[y][order]
-    cum = np.cumsum(crack_w) / crack_w.sum()
-    m = int(np.searchsorted(cum, float(target_recall) - 1e-12))
-    t = float(crack_p[min(m, crack_p.size - 1)])
     clean_w = w[~y].sum()
     fa = float(w[~y & (p >= t)].sum() / clean_w) if clean_w > 0 else math.nan
     if census_probabilities is not None:

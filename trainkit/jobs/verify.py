@@ -32,7 +32,12 @@ from trainkit.core.errors import TrainkitError
 from trainkit.core.fsutil import atomic_write_json, atomic_write_text
 from trainkit.core.jsonsafe import json_ready
 from trainkit.jobs.design import STRATA
-from trainkit.jobs.estimate import EstimateError, design_weights, estimate_job, threshold_for_recall
+from trainkit.jobs.estimate import (
+    EstimateError,
+    design_weights,
+    estimate_job,
+    job_threshold_summary,
+)
 from trainkit.jobs.files import VERIFICATION_FILE, VERIFICATION_REPORT, JobFiles
 from trainkit.jobs.sample import check_job_name, learned_frames, read_scan_cells, scan_model
 from trainkit.store.workspace import Workspace
@@ -302,7 +307,7 @@ def _suggested_threshold(
     sizes = np.array([population.get(s, 0) for s in STRATA])
     weights = design_weights([c["stratum"] for c in answered], sizes)
     census = read_scan_cells(scan_dir).probabilities
-    return threshold_for_recall(
+    return job_threshold_summary(
         np.array([c["screening_probability"] for c in answered]),
         np.array([c["label"] != "none" for c in answered], dtype=bool),
         weights,
