@@ -280,3 +280,25 @@ def test_nan_and_infinity_are_refused_at_the_option(tmp_path, capsys, args):
     assert main([swap.get(a, a) for a in args]) == 2
     (line,) = capsys.readouterr().err.splitlines()
     assert "is not a finite number" in line and line.startswith("trainkit: invalid value for")
+
+
+@pytest.mark.parametrize("module", ["trainkit.cli.synth", "trainkit.cli.tile"])
+def test_tile_px_defaults_follow_the_default_recipe(monkeypatch, module):
+    # synth and tile cut the grid the default recipe trains on: their --tile-px default is
+    # read from the recipe, so a recipe with another patch size moves both.
+    import importlib
+
+    import click
+
+    from trainkit.learning import config
+
+    mod = importlib.import_module(module)
+    monkeypatch.setattr(config, "recipe_patch_px", lambda name="default": 96)
+    try:
+        fresh = importlib.reload(mod)
+        command = next(c for c in vars(fresh).values() if isinstance(c, click.Command))
+        (opt,) = [p for p in command.params if p.name == "tile_px"]
+        assert opt.default == 96
+    finally:
+        monkeypatch.undo()
+        importlib.reload(mod)

@@ -8,6 +8,7 @@ import click
 
 from trainkit.cli.options import classes_option, parse_size, seed_option, tile_px_option
 from trainkit.cli.output import Ctx, progress_bar, user_errors
+from trainkit.learning.config import recipe_patch_px
 
 __all__ = ["synth"]
 
@@ -26,7 +27,10 @@ __all__ = ["synth"]
 @click.option(
     "--size", default="768x512", show_default=True, help="Photo size WIDTHxHEIGHT in pixels."
 )
-@tile_px_option("Patch size of the labels.csv grid, pixels.", default=128)
+@tile_px_option(
+    "Patch size of the labels.csv grid, pixels (default: the default recipe's patch_px).",
+    default=recipe_patch_px("default"),
+)
 @classes_option("Class set for the labels: orientation, presence or a YAML file.")
 @click.pass_obj
 def synth(
