@@ -159,3 +159,43 @@ def test_exit_codes_are_documented_in_help_and_readme(capsys):
     for code in EXIT_CODES:
         assert re.search(rf"^\s+{code}\s+\S", out, re.M), f"--help lacks exit code {code}"
         assert f"**{code}**" in section, f"README lacks exit code {code}"
+
+
+def test_data_no_metric_can_use_is_one_line_not_a_bug(tmp_path, capsys, monkeypatch):
+    # A validation set of crack patches only, reaching a false-alarm threshold inside a
+    # command: the user's data cause it, so it is a MetricsError (a TrainkitError), one line.
+    from trainkit import metrics as M
+
+    def evaluate_on_cracks_only(*args, **kwargs):
+        M.threshold_for_false_alarms([1, 1, 1], [0.2, 0.6, 0.9], max_false_alarm_rate=0.05)
+
+    exp = tmp_path / "exp"
+    exp.mkdir()
+    monkeypatch.setattr("trainkit.judging.evaluation.evaluate_experiment", evaluate_on_cracks_only)
+    assert main(["evaluate", str(exp)]) == EXIT_USAGE
+    err = capsys.readouterr().err
+    assert len(err.splitlines()) == 1 and "at least one non-crack patch" in err
+    assert issubclass(M.MetricsError, TrainkitError)
+    with pytest.raises(M.MetricsError, match="at least one crack patch"):
+        M.threshold_for_recall([0, 0], [0.1, 0.5], target_recall=0.9)
+    with pytest.raises(M.MetricsError, match="at least one crack patch"):
+        M.weighted_thresholds([0, 0], [0.1, 0.5], [1.0, 2.0], target_recall=0.9)
+    with pytest.raises(M.MetricsError, match="at least one sample"):
+        M.expected_calibration_error([], [], n_bins=10)
+
+
+def test_a_job_threshold_skips_data_it_cannot_use_but_not_a_bug():
+    # The job's validation cells hold no crack: the split's threshold stands. Weights of the
+    # wrong length are the kit's own mistake and must not be hidden the same way.
+    import numpy as np
+
+    from trainkit.judging.scoring import Scored, threshold_for_job_too
+
+    logits = np.array([[2.0, 0.0], [1.5, 0.0], [3.0, 0.0]])
+    probs = np.exp(logits) / np.exp(logits).sum(1, keepdims=True)
+    job = Scored(logits=logits, probs=probs, labels=np.array([0, 0, 0]))
+    kept = threshold_for_job_too(0.4, "split", job, np.ones(3), target_recall=0.9)
+    assert kept == (0.4, "split")
+    with pytest.raises(ValueError, match="positive finite weights") as info:
+        threshold_for_job_too(0.4, "split", job, np.ones(2), target_recall=0.9)
+    assert not isinstance(info.value, TrainkitError)

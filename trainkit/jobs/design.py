@@ -68,6 +68,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from trainkit.core.errors import TrainkitError
+from trainkit.metrics._checks import _as_unit_float, _unit_number
 
 __all__ = [
     "STRATA",
@@ -168,27 +169,16 @@ class JobSample:
 
 
 def _check_unit(value: float, name: str, *, open_low: bool = True) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float, np.number)):
-        raise DesignError(f"expected {name} to be a number, got {value!r}")
-    v = float(value)
-    ok = (0.0 < v <= 1.0) if open_low else (0.0 <= v < 1.0)
-    if not np.isfinite(v) or not ok:
-        interval = "(0, 1]" if open_low else "[0, 1)"
-        raise DesignError(f"expected {name} in {interval}, got {value!r}")
-    return v
+    interval = "(0, 1]" if open_low else "[0, 1)"
+    return _unit_number(value, name, interval, error=DesignError, type_error=DesignError)
 
 
 def _check_probabilities(probabilities: ArrayLike) -> np.ndarray:
-    p = np.asarray(probabilities, dtype=np.float64)
-    if p.ndim != 1:
-        raise DesignError(f"expected a 1-D array of screening probabilities, got shape {p.shape}")
+    p = _as_unit_float(
+        probabilities, "screening probabilities", error=DesignError, type_error=DesignError
+    )
     if p.size == 0:
         raise DesignError("expected at least one cell, got an empty probability array")
-    if not np.all(np.isfinite(p)) or p.min() < 0.0 or p.max() > 1.0:
-        raise DesignError(
-            "expected screening probabilities in [0, 1], got values in "
-            f"[{np.nanmin(p):.4g}, {np.nanmax(p):.4g}] or non-finite entries"
-        )
     return p
 
 

@@ -119,7 +119,7 @@ def threshold_for_job_too(
         else:
             t = M.weighted_thresholds(crack, job.screening, weights, target_recall=target_recall)
             chosen = min(threshold, t)
-    except ValueError:  # no clean (or no crack) job cell: the split's rule alone
+    except M.MetricsError:  # no clean (or no crack) job cell: the split's rule alone
         return threshold, source
     which = "higher" if max_false_alarms is not None else "lower"
     return float(chosen), (

@@ -4,7 +4,7 @@ One package, one module per family; every name is re-exported here, so
 ``from trainkit import metrics as M`` and ``M.recall_interval`` keep working.
 """
 
-from trainkit.metrics._checks import INTERVAL_METHODS
+from trainkit.metrics._checks import INTERVAL_METHODS, MetricsError
 from trainkit.metrics.agreement import cohen_kappa, mcnemar_test
 from trainkit.metrics.breakdowns import breakdown, scale_bands
 from trainkit.metrics.calibration import (
@@ -32,6 +32,7 @@ from trainkit.metrics.screening import (
 __all__ = [
     "Interval",
     "INTERVAL_METHODS",
+    "MetricsError",
     "breakdown",
     "cohen_kappa",
     "confusion_matrix",

@@ -11,7 +11,7 @@ from numpy.typing import ArrayLike
 from scipy import stats
 from sklearn import metrics as skm
 
-from trainkit.metrics._checks import _as_bool, _same_length
+from trainkit.metrics._checks import MetricsError, _as_bool, _same_length
 from trainkit.metrics.classification import _confusion
 
 
@@ -83,7 +83,7 @@ def cohen_kappa(a: ArrayLike, b: ArrayLike, *, labels: Sequence[Any]) -> float:
     cm = _confusion(a, b, labels, ("a", "b"))
     n = cm.sum()
     if n == 0:
-        raise ValueError("expected at least one rated sample, got 0")
+        raise MetricsError("expected at least one rated sample, got 0")
     p_chance = float((cm.sum(axis=1) * cm.sum(axis=0)).sum()) / float(n) ** 2
     if p_chance >= 1.0:
         return math.nan

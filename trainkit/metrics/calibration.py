@@ -9,6 +9,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from trainkit.metrics._checks import (
+    MetricsError,
     _as_1d,
     _as_bool,
     _as_unit_float,
@@ -25,7 +26,7 @@ def _bin_stats(
     _same_length(conf, corr, "confidences", "correct")
     nb = _check_n_bins(n_bins)
     if conf.size == 0:
-        raise ValueError("expected at least one sample, got 0")
+        raise MetricsError("expected at least one sample, got 0")
     # Edges i / n_bins (correctly rounded), bins (lo, hi], the first bin also holds 0.
     edges = np.arange(nb + 1) / nb
     idx = np.clip(np.searchsorted(edges, conf, side="left") - 1, 0, nb - 1)

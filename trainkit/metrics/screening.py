@@ -8,19 +8,19 @@ from typing import Any, cast
 import numpy as np
 from numpy.typing import ArrayLike
 
-from trainkit.metrics._checks import _as_bool, _as_unit_float, _ratio, _same_length
+from trainkit.metrics._checks import (
+    MetricsError,
+    _as_bool,
+    _as_unit_float,
+    _ratio,
+    _same_length,
+    _unit_number,
+)
 from trainkit.metrics.classification import confusion_matrix
 
 
 def _check_threshold(threshold: float) -> float:
-    if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)):
-        raise TypeError(
-            f"expected threshold to be a float in [0, 1], got {type(threshold).__name__}"
-        )
-    t = float(threshold)
-    if not 0.0 <= t <= 1.0:
-        raise ValueError(f"expected threshold in [0, 1], got {threshold}")
-    return t
+    return _unit_number(threshold, "threshold", "[0, 1]")
 
 
 def screening_scores(
@@ -86,21 +86,16 @@ def threshold_for_recall(
         The threshold, as a float.
 
     Raises:
-        ValueError: if there are no crack patches, or target_recall is outside (0, 1].
+        MetricsError: if there are no crack patches.
+        ValueError: if target_recall is outside (0, 1].
     """
     y = _as_bool(y_true_crack, "y_true_crack")
     p = _as_unit_float(p_crack, "p_crack")
     _same_length(y, p, "y_true_crack", "p_crack")
-    if isinstance(target_recall, bool) or not isinstance(target_recall, (int, float, np.number)):
-        raise TypeError(
-            f"expected target_recall to be a float in (0, 1], got {type(target_recall).__name__}"
-        )
-    target = float(target_recall)
-    if not 0.0 < target <= 1.0:
-        raise ValueError(f"expected target_recall in (0, 1], got {target_recall}")
+    target = _unit_number(target_recall, "target_recall", "(0, 1]")
     n_pos = int(y.sum())
     if n_pos == 0:
-        raise ValueError(
+        raise MetricsError(
             "expected at least one crack patch (y_true_crack true) to set a recall threshold, "
             f"got 0 of {y.size}"
         )
@@ -132,7 +127,8 @@ def threshold_for_false_alarms(
     :func:`recall_at_false_alarm`. A budget covering every non-crack patch gives 0.0.
 
     Raises:
-        ValueError: without non-crack patches, or a budget outside [0, 1].
+        MetricsError: without non-crack patches.
+        ValueError: on a budget outside [0, 1].
     """
     y = _as_bool(y_true_crack, "y_true_crack")
     p = _as_unit_float(p_crack, "p_crack")
@@ -140,7 +136,7 @@ def threshold_for_false_alarms(
     b = _check_budget(max_false_alarm_rate)
     neg = np.sort(p[~y])[::-1]
     if neg.size == 0:
-        raise ValueError("expected at least one non-crack patch to set a false-alarm threshold")
+        raise MetricsError("expected at least one non-crack patch to set a false-alarm threshold")
     k = math.floor(b * neg.size + 1e-9)
     if k >= neg.size:
         return 0.0
@@ -164,8 +160,8 @@ def weighted_thresholds(
     rate is within it) is given. With equal weights both equal the unweighted functions.
 
     Raises:
-        ValueError: both or neither rule, no patch of the kind the rule needs, or weights
-            that are not positive and finite.
+        MetricsError: no patch of the kind the rule needs.
+        ValueError: both or neither rule, or weights that are not positive and finite.
     """
     y = _as_bool(y_true_crack, "y_true_crack")
     p = _as_unit_float(p_crack, "p_crack")
@@ -179,14 +175,14 @@ def weighted_thresholds(
         if not 0.0 < float(target_recall) <= 1.0:
             raise ValueError(f"expected target_recall in (0, 1], got {target_recall}")
         if not y.any():
-            raise ValueError("expected at least one crack patch to set a recall threshold")
+            raise MetricsError("expected at least one crack patch to set a recall threshold")
         order = np.argsort(-p[y], kind="stable")
         scores, cum = p[y][order], np.cumsum(w[y][order])
         m = int(np.searchsorted(cum, float(target_recall) * cum[-1] * (1 - 1e-12)))
         return float(scores[min(m, scores.size - 1)])
     b = _check_budget(cast(float, max_false_alarm_rate))  # not None: exactly one was given
     if y.all():
-        raise ValueError("expected at least one non-crack patch to set a false-alarm threshold")
+        raise MetricsError("expected at least one non-crack patch to set a false-alarm threshold")
     order = np.argsort(-p[~y], kind="stable")
     scores, cum = p[~y][order], np.cumsum(w[~y][order])
     # k: how many of the highest-scoring non-crack patches fit within the budget.
