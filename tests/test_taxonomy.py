@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 
+from trainkit.core.errors import TrainkitError
 from trainkit.core.taxonomy import (
     D4_ELEMENTS,
     ClassSet,
@@ -126,3 +129,50 @@ def test_load_errors(tmp_path):
         load_class_set(p)
     with pytest.raises(ValueError, match="unknown class 'cracks'; choose one of: none, crack"):
         load_class_set("presence").index("cracks")
+
+
+@pytest.mark.parametrize(
+    ("load", "kind", "builtins"),
+    [
+        ("trainkit.core.taxonomy:load_class_set", "class set", "orientation, presence"),
+        (
+            "trainkit.learning.config:load_train_config",
+            "recipe",
+            "default, demo, scratch, presence, frozen",
+        ),
+    ],
+)
+def test_class_sets_and_recipes_load_through_one_helper(tmp_path, load, kind, builtins):
+    # One reader for "a built-in name or a YAML file": the same wording for both kinds.
+    import importlib
+
+    module, name = load.split(":")
+    loader = getattr(importlib.import_module(module), name)
+    with pytest.raises(TrainkitError) as info:
+        loader("nope")
+    assert str(info.value) == f"{kind} 'nope' is neither a built-in {kind} ({builtins}) nor a file"
+    missing = tmp_path / "missing.yaml"
+    with pytest.raises(TrainkitError, match=f"{kind} '{re.escape(str(missing))}' is neither"):
+        loader(missing)
+    # A Python tag is never run by yaml.safe_load (PyYAML docs: safe_load builds plain
+    # Python objects only); the file is refused as invalid YAML.
+    tagged = tmp_path / "tagged.yaml"
+    tagged.write_text("patch_px: !!python/object/apply:os.getcwd []\n", encoding="utf-8")
+    with pytest.raises(TrainkitError, match=r"tagged.yaml: not valid YAML \(could not determine"):
+        loader(tagged)
+    latin = tmp_path / "latin.yaml"
+    latin.write_bytes(b"name: caf\xe9\n")
+    with pytest.raises(TrainkitError, match=r"latin.yaml: not UTF-8 text \(byte 9\)"):
+        loader(latin)
+
+
+def test_the_core_taxonomy_imports_yaml_only_when_a_file_is_read():
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, trainkit.core.taxonomy as t; a = 'yaml' in sys.modules; "
+        "t.load_class_set('presence'); print(a, 'yaml' in sys.modules)"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.split() == ["False", "True"]

@@ -16,14 +16,13 @@ screen (``numpy.rot90(img, k)``), then mirror left-right if ``flip``
 from __future__ import annotations
 
 from dataclasses import dataclass
-from importlib import resources
 from pathlib import Path
 from typing import cast, overload
 
 import numpy as np
-import yaml
 
 from trainkit.core.errors import TrainkitError
+from trainkit.core.yamlfile import read_named_yaml
 
 __all__ = [
     "ClassSet",
@@ -255,31 +254,14 @@ def _class_set_from_mapping(data: dict, source: str) -> ClassSet:
 
 def load_class_set(name_or_path: str | Path = "orientation") -> ClassSet:
     """Load a built-in class set by name or a user's YAML file by path."""
-    text: str
-    source = str(name_or_path)
-    if str(name_or_path) in BUILTIN_CLASS_SETS:
-        text = (
-            resources.files("trainkit")
-            .joinpath("configs", "classes", f"{name_or_path}.yaml")
-            .read_text(encoding="utf-8")
-        )
-    else:
-        p = Path(name_or_path)
-        if not p.is_file():
-            raise ClassSetError(
-                f"class set {source!r} is neither a built-in ({', '.join(BUILTIN_CLASS_SETS)}) nor a file"
-            )
-        try:
-            text = p.read_text(encoding="utf-8")
-        except UnicodeDecodeError as exc:
-            raise ClassSetError(
-                f"{source}: not UTF-8 text (byte {exc.start}); save it as UTF-8"
-            ) from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        raise ClassSetError(f"{source}: not valid YAML ({exc})") from None
-    return _class_set_from_mapping(data, source)
+    data = read_named_yaml(
+        name_or_path,
+        builtins=BUILTIN_CLASS_SETS,
+        folder="classes",
+        kind="class set",
+        error=ClassSetError,
+    )
+    return _class_set_from_mapping(data, str(name_or_path))
 
 
 def class_set_from_dict(data: dict) -> ClassSet:

@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-from importlib import resources
 from pathlib import Path
-from typing import Literal
+from typing import Literal, cast
 
-import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from trainkit.core.errors import TrainkitError
+from trainkit.core.yamlfile import read_named_yaml
 
 __all__ = [
     "AugmentConfig",
@@ -142,9 +141,9 @@ def _format_errors(exc: ValidationError, source: str) -> str:
     return "\n".join(lines)
 
 
-def _builtin_text(name: str) -> str:
-    return (
-        resources.files("trainkit").joinpath("configs", "train", f"{name}.yaml").read_text("utf-8")
+def _read_recipe(name_or_path: str | Path) -> object:
+    return read_named_yaml(
+        name_or_path, builtins=BUILTIN_RECIPES, folder="train", kind="recipe", error=ConfigError
     )
 
 
@@ -154,7 +153,7 @@ def recipe_patch_px(name: str = "default") -> int:
     Reading the one key keeps ``trainkit --help`` from importing torch, which building the
     recipe does (its backbone name is checked against the registry).
     """
-    return int(yaml.safe_load(_builtin_text(name))["patch_px"])
+    return int(cast(dict, _read_recipe(name))["patch_px"])
 
 
 def load_train_config(
@@ -162,24 +161,7 @@ def load_train_config(
 ) -> TrainConfig:
     """Load a built-in recipe by name or a YAML file by path, then apply overrides."""
     source = str(name_or_path)
-    if source in BUILTIN_RECIPES:
-        text = _builtin_text(source)
-    else:
-        p = Path(name_or_path)
-        if not p.is_file():
-            raise ConfigError(
-                f"config {source!r} is neither a built-in recipe ({', '.join(BUILTIN_RECIPES)}) nor a file"
-            )
-        try:
-            text = p.read_text(encoding="utf-8")
-        except UnicodeDecodeError as exc:
-            raise ConfigError(
-                f"{source}: not UTF-8 text (byte {exc.start}); save it as UTF-8"
-            ) from None
-    try:
-        data = yaml.safe_load(text) or {}
-    except yaml.YAMLError as exc:
-        raise ConfigError(f"{source}: not valid YAML ({exc})") from None
+    data = _read_recipe(name_or_path) or {}
     if not isinstance(data, dict):
         raise ConfigError(f"{source}: expected a mapping of settings, got {type(data).__name__}")
     for k, v in (overrides or {}).items():
