@@ -53,9 +53,7 @@ def build_workspace(out: Path, n_photos: int, seed: int):
     from trainkit.core.taxonomy import load_class_set
     from trainkit.demo import TINY_DATASET, tiny_dataset_dir
     from trainkit.intake.sidecar import read_sidecar
-    from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.labels.labels_io import import_csv
-    from trainkit.labels.splits import split_workspace
+    from trainkit.labels.build import build_workspace as build
     from trainkit.store.workspace import Workspace
     from trainkit.synth import SynthOptions, write_dataset
 
@@ -74,17 +72,18 @@ def build_workspace(out: Path, n_photos: int, seed: int):
     )
     extra = out / "synth-extra"
     _renamed_copy(raw, extra, "x-")
-    ws = Workspace.create(ws_dir, class_set=cs, tile_px=TINY_DATASET["tile_px"])
-    for data in (tiny_dataset_dir(), extra):
-        tile_into_workspace(
-            list_images([data / "photos"]),
-            ws,
-            sidecar=read_sidecar(data / "scale.csv"),
-            group_by="photo",
-        )
-        import_csv(ws, data / "labels.csv", reviewer="synth-ground-truth")
-    split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0)
-    return ws
+    sources = (tiny_dataset_dir(), extra)
+    return build(
+        [f for data in sources for f in list_images([data / "photos"])],
+        ws_dir,
+        class_set=cs,
+        tile_px=TINY_DATASET["tile_px"],
+        sidecar={k: v for data in sources for k, v in read_sidecar(data / "scale.csv").items()},
+        group_by="photo",
+        labels_csv=[data / "labels.csv" for data in sources],
+        reviewer="synth-ground-truth",
+        split={"test_fraction": 0.2, "val_fraction": 0.15, "seed": 0},
+    ).workspace
 
 
 def _wilson(k: int, n: int) -> list[float]:

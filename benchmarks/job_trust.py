@@ -160,10 +160,7 @@ def build_workspace(out: Path, n_photos: int, seed: int, tile_px: int = 128):
     from trainkit.core.decode import list_images
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.sidecar import read_sidecar
-    from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.labels.labels_io import import_csv
-    from trainkit.labels.splits import split_workspace
-    from trainkit.store.workspace import Workspace
+    from trainkit.labels.build import build_workspace as build
     from trainkit.synth import SynthOptions, write_dataset
 
     cs = load_class_set("orientation")
@@ -172,14 +169,12 @@ def build_workspace(out: Path, n_photos: int, seed: int, tile_px: int = 128):
         raw, n_photos=n_photos, seed=seed, tile_px=tile_px,
         options=SynthOptions(height=512, width=768), class_set=cs,
     )  # fmt: skip
-    ws = Workspace.create(out / "workspace", class_set=cs, tile_px=tile_px)
-    tile_into_workspace(
-        list_images([raw / "photos"]), ws, sidecar=read_sidecar(raw / "scale.csv"),
-        group_by="photo",
-    )  # fmt: skip
-    import_csv(ws, raw / "labels.csv", reviewer="synth-ground-truth")
-    split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0)
-    return ws
+    return build(
+        list_images([raw / "photos"]), out / "workspace", class_set=cs, tile_px=tile_px,
+        sidecar=read_sidecar(raw / "scale.csv"), group_by="photo",
+        labels_csv=raw / "labels.csv", reviewer="synth-ground-truth",
+        split={"test_fraction": 0.2, "val_fraction": 0.15, "seed": 0},
+    ).workspace  # fmt: skip
 
 
 def fit_epochs(ws, recipe: str, minutes: float) -> tuple[int, float]:

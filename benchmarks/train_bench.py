@@ -67,10 +67,7 @@ def build_workspace(root: Path, *, n_photos: int, tile_px: int = 224):
     """A labelled, split workspace of synthetic photos of 3 x 2 tiles, made as the demo makes one."""
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.sidecar import read_sidecar
-    from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.labels.labels_io import import_csv
-    from trainkit.labels.splits import split_workspace
-    from trainkit.store.workspace import Workspace
+    from trainkit.labels.build import build_workspace as build
     from trainkit.synth import SynthOptions, write_dataset
 
     class_set = load_class_set("orientation")
@@ -83,12 +80,17 @@ def build_workspace(root: Path, *, n_photos: int, tile_px: int = 224):
         options=SynthOptions(height=2 * tile_px, width=3 * tile_px),
         class_set=class_set,
     )
-    ws = Workspace.create(root / "workspace", class_set=class_set, tile_px=tile_px)
-    photos = sorted((data / "photos").glob("*.jpg"))
-    tile_into_workspace(photos, ws, sidecar=read_sidecar(data / "scale.csv"), group_by="photo")
-    import_csv(ws, data / "labels.csv", reviewer="synth-ground-truth")
-    split_workspace(ws, test_fraction=0.2, val_fraction=0.15, seed=0)
-    return ws
+    return build(
+        sorted((data / "photos").glob("*.jpg")),
+        root / "workspace",
+        class_set=class_set,
+        tile_px=tile_px,
+        sidecar=read_sidecar(data / "scale.csv"),
+        group_by="photo",
+        labels_csv=data / "labels.csv",
+        reviewer="synth-ground-truth",
+        split={"test_fraction": 0.2, "val_fraction": 0.15, "seed": 0},
+    ).workspace
 
 
 def export_image_folders(

@@ -145,41 +145,8 @@ def _ensure_dataset(progress: DemoProgress, out: Path) -> Path:
     return target
 
 
-def _tile(progress: DemoProgress, data: Path, out: Path, photos: int | None):
-    """Step 1: a workspace of the (first ``photos``) tiny-dataset photos; returns it and the files."""
-    from trainkit.core.decode import list_images
-    from trainkit.core.taxonomy import load_class_set
-    from trainkit.intake.sidecar import read_sidecar
-    from trainkit.intake.tiling import tile_into_workspace
-    from trainkit.store.workspace import Workspace
-
-    files = list_images([data / "photos"])
-    if photos:
-        files = files[:photos]
-    ws = Workspace.create(
-        out / "workspace", class_set=load_class_set("orientation"), tile_px=TINY_DATASET["tile_px"]
-    )
-    with progress.task("tiling photos", len(files)) as bar:
-        tiled = tile_into_workspace(
-            files,
-            ws,
-            sidecar=read_sidecar(data / "scale.csv"),
-            group_by="photo",
-            progress=lambda i, n, name: bar.update(i, n),
-        )
-    progress.line(
-        f"{tiled['photos_added']} photos, {tiled['patches_added']} patches "
-        f"({tiled['patches_flagged']} with quality flags)"
-    )
-    return ws, files
-
-
-def _load_labels(
-    progress: DemoProgress, ws, data: Path, out: Path, files: list[Path], subset: bool
-) -> None:
-    """Step 2: import the shipped labels of the photos in use (``subset``: not all), once."""
-    from trainkit.labels.labels_io import import_csv
-
+def _labels_of(data: Path, out: Path, files: list[Path], subset: bool) -> Path:
+    """The shipped labels file, or (``subset``: not all photos) a copy of its rows in use."""
     labels_csv = data / "labels.csv"
     if subset:  # keep only the rows of the photos in use
         keep = {f.name for f in files}
@@ -189,14 +156,71 @@ def _load_labels(
             labels_csv,
             "\n".join([lines[0], *[ln for ln in lines[1:] if ln.split(",")[0] in keep]]) + "\n",
         )
-    if any(r.labelled for r in ws.patches()):
-        progress.line("labels already loaded (resumed demo)")
-        return
-    res = import_csv(ws, labels_csv, reviewer="synth-ground-truth")
-    progress.line(
-        f"{res.added} labels loaded ({res.empty} patches the truth calls ambiguous have no "
-        "label: they stay unlabelled and out of training)"
-    )
+    return labels_csv
+
+
+def _build(progress: DemoProgress, data: Path, out: Path, photos: int | None, next_step):
+    """Steps 1-3: the (first ``photos``) tiny-dataset photos tiled into a workspace, the
+    shipped labels of those photos loaded once, and the split by photo; returns the workspace.
+    """
+    from contextlib import ExitStack
+
+    from trainkit.core.decode import list_images
+    from trainkit.core.taxonomy import load_class_set
+    from trainkit.intake.sidecar import read_sidecar
+    from trainkit.labels.build import BuildProgress, build_workspace
+
+    files = list_images([data / "photos"])
+    if photos:
+        files = files[:photos]
+
+    class Report(BuildProgress):
+        def __init__(self) -> None:
+            self.bars = ExitStack()
+            self.bar: TaskHandle = _SilentTask()
+
+        def stage(self, name: str, total: int | None) -> None:
+            next_step()
+            if name == "tile":
+                self.bar = self.bars.enter_context(progress.task("tiling photos", total))
+
+        def tiling(self, done: int, total: int, photo: str) -> None:
+            self.bar.update(done, total)
+
+        def stage_done(self, name: str, result: Any) -> None:
+            if name == "tile":
+                self.bars.close()
+                progress.line(
+                    f"{result['photos_added']} photos, {result['patches_added']} patches "
+                    f"({result['patches_flagged']} with quality flags)"
+                )
+            elif name == "labels" and not result:
+                progress.line("labels already loaded (resumed demo)")
+            elif name == "labels":
+                progress.line(
+                    f"{result[0].added} labels loaded ({result[0].empty} patches the truth "
+                    "calls ambiguous have no label: they stay unlabelled and out of training)"
+                )
+            elif name == "split":
+                progress.split_done(result)
+
+    report = Report()
+    try:
+        built = build_workspace(
+            files,
+            out / "workspace",
+            class_set=load_class_set("orientation"),
+            tile_px=TINY_DATASET["tile_px"],
+            sidecar=read_sidecar(data / "scale.csv"),
+            group_by="photo",
+            labels_csv=_labels_of(data, out, files, subset=bool(photos)),
+            reviewer="synth-ground-truth",
+            split=DEMO_SPLIT,
+            progress=report,
+        )
+    finally:
+        report.bars.close()
+    return built.workspace
 
 
 def _train(progress: DemoProgress, ws, out: Path, epochs: int | None) -> dict:
@@ -287,7 +311,7 @@ def run_demo(
     """
     from trainkit.export.onnx_file import export_experiment
     from trainkit.judging.evaluation import evaluate_experiment
-    from trainkit.labels.splits import SplitError, split_workspace
+    from trainkit.labels.splits import SplitError
 
     if photos is not None and photos < MIN_PHOTOS:
         raise SplitError(too_few_photos(photos))
@@ -309,12 +333,7 @@ def run_demo(
         n, title = next(steps)
         progress.section(f"{n}/{len(STEPS)} {title}")
 
-    next_step()
-    ws, files = _tile(progress, data, out, photos)
-    next_step()
-    _load_labels(progress, ws, data, out, files, subset=bool(photos))
-    next_step()
-    progress.split_done(split_workspace(ws, **DEMO_SPLIT))
+    ws = _build(progress, data, out, photos, next_step)
     next_step()
     trained = _train(progress, ws, out, epochs)
     next_step()
