@@ -270,6 +270,9 @@ def test_export_says_warned_not_flagged_for_unfamiliar_frames(tmp_path, capsys, 
         ["tile", "PHOTOS", "-w", "WS", "--tile-mm", "inf"],
         ["evaluate", "EXP", "--target-recall", "nan"],
         ["scan", "PHOTOS", "--model", "EXP", "--out", "WS", "--gsd-mm", "nan"],
+        ["scan", "PHOTOS", "--model", "EXP", "--out", "WS", "--max-megapixels", "nan"],
+        ["verify", "PHOTOS", "--workspace", "EXP", "--require-recall", "nan"],
+        ["verify", "PHOTOS", "--workspace", "EXP", "--target-recall", "nan"],
     ],
 )
 def test_nan_and_infinity_are_refused_at_the_option(tmp_path, capsys, args):
