@@ -258,3 +258,29 @@ def test_a_job_check_is_recorded_with_the_model_and_on_its_card(demo_run, tmp_pa
     card = folder.card_path.read_text(encoding="utf-8")
     assert "## Jobs checked" in card and "| scan |" in card
     assert folder.status()["jobs_checked"] == 1
+
+
+def test_verify_refuses_a_model_re_exported_since_the_scan(scanned, tmp_path):
+    """scan.json keeps the model file's SHA-256 (hashlib as the reference); a model file that
+    changed between scan and verify is refused in one line naming both digests and paths."""
+    import hashlib
+
+    out, truth = scanned
+    model = tmp_path / "m.onnx"
+    at_scan = hashlib.sha256(model.read_bytes()).hexdigest()
+    assert json.loads((out / "scan.json").read_text())["model_sha256"] == at_scan
+    ws = new_ws(tmp_path / "w")
+    sample_scan(out, ws, cells=40, seed=2)
+    answer_from_truth(ws, truth)
+    res = verify_scan(out, ws)
+    assert res["model"]["sha256"] == res["model"]["sha256_at_scan"] == at_scan
+    brightness_model(model, threshold=0.4)  # re-exported: other metadata, other bytes
+    now = hashlib.sha256(model.read_bytes()).hexdigest()
+    assert now != at_scan
+    before = ws.verifications(res["job"])
+    with pytest.raises(VerifyError) as info:
+        verify_scan(out, ws)
+    msg = str(info.value)
+    assert "\n" not in msg
+    assert at_scan in msg and now in msg and str(model) in msg and str(out) in msg
+    assert ws.verifications(res["job"]) == before  # nothing recorded for the refused check

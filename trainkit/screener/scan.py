@@ -159,14 +159,29 @@ def _working_folder(out: Path) -> str | None:
     return folder if isinstance(folder, str) else None
 
 
-def _scan_record(model: Path, screener: Screener, working_folder: str) -> dict:
-    """Which model scanned (for the job check that may follow), and the folder that older
-    relative frame paths in frames.jsonl are relative to."""
+def _file_sha256(path: Path) -> str | None:
+    """SHA-256 of a file read in blocks (None when it cannot be read: loading it then says why)."""
+    h = hashlib.sha256()
+    try:
+        with path.open("rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    except OSError:
+        return None
+    return h.hexdigest()
+
+
+def _scan_record(
+    model: Path, screener: Screener, working_folder: str, model_sha256: str | None
+) -> dict:
+    """Which model scanned (its path and file digest, for the job check that may follow),
+    and the folder that older relative frame paths in frames.jsonl are relative to."""
     import datetime as _dt
 
     info = screener.info
     return {
         "model": str(model.resolve()),
+        "model_sha256": model_sha256,
         "contract": info.version,
         "threshold": info.threshold,
         "data_digest": info.data_digest,
@@ -681,6 +696,7 @@ def scan_frames(
         raise PhotoError(f"no image files found in {', '.join(map(str, inputs))}{other}")
     if skipped:
         say(_skipped_line(skipped))
+    model_sha256 = _file_sha256(Path(model))  # the file as loaded, for verify to compare
     screener = Screener(model)  # validates the model before anything is written
     working_folder = _working_folder(out) or os.getcwd()
     with _writing(out):
@@ -756,7 +772,7 @@ def scan_frames(
     counts["frames_file"] = str(frames_path)
     counts["inputs"] = [str(p) for p in inputs]
     counts["notes"] = list(screener.notes)
-    record = _scan_record(Path(model), screener, working_folder)
+    record = _scan_record(Path(model), screener, working_folder, model_sha256)
     with _writing(out / SCAN_FILE):
         atomic_write_text(out / SCAN_FILE, dumps(record, indent=2))
     counts.update(_recorded_counts(frames, latest, written))
