@@ -47,7 +47,7 @@ import math
 import multiprocessing
 import os
 import time
-from collections import Counter, deque
+from collections import deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
@@ -56,12 +56,12 @@ import numpy as np
 
 from trainkit.core.cores import usable_cores
 from trainkit.core.decode import (
-    IMAGE_SUFFIXES,
     PhotoError,
     find_images,
     image_pixels,
     read_rgb_fast,
     read_rgb_reduced,
+    skipped_files_line,
 )
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_text
@@ -695,7 +695,7 @@ def scan_frames(
         )
         raise PhotoError(f"no image files found in {', '.join(map(str, inputs))}{other}")
     if skipped:
-        say(_skipped_line(skipped))
+        say(skipped_files_line(skipped))
     model_sha256 = _file_sha256(Path(model))  # the file as loaded, for verify to compare
     screener = Screener(model)  # validates the model before anything is written
     working_folder = _working_folder(out) or os.getcwd()
@@ -790,12 +790,3 @@ def _find_frames(inputs: list[Path], out: Path, skipped: list[Path]) -> list[Pat
             found.append(a)
     skipped[:] = [q for q in skipped if not _absolute(q).startswith(own + os.sep)]
     return found
-
-
-def _skipped_line(skipped: list[Path]) -> str:
-    by_suffix = Counter(q.suffix.lower() or "(no suffix)" for q in skipped)
-    kinds = ", ".join(f"{n} {s}" for s, n in sorted(by_suffix.items(), key=lambda t: (-t[1], t[0])))
-    return (
-        f"{_plural(len(skipped), 'file')} skipped: not a photo format the kit reads ({kinds}; "
-        f"e.g. {skipped[0]}); it reads {', '.join(IMAGE_SUFFIXES)}"
-    )
