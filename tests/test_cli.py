@@ -270,6 +270,9 @@ def test_export_says_warned_not_flagged_for_unfamiliar_frames(tmp_path, capsys, 
         ["tile", "PHOTOS", "-w", "WS", "--tile-mm", "inf"],
         ["evaluate", "EXP", "--target-recall", "nan"],
         ["scan", "PHOTOS", "--model", "EXP", "--out", "WS", "--gsd-mm", "nan"],
+        ["scan", "PHOTOS", "--model", "EXP", "--out", "WS", "--max-megapixels", "nan"],
+        ["verify", "PHOTOS", "--workspace", "EXP", "--require-recall", "nan"],
+        ["verify", "PHOTOS", "--workspace", "EXP", "--target-recall", "nan"],
     ],
 )
 def test_nan_and_infinity_are_refused_at_the_option(tmp_path, capsys, args):
@@ -302,3 +305,20 @@ def test_tile_px_defaults_follow_the_default_recipe(monkeypatch, module):
     finally:
         monkeypatch.undo()
         importlib.reload(mod)
+
+
+def test_tile_names_skipped_files_and_notes_multi_page_photos(tmp_path, capsys):
+    """As scan does: other files in a folder are counted by suffix with an example, and a
+    multi-page TIFF says that only its first page is tiled."""
+    photos = _photos(tmp_path / "photos", n=1)
+    (photos / "notes.txt").write_text("site notes")
+    (photos / "readme.txt").write_text("x")
+    Image.new("RGB", (40, 40)).save(photos / "anim.gif")
+    pages = [Image.new("RGB", (100, 150), (v, v, v)) for v in (50, 100, 150)]
+    pages[0].save(photos / "multi.tif", save_all=True, append_images=pages[1:])
+    assert main(["-q", "tile", str(photos), "-w", str(tmp_path / "ws"), "--tile-px", "64"]) == 0
+    err = capsys.readouterr().err.splitlines()
+    (skip,) = [line for line in err if "skipped: not a photo format" in line]
+    assert skip.startswith("trainkit: 3 files skipped") and "2 .txt, 1 .gif" in skip
+    assert "e.g. " in skip
+    assert "trainkit: photo multi.tif has 3 pages; only page 1 is used" in err

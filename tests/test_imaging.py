@@ -275,3 +275,50 @@ def test_find_images_reports_the_files_it_skips(tmp_path):
     found = find_images([tmp_path], skipped=skipped)
     assert [p.name for p, _ in found] == ["a.jpg"]
     assert sorted(p.name for p in skipped) == ["b.gif", "c.GIF", "notes.txt"]  # not hidden ones
+
+
+def _png_header(width: int, height: int) -> bytes:
+    """A PNG claiming width x height pixels in a few bytes (PNG spec: IHDR, then IDAT)."""
+    import struct
+    import zlib
+
+    def chunk(kind, data):
+        return (
+            struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data))
+        )
+
+    ihdr = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)
+    return b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", ihdr) + chunk(b"IDAT", zlib.compress(b"\0" * 99))
+
+
+def test_a_bomb_names_only_the_limit_that_applied_even_from_many_threads(tmp_path):
+    """tile decodes in threads: each refusal names the kit's limit alone, never Pillow's own
+    (178956970 pixels, twice its MAX_IMAGE_PIXELS default), and Pillow warns about nothing."""
+    import sys
+    import warnings
+    from concurrent.futures import ThreadPoolExecutor
+
+    p = tmp_path / "bomb.png"
+    p.write_bytes(_png_header(20000, 20000))
+
+    def refusal(_):
+        try:
+            read_rgb(p, max_pixels=250_000_000)
+        except PhotoError as exc:
+            return str(exc)
+        return "no error"
+
+    switch = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)  # threads interleave often, as under real decoding load
+    try:
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            with ThreadPoolExecutor(8) as pool:
+                messages = set(pool.map(refusal, range(400)))
+    finally:
+        sys.setswitchinterval(switch)
+    assert messages == {
+        "photo bomb.png is larger than the limit of 250000000 pixels (20000 x 20000 pixels); "
+        "raise the limit if the file is trusted"
+    }
+    assert not [w for w in seen if issubclass(w.category, Image.DecompressionBombWarning)]

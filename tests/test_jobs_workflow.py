@@ -258,3 +258,62 @@ def test_a_job_check_is_recorded_with_the_model_and_on_its_card(demo_run, tmp_pa
     card = folder.card_path.read_text(encoding="utf-8")
     assert "## Jobs checked" in card and "| scan |" in card
     assert folder.status()["jobs_checked"] == 1
+
+
+def test_verify_refuses_a_model_re_exported_since_the_scan(scanned, tmp_path):
+    """scan.json keeps the model file's SHA-256 (hashlib as the reference); a model file that
+    changed between scan and verify is refused in one line naming both digests and paths."""
+    import hashlib
+
+    out, truth = scanned
+    model = tmp_path / "m.onnx"
+    at_scan = hashlib.sha256(model.read_bytes()).hexdigest()
+    assert json.loads((out / "scan.json").read_text())["model_sha256"] == at_scan
+    ws = new_ws(tmp_path / "w")
+    sample_scan(out, ws, cells=40, seed=2)
+    answer_from_truth(ws, truth)
+    res = verify_scan(out, ws)
+    assert res["model"]["sha256"] == res["model"]["sha256_at_scan"] == at_scan
+    brightness_model(model, threshold=0.4)  # re-exported: other metadata, other bytes
+    now = hashlib.sha256(model.read_bytes()).hexdigest()
+    assert now != at_scan
+    before = ws.verifications(res["job"])
+    with pytest.raises(VerifyError) as info:
+        verify_scan(out, ws)
+    msg = str(info.value)
+    assert "\n" not in msg
+    assert at_scan in msg and now in msg and str(model) in msg and str(out) in msg
+    assert ws.verifications(res["job"]) == before  # nothing recorded for the refused check
+
+
+def test_sample_resolves_an_older_scans_relative_frames_from_any_folder(
+    scanned, tmp_path, monkeypatch
+):
+    """An older scan recorded frame paths relative to the folder it ran in (kept as
+    scan.json's working_folder): sample finds them through the scan's frame_path rule
+    wherever it runs."""
+    import os
+
+    from trainkit.screener.scan import frame_path
+
+    out, truth = scanned
+    lines = (out / "frames.jsonl").read_text().splitlines()
+    recs = [json.loads(line) for line in lines]
+    for r in recs:  # as an older kit wrote them: relative to the scan's working folder
+        r["frame"] = os.path.relpath(r["frame"], tmp_path)
+        assert not os.path.isabs(r["frame"])
+    (out / "frames.jsonl").write_text("".join(json.dumps(r) + "\n" for r in recs))
+    scan_json = json.loads((out / "scan.json").read_text())
+    (out / "scan.json").write_text(json.dumps({**scan_json, "working_folder": str(tmp_path)}))
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    ws = new_ws(tmp_path / "w")
+    res = sample_scan(out, ws, cells=30, seed=4)
+    frames = {c["frame"] for c in ws.job_cells(res["job"])}
+    assert frames and all(os.path.isabs(f) and Path(f).is_file() for f in frames)
+    assert frames <= {str(frame_path(out, r["frame"])) for r in recs}
+    answer_from_truth(ws, truth)
+    assert verify_scan(out, ws)["cells_answered"] == 30
+    # A later draw for the same job matches the earlier cells through the same rule.
+    assert sample_scan(out, ws, job=res["job"], more=10, seed=5)["cells_in_job"] == 40

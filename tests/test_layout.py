@@ -24,12 +24,8 @@ ROOT = Path(__file__).resolve().parents[1]
 PACKAGE = ROOT / "trainkit"
 
 #: Rooms the torch-free core and screener must never import.
-HEAVY_ROOMS = tuple(
-    f"trainkit.{r}"
-    for r in (
-        "store", "intake", "labels", "learning", "judging", "export", "jobs", "synth", "cli", "demo"
-    )  # fmt: skip
-)
+_TRAINING_SIDE = "store intake labels learning judging export jobs synth cli demo".split()
+HEAVY_ROOMS = tuple(f"trainkit.{r}" for r in _TRAINING_SIDE)
 #: Third-party packages that only the train extra brings.
 HEAVY_PACKAGES = ("torch", "torchvision", "cv2", "sklearn", "scipy")
 

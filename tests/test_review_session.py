@@ -207,12 +207,14 @@ def test_session_killed_between_keystrokes_loses_nothing_finished(tmp_path):
         shown(child, pid + 1, pid, 6 - pid)
     child.kill(signal.SIGKILL)
     child.wait()
+    child.close()  # not left to ptyprocess's __del__ (it sleeps and signals from the collector)
     hist = {r.id: [e["label"] for e in ws.label_history(r.id)] for r in ws.patches()}
     assert hist == {1: ["none"], 2: ["vertical"], 3: ["none"], 4: [], 5: [], 6: []}
     again = spawn(ws, "--reviewer", "ana")
     shown(again, 4, 0, 3)  # resumes with the unlabelled patches only
     again.send("q")
     again.expect(pexpect.EOF)
+    again.close()
 
 
 def _labels_in_queue_order(ws: Workspace) -> list[tuple[int, str | None]]:

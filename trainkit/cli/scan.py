@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from trainkit.cli.options import gsd_mm_option, json_option, workers_option
+from trainkit.cli.options import FiniteFloatRange, gsd_mm_option, json_option, workers_option
 from trainkit.cli.output import Ctx, progress_bar, user_errors, warn
 from trainkit.core.experiment import Experiment
 from trainkit.core.jsonsafe import dumps
@@ -60,7 +60,7 @@ __all__ = ["scan"]
 )
 @click.option(
     "--max-megapixels",
-    type=click.FloatRange(min=1),
+    type=FiniteFloatRange(min=1),
     default=SCAN_MAX_PIXELS / 1e6,
     show_default=True,
     help="Record larger frames as too large (a frame takes up to 7 bytes a pixel while it is "

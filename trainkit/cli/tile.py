@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
 import click
-from PIL import Image
 
 from trainkit.cli.options import (
     FiniteFloatRange,
@@ -133,20 +131,20 @@ def tile(
     --gsd-mm; --distance-m with --focal-mm and --sensor-width-mm; EXIF focal length
     with a distance. Re-running on the same photos adds only what is new.
     """
-    from trainkit.core.decode import find_images
+    from trainkit.core.decode import find_images, skipped_files_line
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.sidecar import read_sidecar
     from trainkit.intake.tiling import tile_into_workspace
     from trainkit.labels.labels_io import import_csv
     from trainkit.store.workspace import Workspace
 
-    # The size limit is --max-megapixels, applied to every photo; Pillow's own warning for
-    # images above its limit (but below twice it) would only add two lines to the one-line skip.
-    warnings.filterwarnings("ignore", category=Image.DecompressionBombWarning)
     with user_errors(ctx):
-        found = find_images(list(photos))
+        others: list[Path] = []
+        found = find_images(list(photos), skipped=others)
         if not found:
             fail(f"no image files found in {', '.join(map(str, photos))}")
+        if others:
+            warn(skipped_files_line(others))
         side = read_sidecar(sidecar) if sidecar else {}
         ws = Workspace.create(ws_dir, class_set=load_class_set(classes), tile_px=settings.tile_px)
         with progress_bar(ctx, "tiling photos", len(found)) as bar:
@@ -166,7 +164,7 @@ def tile(
                 roots={p: r for p, r in found if r is not None},
                 progress=lambda i, n, name: bar.update(i, n),
             )
-        for p in res["problems"]:
+        for p in [*res["problems"], *res["notes"]]:
             warn(p)
         ctx.console.print(_summary(res, settings.skip_flagged, ws.root))
         if import_labels:

@@ -8,7 +8,7 @@ from pathlib import Path
 import click
 
 from trainkit.cli.codes import EXIT_GATE
-from trainkit.cli.options import json_option, scan_argument, workspace_option
+from trainkit.cli.options import FiniteFloatRange, json_option, scan_argument, workspace_option
 from trainkit.cli.output import Ctx, user_errors
 
 __all__ = ["verify"]
@@ -22,13 +22,13 @@ __all__ = ["verify"]
 )
 @click.option(
     "--require-recall",
-    type=click.FloatRange(0.0, 1.0),
+    type=FiniteFloatRange(0.0, 1.0),
     default=None,
     help="Refuse (exit 3) unless the 95% lower bound of the job's recall is at least this.",
 )
 @click.option(
     "--target-recall",
-    type=click.FloatRange(0.0, 1.0, min_open=True),
+    type=FiniteFloatRange(0.0, 1.0, min_open=True),
     default=0.95,
     show_default=True,
     help="Recall the suggested job threshold should reach.",

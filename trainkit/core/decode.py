@@ -17,6 +17,9 @@ numpy and Pillow; OpenCV, when installed, speeds up plain JPEGs (3 bytes a pixel
 from __future__ import annotations
 
 import io
+import threading
+import warnings
+from collections import Counter
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -43,29 +46,56 @@ class PhotoError(TrainkitError):
     """A photo that cannot be used; the message says which file and why."""
 
 
+#: Held while Pillow's size limit is lifted: Image.MAX_IMAGE_PIXELS is one global, and
+#: threads that lifted and restored it in turn left others opening under Pillow's limit.
+_PILLOW_LIMIT = threading.Lock()
+
+
+def open_image(src: str | Path | io.BytesIO) -> Image.Image:
+    """``Image.open`` (the header read, nothing decoded) without Pillow's own size check.
+
+    Pillow warns (a multi-line warning on stderr) between its limit and twice it and
+    refuses above that; the kit checks sizes against its own limit instead, so Pillow's
+    check is lifted for the open, under a lock so that threads never see it restored early.
+    Its DecompressionBombWarning is ignored there too.
+    """
+    with _PILLOW_LIMIT:
+        old_limit = Image.MAX_IMAGE_PIXELS
+        Image.MAX_IMAGE_PIXELS = None
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+                return Image.open(src)
+        finally:
+            Image.MAX_IMAGE_PIXELS = old_limit
+
+
+class _TooLarge(Exception):
+    """The header's size is above the kit's limit."""
+
+
 @contextmanager
 def _opened(path: Path, data: bytes | None, max_pixels: int) -> Iterator[Image.Image]:
     """Pillow's image of the file (header read, pixels not yet decoded); every failure while
-    it is open, in the ``with`` body too, becomes one :class:`PhotoError` naming the file."""
-    old_limit = Image.MAX_IMAGE_PIXELS
-    # Pillow's own check warns between its limit and twice it (a multi-line warning on
-    # stderr); the size is checked here instead, from the header, before anything decodes.
-    Image.MAX_IMAGE_PIXELS = None
+    it is open, in the ``with`` body too, becomes one :class:`PhotoError` naming the file.
+    The size is checked here against ``max_pixels``, from the header, before anything decodes.
+    """
     try:
-        src = io.BytesIO(data) if data is not None else path
-        with Image.open(src) as im:
+        with open_image(io.BytesIO(data) if data is not None else path) as im:
             if im.width * im.height > max_pixels:
-                raise Image.DecompressionBombError(f"{im.width} x {im.height} pixels")
+                raise _TooLarge(f"{im.width} x {im.height} pixels")
             yield im
     except PhotoError:
         raise
     except FileNotFoundError:
         raise PhotoError(f"photo {path} does not exist") from None
-    except Image.DecompressionBombError as exc:
+    except _TooLarge as exc:
         raise PhotoError(
             f"photo {path.name} is larger than the limit of {max_pixels} pixels ({exc}); "
             "raise the limit if the file is trusted"
         ) from None
+    except Image.DecompressionBombError as exc:  # Pillow's own check (a crop's size)
+        raise PhotoError(f"photo {path.name} is too large to decode ({exc})") from None
     except UnidentifiedImageError:
         what = (
             "an empty file"
@@ -81,8 +111,6 @@ def _opened(path: Path, data: bytes | None, max_pixels: int) -> Iterator[Image.I
         ) from None
     except (OSError, SyntaxError, ValueError, EOFError) as exc:
         raise PhotoError(f"photo {path.name} cannot be decoded ({exc})") from None
-    finally:
-        Image.MAX_IMAGE_PIXELS = old_limit
 
 
 def _note_pages(im: Image.Image, path: Path, notes: list[str] | None) -> None:
@@ -182,15 +210,11 @@ def _give_back(pixels: np.ndarray) -> None:
 
 def image_pixels(path: str | Path) -> int | None:
     """Width x height from the file's header (nothing decoded), or None if it cannot be read."""
-    old_limit = Image.MAX_IMAGE_PIXELS
-    Image.MAX_IMAGE_PIXELS = None
     try:
-        with Image.open(path) as im:
+        with open_image(path) as im:
             return int(im.width) * int(im.height)
     except Exception:  # the decode that follows words the error
         return None
-    finally:
-        Image.MAX_IMAGE_PIXELS = old_limit
 
 
 #: EXIF orientation -> numpy steps that make the pixels upright (what PIL's exif_transpose does);
@@ -238,17 +262,13 @@ def read_rgb_fast(
     and the colour rule stay the same.
     """
     if data[:2] == b"\xff\xd8" and data.rstrip(b"\x00")[-2:] == b"\xff\xd9":
-        old_limit = Image.MAX_IMAGE_PIXELS
-        Image.MAX_IMAGE_PIXELS = None  # the size is checked below against max_pixels
-        try:
-            with Image.open(io.BytesIO(data)) as im:  # reads the header only
+        try:  # the header only; the size is checked below against max_pixels
+            with open_image(io.BytesIO(data)) as im:
                 plain = im.format == "JPEG" and im.mode == "RGB"
                 size = im.size
                 orientation = im.getexif().get(0x0112, 1) if plain else 1
         except Exception:  # anything odd: Pillow's path decides and words the error
             plain = False
-        finally:
-            Image.MAX_IMAGE_PIXELS = old_limit
         try:  # OpenCV is optional here: the Screener's own install has only Pillow
             import cv2
         except ImportError:
@@ -307,6 +327,17 @@ def _to_array8(im: Image.Image) -> np.ndarray:
 def list_images(paths: list[Path]) -> list[Path]:
     """Expand files and folders (recursively, sorted) into image files by suffix."""
     return [p for p, _ in find_images(paths)]
+
+
+def skipped_files_line(skipped: list[Path]) -> str:
+    """One line on the files :func:`find_images` left out: how many, by suffix, an example."""
+    by_suffix = Counter(q.suffix.lower() or "(no suffix)" for q in skipped)
+    kinds = ", ".join(f"{n} {s}" for s, n in sorted(by_suffix.items(), key=lambda t: (-t[1], t[0])))
+    files = f"{len(skipped)} file" + ("" if len(skipped) == 1 else "s")
+    return (
+        f"{files} skipped: not a photo format the kit reads ({kinds}; "
+        f"e.g. {skipped[0]}); it reads {', '.join(IMAGE_SUFFIXES)}"
+    )
 
 
 def find_images(

@@ -5,8 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from PIL import Image
-
 __all__ = [
     "gsd_mm_per_px",
     "FULL_FRAME_WIDTH_MM",
@@ -65,8 +63,10 @@ def read_exif(path: str | Path, *, data: bytes | None = None) -> ExifInfo:
     """Focal length, 35 mm-equivalent focal length, capture date and orientation tag."""
     import io
 
-    try:
-        with Image.open(io.BytesIO(data) if data is not None else path) as im:
+    from trainkit.core.decode import open_image
+
+    try:  # the kit's size limit, not Pillow's (its warning or refusal of a large photo)
+        with open_image(io.BytesIO(data) if data is not None else path) as im:
             exif = im.getexif()
             sub = exif.get_ifd(_IFD_EXIF)
     except Exception:  # unreadable EXIF is not an error: the photo just has no EXIF scale

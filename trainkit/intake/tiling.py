@@ -123,8 +123,9 @@ def _process(job: IntakeJob) -> dict:
     if digest in job.known_hashes:
         return {"name": job.name, "status": "moved", "sha256": digest}
     t0 = time.perf_counter()
+    notes: list[str] = []
     try:
-        image = read_rgb(path, max_pixels=job.max_pixels, data=data)
+        image = read_rgb(path, max_pixels=job.max_pixels, data=data, notes=notes)
     except PhotoError as exc:
         return {"name": job.name, "status": "error", "error": f"{exc}; skipped"}
     t_decode = time.perf_counter() - t0
@@ -177,6 +178,7 @@ def _process(job: IntakeJob) -> dict:
         "date": job.date or exif.capture_date,
         "roi": job.rec.get("roi"),
         "patches": rows,
+        "notes": notes,
         "seconds_decode": t_decode,
         "seconds_total": time.perf_counter() - t0,
     }
@@ -239,7 +241,8 @@ def tile_into_workspace(
 
     Returns:
         Counts (added, present, moved, skipped, patches, flagged, left out of review),
-        the problems as one line each, and timing (photos per second, decode share).
+        the problems as one line each, notes on photos added (e.g. only page 1 of a
+        multi-page file is used) one line each, and timing (photos per second, decode share).
     """
     import time
 
@@ -278,6 +281,7 @@ def tile_into_workspace(
     return {
         **tally.counts,
         "problems": problems,
+        "notes": tally.notes,
         "seconds": round(wall, 3),
         "photos_per_second": round(added / wall, 3) if wall > 0 and added else 0.0,
         "decode_share": round(tally.decode_s / tally.total_s, 3) if tally.total_s > 0 else None,
@@ -388,6 +392,7 @@ class _Tally:
         self.by_name = {j.name: j for j in jobs}
         self.hash_to_name = {v: k for k, v in workspace.photo_hashes().items()}
         self.problems = problems
+        self.notes: list[str] = []
         self.decode_s = self.total_s = 0.0
         self.counts = {
             "photos_added": 0,
@@ -426,6 +431,7 @@ class _Tally:
                 sha256=res["sha256"],
                 patches=res["patches"],
             )
+            self.notes.extend(res.get("notes", []))
             counts["photos_added"] += 1
             counts["patches_added"] += len(res["patches"])
             counts["patches_flagged"] += sum(bool(p["flags"]) for p in res["patches"])

@@ -43,7 +43,7 @@ from trainkit.core.grid import crop, resize_patch
 from trainkit.core.textsafe import csv_cell, csv_uncell, token_problem
 from trainkit.jobs.design import STRATA, JobSample, assign_strata, draw_more, draw_sample
 from trainkit.jobs.files import SAMPLE_FILE, JobFiles
-from trainkit.screener.scan import FRAMES_FILE, SCAN_FILE
+from trainkit.screener.scan import FRAMES_FILE, SCAN_FILE, frame_path
 from trainkit.store.workspace import Workspace
 
 __all__ = [
@@ -127,12 +127,18 @@ def read_scan_cells(scan_dir: str | Path) -> ScanCells:
     if not path.is_file():
         raise SampleError(f"{path} does not exist; run `trainkit scan ... --out {scan_dir}` first")
     latest: dict[str, dict] = {}
+    absolute: dict[str, str] = {}
     with path.open(encoding="utf-8") as fh:
         for line in fh:
             try:
                 rec = json.loads(line)
             except json.JSONDecodeError:
                 continue  # a torn last line: the scan was stopped mid-write
+            # Absolute paths (an older scan's relative ones resolved by the scan's own rule):
+            # the sample finds the files from any folder and names each frame one way.
+            if rec["frame"] not in absolute:
+                absolute[rec["frame"]] = str(frame_path(scan_dir, rec["frame"]))
+            rec["frame"] = absolute[rec["frame"]]
             latest[rec["frame"]] = rec
     frames = [r for r in latest.values() if r.get("status") == "ok"]
     if not frames:
@@ -370,7 +376,7 @@ def _draw_more(
     )
     now = {STRATA[h]: int(v) for h, v in enumerate(np.bincount(codes, minlength=len(STRATA)))}
     then = {s["stratum"]: int(s["cells"]) for s in d.get("strata", [])}
-    where = {(c["frame"], tuple(c["box"])): c for c in earlier}
+    where = {(str(frame_path(scan_dir, c["frame"])), tuple(c["box"])): c for c in earlier}
     index = {
         (table.frames[int(f)]["frame"], tuple(int(v) for v in b)): i
         for i, (f, b) in enumerate(zip(table.frame_index, table.boxes, strict=True))

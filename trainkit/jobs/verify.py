@@ -119,7 +119,7 @@ def verify_scan(
         raise VerifyError(f"job {j['name']!r}: {exc}") from None
     suggestion = _suggested_threshold(scan_dir, answered, population, target_recall)
     # Everything the records depend on is loaded before the first one is written.
-    model = _model_record(model)
+    model = _model_record(model, scan_dir)
     experiment = _experiment_of(model)
     gate = _gate(est, require_recall, confidence)
     result = {
@@ -166,9 +166,14 @@ def verify_scan(
     return result
 
 
-def _model_record(model: dict | None) -> dict | None:
+def _model_record(model: dict | None, scan_dir: Path) -> dict | None:
     """The scan's model record with the SHA-256 of the model file as it is now (None when
-    the file is gone; compare ``data_digest``, which the scan recorded from the model)."""
+    the file is gone; compare ``data_digest``, which the scan recorded from the model) and
+    as it was at scan time (``sha256_at_scan``; None for scans made before it was kept).
+
+    Raises:
+        VerifyError: the model file's bytes differ from the ones that made the scan.
+    """
     if not model:
         return None
     path = Path(model.get("model", ""))
@@ -179,7 +184,16 @@ def _model_record(model: dict | None) -> dict | None:
             for block in iter(lambda: fh.read(1 << 20), b""):
                 h.update(block)
         digest = h.hexdigest()
-    return {**model, "sha256": digest}
+    at_scan = model.get("model_sha256")
+    if digest is not None and at_scan is not None and digest != at_scan:
+        raise VerifyError(
+            f"model {path} changed since scan {scan_dir} was made (SHA-256 {at_scan} at the "
+            f"scan, {digest} now; re-exported?); the sample's probabilities are the old "
+            "model's, so this check would name the wrong model. Scan the frames again with "
+            "this model (and sample again), or restore the model file that made the scan"
+        )
+    rec = {k: v for k, v in model.items() if k != "model_sha256"}
+    return {**rec, "sha256": digest, "sha256_at_scan": at_scan}
 
 
 def _history_entry(result: dict) -> dict:
@@ -197,6 +211,7 @@ def _history_entry(result: dict) -> dict:
         "recall": est["recall"],
         "false_alarm_rate": est["false_alarm_rate"],
         "model": {"model": model.get("model"), "sha256": model.get("sha256"),
+                  "sha256_at_scan": model.get("sha256_at_scan"),
                   "data_digest": model.get("data_digest")},
     }  # fmt: skip
 

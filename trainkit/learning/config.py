@@ -24,7 +24,7 @@ BUILTIN_RECIPES = ("default", "demo", "scratch", "presence", "frozen")
 
 
 class ConfigError(TrainkitError):
-    """A configuration that failed validation; the message has one line per bad field."""
+    """A configuration that failed validation; one line naming every bad field and value."""
 
 
 class _Strict(BaseModel):
@@ -128,17 +128,18 @@ class TrainConfig(_Strict):
 
 
 def _format_errors(exc: ValidationError, source: str) -> str:
-    lines = []
+    """One line: the source, then each field error (field, problem, bad value) joined by '; '."""
+    parts = []
     for err in exc.errors():
         field = ".".join(str(p) for p in err["loc"]) or "(top level)"
         msg = err["msg"]
         if err["type"] == "extra_forbidden":
             msg = "unknown key"
         if not err["loc"]:  # a rule across fields: the message names them
-            lines.append(f"{source}: {msg.removeprefix('Value error, ')}")
+            parts.append(msg.removeprefix("Value error, "))
             continue
-        lines.append(f"{source}: {field}: {msg} (got {err.get('input')!r})")
-    return "\n".join(lines)
+        parts.append(f"{field}: {msg} (got {err.get('input')!r})")
+    return f"{source}: " + "; ".join(" ".join(p.split()) for p in parts)
 
 
 def _read_recipe(name_or_path: str | Path) -> object:

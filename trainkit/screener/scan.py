@@ -47,7 +47,7 @@ import math
 import multiprocessing
 import os
 import time
-from collections import Counter, deque
+from collections import deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
@@ -56,12 +56,12 @@ import numpy as np
 
 from trainkit.core.cores import usable_cores
 from trainkit.core.decode import (
-    IMAGE_SUFFIXES,
     PhotoError,
     find_images,
     image_pixels,
     read_rgb_fast,
     read_rgb_reduced,
+    skipped_files_line,
 )
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_path, atomic_write_text
@@ -159,14 +159,29 @@ def _working_folder(out: Path) -> str | None:
     return folder if isinstance(folder, str) else None
 
 
-def _scan_record(model: Path, screener: Screener, working_folder: str) -> dict:
-    """Which model scanned (for the job check that may follow), and the folder that older
-    relative frame paths in frames.jsonl are relative to."""
+def _file_sha256(path: Path) -> str | None:
+    """SHA-256 of a file read in blocks (None when it cannot be read: loading it then says why)."""
+    h = hashlib.sha256()
+    try:
+        with path.open("rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    except OSError:
+        return None
+    return h.hexdigest()
+
+
+def _scan_record(
+    model: Path, screener: Screener, working_folder: str, model_sha256: str | None
+) -> dict:
+    """Which model scanned (its path and file digest, for the job check that may follow),
+    and the folder that older relative frame paths in frames.jsonl are relative to."""
     import datetime as _dt
 
     info = screener.info
     return {
         "model": str(model.resolve()),
+        "model_sha256": model_sha256,
         "contract": info.version,
         "threshold": info.threshold,
         "data_digest": info.data_digest,
@@ -680,7 +695,8 @@ def scan_frames(
         )
         raise PhotoError(f"no image files found in {', '.join(map(str, inputs))}{other}")
     if skipped:
-        say(_skipped_line(skipped))
+        say(skipped_files_line(skipped))
+    model_sha256 = _file_sha256(Path(model))  # the file as loaded, for verify to compare
     screener = Screener(model)  # validates the model before anything is written
     working_folder = _working_folder(out) or os.getcwd()
     with _writing(out):
@@ -756,7 +772,7 @@ def scan_frames(
     counts["frames_file"] = str(frames_path)
     counts["inputs"] = [str(p) for p in inputs]
     counts["notes"] = list(screener.notes)
-    record = _scan_record(Path(model), screener, working_folder)
+    record = _scan_record(Path(model), screener, working_folder, model_sha256)
     with _writing(out / SCAN_FILE):
         atomic_write_text(out / SCAN_FILE, dumps(record, indent=2))
     counts.update(_recorded_counts(frames, latest, written))
@@ -774,12 +790,3 @@ def _find_frames(inputs: list[Path], out: Path, skipped: list[Path]) -> list[Pat
             found.append(a)
     skipped[:] = [q for q in skipped if not _absolute(q).startswith(own + os.sep)]
     return found
-
-
-def _skipped_line(skipped: list[Path]) -> str:
-    by_suffix = Counter(q.suffix.lower() or "(no suffix)" for q in skipped)
-    kinds = ", ".join(f"{n} {s}" for s, n in sorted(by_suffix.items(), key=lambda t: (-t[1], t[0])))
-    return (
-        f"{_plural(len(skipped), 'file')} skipped: not a photo format the kit reads ({kinds}; "
-        f"e.g. {skipped[0]}); it reads {', '.join(IMAGE_SUFFIXES)}"
-    )
