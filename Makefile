@@ -36,7 +36,8 @@ lint: $(STAMP)
 
 # Rooms checked so far; the others join as their errors are fixed.
 typecheck: $(STAMP)
-	$(BIN)/mypy trainkit/core trainkit/screener trainkit/metrics trainkit/jobs
+	$(BIN)/mypy trainkit/core trainkit/screener trainkit/metrics trainkit/jobs \
+		trainkit/judging/records.py trainkit/judging/model_card.py
 
 format: $(STAMP)
 	$(BIN)/ruff format trainkit tests benchmarks

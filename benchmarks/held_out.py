@@ -101,7 +101,7 @@ def probe_images_per_second(cfg, data, num_classes: int) -> float:
     import torch
 
     from trainkit.learning.network import build_network
-    from trainkit.learning.training import cpu_threads
+    from trainkit.learning.steps import cpu_threads
 
     torch.set_num_threads(cfg.threads or cpu_threads())
     net = build_network(cfg, num_classes)

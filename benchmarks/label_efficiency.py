@@ -14,7 +14,7 @@ subset), two networks train in the same CPU-time budget:
 The budget is CPU time of this process (``time.process_time()``, all threads), not wall
 time: other jobs share the machine's cores, and CPU time is what they cannot steal. The
 learning rate follows warm-up and cosine decay over the budget's fraction used (the
-same shape as :func:`trainkit.learning.training.get_lr`). Evaluation is not counted.
+same shape as :func:`trainkit.learning.steps.get_lr`). Evaluation is not counted.
 
 Data: the repository's tiny dataset plus photos made with the kit's synthetic generator
 (benchmarks/held_out.py builds the workspace), tiled at 128 px and split by photo. The
@@ -44,7 +44,7 @@ WARMUP_FRACTION = 0.05  # of each stage's budget
 
 
 def _lr(progress: float, peak: float) -> float:
-    from trainkit.learning.training import get_lr
+    from trainkit.learning.steps import get_lr
 
     return get_lr(
         int(progress * 1000),
@@ -82,13 +82,13 @@ def train_in_budget(
 
     from trainkit.learning.data import Augmenter
     from trainkit.learning.network import build_network
-    from trainkit.learning.training import (
+    from trainkit.learning.steps import (
         _augmented_batches,
-        build_optimizer,
         class_weights,
         epoch_order,
         set_stage,
     )
+    from trainkit.learning.training import build_optimizer
 
     torch.manual_seed(seed)
     # set-up (weights, imports) not counted
@@ -144,7 +144,7 @@ def train_in_budget(
 def held_out_recall(model, val, test, num_classes: int, budget: float) -> dict:
     """Threshold on validation at the false-alarm budget; recall and false alarms on test."""
     from trainkit.core.contract import screening_probability
-    from trainkit.learning.training import predict_proba
+    from trainkit.learning.steps import predict_proba
     from trainkit.metrics import recall_interval, threshold_for_false_alarms
 
     pv = screening_probability(

@@ -76,3 +76,20 @@ def test_two_checks_recorded_at_once_both_land(tmp_path, monkeypatch):
     at_once(("c", "d"), then=lambda: cards.append(sorted(j["job"] for j in real(exp))))
     monkeypatch.undo()
     assert cards[-1] == ["a", "b", "c", "d", "first"]
+
+
+def test_a_torn_json_file_is_one_line_naming_it_not_a_crash(tmp_path, capsys):
+    """A metrics.json cut short (a full disk, a copy stopped half way) is the user's to
+    fix: `trainkit status` says which file and how to rebuild it, with exit code 2 (user
+    error), not 70 (a bug) and not a traceback."""
+    from trainkit.cli import main
+
+    exp = Experiment(tmp_path / "exp")
+    exp.evaluation_dir.mkdir(parents=True)
+    exp.provenance_path.write_text(json.dumps({"workspace": "ws"}))
+    exp.metrics_path.write_text('{"screening": {"recall": 0.75, "recall_inter')
+    assert main(["status", str(exp.path)]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert err.startswith("trainkit: ") and str(exp.metrics_path) in err
+    assert "trainkit evaluate" in err

@@ -226,3 +226,35 @@ def test_text_from_users_cannot_add_a_heading_html_or_a_table_cell():
             rows.append(cells)
     assert rows == [8, 8, 8]  # the jobs table: header and two checks
     assert "<script>" not in card and "&lt;script&gt;" in card
+
+
+def test_the_card_records_name_keys_the_kit_writes(demo_run):
+    """The typed records the card reads (judging/records.py) declare keys that a fresh run
+    writes: a key renamed in a writer and not in the record (or the other way) fails here,
+    where the card would quietly print "n/a"."""
+    from typing import get_type_hints
+
+    from trainkit.judging import records as r
+
+    out, _ = demo_run
+    ckpt, metrics, experiment = _load(out)
+    export = json.loads((out / "export.json").read_text())
+
+    def keys(record) -> set[str]:
+        return set(get_type_hints(record))
+
+    assert keys(r.ExportRecord) == set(export)
+    s = metrics["screening"]
+    assert keys(r.ScreeningRecord) <= set(s)
+    assert keys(r.IntervalRecord) <= set(s["recall_interval"])
+    assert keys(r.CountsRecord) <= set(s["at_default_threshold"])
+    for c in metrics["per_class"]:
+        assert keys(r.PerClassRecord) <= set(c)
+    written = {"split", "patches", "photos", "accuracy", "interval_method", "confidence"}
+    assert {"screening", "per_class", "caution", "data_digest"} | written <= set(metrics)
+    assert written <= keys(r.MetricsRecord)
+    assert keys(r.SplitRecord) <= set(experiment["split"])
+    assert keys(r.RecipeRecord) <= set(ckpt["config"])
+    assert keys(r.WeightsRecord) >= set(ckpt["weights"])
+    assert {"config", "experiment", "input_px", "best_epoch", "best_val"} <= set(ckpt)
+    assert keys(r.ProvenanceRecord) - {"adaptation"} <= set(experiment)

@@ -7,7 +7,7 @@ import torch
 
 from trainkit.learning.models import BACKBONES, HEADS, create_model
 from trainkit.learning.network import Preprocess
-from trainkit.learning.training import class_weights, get_lr
+from trainkit.learning.steps import class_weights, get_lr
 
 
 @pytest.mark.parametrize("name", sorted(BACKBONES))

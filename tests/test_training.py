@@ -18,14 +18,14 @@ from sklearn.metrics import roc_curve
 
 from trainkit.learning.config import ConfigError, load_train_config
 from trainkit.learning.network import TrainingError, build_network
-from trainkit.learning.training import (
+from trainkit.learning.steps import (
     cpu_threads,
     epoch_order,
     frozen_features,
     head_module_name,
     selection_score,
-    train,
 )
+from trainkit.learning.training import train
 from trainkit.metrics import recall_at_false_alarm
 from trainkit.store.workspace import Workspace
 
@@ -172,7 +172,7 @@ def test_head_then_full_stage_order(ws, tmp_path):
 
 def test_each_stage_has_its_own_warm_up_and_cosine():
     """lr_schedule against get_lr's documented shape, restarted at the unfreeze."""
-    from trainkit.learning.training import get_lr, lr_schedule
+    from trainkit.learning.steps import get_lr, lr_schedule
 
     cfg = load_train_config("default", {"epochs": 10, "head_epochs": 4, "warmup_epochs": 1})
     lr = lr_schedule(cfg, steps_per_epoch=10)
@@ -238,7 +238,7 @@ def test_cached_feature_run_trains_the_head_and_keeps_the_backbone(ws, tmp_path)
     from trainkit.core.taxonomy import load_class_set
     from trainkit.learning.data import load_patch_set
     from trainkit.learning.network import load_checkpoint
-    from trainkit.learning.training import evaluate_split
+    from trainkit.learning.steps import evaluate_split
 
     model, ckpt, _ = load_checkpoint(tmp_path / "c")
     val = load_patch_set(ws, "val", load_class_set("orientation"))
@@ -400,7 +400,7 @@ def test_frozen_bn_stats_keep_the_running_statistics_and_train_the_affine_parame
     import torch.nn.functional as F
     from torch import nn
 
-    from trainkit.learning.training import set_stage
+    from trainkit.learning.steps import set_stage
 
     cfg = load_train_config("scratch", {"seed": 3})
     net = _fresh_network(cfg)
@@ -452,3 +452,34 @@ def test_backbone_lr_scale_outside_its_range_is_one_config_error():
     with pytest.raises(ConfigError, match="backbone_lr_scale") as err:
         load_train_config("scratch", {"backbone_lr_scale": 1.5})
     assert len(str(err.value).splitlines()) == 1
+
+
+def test_the_weights_file_is_read_and_hashed_once(ws, tmp_path, monkeypatch):
+    """Training from a weights file reads it once and hashes it once; the digest it records
+    is the file's SHA-256 (Python's hashlib as the reference)."""
+    import hashlib
+
+    from trainkit.learning import models
+
+    cfg = load_train_config("scratch", {"epochs": 1, "threads": 1})
+    torch.manual_seed(3)
+    wfile = tmp_path / "start.pth"
+    torch.save(models.create_model(cfg.backbone, 7).state_dict(), wfile)
+    calls = {"hash": 0, "read": 0}
+    real_hash, real_read = models.file_sha256, models.read_state_dict
+
+    def counted_hash(path):
+        calls["hash"] += 1
+        return real_hash(path)
+
+    def counted_read(path):
+        calls["read"] += 1
+        return real_read(path)
+
+    monkeypatch.setattr(models, "file_sha256", counted_hash)
+    monkeypatch.setattr(models, "read_state_dict", counted_read)
+    cfg = load_train_config("scratch", {"epochs": 1, "threads": 1, "weights": str(wfile)})
+    train(ws, tmp_path / "w", cfg, resume=False)
+    assert calls == {"hash": 1, "read": 1}
+    ckpt = torch.load(tmp_path / "w" / "checkpoint.pt", weights_only=True)
+    assert ckpt["weights"]["sha256"] == hashlib.sha256(wfile.read_bytes()).hexdigest()

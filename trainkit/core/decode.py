@@ -311,7 +311,7 @@ def _to_array8(im: Image.Image) -> np.ndarray:
         for y0, part in strips():
             a = np.asarray(part)
             if im.mode != "L":  # round(v / 257) exactly: (v + 128) // 257 for integers
-                wide = a.astype(np.int64 if im.mode == "I" else np.uint32)
+                wide: np.ndarray = a.astype(np.int64 if im.mode == "I" else np.uint32)
                 wide += 128
                 wide //= 257
                 a = np.clip(wide, 0, 255)

@@ -29,12 +29,15 @@ from __future__ import annotations
 import csv
 import json
 import os
+import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-__all__ = ["Experiment", "LEGACY_NAMES"]
+from trainkit.core.errors import TrainkitError
+
+__all__ = ["Experiment", "ExperimentFileError", "LEGACY_NAMES"]
 
 #: Old file name -> new file name, for folders written before the rename.
 LEGACY_NAMES = {
@@ -42,6 +45,11 @@ LEGACY_NAMES = {
     "last.pt": "resume.pt",
     "evaluation/confusion_matrix.png": "evaluation/confusion.png",
 }
+
+
+class ExperimentFileError(TrainkitError):
+    """A file of the experiment folder that cannot be read (e.g. cut short by a full disk);
+    the message names the file and how to get it back."""
 
 
 class Experiment:
@@ -157,19 +165,23 @@ class Experiment:
 
     def read_provenance(self) -> dict | None:
         """The contents of ``experiment.json``, or None before training wrote it."""
-        return _read_json(self.provenance_path)
+        return _read_json(self.provenance_path, "train the experiment again (trainkit train)")
 
     def read_metrics(self) -> dict | None:
         """The contents of ``evaluation/metrics.json``, or None before evaluation."""
-        return _read_json(self.metrics_path)
+        return _read_json(self.metrics_path, f"run `trainkit evaluate {self.path}` again")
 
     def read_export(self) -> dict | None:
         """The export summary (``export.json``), or None before export."""
-        return _read_json(self.export_path)
+        return _read_json(self.export_path, f"run `trainkit export {self.path}` again")
 
     def read_jobs(self) -> list[dict]:
         """The job checks recorded for this model (``jobs.json``), oldest first."""
-        return (_read_json(self.jobs_path) or {}).get("jobs", [])
+        recover = (
+            "restore it from a backup, or move it aside to start a new record (the checks it "
+            "held are then no longer listed)"
+        )
+        return (_read_json(self.jobs_path, recover) or {}).get("jobs", [])
 
     def record_job(self, record: dict, *, then: Callable[[], object] | None = None) -> None:
         """Append one job check to ``jobs.json`` (atomically, under the folder's jobs lock).
@@ -258,9 +270,7 @@ class Experiment:
 
 def _lock(fh) -> None:
     """Block until this process holds an exclusive lock on the open file ``fh``."""
-    try:
-        import fcntl
-    except ImportError:  # Windows
+    if sys.platform == "win32":
         import msvcrt
 
         fh.seek(0)
@@ -270,22 +280,32 @@ def _lock(fh) -> None:
                 return
             except OSError:  # LK_LOCK gives up after about 10 s; keep waiting
                 continue
+    import fcntl
+
     fcntl.flock(fh.fileno(), fcntl.LOCK_EX)
 
 
 def _unlock(fh) -> None:
-    try:
-        import fcntl
-    except ImportError:  # Windows
+    if sys.platform == "win32":
         import msvcrt
 
         fh.seek(0)
         msvcrt.locking(fh.fileno(), msvcrt.LK_UNLCK, 1)
         return
+    import fcntl
+
     fcntl.flock(fh.fileno(), fcntl.LOCK_UN)
 
 
-def _read_json(path: Path) -> dict | None:
+def _read_json(path: Path, recover: str) -> dict | None:
+    """The JSON object in ``path`` (None when it does not exist); a file that is not JSON
+    raises :class:`ExperimentFileError` naming it and saying how to ``recover``."""
     if not path.exists():
         return None
-    return json.loads(path.read_text(encoding="utf-8"))
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as exc:
+        why = f"not valid JSON from line {exc.lineno}, column {exc.colno}"
+    except UnicodeDecodeError:
+        why = "not UTF-8 text"
+    raise ExperimentFileError(f"{path} is damaged ({why}); {recover}") from None

@@ -103,4 +103,4 @@ def resize_patch(rgb: np.ndarray, size: int) -> np.ndarray:
         return rgb
     from PIL import Image
 
-    return np.asarray(Image.fromarray(rgb).resize((size, size), Image.BILINEAR))
+    return np.asarray(Image.fromarray(rgb).resize((size, size), Image.Resampling.BILINEAR))

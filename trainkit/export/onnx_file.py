@@ -11,8 +11,10 @@ patches; a failed check leaves no model file behind.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import io
 import json
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -113,6 +115,31 @@ def _sample_patches(ckpt: dict, input_px: int, n: int = 32) -> np.ndarray:
     return rng.integers(0, 256, size=(8, input_px, input_px, 3), dtype=np.uint8)
 
 
+@dataclass(frozen=True)
+class _Plan:
+    """What :func:`export_experiment` writes: the cascade (``cascade``, the plan of
+    :func:`~trainkit.export.cascade_graph.cascade_plan`) or, when it is None, the main
+    network alone; ``note`` says why the cascade was left out (None when nothing to say)."""
+
+    cascade: dict | None
+    note: str | None
+
+
+@dataclass(frozen=True)
+class _Written:
+    """One checked ONNX file: its metadata, the familiarity record it carries and the
+    figures of its checks."""
+
+    meta: dict[str, str]
+    familiarity: dict | None
+    max_diff: float
+    familiarity_diff: float | None
+    batchnorm_left: list[str]
+    parity_patches: int
+    #: Why the familiarity output was left out (None when it was not).
+    familiarity_skipped: str | None = None
+
+
 def export_experiment(
     exp_dir: str | Path,
     *,
@@ -129,85 +156,103 @@ def export_experiment(
     Raises:
         ExportError: the checker or the parity check failed.
     """
-
     from trainkit import __version__
+    from trainkit.core.fsutil import atomic_write_json
+    from trainkit.judging.model_card import write_model_card
     from trainkit.learning.network import load_checkpoint
-    from trainkit.learning.steps import head_module_name, stage_module_names
 
     folder = Experiment(exp_dir)
     folder.migrate()
-    exp = folder.path
-    model, ckpt, class_set = load_checkpoint(exp)
+    model, ckpt, class_set = load_checkpoint(folder.path)
     input_px = int(ckpt["input_px"])
     target = Path(out) if out else folder.model_path
     metrics = folder.read_metrics()
     info = _model_info(ckpt, class_set, input_px, metrics, __version__)
 
-    def fit(network, head):
-        return _graph_with_familiarity(network, head, ckpt, class_set, input_px)
-
-    cascade, cascade_note = (
-        cascade_plan(ckpt, metrics, class_set, input_px, fit)
-        if cascade
-        else (
-            None,
-            f"exported without the cascade (`trainkit export --cascade` writes it): "
-            f"{CASCADE_WARNING_CAVEAT}"
-            if ckpt.get("cascade")
-            else None,
-        )
-    )
-    checks = skipped = None
-    if cascade is not None:
+    # 1) The cascade, when asked for and allowed; when its familiarity does not reproduce
+    # in ONNX nothing is written and the plan says why.
+    plan = _plan(cascade, ckpt, metrics, class_set, input_px)
+    written = None
+    if plan.cascade is not None:
         try:
-            meta, checks = _write_checked(
-                model, cascade["familiarity"], info, ckpt, target, opset, cascade=cascade
+            written = _write_checked(
+                model, plan.cascade["familiarity"], info, ckpt, target, opset, cascade=plan.cascade
             )
-            familiarity = cascade["familiarity"]
         except _FamiliarityMismatch as exc:
-            cascade, cascade_note = None, f"{exc}; exported without the cascade"
-    if checks is None:
-        backbone = ckpt["config"]["backbone"]
-        graph, familiarity = _graph_with_familiarity(
-            model,
-            head_module_name(backbone),
-            ckpt,
-            class_set,
-            input_px,
-            stage_module_names(backbone) or None,
-        )
-        try:
-            meta, checks = _write_checked(graph, familiarity, info, ckpt, target, opset)
-        except _FamiliarityMismatch as exc:  # the add-on must not cost the screener itself
-            skipped = f"{exc}; exported without the familiarity output (contract 1)"
-            meta, checks = _write_checked(model, None, info, ckpt, target, opset)
-            familiarity = None
-    max_diff, fam_diff, left, images = checks
-    summary = {
-        "model": str(target),
-        "opset": opset,
-        "bytes": target.stat().st_size,
-        "parity_max_abs_diff": max_diff,
-        "parity_patches": int(len(images)),
-        "familiarity_max_rel_diff": fam_diff,
-        "familiarity": familiarity,
-        "familiarity_skipped": skipped,
-        "cascade": None if cascade is None else cascade["meta"],
-        "cascade_skipped": cascade_note,
-        "contract": meta[FORMAT_KEY],
-        "batchnorm_nodes": len(left),
-        "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
-        "threshold": json.loads(meta["threshold"]),
-        "weights": weights_record(ckpt),
-        "evaluated": metrics is not None,
-    }
-    from trainkit.core.fsutil import atomic_write_json
-    from trainkit.judging.model_card import write_model_card
+            plan = _Plan(None, f"{exc}; exported without the cascade")
+    # 2) Otherwise the main network alone.
+    if written is None:
+        written = _write_main(model, info, ckpt, class_set, target, opset)
 
-    summary["model_card"] = str(write_model_card(exp, ckpt, summary))
+    summary = _summary(target, opset, plan, written, ckpt, metrics)
+    summary["model_card"] = str(write_model_card(folder.path, ckpt, summary))
     if target == folder.model_path:  # the folder's own model: its record stays beside it
         atomic_write_json(folder.export_path, summary)
     return summary
+
+
+def _plan(asked: bool, ckpt: dict, metrics: dict | None, class_set, input_px: int) -> _Plan:
+    """The cascade's plan when ``asked`` (cascade_plan says whether it may be written);
+    otherwise no cascade, with a note when the checkpoint has a first stage."""
+    if asked:
+
+        def fit(network, head):
+            return _graph_with_familiarity(network, head, ckpt, class_set, input_px)
+
+        return _Plan(*cascade_plan(ckpt, metrics, class_set, input_px, fit))
+    if not ckpt.get("cascade"):
+        return _Plan(None, None)
+    return _Plan(
+        None,
+        "exported without the cascade (`trainkit export --cascade` writes it): "
+        f"{CASCADE_WARNING_CAVEAT}",
+    )
+
+
+def _write_main(model, info, ckpt: dict, class_set, target: Path, opset: int) -> _Written:
+    """Write the main network with its familiarity output; without it (contract 1) when the
+    familiarity does not reproduce in ONNX: the add-on must not cost the screener itself."""
+    from trainkit.learning.steps import head_module_name, stage_module_names
+
+    backbone = ckpt["config"]["backbone"]
+    graph, familiarity = _graph_with_familiarity(
+        model,
+        head_module_name(backbone),
+        ckpt,
+        class_set,
+        info.patch_px,
+        stage_module_names(backbone) or None,
+    )
+    try:
+        return _write_checked(graph, familiarity, info, ckpt, target, opset)
+    except _FamiliarityMismatch as exc:
+        written = _write_checked(model, None, info, ckpt, target, opset)
+        skipped = f"{exc}; exported without the familiarity output (contract 1)"
+        return dataclasses.replace(written, familiarity_skipped=skipped)
+
+
+def _summary(
+    target: Path, opset: int, plan: _Plan, written: _Written, ckpt: dict, metrics: dict | None
+) -> dict:
+    """The summary :func:`export_experiment` returns and writes to ``export.json``."""
+    return {
+        "model": str(target),
+        "opset": opset,
+        "bytes": target.stat().st_size,
+        "parity_max_abs_diff": written.max_diff,
+        "parity_patches": written.parity_patches,
+        "familiarity_max_rel_diff": written.familiarity_diff,
+        "familiarity": written.familiarity,
+        "familiarity_skipped": written.familiarity_skipped,
+        "cascade": None if plan.cascade is None else plan.cascade["meta"],
+        "cascade_skipped": plan.note,
+        "contract": written.meta[FORMAT_KEY],
+        "batchnorm_nodes": len(written.batchnorm_left),
+        "exporter": f"torch.onnx.export(dynamo=True), opset {opset}",
+        "threshold": json.loads(written.meta["threshold"]),
+        "weights": weights_record(ckpt),
+        "evaluated": metrics is not None,
+    }
 
 
 def _model_info(ckpt: dict, class_set, input_px: int, metrics: dict | None, version: str):
@@ -242,14 +287,12 @@ def _write_checked(
     opset: int,
     *,
     cascade: dict | None = None,
-):
+) -> _Written:
     """Export ``graph``, set its metadata, check it (checker, folded BatchNorm, parity with
-    PyTorch) and only then put it at ``target``; returns (metadata, check figures).
+    PyTorch) and only then put it at ``target``; returns what was written.
 
-    With ``cascade`` (from :func:`_cascade_plan`) ``graph`` is the main network and the file
+    With ``cascade`` (the plan of :func:`~trainkit.export.cascade_graph.cascade_plan`) ``graph`` is the main network and the file
     is the one-graph cascade of :mod:`trainkit.export.cascade_graph` (contract 3)."""
-    import dataclasses
-
     import onnx
 
     from trainkit import __version__
@@ -289,7 +332,7 @@ def _write_checked(
             max_diff, fam_diff = _cascade_parity(graph, cascade, tmp, images, main_proto)
         else:
             max_diff, fam_diff = _check_parity(graph, tmp, images, two=familiarity is not None)
-    return meta, (max_diff, fam_diff, left, images)
+    return _Written(meta, familiarity, max_diff, fam_diff, left, int(len(images)))
 
 
 class _FamiliarityMismatch(ExportError):

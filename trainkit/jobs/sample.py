@@ -72,7 +72,7 @@ class SampleError(TrainkitError):
     """A scan or workspace from which no sample can be drawn; the message says why."""
 
 
-def check_job_name(name: object, *, error: type[ValueError] = None) -> str:
+def check_job_name(name: object, *, error: type[ValueError] | None = None) -> str:
     """Return ``name`` if it is a valid job name (:func:`token_problem`), else raise
     ``error`` (default :class:`SampleError`) naming it and the rule."""
     problem = token_problem(name)
@@ -232,7 +232,7 @@ def sample_scan(
                 "frames of the job"
             )
         table = ScanCells(kept, table.threshold)
-    if more is None:
+    if cells is not None:  # a new sample (exactly one of cells and more was given)
         if job in jobs:
             done = workspace.job_cells(job)
             raise SampleError(
@@ -255,7 +255,7 @@ def sample_scan(
             "frames_learned_from_left_out": left_out,
             "draws": [],
         }
-    else:
+    elif more is not None:
         if job not in jobs:
             raise SampleError(
                 f"workspace {workspace.root} holds no job {job!r} to add cells to; its jobs: "

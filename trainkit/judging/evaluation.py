@@ -186,7 +186,7 @@ class _Run:
 
 
 def _predict_logits(model, images: np.ndarray, num_classes: int, batch_size: int = 64):
-    """Logits and softmax probabilities (float32), batched as in training.predict_proba."""
+    """Logits and softmax probabilities (float32), batched as in steps.predict_proba."""
     import torch
 
     model.eval()

@@ -16,12 +16,21 @@ from __future__ import annotations
 import datetime as _dt
 import json
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 from trainkit.core.caution import CASCADE_WARNING_CAVEAT, CAUTION, SHORT_CAUTION
 from trainkit.core.experiment import Experiment
 from trainkit.core.fsutil import atomic_write_text
 from trainkit.core.textsafe import md_code, md_text
+from trainkit.judging.records import (
+    AdaptationRecord,
+    CheckpointRecord,
+    ExportRecord,
+    JobRecord,
+    MetricsRecord,
+    ProvenanceRecord,
+    read_card_inputs,
+)
 
 __all__ = [
     "CARD_NAME",
@@ -58,7 +67,7 @@ def _pct(conf: Any) -> str:
     return "n/a" if conf is None else f"{100 * float(conf):g}%"
 
 
-def weights_line(ckpt: dict, *, markdown: bool = False) -> str:
+def weights_line(ckpt: CheckpointRecord, *, markdown: bool = False) -> str:
     """Which weights training started from, in words (name, source, SHA-256 prefix).
 
     Checkpoints from before the weights record existed say what their recipe asked for.
@@ -139,7 +148,7 @@ def _range(pair: Any, unit: str, digits: int = 3) -> str:
     return f"{lo:.{digits}f} to {hi:.{digits}f} {unit}"
 
 
-def _training_data(experiment: dict, synthetic: bool | None) -> list[str]:
+def _training_data(experiment: ProvenanceRecord, synthetic: bool | None) -> list[str]:
     split = experiment.get("split") or {}
     counts = split.get("class_counts") or {}
     groups = split.get("groups") or {}
@@ -204,7 +213,7 @@ def _training_data(experiment: dict, synthetic: bool | None) -> list[str]:
     return lines
 
 
-def _adaptation(adapted: dict | None) -> list[str]:
+def _adaptation(adapted: AdaptationRecord | None) -> list[str]:
     """What an adapted model learned from a job (``trainkit train --from``)."""
     if not adapted:
         return []
@@ -221,7 +230,7 @@ def _adaptation(adapted: dict | None) -> list[str]:
     ]
 
 
-def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
+def _model(ckpt: CheckpointRecord, experiment: ProvenanceRecord, export: ExportRecord) -> list[str]:
     cfg = ckpt.get("config") or {}
     best_val = ckpt.get("best_val") or {}
     lines = ["## The model", ""]
@@ -267,7 +276,7 @@ def _model(ckpt: dict, experiment: dict, export: dict) -> list[str]:
     return lines
 
 
-def _metrics(metrics: dict | None) -> list[str]:
+def _metrics(metrics: MetricsRecord | None) -> list[str]:
     lines = ["## Test metrics", ""]
     if metrics is None:
         return [*lines, NOT_EVALUATED, ""]
@@ -321,9 +330,9 @@ def _metrics(metrics: dict | None) -> list[str]:
     return lines
 
 
-def _cascade(metrics: dict | None, export: dict) -> list[str]:
+def _cascade(metrics: MetricsRecord | None, export: ExportRecord) -> list[str]:
     """The two-stage cascade: its figures beside the main network's, and whether the file has it."""
-    c = (metrics or {}).get("cascade")
+    c = metrics.get("cascade") if metrics else None
     if not c:
         return []
     lines = ["## Cascade", ""]
@@ -359,10 +368,10 @@ def _cascade(metrics: dict | None, export: dict) -> list[str]:
     return lines
 
 
-def _threshold(metrics: dict | None, export: dict) -> list[str]:
+def _threshold(metrics: MetricsRecord | None, export: ExportRecord) -> list[str]:
     lines: list[str] = []  # one paragraph each
     if metrics is None:
-        thr = export.get("threshold", 0.5)
+        thr: float | None = export.get("threshold", 0.5)
         lines.append(
             f"The model file carries the default threshold {_f(thr)}, not one chosen on "
             "validation; how many clean patches it flags is unknown until the model is evaluated."
@@ -403,7 +412,9 @@ def _threshold(metrics: dict | None, export: dict) -> list[str]:
     return ["## Threshold", *[x for para in lines for x in ("", para)], ""]
 
 
-def _limits(experiment: dict, metrics: dict | None, synthetic: bool | None) -> list[str]:
+def _limits(
+    experiment: ProvenanceRecord, metrics: MetricsRecord | None, synthetic: bool | None
+) -> list[str]:
     lines = ["## Known limits", ""]
     gsd = experiment.get("gsd_mm_range")
     if gsd:
@@ -437,7 +448,7 @@ def _limits(experiment: dict, metrics: dict | None, synthetic: bool | None) -> l
     return lines
 
 
-def _jobs(jobs: list[dict] | None) -> list[str]:
+def _jobs(jobs: list[JobRecord] | None) -> list[str]:
     """Every check of this model on a job (`trainkit verify`), oldest first, with its bound
     and verdict: a refused check stays listed beside a later acceptance."""
     lines = ["## Jobs checked", ""]
@@ -501,12 +512,37 @@ def build_model_card(
     Returns:
         The card as Markdown text ending in a newline.
     """
+    return _card(
+        cast(CheckpointRecord, ckpt),
+        cast(
+            ProvenanceRecord, experiment if experiment is not None else ckpt.get("experiment") or {}
+        ),
+        cast("MetricsRecord | None", metrics),
+        cast(ExportRecord, export or {}),
+        synthetic,
+        name,
+        kit_version,
+        created,
+        cast("list[JobRecord] | None", jobs),
+    )
+
+
+def _card(
+    ckpt: CheckpointRecord,
+    experiment: ProvenanceRecord,
+    metrics: MetricsRecord | None,
+    export: ExportRecord,
+    synthetic: bool | None,
+    name: str | None,
+    kit_version: str | None,
+    created: str | None,
+    jobs: list[JobRecord] | None,
+) -> str:
+    """:func:`build_model_card` on the typed records."""
     if kit_version is None:
         from trainkit import __version__ as kit_version
-    experiment = experiment if experiment is not None else (ckpt.get("experiment") or {})
-    export = export or {}
     created = created or _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
-    caution = (metrics or {}).get("caution") or _caution()
+    caution = (metrics.get("caution") if metrics else None) or _caution()
     title = f"# Model card: concrete-crack patch screener{f' {md_code(name)}' if name else ''}"
     lines = [
         title,
@@ -537,7 +573,7 @@ def build_model_card(
         "- Clearing a photo as crack-free: an unflagged patch has not been inspected.",
         "",
     ]
-    digest = (metrics or {}).get("data_digest")
+    digest = metrics.get("data_digest") if metrics else None
     if digest and experiment.get("data_digest") and digest != experiment["data_digest"]:
         lines += [
             "**Warning:** `evaluation/metrics.json` describes different training data (data "
@@ -570,16 +606,18 @@ def model_card_text(exp_dir: str | Path, ckpt: dict, export: dict | None = None)
         ckpt: the loaded checkpoint dict.
         export: the export summary (model path, parity, threshold).
     """
-    folder = Experiment(exp_dir)
-    experiment = folder.read_provenance() or ckpt.get("experiment") or {}
-    return build_model_card(
-        ckpt,
-        experiment=experiment,
-        metrics=folder.read_metrics(),
-        export=export,
-        synthetic=synthetic_training_data(experiment.get("workspace")),
-        name=folder.path.resolve().name,
-        jobs=folder.read_jobs(),
+    record = cast(CheckpointRecord, ckpt)
+    read = read_card_inputs(exp_dir, record)
+    return _card(
+        record,
+        read.experiment,
+        read.metrics,
+        cast(ExportRecord, export or {}),
+        synthetic_training_data(read.experiment.get("workspace")),
+        Experiment(exp_dir).path.resolve().name,
+        None,
+        None,
+        read.jobs,
     )
 
 

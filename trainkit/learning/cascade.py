@@ -31,7 +31,7 @@ from torch import nn
 
 from trainkit.core.taxonomy import apply_d4
 from trainkit.learning.config import CascadeConfig
-from trainkit.learning.models import backbone_record, create_model, weights_provenance
+from trainkit.learning.models import backbone_record, create_model_with_weights
 from trainkit.learning.network import Preprocess, TrainingError
 from trainkit.learning.steps import get_lr, head_module_name, predict_proba
 
@@ -54,6 +54,12 @@ def build_stage1(cfg: CascadeConfig, patch_px: int, *, load_weights: bool = True
     Raises:
         TrainingError: ``patch_px`` is not a whole multiple of ``cfg.input_px``.
     """
+    return _stage1(cfg, patch_px, cfg.weights if load_weights else None)[0]
+
+
+def _stage1(cfg: CascadeConfig, patch_px: int, weights: str | None) -> tuple[nn.Sequential, dict]:
+    """:func:`build_stage1` starting from ``weights``, and their provenance record (the
+    weights file read once for both)."""
     if patch_px % cfg.input_px:
         raise TrainingError(
             f"cascade.input_px {cfg.input_px} does not divide the patch size {patch_px}; "
@@ -62,8 +68,8 @@ def build_stage1(cfg: CascadeConfig, patch_px: int, *, load_weights: bool = True
     record = backbone_record(cfg.backbone)
     factor = patch_px // cfg.input_px
     pool = nn.AvgPool2d(factor) if factor > 1 else nn.Identity()
-    backbone = create_model(cfg.backbone, 2, weights=cfg.weights if load_weights else None)
-    return nn.Sequential(Preprocess(record.mean, record.std), pool, backbone)
+    backbone, provenance = create_model_with_weights(cfg.backbone, 2, weights)
+    return nn.Sequential(Preprocess(record.mean, record.std), pool, backbone), provenance
 
 
 def _divisors(n: int) -> list[int]:
@@ -138,7 +144,7 @@ def train_stage1(
     patch_px = int(train_images.shape[1])
     torch.manual_seed(seed)
     rng = np.random.default_rng(seed)
-    net = build_stage1(cfg, patch_px)
+    net, weights = _stage1(cfg, patch_px, cfg.weights)
     if note:
         note(f"cascade: scoring {len(train_images)} training patches with the main network")
     with torch.no_grad():
@@ -174,7 +180,7 @@ def train_stage1(
         "model": {k: v.clone() for k, v in net.state_dict().items()},
         "config": cfg.model_dump(mode="json"),
         "patch_px": patch_px,
-        "weights": weights_provenance(cfg.backbone, cfg.weights),
+        "weights": weights,
         "loss": "soft cross-entropy against w * main screening probability + (1 - w) * true "
         f"crack, w = {cfg.teacher_weight:g}",
         "history": history,

@@ -37,6 +37,7 @@ __all__ = [
     "imagenet_state_dict",
     "load_backbone_weights",
     "weights_provenance",
+    "create_model_with_weights",
     "IMAGENET_MEAN",
     "IMAGENET_STD",
 ]
@@ -529,6 +530,17 @@ def weights_provenance(name: str, weights: str | Path | None) -> dict:
     if weights is None:
         return dict(RANDOM_INIT)
     return _state_dict_from_source(name, weights)[1]
+
+
+def create_model_with_weights(
+    name: str, num_classes: int, weights: str | Path | None
+) -> tuple[nn.Module, dict]:
+    """:func:`create_model` and the :func:`weights_provenance` record of the weights it
+    starts from, reading (and hashing) a weights file once for both."""
+    model = create_model(name, num_classes)
+    if weights is None:
+        return model, dict(RANDOM_INIT)
+    return model, load_backbone_weights(model, name, weights)["weights"]
 
 
 def load_backbone_weights(model: nn.Module, name: str, weights: str | Path) -> dict:

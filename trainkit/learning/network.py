@@ -11,7 +11,13 @@ from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.learning.config import TrainConfig
-from trainkit.learning.models import IMAGENET_MEAN, IMAGENET_STD, backbone_record, create_model
+from trainkit.learning.models import (
+    IMAGENET_MEAN,
+    IMAGENET_STD,
+    backbone_record,
+    create_model,
+    create_model_with_weights,
+)
 
 
 class TrainingError(TrainkitError):
@@ -48,11 +54,20 @@ def build_network(
     cfg: TrainConfig, num_classes: int, *, load_weights: bool = True
 ) -> nn.Sequential:
     """Preprocess (the backbone record's mean/std) + backbone: trained, evaluated and exported."""
+    if load_weights:
+        return start_network(cfg, num_classes)[0]
     record = backbone_record(cfg.backbone)
-    backbone = create_model(
-        cfg.backbone, num_classes, weights=cfg.weights if load_weights else None
+    return nn.Sequential(
+        Preprocess(record.mean, record.std), create_model(cfg.backbone, num_classes)
     )
-    return nn.Sequential(Preprocess(record.mean, record.std), backbone)
+
+
+def start_network(cfg: TrainConfig, num_classes: int) -> tuple[nn.Sequential, dict]:
+    """:func:`build_network` with the recipe's weights, and the provenance record of those
+    weights (:func:`~trainkit.learning.models.weights_provenance`), the file read once."""
+    record = backbone_record(cfg.backbone)
+    backbone, weights = create_model_with_weights(cfg.backbone, num_classes, cfg.weights)
+    return nn.Sequential(Preprocess(record.mean, record.std), backbone), weights
 
 
 def load_checkpoint(exp_or_file: str | Path) -> tuple[nn.Sequential, dict, ClassSet]:

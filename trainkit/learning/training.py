@@ -27,20 +27,16 @@ from trainkit.labels.splits import check_no_leak
 from trainkit.learning.adapt import Adaptation, load_subset, replay_set
 from trainkit.learning.config import TrainConfig
 from trainkit.learning.data import Augmenter, load_patch_set
-from trainkit.learning.models import backbone_record, weights_provenance
-from trainkit.learning.network import TrainingError, build_network
-from trainkit.learning.steps import (  # re-exported: callers import them from here
-    _augmented_batches,
+from trainkit.learning.models import backbone_record
+from trainkit.learning.network import TrainingError, start_network
+from trainkit.learning.steps import (
     class_weights,
     cpu_threads,
-    epoch_order,
     epoch_seed,
     evaluate_split,
     frozen_features,
-    get_lr,
     head_module_name,
     lr_schedule,
-    predict_proba,
     selection_score,
     set_stage,
     stage_of,
@@ -50,27 +46,10 @@ from trainkit.learning.steps import (  # re-exported: callers import them from h
 from trainkit.store.workspace import Workspace
 
 __all__ = [
-    "build_network",
     "train",
-    "predict_proba",
     "TrainingError",
     "HISTORY_FIELDS",
     "RunState",
-    "_augmented_batches",
-    "class_weights",
-    "cpu_threads",
-    "epoch_order",
-    "epoch_seed",
-    "evaluate_split",
-    "frozen_features",
-    "get_lr",
-    "head_module_name",
-    "lr_schedule",
-    "selection_score",
-    "set_stage",
-    "stage_of",
-    "train_head_on_features",
-    "train_one_epoch",
 ]
 
 HISTORY_FIELDS = (
@@ -433,8 +412,7 @@ def train(
 
     # 2) network (with the weights it starts from), loss, optimiser, schedule
     if adaptation is None:
-        model = build_network(cfg, class_set.num_classes)
-        weights = weights_provenance(cfg.backbone, cfg.weights)
+        model, weights = start_network(cfg, class_set.num_classes)
     else:
         model, weights = _adaptation_start(adaptation, cfg, class_set)
     if cfg.weights is None and cfg.head_epochs:

@@ -82,7 +82,7 @@ class CrackMap:
 
     @property
     def shape(self) -> tuple[int, int]:
-        return tuple(self.probabilities.shape)  # type: ignore[return-value]
+        return tuple(self.probabilities.shape)
 
     def cell_class(self, r: int, c: int) -> str:
         """Class reported for a cell: the likeliest crack class when the cell is flagged."""

@@ -30,9 +30,10 @@ import math
 import threading
 from collections import deque
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import cast
 
 import numpy as np
 
@@ -133,7 +134,7 @@ def _resample(rgb: np.ndarray, nw: int, nh: int) -> np.ndarray:
     h, w = rgb.shape[:2]
     if h * w <= RESAMPLE_STRIP_PIXELS and nh * nw <= RESAMPLE_STRIP_PIXELS:
         return np.asarray(
-            Image.fromarray(np.ascontiguousarray(rgb)).resize((nw, nh), Image.BILINEAR)
+            Image.fromarray(np.ascontiguousarray(rgb)).resize((nw, nh), Image.Resampling.BILINEAR)
         )
     sy = h / nh  # source rows per output row
     reach = (
@@ -147,7 +148,7 @@ def _resample(rgb: np.ndarray, nw: int, nh: int) -> np.ndarray:
         a, b = max(0, math.floor(y0 - reach)), min(h, math.ceil(y1 + reach) + 1)
         strip = Image.fromarray(np.ascontiguousarray(rgb[a:b]))
         out[r0:r1] = np.asarray(
-            strip.resize((nw, r1 - r0), Image.BILINEAR, box=(0, y0 - a, w, y1 - a))
+            strip.resize((nw, r1 - r0), Image.Resampling.BILINEAR, box=(0, y0 - a, w, y1 - a))
         )
     return out
 
@@ -165,7 +166,6 @@ class Screener:
     def __init__(self, path: str | Path, threads: int | None = None) -> None:
         self.path = Path(path)
         self.threads = threads
-        self._session = None
         self.metadata = self._read_and_validate()
 
     def _read_and_validate(self) -> dict:
@@ -316,8 +316,9 @@ class Screener:
         """
         if getattr(self, "_closed", False):
             raise ScreenerError("this Screener was closed; create a new one")
-        parallel = self._pool is not None and not getattr(_local, "worker", False)
-        if parallel:  # small inputs still use every core: at most ceil(n / workers) per batch
+        # A predict called from one of the workers runs its batches in that worker.
+        pool = None if getattr(_local, "worker", False) else self._pool
+        if pool is not None:  # small inputs still use every core: at most ceil(n / workers)
             batch_size = max(1, min(batch_size, -(-n // self.workers)))
         spans = [(i, min(n, i + batch_size)) for i in range(0, n, batch_size)]
 
@@ -325,10 +326,11 @@ class Screener:
             chunk = take(*span)
             return self._checked(self._session.run(self._outputs, {INPUT_NAME: chunk}), len(chunk))
 
-        if parallel and len(spans) > 1:
-            outs, waiting, todo = [], deque(), iter(spans)
-            for span in todo:
-                waiting.append(self._pool.submit(run, span))
+        if pool is not None and len(spans) > 1:
+            outs: list[list[np.ndarray]] = []
+            waiting: deque[Future[list[np.ndarray]]] = deque()
+            for span in spans:
+                waiting.append(pool.submit(run, span))
                 if len(waiting) >= 2 * self.workers:
                     outs.append(waiting.popleft().result())
             outs.extend(f.result() for f in waiting)
@@ -463,7 +465,7 @@ class Screener:
         familiarity = None if fam is None else fam.reshape(rows, cols).astype(np.float32)
         unfamiliar = None
         if familiarity is not None:
-            limit = float(self.info.familiarity["threshold"])
+            limit = float(cast(dict, self.info.familiarity)["threshold"])  # it has the output
             score, unfamiliar = frame_score(familiarity, limit)
             if not math.isfinite(score):  # cannot be vouched for: never silently familiar
                 unfamiliar = True

@@ -51,6 +51,7 @@ from collections import deque
 from collections.abc import Callable, Iterator
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
 from pathlib import Path
+from typing import Any, cast
 
 import numpy as np
 
@@ -372,7 +373,9 @@ def _finish(
         dominant_class=cm.dominant_class(),
         threshold=cm.threshold,
         warnings=cm.warnings,
-        familiarity_score=None if cm.familiarity is None else round(cm.familiarity_score, 3),
+        familiarity_score=None
+        if cm.familiarity is None
+        else round(cast(float, cm.familiarity_score), 3),
         unfamiliar=cm.unfamiliar,
         flagged_boxes=[{k: c[k] for k in ("box", "probability", "class")} for c in cells],
         # Every cell, for a job's acceptance sample (`trainkit sample`): the grid's column
@@ -494,7 +497,7 @@ def _local_pipelined(
     """
     shared = screener.executor
     own = None if shared is not None else ThreadPoolExecutor(1, "trainkit-decode")
-    pool = shared or own
+    pool = cast(ThreadPoolExecutor, shared or own)
     todo = deque(paths)
     pending: deque = deque()  # (future, pixels) in frame order
     held = 0  # pixels of the frames submitted and not yet finished
@@ -580,7 +583,7 @@ def _local_pool(model, paths, gsd_mm, overlays, overlay_dir, workers, max_pixels
 
 
 def _dask(
-    model, paths, gsd_mm, overlays, overlay_dir, scheduler: str, max_pixels: int
+    model, paths, gsd_mm, overlays, overlay_dir, scheduler: str | None, max_pixels: int
 ) -> Iterator[dict]:
     try:
         from distributed import Client, as_completed
@@ -715,7 +718,7 @@ def scan_frames(
             why = last.get("error") or f"frame {p.name} is unreadable"
             say(f"{why}; skipped (recorded by an earlier run)")
     written: set[str] = set()
-    counts = {
+    counts: dict[str, Any] = {
         "frames": len(frames),
         "resumed_skip": len(frames) - len(todo),
         "scanned": 0,
