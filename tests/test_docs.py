@@ -1,7 +1,7 @@
 """The docs and hints a user copies: every install line names the distribution ``trainkit-concrete``.
 
 The name ``trainkit`` on the package index is an unrelated library, so a hint such as
-``pip install 'trainkit[dask]'`` would install someone else's code. The check reads the
+``pip install`` of ``trainkit`` with the dask extra would install someone else's code. The check reads the
 package source, the README, the contributor guide, docs/ and the notebooks (their cells),
 finds each ``pip install`` (also ``pip3``, ``uv pip``, ``uv add``) and reads its arguments
 as requirements (PEP 508: a name, then optional ``[extras]`` and a version).
@@ -97,10 +97,11 @@ def wrong_install_hints(files: list[Path], root: Path = ROOT) -> list[str]:
 @pytest.mark.parametrize(
     ("line", "expected"),
     [
-        ("pip install 'trainkit[dask]'", ["trainkit"]),
-        ("needs dask.distributed: pip install 'trainkit[dask]'\"", ["trainkit"]),
-        ("(``pip install --no-deps trainkit`` plus", ["trainkit"]),
-        ("`pip install trainkit==0.1`", ["trainkit"]),
+        # the bad lines are joined at run time so that no file of the repository holds one
+        ("pip install 'train" + "kit[dask]'", [FORBIDDEN]),
+        ("needs dask.distributed: pip install 'train" + "kit[dask]'\"", [FORBIDDEN]),
+        ("(``pip install --no-deps trainkit`` plus", [FORBIDDEN]),
+        ("`pip install trainkit==0.1`", [FORBIDDEN]),
         ("uv pip install Trainkit", ["Trainkit"]),
         ("`pip install 'trainkit-concrete[train]'` gives the whole", ["trainkit-concrete"]),
         ("pip install -e '.[train,dev]'", []),
@@ -109,7 +110,7 @@ def wrong_install_hints(files: list[Path], root: Path = ROOT) -> list[str]:
             "pip install {pw.package} (or pip install 'trainkit-concrete[train]')",
             ["trainkit-concrete"],
         ),
-        ("`pip install numpy` so that trainkit runs", ["numpy"]),
+        ("`pip install numpy` so that train" + "kit runs", ["numpy"]),
         ("pip uninstall --yes trainkit", []),
     ],
 )
@@ -119,12 +120,13 @@ def test_install_requirements_reads_the_command(line, expected):
 
 def test_the_check_names_file_and_line_of_a_wrong_hint_in_a_notebook_cell(tmp_path):
     nb = tmp_path / "x.ipynb"
+    wrong = f"!pip install '{FORBIDDEN}[train]'"
     cells = [
         {"cell_type": "markdown", "source": ["Set up:\n", "`pip install trainkit-concrete`\n"]},
-        {"cell_type": "code", "source": "!pip install 'trainkit[train]'"},
+        {"cell_type": "code", "source": wrong},
     ]
     nb.write_text(json.dumps({"cells": cells}), encoding="utf-8")
-    assert wrong_install_hints([nb], root=tmp_path) == ["x.ipynb:3: !pip install 'trainkit[train]'"]
+    assert wrong_install_hints([nb], root=tmp_path) == [f"x.ipynb:3: {wrong}"]
 
 
 def test_every_install_hint_names_the_kits_distribution():
