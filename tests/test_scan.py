@@ -573,3 +573,19 @@ def test_scan_of_a_large_sixteen_bit_frame_stays_small(tmp_path):
     assert peak_kb / 1024 < 800, f"the scan peaked at {peak_kb / 1024:.0f} MB"
     rec = lines(tmp_path / "out" / "frames.jsonl")[0]
     assert Image.open(rec["overlay"]).size[0] <= 8000
+
+
+def test_a_frame_refused_as_too_large_is_scanned_once_the_limit_is_raised(tmp_path):
+    """An unchanged unreadable frame is not decoded again on a resume, except when it was
+    refused under a lower pixel limit than this run's (``--max-megapixels`` raised)."""
+    model = brightness_model(tmp_path / "m.onnx", threshold=0.9)
+    d = tmp_path / "frames"
+    d.mkdir()
+    Image.fromarray(np.full((300, 300, 3), 200, np.uint8)).save(d / "big.png")
+    out = tmp_path / "out"
+    first = scan_frames(model, [d], out, overlays="none", max_pixels=50_000)
+    assert (first["errors"], first["unreadable"]) == (1, 1)
+    same = scan_frames(model, [d], out, overlays="none", max_pixels=50_000)
+    assert (same["scanned"], same["resumed_skip"], same["unreadable"]) == (0, 1, 1)
+    raised = scan_frames(model, [d], out, overlays="none", max_pixels=1_000_000)
+    assert (raised["scanned"], raised["errors"], raised["unreadable"]) == (1, 0, 0)

@@ -205,6 +205,7 @@ def _brief(rec: dict) -> dict:
         "cells": rec.get("cells"),
         "main_model_cells": rec.get("main_model_cells"),
         "error": rec.get("error"),
+        "max_pixels": rec.get("max_pixels"),
     }
 
 
@@ -216,9 +217,15 @@ def read_done(path: Path) -> dict[str, str | None]:
     return {frame: r["sha256"] for frame, r in read_latest(path).items()}
 
 
-def _needs_scan(path: Path, last: dict | None) -> bool:
-    """True unless the frame's last line was made from the same content (same hash)."""
+def _needs_scan(path: Path, last: dict | None, max_pixels: int = SCAN_MAX_PIXELS) -> bool:
+    """True unless the frame's last line was made from the same content (same hash).
+
+    A frame that failed under a lower pixel limit than ``max_pixels`` (``--max-megapixels``
+    raised since) is tried again.
+    """
     if last is None or last["sha256"] is None:  # never scanned, or could not be read then
+        return True
+    if last["status"] != "ok" and (last.get("max_pixels") or 0) < max_pixels:
         return True
     try:
         return last["sha256"] != hashlib.sha256(path.read_bytes()).hexdigest()
@@ -307,12 +314,13 @@ def _decode_and_cut(
         if reduced is not None or fp.source is not rgb:
             rgb = None  # reduced or resampled: an overlay decodes the full frame again
     except (PhotoError, ScreenerError) as exc:
-        rec.update(status="error", error=str(exc))
+        rec.update(status="error", error=str(exc), max_pixels=max_pixels)
         return rec, None, None
     except Exception as exc:  # any other failure of one frame: recorded, the scan goes on
         rec.update(
             status="error",
             error=f"frame {path.name} cannot be scanned ({type(exc).__name__}: {exc})",
+            max_pixels=max_pixels,
         )
         return rec, None, None
     if notes:
@@ -710,7 +718,7 @@ def scan_frames(
             overlay_dir.mkdir(exist_ok=True)
     frames_path = out / FRAMES_FILE
     latest = read_latest(frames_path, working_folder)
-    todo = [p for p in frames if _needs_scan(p, latest.get(str(p)))]
+    todo = [p for p in frames if _needs_scan(p, latest.get(str(p)), max_pixels)]
     again = set(todo)
     for p in frames:
         last = latest.get(str(p))
