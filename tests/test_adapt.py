@@ -88,6 +88,27 @@ def test_adapt_recipe_keeps_the_network_and_shortens_the_run(tmp_path):
         adapt_recipe(tmp_path)
 
 
+@pytest.mark.parametrize(
+    ("text", "match"),
+    [
+        ("epochs: [1\n", "recipe.yaml"),  # not YAML
+        ("- 1\n- 2\n", "expected a mapping of settings"),
+        ("batch_size: 0\n", "batch_size"),
+    ],
+)
+def test_a_damaged_source_recipe_is_one_config_error_not_a_crash(tmp_path, text, match):
+    """train --from reads the source's recipe.yaml as any recipe file: a damaged one is a
+    ConfigError (one line in the CLI), never a YAML or pydantic traceback (exit 70)."""
+    from trainkit.core.errors import TrainkitError
+    from trainkit.core.experiment import Experiment
+
+    folder = Experiment(tmp_path)
+    folder.checkpoint_path.write_bytes(b"x")
+    folder.recipe_path.write_text(text, encoding="utf-8")
+    with pytest.raises(TrainkitError, match=match):
+        adapt_recipe(tmp_path)
+
+
 # ----- the whole loop on the demo's model ------------------------------------------------
 
 

@@ -174,9 +174,7 @@ def adapt_recipe(source: str | Path, overrides: dict | None = None):
     Raises:
         AdaptError: the source is no trained experiment, or an override changes the network.
     """
-    import yaml
-
-    from trainkit.learning.config import TrainConfig
+    from trainkit.learning.config import load_train_config
 
     folder = Experiment(source)
     if not folder.checkpoint_path.is_file() or not folder.recipe_path.is_file():
@@ -191,8 +189,8 @@ def adapt_recipe(source: str | Path, overrides: dict | None = None):
             f"--{fixed[0]} cannot be changed when adapting: the run starts from the weights "
             f"of {folder.path}"
         )
-    source_config = yaml.safe_load(folder.recipe_path.read_text(encoding="utf-8"))
-    return TrainConfig.model_validate({**source_config, **ADAPT_DEFAULTS, **given})
+    # the source's recipe is read and checked as any recipe file is (one-line ConfigError)
+    return load_train_config(folder.recipe_path, {**ADAPT_DEFAULTS, **given})
 
 
 def load_subset(
