@@ -187,6 +187,10 @@ def test_sidecar_errors(tmp_path):
     p.write_text("photo,gsd_mm\na.jpg,-1\n")
     with pytest.raises(ValueError, match="line 2: gsd_mm must be positive"):
         read_sidecar(p)
+    for bad in ("inf", "1e400", "nan"):  # an infinite scale made 1-px tiles and inf patch_mm
+        p.write_text(f"photo,gsd_mm\na.jpg,{bad}\n")
+        with pytest.raises(ValueError, match="line 2: gsd_mm must be positive and finite"):
+            read_sidecar(p)
     p.write_text("photo,date\na.jpg,17/05/2026\n")
     with pytest.raises(ValueError, match="is not YYYY-MM-DD"):
         read_sidecar(p)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
@@ -74,9 +75,10 @@ def read_sidecar(path: str | Path) -> dict[str, dict]:
                         raise SidecarError(
                             f"sidecar {path.name} line {i}: {key} {v!r} is not a number"
                         ) from None
-                    if not rec[key] > 0:
+                    if not (math.isfinite(rec[key]) and rec[key] > 0):
                         raise SidecarError(
-                            f"sidecar {path.name} line {i}: {key} must be positive, got {v}"
+                            f"sidecar {path.name} line {i}: {key} must be positive and "
+                            f"finite, got {v}"
                         )
             grp = (row.get("structure") or row.get("group") or row.get("site") or "").strip()
             if grp:
