@@ -50,3 +50,19 @@ def test_written_files_get_the_usual_permissions(tmp_path):
     atomic_write_text(tmp_path / "a.txt", "x")
     (tmp_path / "b.txt").write_text("x")  # a plain write, for the umask in force
     assert os.stat(tmp_path / "a.txt").st_mode == os.stat(tmp_path / "b.txt").st_mode
+
+
+def test_atomic_write_json_writes_nan_and_infinity_as_null(tmp_path):
+    """RFC 8259 section 6 has no NaN or Infinity; the stdlib json writes them by default
+    (``json.dumps(float('nan')) == 'NaN'``), so the kit's one JSON writer maps them to null."""
+    import json
+
+    import numpy as np
+
+    from trainkit.core.fsutil import atomic_write_json
+
+    p = tmp_path / "x.json"
+    atomic_write_json(p, {"a": float("nan"), "b": [np.float32(np.inf), 1.5], "c": np.int64(3)})
+    text = p.read_text(encoding="utf-8")
+    assert "NaN" not in text and "Infinity" not in text
+    assert json.loads(text) == {"a": None, "b": [None, 1.5], "c": 3}

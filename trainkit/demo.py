@@ -8,14 +8,13 @@ whose methods do nothing unless a caller (the ``demo`` command) overrides them.
 
 from __future__ import annotations
 
-import json
 import time
 from contextlib import AbstractContextManager, nullcontext
 from pathlib import Path
 from typing import Any, Protocol
 
 from trainkit.core.experiment import Experiment
-from trainkit.core.fsutil import atomic_path, atomic_write_text
+from trainkit.core.fsutil import atomic_path, atomic_write_json, atomic_write_text
 
 __all__ = [
     "run_demo",
@@ -357,7 +356,7 @@ def run_demo(
         "train_images_per_second": trained["median_images_per_second"],
         "frames_flagged": f"{scanned['flagged']}/{scanned['frames']}",
     }
-    atomic_write_text(out / "demo-summary.json", json.dumps(headline, indent=2))
+    atomic_write_json(out / "demo-summary.json", headline)
     progress.section("done")
     for line in _closing_lines(headline, metrics, out):
         progress.line(line)

@@ -198,7 +198,7 @@ class Experiment:
 
         with self.jobs_lock():
             jobs = self.read_jobs()
-            atomic_write_json(self.jobs_path, {"jobs": [*jobs, record]}, allow_nan=False)
+            atomic_write_json(self.jobs_path, {"jobs": [*jobs, record]})
             if then is not None:
                 then()
 

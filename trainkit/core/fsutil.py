@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-import json
 import os
 import uuid
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
+
+from trainkit.core.jsonsafe import dumps
 
 __all__ = ["atomic_path", "atomic_write_text", "atomic_write_bytes", "atomic_write_json"]
 
@@ -48,6 +49,10 @@ def atomic_write_bytes(path: str | Path, data: bytes) -> None:
 
 
 def atomic_write_json(path: str | Path, obj: Any, **dump_kwargs: Any) -> None:
-    """Write ``obj`` as JSON (UTF-8, indent 2 unless given) to ``path`` atomically."""
+    """Write ``obj`` as JSON (UTF-8, indent 2 unless given) to ``path`` atomically.
+
+    Numpy values are made plain and NaN or infinity written as null
+    (:func:`trainkit.core.jsonsafe.dumps`), so every reader can parse the file.
+    """
     dump_kwargs.setdefault("indent", 2)
-    atomic_write_text(path, json.dumps(obj, **dump_kwargs))
+    atomic_write_text(path, dumps(obj, **dump_kwargs))

@@ -160,7 +160,7 @@ def verify_scan(
     ]
     result["recorded_in"] = _record_in_experiment(result, experiment)
     files.folder.mkdir(parents=True, exist_ok=True)
-    atomic_write_json(files.verification_json, result, allow_nan=False)
+    atomic_write_json(files.verification_json, result)
     atomic_write_text(files.verification_html, job_report(result))
     result["report"] = str(files.verification_html)
     return result

@@ -399,7 +399,7 @@ def _write_evaluation(folder: Experiment, result: dict, run: _Run, arrays: dict 
             out / Experiment.DISAGREEMENTS, arrays, patch_ids=data.patch_ids,
             photos=data.photos, groups=data.groups, labels=data.labels, class_names=names,
         )  # fmt: skip
-    atomic_write_json(folder.metrics_path, result, allow_nan=False)
+    atomic_write_json(folder.metrics_path, result)
     write_report(
         out,
         result,

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import csv
 import hashlib
-import json
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,7 +20,7 @@ import yaml
 from torch import nn
 
 from trainkit.core.experiment import Experiment
-from trainkit.core.fsutil import atomic_path, atomic_write_text
+from trainkit.core.fsutil import atomic_path, atomic_write_json, atomic_write_text
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import check_no_leak
 from trainkit.learning.adapt import Adaptation, load_subset, replay_set
@@ -206,7 +205,7 @@ def write_provenance(
     }
     if adaptation is not None:
         experiment["adaptation"] = adaptation.to_dict()
-    atomic_write_text(folder.provenance_path, json.dumps(experiment, indent=2))
+    atomic_write_json(folder.provenance_path, experiment)
     return experiment
 
 
