@@ -66,3 +66,20 @@ def test_atomic_write_json_writes_nan_and_infinity_as_null(tmp_path):
     text = p.read_text(encoding="utf-8")
     assert "NaN" not in text and "Infinity" not in text
     assert json.loads(text) == {"a": None, "b": [None, 1.5], "c": 3}
+
+
+def test_file_sha256_reads_in_blocks_and_equals_hashlib_on_the_whole_bytes(tmp_path):
+    """A file of 2.5 MiB crosses the 1 MiB blocks; the digest must equal hashlib's of the
+    whole content at once, and the empty file's is the published SHA-256 of no input
+    (FIPS 180-4 test vector e3b0c442...b855)."""
+    import hashlib
+
+    from trainkit.core.fsutil import file_sha256
+
+    data = bytes(range(256)) * (10 * 1024 + 3)
+    (tmp_path / "a.bin").write_bytes(data)
+    assert file_sha256(tmp_path / "a.bin") == hashlib.sha256(data).hexdigest()
+    (tmp_path / "e.bin").write_bytes(b"")
+    assert file_sha256(tmp_path / "e.bin") == (
+        "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855"
+    )

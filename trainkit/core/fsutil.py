@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
 import uuid
 from collections.abc import Iterator
@@ -11,7 +12,13 @@ from typing import Any
 
 from trainkit.core.jsonsafe import dumps
 
-__all__ = ["atomic_path", "atomic_write_text", "atomic_write_bytes", "atomic_write_json"]
+__all__ = [
+    "atomic_path",
+    "atomic_write_text",
+    "atomic_write_bytes",
+    "atomic_write_json",
+    "file_sha256",
+]
 
 
 @contextmanager
@@ -56,3 +63,16 @@ def atomic_write_json(path: str | Path, obj: Any, **dump_kwargs: Any) -> None:
     """
     dump_kwargs.setdefault("indent", 2)
     atomic_write_text(path, dumps(obj, **dump_kwargs))
+
+
+def file_sha256(path: str | Path) -> str:
+    """The SHA-256 hex digest of a file, read in 1 MiB blocks.
+
+    Raises:
+        OSError: the file cannot be read.
+    """
+    h = hashlib.sha256()
+    with Path(path).open("rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()

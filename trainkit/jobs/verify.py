@@ -22,14 +22,13 @@ written.
 from __future__ import annotations
 
 import datetime as _dt
-import hashlib
 from pathlib import Path
 
 import numpy as np
 
 from trainkit.core.caution import CAUTION
 from trainkit.core.errors import TrainkitError
-from trainkit.core.fsutil import atomic_write_json, atomic_write_text
+from trainkit.core.fsutil import atomic_write_json, atomic_write_text, file_sha256
 from trainkit.core.jsonsafe import json_ready
 from trainkit.jobs.design import STRATA
 from trainkit.jobs.estimate import (
@@ -177,13 +176,7 @@ def _model_record(model: dict | None, scan_dir: Path) -> dict | None:
     if not model:
         return None
     path = Path(model.get("model", ""))
-    digest = None
-    if path.is_file():
-        h = hashlib.sha256()
-        with path.open("rb") as fh:
-            for block in iter(lambda: fh.read(1 << 20), b""):
-                h.update(block)
-        digest = h.hexdigest()
+    digest = file_sha256(path) if path.is_file() else None
     at_scan = model.get("model_sha256")
     if digest is not None and at_scan is not None and digest != at_scan:
         raise VerifyError(

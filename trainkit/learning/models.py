@@ -17,7 +17,6 @@ machine; ``weights=PATH`` loads a backbone state dict saved with
 
 from __future__ import annotations
 
-import hashlib
 import re
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -27,6 +26,7 @@ import torch
 from torch import nn
 
 from trainkit.core.errors import TrainkitError
+from trainkit.core.fsutil import file_sha256
 
 __all__ = [
     "BACKBONES",
@@ -355,15 +355,6 @@ def imagenet_weights_path(name: str) -> Path:
 
 
 _HASH_IN_NAME = re.compile(r"-([a-f0-9]{6,})\.")
-
-
-def file_sha256(path: Path) -> str:
-    """The SHA-256 hex digest of a file."""
-    h = hashlib.sha256()
-    with path.open("rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def _check_name_hash(path: Path) -> None:

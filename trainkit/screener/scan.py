@@ -65,7 +65,7 @@ from trainkit.core.decode import (
     skipped_files_line,
 )
 from trainkit.core.experiment import Experiment
-from trainkit.core.fsutil import atomic_path, atomic_write_text
+from trainkit.core.fsutil import atomic_path, atomic_write_text, file_sha256
 from trainkit.core.jsonsafe import dumps
 from trainkit.screener.model import FramePatches, Screener, ScreenerError
 
@@ -158,18 +158,6 @@ def _working_folder(out: Path) -> str | None:
         return None
     folder = rec.get("working_folder") if isinstance(rec, dict) else None
     return folder if isinstance(folder, str) else None
-
-
-def _file_sha256(path: Path) -> str | None:
-    """SHA-256 of a file read in blocks (None when it cannot be read: loading it then says why)."""
-    h = hashlib.sha256()
-    try:
-        with path.open("rb") as fh:
-            for block in iter(lambda: fh.read(1 << 20), b""):
-                h.update(block)
-    except OSError:
-        return None
-    return h.hexdigest()
 
 
 def _scan_record(
@@ -707,7 +695,10 @@ def scan_frames(
         raise PhotoError(f"no image files found in {', '.join(map(str, inputs))}{other}")
     if skipped:
         say(skipped_files_line(skipped))
-    model_sha256 = _file_sha256(Path(model))  # the file as loaded, for verify to compare
+    try:  # the file as loaded, for verify to compare; an unreadable one: loading says why
+        model_sha256: str | None = file_sha256(model)
+    except OSError:
+        model_sha256 = None
     screener = Screener(model)  # validates the model before anything is written
     working_folder = _working_folder(out) or os.getcwd()
     with _writing(out):
