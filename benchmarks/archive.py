@@ -10,8 +10,9 @@ Everything is invented with the kit's own generator (trainkit.synth; no real pho
    (a) the plain decode bound: reading and decoding the same N files one after another
        with ``trainkit.core.decode.read_rgb_fast`` (OpenCV's decoder, one thread) and with
        ``read_rgb`` (Pillow, the decoder tiling uses today);
-   (b) ``tile_into_workspace`` (the library call behind ``trainkit tile``, with its
-       default parallel mode) into a new workspace with workers=1 and workers=2: seconds
+   (b) ``tile_into_workspace`` (the library call behind ``trainkit tile``) into a new
+       workspace with workers=1 and workers=2 in its default parallel mode (threads, what
+       the CLI uses), and workers=2 with ``parallel="processes"`` (run ``2p``): seconds
        per photo and the decode bound's share of it (bound seconds / tiling seconds);
    (c) the workspace's bytes and files, per photo and as a share of the archive's bytes;
    (d) the peak resident memory (VmHWM) of each of those processes;
@@ -42,6 +43,7 @@ import hashlib
 import json
 import math
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -213,7 +215,8 @@ paths = [Path(p) for p in a["paths"]]
 root = Path(a["root"])
 ws = Workspace.create(Path(a["ws"]), class_set=load_class_set("presence"), tile_px=a["tile_px"])
 t0 = time.perf_counter()
-res = tile_into_workspace(paths, ws, workers=a["workers"], roots={p: root for p in paths})
+res = tile_into_workspace(paths, ws, workers=a["workers"], parallel=a["parallel"],
+                          roots={p: root for p in paths})
 wall = time.perf_counter() - t0
 print(json.dumps({"seconds": wall, "peak_mb": _peak_mb(), "photos_added": res["photos_added"],
                   "patches_added": res["patches_added"], "decode_share": res["decode_share"],
@@ -260,7 +263,7 @@ def time_status(ws: Path) -> float:
 
 
 def measure_size(
-    paths: list[Path], archive_root: Path, scratch: Path, *, tile_px: int, workers: tuple[int, ...]
+    paths: list[Path], archive_root: Path, scratch: Path, *, tile_px: int, runs: tuple[str, ...]
 ) -> dict:
     """All figures for one archive size: the decode bound, then tiling with each worker count."""
     n = len(paths)
@@ -274,7 +277,7 @@ def measure_size(
         "decode_peak_mb": round(dec["peak_mb"], 1),
         "tiling": {},
     }
-    for k in workers:
+    for k in runs:
         ws = scratch / f"ws_{n}_w{k}"
         t = _child(
             _TILE_CHILD,
@@ -283,7 +286,8 @@ def measure_size(
                 "root": str(archive_root),
                 "ws": str(ws),
                 "tile_px": tile_px,
-                "workers": k,
+                "workers": int(k.rstrip("p")),
+                "parallel": "processes" if k.endswith("p") else "threads",
             },
         )
         if t["photos_added"] != n:
@@ -292,13 +296,17 @@ def measure_size(
         status_s = time_status(ws)
         per_photo = t["seconds"] / n
         row["tiling"][str(k)] = {
-            "workers": k,
+            "workers": int(k.rstrip("p")),
+            "parallel": "processes" if k.endswith("p") else "threads",
             "seconds": round(t["seconds"], 3),
             "s_per_photo": round(per_photo, 4),
             "decode_bound_share": round(bound / per_photo, 4),
             "decode_share_inside_tiling": t["decode_share"],
             "patches": t["patches_added"],
             "peak_mb": round(t["peak_mb"], 1),
+            "peak_mb_covers": "the tiling process only (not its worker processes)"
+            if k.endswith("p")
+            else "the tiling process (its worker threads included)",
             "workspace_bytes": ws_bytes,
             "workspace_files": ws_files,
             "workspace_bytes_per_photo": round(ws_bytes / n),
@@ -307,12 +315,11 @@ def measure_size(
             "status_seconds": round(status_s, 3),
         }
         shutil.rmtree(ws)
-    ks = sorted(row["tiling"])
-    if "1" in row["tiling"] and "2" in row["tiling"]:
-        row["speedup_2_vs_1"] = round(
-            row["tiling"]["1"]["seconds"] / row["tiling"]["2"]["seconds"], 3
-        )
-    row["workers_measured"] = [int(k) for k in ks]
+    for two in ("2", "2p"):
+        if "1" in row["tiling"] and two in row["tiling"]:
+            row[f"speedup_{two}_vs_1"] = round(
+                row["tiling"]["1"]["seconds"] / row["tiling"][two]["seconds"], 3
+            )
     return row
 
 
@@ -335,7 +342,7 @@ def extrapolation(rows: list[dict]) -> dict:
     }
     for k in rows[0]["tiling"]:
         t = [r["tiling"][k] for r in rows]
-        out[f"workers_{k}"] = {
+        out[f"run_{k}"] = {
             "tiling_hours": round(extrapolate(sizes, [x["seconds"] for x in t]) / 3600, 2),
             "workspace_bytes": round(extrapolate(sizes, [x["workspace_bytes"] for x in t])),
             "workspace_files": round(extrapolate(sizes, [x["workspace_files"] for x in t])),
@@ -362,31 +369,34 @@ def print_table(result: dict) -> None:
         f"{a['bytes'] / a['photos'] / 1e6:.2f} MB per photo; tile {result['tile_px']} px"
     )
     print(
-        f"\n{'photos':>7}{'workers':>8}{'s/photo':>9}{'bound':>8}{'share':>7}{'MB/photo':>10}"
+        f"\n{'photos':>7}{'run':>8}{'s/photo':>9}{'bound':>8}{'share':>7}{'MB/photo':>10}"
         f"{'files/ph':>9}{'ws/arch':>9}{'peak MB':>9}{'status s':>9}"
     )
     for r in result["sizes"]:
-        for t in r["tiling"].values():
+        for k, t in r["tiling"].items():
             print(
-                f"{r['photos']:>7}{t['workers']:>8}{t['s_per_photo']:>9.3f}"
+                f"{r['photos']:>7}{k:>8}{t['s_per_photo']:>9.3f}"
                 f"{r['decode_s_per_photo']['opencv']:>8.3f}{t['decode_bound_share']:>7.2f}"
                 f"{t['workspace_bytes_per_photo'] / 1e6:>10.2f}{t['workspace_files_per_photo']:>9.0f}"
                 f"{t['workspace_share_of_archive']:>8.1f}x{t['peak_mb']:>9.0f}{t['status_seconds']:>9.2f}"
             )
-        if "speedup_2_vs_1" in r:
-            print(f"{'':>7}  2 workers vs 1: {r['speedup_2_vs_1']:.2f}x faster")
+        for two in ("2", "2p"):
+            if f"speedup_{two}_vs_1" in r:
+                print(f"{'':>7}  speed-up of run {two} over run 1: {r[f'speedup_{two}_vs_1']:.2f}")
     print(
         "  bound = OpenCV decode s/photo of the same files (one thread); share = bound / tiling "
-        "s/photo (target >= 0.7); ws/arch = workspace bytes / archive bytes (target <= 0.02)"
+        "s/photo (target >= 0.7); ws/arch = workspace bytes / archive bytes (target <= 0.02);"
+        " run 1 / 2: workers, threads (the CLI's mode); 2p: 2 worker processes; speed-up target"
+        " >= 1.7"
     )
     e = result["extrapolated"]
     print(
         f"\nEXTRAPOLATED linearly to {e['photos']:,} photos (not measured): archive {_gb(e['archive_bytes'])}"
     )
     for k, v in e.items():
-        if k.startswith("workers_"):
+        if k.startswith("run_"):
             print(
-                f"  {k.replace('_', ' ')}: tiling {v['tiling_hours']:.1f} h, workspace "
+                f"  run {k[4:]}: tiling {v['tiling_hours']:.1f} h, workspace "
                 f"{_gb(v['workspace_bytes'])} in {v['workspace_files']:,} files"
             )
     print(f"  decode bound (OpenCV, one process): {e['decode_bound_hours_opencv']:.1f} h")
@@ -408,7 +418,12 @@ def main(argv: list[str] | None = None) -> int:
         help="photos generated (default 3, --quick 2); the rest derived",
     )
     ap.add_argument("--tile-px", type=int, default=128, help="patch size in pixels")
-    ap.add_argument("--workers", type=int, nargs="+", default=[1, 2], help="tiling workers")
+    ap.add_argument(
+        "--runs",
+        nargs="+",
+        default=["1", "2", "2p"],
+        help="tiling runs: a worker count, with 'p' for processes instead of threads",
+    )
     ap.add_argument(
         "--json", type=Path, default=None, help="results file (default OUT/archive.json)"
     )
@@ -420,8 +435,9 @@ def main(argv: list[str] | None = None) -> int:
     sizes = sorted(set(args.photos or (QUICK_PHOTOS if args.quick else FULL_PHOTOS)))
     if sizes[0] < 1:
         ap.error(f"--photos: expected sizes >= 1, got {sizes[0]}")
-    if any(k < 1 for k in args.workers):
-        ap.error(f"--workers: expected counts >= 1, got {args.workers}")
+    bad = [k for k in args.runs if not re.fullmatch(r"[1-9][0-9]*p?", k)]
+    if bad:
+        ap.error(f"--runs: expected worker counts like 1, 2 or 2p, got {' '.join(bad)}")
     megapixels = args.megapixels or (QUICK_MEGAPIXELS if args.quick else 12.0)
     try:
         height, width = photo_size(megapixels)
@@ -444,14 +460,17 @@ def main(argv: list[str] | None = None) -> int:
         )
         rows = []
         for n in sizes:
-            say(args.quiet, f"measuring {n} photos (decode bound, tiling with {args.workers}) ...")
+            say(
+                args.quiet,
+                f"measuring {n} photos (decode bound, tiling runs {' '.join(args.runs)}) ...",
+            )
             rows.append(
                 measure_size(
                     archive["paths"][:n],
                     scratch / "archive",
                     scratch,
                     tile_px=args.tile_px,
-                    workers=tuple(args.workers),
+                    runs=tuple(args.runs),
                 )
             )
     result = {
@@ -459,8 +478,9 @@ def main(argv: list[str] | None = None) -> int:
         "mode": "quick" if args.quick else "full",
         "caution": CAUTION,
         "issue": 22,
-        "what": "baseline of today's tiling (tile_into_workspace, default parallel mode) "
-        "against the plain JPEG decode bound of the same files, measured in the same run",
+        "what": "baseline of today's tiling (tile_into_workspace; runs '1' and '2' use its "
+        "default threads, what `trainkit tile` uses, '2p' two processes) against the plain "
+        "JPEG decode bound of the same files, measured in the same run",
         "machine": {"cpu_count": os.cpu_count(), "note": "shared; ratios only"},
         "tile_px": args.tile_px,
         "photo_sizes_measured": sizes,

@@ -96,7 +96,8 @@ def test_quick_run_counts_the_grid_and_the_archive(arc, tmp_path):
         assert t["workspace_share_of_archive"] == pytest.approx(
             t["workspace_bytes"] / row["archive_bytes"], rel=1e-3
         )
-    assert set(row["tiling"]) == {"1", "2"}
-    assert row["speedup_2_vs_1"] > 0
+    assert set(row["tiling"]) == {"1", "2", "2p"}
+    assert row["tiling"]["2p"]["parallel"] == "processes"
+    assert row["speedup_2p_vs_1"] > 0
     assert result["extrapolated"]["photos"] == 40_000
     assert not any(tmp_path.glob("trainkit-archive-*"))  # the scratch folder is removed
