@@ -30,7 +30,7 @@ All figures are ratios measured side by side on one machine; absolute seconds de
 the machine and its load (the shared 2-core machine had other work running).
 
 Usage: python benchmarks/archive.py OUT [--photos N [N ...]] [--quick] [--megapixels MP]
-       [--made K] [--tile-px PX] [--json PATH] [--scratch DIR] [--quiet]
+       [--made K] [--tile-px PX] [--runs 1 2 2p] [--json PATH] [--scratch DIR] [--quiet]
 
 OUT receives ``archive.json`` (or --json PATH); the archive and the workspaces live in a
 temporary folder (or --scratch DIR) that is removed at the end.
