@@ -286,10 +286,11 @@ def sample_scan(
                 "screening_probability": float(table.probabilities[i]),
             })  # fmt: skip
     # 2. sample.csv: which typed answers it holds now and which the new one keeps.
+    inclusion = design_inclusion(design)
     rows = [
         {"patch_id": c["patch_id"], "photo": c["photo"], **dict(zip(_BOX, c["box"], strict=True)),
          "frame": c["frame"], "stratum": c["stratum"],
-         "inclusion_probability": float(design_inclusion(design)[c["stratum"]]),
+         "inclusion_probability": float(inclusion[c["stratum"]]),
          "screening_probability": c["screening_probability"]}
         for c in earlier
     ]  # fmt: skip
@@ -300,7 +301,7 @@ def sample_scan(
     # 3. One transaction: the job, its frames, patches and cells; sample.csv just before commit.
     now = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     stored["draws"] = [*stored.get("draws", []), {"seed": seed, "cells": len(new_cells), "at": now}]
-    stored["inclusion"] = design_inclusion(design)
+    stored["inclusion"] = inclusion
 
     def write_csv(ids: list[int]) -> None:
         for c, pid in zip(new_cells, ids, strict=True):
