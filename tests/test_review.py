@@ -286,8 +286,8 @@ def test_open_adds_review_tables_to_an_older_workspace_and_refuses_newer(tmp_pat
     con.commit()
     con.close()
     Workspace.open(ws.root).set_review_skip(1, "ana")  # table recreated on open
-    ws.set_meta("schema_version", "3")
-    with pytest.raises(WorkspaceError, match="has schema version 3, this kit reads 2"):
+    ws.set_meta("schema_version", "4")
+    with pytest.raises(WorkspaceError, match="has schema version 4, this kit reads 3"):
         Workspace.open(ws.root)
 
 

@@ -117,4 +117,4 @@ def test_version_1_workspace_is_migrated_to_the_new_origin_words(tmp_path):
     again = Workspace.open(ws.root)
     assert [e["origin"] for e in again.label_events()] == ["reviewer", "file"]
     assert [e["origin"] for e in again.undone_events()] == ["suggestion"]
-    assert again.meta("schema_version") == "2"
+    assert again.meta("schema_version") == "3"  # then on through version 2 to 3

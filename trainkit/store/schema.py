@@ -14,7 +14,8 @@ CREATE TABLE IF NOT EXISTS photos (
     capture_date TEXT,                  -- YYYY-MM-DD from the sidecar, the name pattern or EXIF
     roi TEXT,                           -- region of interest as given, NULL for the whole photo
     sha256 TEXT NOT NULL,
-    added_at REAL NOT NULL
+    added_at REAL NOT NULL,
+    grid_px INTEGER                     -- side of the grid's boxes in photo pixels (NULL: older kits)
 );
 CREATE INDEX IF NOT EXISTS photos_sha ON photos(sha256);
 CREATE TABLE IF NOT EXISTS patches (

@@ -31,7 +31,7 @@ __all__ = [
 ]
 
 DB_NAME = "workspace.sqlite"
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: Where a label event came from: a reviewer's own answer, a label file, or a reviewer
 #: confirming the model's suggestion with one key.
 LABEL_ORIGINS = ("reviewer", "file", "suggestion")
@@ -137,6 +137,9 @@ class Workspace:
         if version == "1":
             ws._migrate_from_v1()
             version = ws.meta("schema_version")
+        if version == "2":
+            ws._migrate_from_v2()
+            version = ws.meta("schema_version")
         if version != str(SCHEMA_VERSION):
             raise WorkspaceError(
                 f"workspace {ws.root} has schema version {version}, this kit reads {SCHEMA_VERSION}"
@@ -154,8 +157,22 @@ class Workspace:
                 if "source" in cols:
                     con.execute(f"ALTER TABLE {table} RENAME COLUMN source TO origin")
                     con.execute(f"UPDATE {table} SET origin = CASE origin {case} ELSE origin END")
+            con.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
+
+    def _migrate_from_v2(self) -> None:
+        """Version 2 -> 3: patches by reference. Photos gain ``grid_px``; the crop files an
+        older kit wrote stay where they are and keep being read (:mod:`trainkit.store.pixels`);
+        photos tiled from now on store no crop files."""
+        with self.connect() as con:
+            cols = [r[1] for r in con.execute("PRAGMA table_info(photos)")]
+            if "grid_px" not in cols:
+                con.execute("ALTER TABLE photos ADD COLUMN grid_px INTEGER")
             con.execute(
                 "UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION),)
+            )
+            con.execute(
+                "INSERT OR REPLACE INTO meta(key, value) VALUES ('migrated_from_2', ?)",
+                (str(time.time()),),
             )
 
     @contextmanager
@@ -213,8 +230,12 @@ class Workspace:
         gsd_source: str | None = None,
         capture_date: str | None = None,
         roi: str | None = None,
+        grid_px: int | None = None,
     ) -> int:
         """Add one photo and all its patches in a single transaction; returns the photo id.
+
+        ``grid_px`` is the side of the grid's boxes in photo pixels (the cutting rule's
+        ``src_px``, :func:`trainkit.store.pixels.cut_patch`).
 
         Each patch dict has row, col, x0, y0, x1, y1, crop, patch_mm, focus, clipped,
         flags and optionally review_skip.
@@ -225,8 +246,8 @@ class Workspace:
         with self.connect() as con:
             cur = con.execute(
                 "INSERT INTO photos(name, source_path, size_bytes, width, height, gsd_mm, gsd_source,"
-                " group_id, capture_date, roi, sha256, added_at)"
-                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                " group_id, capture_date, roi, sha256, added_at, grid_px)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (
                     name,
                     source_path,
@@ -240,6 +261,7 @@ class Workspace:
                     roi,
                     sha256,
                     time.time(),
+                    grid_px,
                 ),
             )
             pid = int(cur.lastrowid)
