@@ -202,7 +202,7 @@ def test_cut_patch_defaults_to_the_tile_side_for_small_boxes():
 
 
 def test_a_version_2_workspace_opens_and_keeps_using_its_crop_files(tmp_path):
-    from tests._helpers import make_ws
+    from _helpers import make_ws
 
     ws = make_ws(tmp_path / "ws", 2, 3, size=32, gsd_mm=0.5)
     want = {r.id: np.asarray(Image.open(ws.root / r.crop).convert("RGB")) for r in ws.patches()}
@@ -227,7 +227,7 @@ def test_a_version_2_workspace_opens_and_keeps_using_its_crop_files(tmp_path):
 
 def test_summary_counts_equal_the_records(tmp_path):
     # The SQL summary against the same counts made from every PatchRecord.
-    from tests._helpers import make_ws
+    from _helpers import make_ws
 
     ws = make_ws(tmp_path / "ws", 3, 4, skip=[3])
     ids = [r.id for r in ws.patches()]
@@ -254,7 +254,7 @@ def test_the_command_line_prints_the_upgrade_note_once(tmp_path):
     import subprocess
     import sys
 
-    from tests._helpers import make_ws
+    from _helpers import make_ws
 
     ws = make_ws(tmp_path / "ws", 1, 2, size=32)
     con = sqlite3.connect(ws.db_path)

@@ -122,7 +122,6 @@ class Workspace:
                 )
             return ws
         ws.root.mkdir(parents=True, exist_ok=True)
-        (ws.root / "patches").mkdir(exist_ok=True)
         with ws.connect() as con:
             con.executescript(_SCHEMA)
             con.executemany(
@@ -337,8 +336,8 @@ class Workspace:
         is needed instead.
         """
         where = []
-        if labelled:
-            where.append("p.id IN (SELECT patch_id FROM label_events)")
+        if labelled:  # driven by the label events, not by a scan of every patch
+            where.append("p.id IN (SELECT DISTINCT patch_id FROM label_events)")
         q = f"""
         SELECT p.id, ph.name, ph.group_id, p.row, p.col, p.x0, p.y0, p.x1, p.y1, p.crop,
                COALESCE(p.patch_mm, (p.x1 - p.x0) * ph.gsd_mm), ph.gsd_mm, p.focus, p.clipped,
@@ -346,10 +345,11 @@ class Workspace:
                (SELECT e.label FROM label_events e WHERE e.patch_id = p.id ORDER BY e.id DESC LIMIT 1),
                EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = p.id),
                s.subset, p.review_skip, j.job
-        FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        FROM {"temp.wanted_patches w CROSS JOIN" if ids is not None else ""} patches p
+        {"ON p.id = w.id" if ids is not None else ""}
+        JOIN photos ph ON ph.id = p.photo_id
         LEFT JOIN split_assignments s ON s.patch_id = p.id
         LEFT JOIN job_cells j ON j.patch_id = p.id
-        {"JOIN temp.wanted_patches w ON w.id = p.id" if ids is not None else ""}
         {("WHERE " + " AND ".join(where)) if where else ""}
         ORDER BY ph.id, p.row, p.col, p.id
         """
@@ -756,7 +756,7 @@ class Workspace:
                     box = (int(p["x0"]), int(p["y0"]), int(p["x1"]), int(p["y1"]))
                     old = con.execute(
                         "SELECT id FROM patches WHERE photo_id = ? AND x0 = ? AND y0 = ?"
-                        " AND x1 = ? AND y1 = ?",
+                        " AND x1 = ? AND y1 = ? AND crop != ''",  # job cells have crop files
                         (photo_id, *box),
                     ).fetchone()
                     if old is not None:  # left by an interrupted sample: its crop is this one
@@ -800,6 +800,7 @@ class Workspace:
         nothing (no label, undone label, skip or split), then photos left without patches."""
         con.execute(
             """DELETE FROM patches WHERE photo_id IN (SELECT id FROM photos WHERE group_id = ?)
+               AND crop != ''
                AND id NOT IN (SELECT patch_id FROM job_cells)
                AND id NOT IN (SELECT patch_id FROM label_events)
                AND id NOT IN (SELECT patch_id FROM undone_label_events)
