@@ -7,6 +7,7 @@ import sqlite3
 import pytest
 from _helpers import make_ws
 
+from trainkit.core.errors import TrainkitNote
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import SplitError, assign_groups, check_no_leak, split_workspace
 from trainkit.store.workspace import Workspace, WorkspaceError
@@ -114,7 +115,21 @@ def test_version_1_workspace_is_migrated_to_the_new_origin_words(tmp_path):
             )
         con.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
     con.close()
-    again = Workspace.open(ws.root)
+    with pytest.warns(TrainkitNote, match="upgraded to format 3"):
+        again = Workspace.open(ws.root)
     assert [e["origin"] for e in again.label_events()] == ["reviewer", "file"]
     assert [e["origin"] for e in again.undone_events()] == ["suggestion"]
     assert again.meta("schema_version") == "3"  # then on through version 2 to 3
+
+
+def test_patches_by_ids_and_labelled_equal_the_filtered_list(tmp_path):
+    ws = make_ws(tmp_path / "ws", 3, 4)
+    every = ws.patches()
+    ids = [r.id for r in every]
+    ws.add_labels([(ids[7], "map"), (ids[2], None)], reviewer="ana")
+    ws.undo_label_event(ws.add_label_event(ids[4], "none", reviewer="ana"))
+    every = ws.patches()
+    assert ws.patches(labelled=True) == [r for r in every if r.labelled]
+    want = {ids[9], ids[0], ids[5], 10**6}  # an unknown id is left out
+    assert ws.patches(ids=want) == [r for r in every if r.id in want]
+    assert ws.patches(ids=[]) == [] and ws.patch_ids() == set(ids)
