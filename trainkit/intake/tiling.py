@@ -214,7 +214,8 @@ def dask_tile_task(job: IntakeJob, known_hashes: frozenset) -> dict:
     return _process(job, known_hashes)
 
 
-#: The workspace's known photo hashes in a pool worker (set once by :func:`_pool_init`).
+#: The workspace's known photo hashes in a pool worker process, set once by
+#: :func:`_pool_init` (sent once per worker rather than with each of thousands of photos).
 _POOL_KNOWN: frozenset = frozenset()
 
 
