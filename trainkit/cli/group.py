@@ -10,6 +10,7 @@ from trainkit.cli.demo import demo
 from trainkit.cli.evaluate import evaluate
 from trainkit.cli.export import export
 from trainkit.cli.output import Ctx
+from trainkit.cli.pick import pick
 from trainkit.cli.review import review
 from trainkit.cli.sample import sample
 from trainkit.cli.scan import scan
@@ -39,7 +40,7 @@ def cli(click_ctx: click.Context, quiet: bool, debug: bool) -> None:
     """trainkit: build, check and export a concrete-crack patch screener on CPU.
 
     \b
-    Workflow:  synth/photos -> tile -> review -> split -> train -> evaluate -> export -> scan
+    Workflow:  synth/photos -> tile -> pick -> review -> split -> train -> evaluate -> export -> scan
     Each job:  scan -> sample -> review -> verify
     Try it:    trainkit demo --out demo-output
     """
@@ -47,6 +48,6 @@ def cli(click_ctx: click.Context, quiet: bool, debug: bool) -> None:
 
 
 for _command in (
-    synth, tile, split, train, evaluate, export, scan, sample, verify, review, status, demo
+    synth, tile, pick, split, train, evaluate, export, scan, sample, verify, review, status, demo
 ):  # fmt: skip
     cli.add_command(_command)
