@@ -77,7 +77,7 @@ def pick(
 
             scorer = model_scorer(model)
         try:
-            with progress_bar(ctx, "picking") as bar:
+            with progress_bar(Ctx(ctx.quiet or as_json, ctx.debug), "picking") as bar:
                 res = pick_patches(
                     ws, n, seed=seed, scorer=scorer, pool=pool,
                     progress=lambda stage, d, t: bar.update(d, t, description=stage),
@@ -98,6 +98,7 @@ def _print(ctx: Ctx, ws_dir: Path, res: dict) -> None:
         f"pick {res['pick']} of {ws_dir}: {res['picked']} patches ({reasons}), seed "
         f"{res['seed']}, from {res['candidates']} that could be picked",
         highlight=False,
+        soft_wrap=True,
     )
     if res["model"]:
         guided = sum(g["guided"] for g in res["groups"].values())
@@ -105,6 +106,7 @@ def _print(ctx: Ctx, ws_dir: Path, res: dict) -> None:
             f"model {res['model']} ({res['features']} features): guided picks in {guided} "
             f"train groups from a spread pool of {res['pool']} candidates",
             highlight=False,
+            soft_wrap=True,
         )
     t = Table(title="Picked per group")
     for col in ("group", "picked", "could be picked", "rule"):
@@ -115,18 +117,23 @@ def _print(ctx: Ctx, ws_dir: Path, res: dict) -> None:
         t.add_row(g, str(row["picked"]), str(row["candidates"]), rule)
     console.print(t)
     if len(groups) > SHOWN_GROUPS:
-        console.print(f"... and {len(groups) - SHOWN_GROUPS} more groups (--json lists them all)")
+        console.print(
+            f"... and {len(groups) - SHOWN_GROUPS} more groups (--json lists them all)",
+            soft_wrap=True,
+        )
     crops = res["crops"]
     if crops["store"]:
         console.print(
-            f"crops: {crops['cached']} cut from their photos and cached in {crops['store']} "
-            f"(the other {res['picked'] - crops['cached']} were cached already)",
+            f"crops: {crops['cached']} cut from their photos and cached in {crops['store']}; "
+            f"{res['picked'] - crops['cached']} were stored already",
             highlight=False,
+            soft_wrap=True,
         )
     if res["note"]:
-        console.print(res["note"], highlight=False)
+        console.print(res["note"], highlight=False, soft_wrap=True)
     console.print(
         f"label them: trainkit review {ws_dir} --reviewer NAME (picked patches come first; "
         "--queue picked shows only them)",
         highlight=False,
+        soft_wrap=True,
     )
