@@ -315,13 +315,13 @@ def test_model_guided_picks_come_only_from_train_groups(tmp_path):
         assert guided == (group_of[p["patch_id"]] == "A"), p
         assert (p["score"] is not None) == guided
     assert [g for g, row in res["groups"].items() if row["guided"]] == ["A"]
-    assert scorer.scored == res["pool"] == 9  # a pool of 3 x A's quota, from A only
+    assert scorer.scored == res["pool_size"] == 9  # a pool of 3 x A's quota, from A only
     assert res["by_reason"] == {"spread": 9, "uncertain": 1, "diverse": 2}
     assert "not in the split's train part" in res["note"]
     # without a split, a model changes nothing: every pick is spread
     ws2 = archive_ws(tmp_path / "ws2", groups={"A": 2, "B": 2})
     res2 = pick_patches(ws2, 6, seed=2, scorer=FakeScorer(), cache=False)
-    assert res2["by_reason"]["spread"] == 6 and res2["pool"] == 0
+    assert res2["by_reason"]["spread"] == 6 and res2["pool_size"] == 0
 
 
 def test_a_model_of_other_classes_is_refused(tmp_path):
@@ -393,6 +393,9 @@ def test_pick_command_end_to_end(tmp_path, capsys):
     assert "--queue picked" in out.output
     assert main(["pick", str(ws.root), "--patches", "1"]) == 2
     assert "holds no patch to pick" in capsys.readouterr().err
+    ws.add_labels([(p["patch_id"], "none") for p in ws.picked_patches()], reviewer="ana")
+    assert main(["review", str(ws.root), "--queue", "picked", "--reviewer", "ana"]) == 0
+    assert "no unanswered picks; choose some with: trainkit pick" in capsys.readouterr().out
 
 
 # ----- the network's features ---------------------------------------------------------------------
@@ -472,7 +475,7 @@ def test_pick_command_with_a_model_guides_only_train_groups(tmp_path, capsys):
     assert main([*args, "--pool", "2", "--json"]) == 0
     res = json.loads(capsys.readouterr().out)
     assert res["groups"]["A"]["guided"] and not res["groups"]["B"]["guided"]
-    assert res["features"] == "penultimate" and res["pool"] == 8
+    assert res["features"] == "penultimate" and res["pool_size"] == 8
     assert res["by_reason"]["spread"] == 4 and res["by_reason"]["diverse"] == 3
     group = {r.id: r.group for r in ws.patches()}
     for p in ws.picked_patches():

@@ -104,7 +104,7 @@ def _print(ctx: Ctx, ws_dir: Path, res: dict) -> None:
         guided = sum(g["guided"] for g in res["groups"].values())
         console.print(
             f"model {res['model']} ({res['features']} features): guided picks in {guided} "
-            f"train groups from a spread pool of {res['pool']} candidates",
+            f"train groups from a spread pool of {res['pool_size']} candidates",
             highlight=False,
             soft_wrap=True,
         )

@@ -148,7 +148,14 @@ def review(
             with progress_bar(ctx, "model predictions") as bar:
                 session = prepare_session(ws, request, progress=lambda d, n: bar.update(d, n))
         if session is None:
-            ctx.console.print(f"nothing to review in the {queue_kind} queue of {ws.root}")
+            hint = (
+                f" (no unanswered picks; choose some with: trainkit pick {ws_dir} --patches N)"
+                if queue_kind == "picked"
+                else ""
+            )
+            ctx.console.print(
+                f"nothing to review in the {queue_kind} queue of {ws.root}{hint}", soft_wrap=True
+            )
             return
         console = Console(highlight=False, soft_wrap=True)
         result = run_review(ws, request, session, console)

@@ -17,7 +17,9 @@ same seed: same pick):
   unsure) on a spread candidate pool of ``pool`` times the quota, then greedy k-center
   on the network's features among the least sure (Gonzalez 1985, farthest-first
   traversal; used for batch active learning as the core-set rule by Sener and Savarese
-  2018), so a batch is not many near-copies of one hard patch.
+  2018), so a batch is not many near-copies of one hard patch. The train groups' quotas
+  set how many guided picks there are and their pool is spread over them; which groups
+  the picks then come from is the model's choice.
 
 Model-guided picks come only from groups the current split puts in ``train``: patches a
 model finds hard are not a random sample, and an estimate made on them (validation,
@@ -32,7 +34,6 @@ from __future__ import annotations
 
 import functools
 import math
-import time
 from collections import defaultdict
 from collections.abc import Callable, Hashable, Mapping, Sequence
 from dataclasses import dataclass
@@ -391,7 +392,8 @@ def pick_patches(
     Returns:
         A JSON-ready summary: ``pick`` (its number), ``seed``, ``asked``, ``picked``,
         ``candidates``, ``by_reason``, ``groups`` (group -> ``candidates``, ``picked``,
-        ``guided``), ``model``, ``pool``, ``crops`` (``cached``, ``store``) and ``note``.
+        ``guided``), ``model``, ``features``, ``pool_size``, ``crops`` (``cached``: newly
+        cut, ``store``: where) and ``note``.
 
     Raises:
         PickError: ``n`` or ``pool`` out of range, or a model of other classes.
@@ -494,10 +496,9 @@ def pick_patches(
         "groups": per_group,
         "model": None if scorer is None else scorer.source,
         "features": None if scorer is None else scorer.features_kind,
-        "pool": pool_size,
+        "pool_size": pool_size,
         "crops": {"cached": int(cached), "store": None if store is None else str(store)},
         "note": _note(scorer, guided_groups, spread_groups, len(entries), n),
-        "created_at": time.time(),
     }
 
 
