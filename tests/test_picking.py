@@ -491,3 +491,13 @@ def test_the_scale_benchmark_runs_small(tmp_path, capsys):
     out = json.loads(capsys.readouterr().out)
     assert out["patches"] == 360 and out["pick1_picked"] == out["pick2_picked"] == 40
     assert out["pick1_per_group"] == [10, 10]
+
+
+def test_a_pick_whose_photo_is_missing_says_which_and_records_nothing(tmp_path, capsys):
+    ws = make_ws(tmp_path / "ws", 2, 3, size=SIZE)
+    with ws.connect() as con:  # patches by reference: cut from /x/p*.jpg, which do not exist
+        con.execute("UPDATE patches SET crop = ''")
+    assert main(["pick", str(ws.root), "--patches", "4", "--seed", "1"]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("trainkit: photo p") and "is no longer at /x/p" in err
+    assert ws.picks() == [] and ws.picked_patches() == []
