@@ -501,3 +501,14 @@ def test_a_pick_whose_photo_is_missing_says_which_and_records_nothing(tmp_path, 
     err = capsys.readouterr().err
     assert err.startswith("trainkit: photo p") and "is no longer at /x/p" in err
     assert ws.picks() == [] and ws.picked_patches() == []
+
+
+def test_a_model_pick_whose_quota_falls_outside_train_groups_is_spread(tmp_path):
+    ws = archive_ws(tmp_path / "ws", groups={"A": 1, "B": 1})
+    a = next(r.id for r in ws.patches() if r.group == "A")
+    ws.set_split({a: "train"}, {})
+    reasons = set()
+    for seed in range(8):  # one patch: the seed gives it to A (guided) or B (spread)
+        res = pick_patches(ws, 1, seed=seed, scorer=FakeScorer(), cache=False)
+        reasons |= {r for r, k in res["by_reason"].items() if k}
+    assert reasons == {"spread", "uncertain"}

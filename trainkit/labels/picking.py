@@ -34,7 +34,7 @@ from __future__ import annotations
 
 import functools
 import math
-from collections import defaultdict
+from collections import Counter, defaultdict
 from collections.abc import Callable, Hashable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -293,18 +293,15 @@ class _Strata:
     """Candidate counts: group -> scale bin -> photo id -> quality -> count."""
 
     tree: dict
-    photo_group: dict[int, str]
 
     @classmethod
     def read(cls, ws: Workspace) -> _Strata:
         tree: dict = defaultdict(lambda: defaultdict(lambda: defaultdict(dict)))
-        photo_group: dict[int, str] = {}
         for photo, group, mm, flagged, count in ws.pick_strata():
             q = "flagged" if flagged else "clean"
             leaf = tree[group][scale_bin(mm)][photo]
             leaf[q] = leaf.get(q, 0) + count
-            photo_group[photo] = group
-        return cls({g: {s: dict(p) for s, p in v.items()} for g, v in tree.items()}, photo_group)
+        return cls({g: {s: dict(p) for s, p in v.items()} for g, v in tree.items()})
 
     def group_sizes(self) -> dict[str, int]:
         return {g: _total(v) for g, v in self.tree.items()}
@@ -418,7 +415,8 @@ def pick_patches(
     quota = allocate(n, sizes, rng)
     subsets = ws.group_subsets()
     train = sorted(g for g in sizes if subsets.get(g) == {"train"})
-    guided_groups = train if scorer is not None else []
+    # the model guides only train groups, and only when the quotas give them patches
+    guided_groups = train if scorer is not None and sum(quota[g] for g in train) else []
     spread_groups = sorted(g for g in sizes if g not in set(guided_groups))
 
     spread_quota: dict[tuple, int] = {}
@@ -431,7 +429,7 @@ def pick_patches(
 
     guided: tuple[list[int], list[str], list[float]] = ([], [], [])
     pool_size = 0
-    if guided_groups:
+    if guided_groups and scorer is not None:
         k = sum(quota[g] for g in guided_groups)
         pool_quota: dict[tuple, int] = {}
         for g in guided_groups:
@@ -443,7 +441,7 @@ def pick_patches(
         group_of.update({i: g for g, ids in pool_by_group.items() for i in ids})
         pool_ids = [i for g in sorted(pool_by_group) for i in pool_by_group[g]]
         pool_size = len(pool_ids)
-        guided = _guided(ws, pool_ids, k, scorer, progress)  # type: ignore[arg-type]
+        guided = _guided(ws, pool_ids, k, scorer, progress)
 
     spread_order = _shuffled_interleave(spread_ids, rng)
     entries = interleave(
@@ -478,14 +476,11 @@ def pick_patches(
         entries, seed=seed, model=None if scorer is None else scorer.source, design=design
     )
     by_reason = {r: sum(e["reason"] == r for e in entries) for r in PICK_REASONS}
-    per_group: dict[str, dict] = {}
-    for g in sorted(sizes):
-        mine = [e for e in entries if group_of.get(e["patch_id"]) == g]
-        per_group[g] = {
-            "candidates": sizes[g],
-            "picked": len(mine),
-            "guided": g in set(guided_groups),
-        }
+    picked_in = Counter(group_of[e["patch_id"]] for e in entries)
+    per_group = {
+        g: {"candidates": sizes[g], "picked": picked_in[g], "guided": g in set(guided_groups)}
+        for g in sorted(sizes)
+    }
     return {
         "pick": number,
         "seed": int(seed),
@@ -498,17 +493,18 @@ def pick_patches(
         "features": None if scorer is None else scorer.features_kind,
         "pool_size": pool_size,
         "crops": {"cached": int(cached), "store": None if store is None else str(store)},
-        "note": _note(scorer, guided_groups, spread_groups, len(entries), n),
+        "note": _note(scorer, [g for g in sizes if g not in set(train)], len(entries), n),
     }
 
 
-def _note(scorer, guided_groups, spread_groups, picked: int, asked: int) -> str:
+def _note(scorer: Scorer | None, not_train: list[str], picked: int, asked: int) -> str:
+    """What the reader of a pick's summary should know: a short pick, groups left spread."""
     parts = []
     if picked < asked:
         parts.append(f"only {picked} patches could be picked, not {asked}")
-    if scorer is not None and spread_groups:
+    if scorer is not None and not_train:
         parts.append(
-            f"{len(spread_groups)} groups are not in the split's train part (val, test or no "
+            f"{len(not_train)} groups are not in the split's train part (val, test or no "
             "split): their picks are spread, not model-guided, so estimates made on them stay "
             "unbiased"
         )
