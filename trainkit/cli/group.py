@@ -20,7 +20,7 @@ __all__ = ["cli"]
 COMMANDS = {
     name: f"trainkit.cli.{name}"
     for name in (
-        "synth", "tile", "split", "train", "evaluate", "export", "scan", "sample", "verify",
+        "synth", "tile", "pick", "split", "train", "evaluate", "export", "scan", "sample", "verify",
         "review", "status", "demo",
     )
 }  # fmt: skip
