@@ -42,11 +42,12 @@ def build(root: Path, photos: int, per_photo: int, groups: int, seed: int = 0) -
     with ws.connect() as con:
         con.executemany(
             "INSERT INTO photos(id, name, source_path, size_bytes, width, height, gsd_mm,"
-            " gsd_source, group_id, sha256, added_at, grid_px) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
+            " gsd_source, group_id, sha256, added_at, grid_px, first_patch, last_patch)"
+            " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
             [
                 (i + 1, f"p{i:05d}.jpg", f"/archive/p{i:05d}.jpg", 4_000_000, 4000, 3000,
                  (0.2, 0.35, 0.8)[i % 3], "option", f"structure-{i % groups:03d}",
-                 f"{i:064x}", now, 128)
+                 f"{i:064x}", now, 128, i * per_photo + 1, (i + 1) * per_photo)
                 for i in range(photos)
             ],
         )  # fmt: skip

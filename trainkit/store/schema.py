@@ -15,7 +15,9 @@ CREATE TABLE IF NOT EXISTS photos (
     roi TEXT,                           -- region of interest as given, NULL for the whole photo
     sha256 TEXT NOT NULL,
     added_at REAL NOT NULL,
-    grid_px INTEGER                     -- side of the grid's boxes in photo pixels (NULL: older kits)
+    grid_px INTEGER,                    -- side of the grid's boxes in photo pixels (NULL: older kits)
+    first_patch INTEGER,                -- its patches' ids are first_patch..last_patch (tiled in
+    last_patch INTEGER                  -- one transaction; NULL: job frames, older kits)
 );
 CREATE INDEX IF NOT EXISTS photos_sha ON photos(sha256);
 CREATE TABLE IF NOT EXISTS patches (

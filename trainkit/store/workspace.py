@@ -174,8 +174,9 @@ class Workspace:
         photos tiled from now on store no crop files."""
         with self.connect() as con:
             cols = [r[1] for r in con.execute("PRAGMA table_info(photos)")]
-            if "grid_px" not in cols:
-                con.execute("ALTER TABLE photos ADD COLUMN grid_px INTEGER")
+            for col in ("grid_px", "first_patch", "last_patch"):
+                if col not in cols:
+                    con.execute(f"ALTER TABLE photos ADD COLUMN {col} INTEGER")
             con.execute(
                 "UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION),)
             )
@@ -283,27 +284,38 @@ class Workspace:
                 ),
             )
             pid = int(cur.lastrowid)
+            # ids first..first+n-1, so a photo's patches are found by id range (no index over
+            # every patch is needed); the write lock of this transaction keeps them free
+            first = int(con.execute("SELECT COALESCE(MAX(id), 0) + 1 FROM patches").fetchone()[0])
+            rows = [
+                (
+                    first + k,
+                    pid,
+                    p["row"],
+                    p["col"],
+                    p["x0"],
+                    p["y0"],
+                    p["x1"],
+                    p["y1"],
+                    p["crop"],
+                    _stored_patch_mm(p, gsd_mm),
+                    p["focus"],
+                    p["clipped"],
+                    p.get("flags", ""),
+                    int(p.get("review_skip", 0)),
+                )
+                for k, p in enumerate(patches)
+            ]
             con.executemany(
-                f"INSERT INTO patches(photo_id, {cols}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [
-                    (
-                        pid,
-                        p["row"],
-                        p["col"],
-                        p["x0"],
-                        p["y0"],
-                        p["x1"],
-                        p["y1"],
-                        p["crop"],
-                        _stored_patch_mm(p, gsd_mm),
-                        p["focus"],
-                        p["clipped"],
-                        p.get("flags", ""),
-                        int(p.get("review_skip", 0)),
-                    )
-                    for p in patches
-                ],
+                f"INSERT INTO patches(id, photo_id, {cols})"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                rows,
             )
+            if rows:
+                con.execute(
+                    "UPDATE photos SET first_patch = ?, last_patch = ? WHERE id = ?",
+                    (first, first + len(rows) - 1, pid),
+                )
         return pid
 
     def photo_hashes(self) -> dict[str, str]:
@@ -919,7 +931,8 @@ class Workspace:
         q = f"""
         SELECT p.id, {self._PATCH_MM}, p.flags != ''
         FROM patches p JOIN photos ph ON ph.id = p.photo_id
-        WHERE p.photo_id = ? AND p.review_skip = 0 AND substr(ph.group_id, 1, length(?)) != ?
+        WHERE p.id BETWEEN ? AND ? AND p.photo_id = ?
+        AND p.review_skip = 0 AND substr(ph.group_id, 1, length(?)) != ?
         AND p.id NOT IN temp._unpickable ORDER BY p.id
         """
         with self.connect() as con:
@@ -931,7 +944,14 @@ class Workspace:
                 " UNION SELECT patch_id FROM job_cells UNION SELECT patch_id FROM label_pick_patches"
             )
             for photo in photo_ids:
-                rows = con.execute(q, (int(photo), JOB_GROUP_PREFIX, JOB_GROUP_PREFIX))
+                # a tiled photo's patches are an id range (a search by rowid); job frames and
+                # older kits' photos have none: all ids, found through their own index
+                first, last = con.execute(
+                    "SELECT COALESCE(first_patch, 0), COALESCE(last_patch, ?) FROM photos"
+                    " WHERE id = ?",
+                    (1 << 62, int(photo)),
+                ).fetchone()
+                rows = con.execute(q, (first, last, int(photo), JOB_GROUP_PREFIX, JOB_GROUP_PREFIX))
                 yield int(photo), [(int(i), mm, bool(f)) for i, mm, f in rows.fetchall()]
 
     def group_subsets(self) -> dict[str, set[str]]:
