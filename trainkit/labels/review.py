@@ -454,7 +454,7 @@ class Session:
         self.answered = 0  # labels given in this session (net of undo)
         self.started = time.monotonic()
         self._history: list[_Action] = []
-        self._records = {r.id: r for r in ws.patches(ids=self.queue)}
+        self._records: dict[int, PatchRecord] = {}  # read a window at a time (see record)
         self._skipped = ws.review_skips(self.reviewer)
 
     # ----- state --------------------------------------------------------------
@@ -464,7 +464,16 @@ class Session:
         return self.current() is None
 
     def record(self, patch_id: int) -> PatchRecord:
-        return self._records[patch_id]
+        """The patch's record, read with the next patches of the queue when not read yet."""
+        rec = self._records.get(patch_id)
+        if rec is None:
+            window = {patch_id, *self.queue[self.pos : self.pos + self._WINDOW]}
+            self._records.update((r.id, r) for r in self.ws.patches(ids=window))
+            rec = self._records[patch_id]
+        return rec
+
+    #: Records read at once as the queue moves on (a queue may be millions of patches long).
+    _WINDOW = 256
 
     def current(self) -> PatchRecord | None:
         """The patch to answer now, or None at the end of the queue."""
@@ -473,7 +482,7 @@ class Session:
             if self.check_fresh and self.ws.label_history(pid):
                 del self.queue[self.pos]  # another reviewer labelled it meanwhile
                 continue
-            return self._records[pid]
+            return self.record(pid)
         return None
 
     def upcoming(self, n: int) -> list[PatchRecord]:
@@ -591,4 +600,4 @@ class Session:
                     self.ws.set_review_skip(pid, self.reviewer, skipped=False)
                     self._skipped.pop(pid, None)
         self.pos = act.pos
-        return self._records[act.patch_ids[0]]
+        return self.record(act.patch_ids[0])

@@ -65,20 +65,22 @@ def prepare_session(
     from trainkit.labels.review import model_probabilities
 
     kind = request.queue
-    records = ws.patches()
+    # the unlabelled and picked queues ask about unlabelled patches, audit and conflicts about
+    # labelled ones: only those rows are read, in light form (an archive holds millions)
+    records = ws.queue_rows(labelled=kind not in ("unlabelled", "picked"))
     events = ws.label_events() if kind in ("audit", "conflicts") else []
     picks = [p["patch_id"] for p in ws.picked_patches(unanswered=True)]
     probs = None
     if request.model is not None:
         wanted = set(picks) if kind == "picked" else None
         todo = [
-            r
+            r.id
             for r in records
             if not r.review_skip
             and (kind not in ("unlabelled", "picked") or not r.labelled)
             and (wanted is None or r.id in wanted)
         ]
-        probs = model_probabilities(request.model, ws, todo, progress=progress)
+        probs = model_probabilities(request.model, ws, ws.patches(ids=todo), progress=progress)
     queue = build_queue(
         records,
         reviewer=request.reviewer,

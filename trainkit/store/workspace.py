@@ -16,6 +16,7 @@ from collections.abc import Callable, Collection, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
+from typing import NamedTuple
 
 from trainkit.core.errors import TrainkitError, TrainkitNote
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
@@ -25,6 +26,7 @@ __all__ = [
     "Workspace",
     "WorkspaceError",
     "PatchRecord",
+    "QueueRow",
     "DB_NAME",
     "LABEL_ORIGINS",
     "JOB_GROUP_PREFIX",
@@ -96,6 +98,16 @@ def _stored_patch_mm(patch: dict, gsd_mm: float | None) -> float | None:
     if mm is None or (gsd_mm is not None and mm == (patch["x1"] - patch["x0"]) * gsd_mm):
         return None
     return mm
+
+
+class QueueRow(NamedTuple):
+    """A patch as a review queue needs it (:meth:`Workspace.queue_rows`): far lighter than a
+    :class:`PatchRecord` when there are millions."""
+
+    id: int
+    labelled: bool
+    review_skip: bool
+    job: str | None
 
 
 class Workspace:
@@ -396,6 +408,18 @@ class Workspace:
             )
             for r in rows
         ]
+
+    def queue_rows(self, *, labelled: bool) -> list[QueueRow]:
+        """What a review queue is built from (:func:`trainkit.labels.review.build_queue`), for
+        the labelled or the never-labelled patches, in photo then grid order."""
+        q = f"""
+        SELECT p.id, p.review_skip, j.job FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        LEFT JOIN job_cells j ON j.patch_id = p.id
+        WHERE p.id {"" if labelled else "NOT "}IN (SELECT patch_id FROM label_events)
+        ORDER BY ph.id, p.row, p.col, p.id
+        """
+        with self.connect() as con:
+            return [QueueRow(int(i), labelled, bool(s), j) for i, s, j in con.execute(q)]
 
     def patch_ids(self) -> set[int]:
         """Every patch id."""
