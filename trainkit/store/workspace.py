@@ -20,6 +20,7 @@ from typing import NamedTuple
 
 from trainkit.core.errors import TrainkitError, TrainkitNote
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
+from trainkit.store.cropstore import CropStore
 from trainkit.store.schema import SCHEMA as _SCHEMA
 
 __all__ = [
@@ -522,7 +523,9 @@ class Workspace:
         ``unsure`` (labelled but marked unsure), ``unlabeled`` (never labelled) and
         ``splits`` (subset name -> labelled patches in it), ``jobs`` (job name -> its
         sampled ``cells``: ``answered`` with a class, as ``trainkit verify`` counts them,
-        ``unsure`` and ``unanswered``), plus descriptive fields.
+        ``unsure`` and ``unanswered``), ``picked`` (``patches`` picked for labelling by
+        ``trainkit pick``, ``unanswered`` of them) and ``crop_store`` (crops kept, their
+        PNG bytes and the file's bytes), plus descriptive fields.
         """
         names = self.class_set.names
         labeled = dict.fromkeys(names, 0)
@@ -553,6 +556,10 @@ class Workspace:
                 f" AND p.photo_id NOT IN {job_photo} GROUP BY s.subset"
             ):
                 splits[subset] += n
+            picked, unanswered_picks = con.execute(
+                "SELECT COUNT(*), COALESCE(SUM(patch_id NOT IN (SELECT patch_id FROM label_events)), 0)"
+                " FROM label_pick_patches"
+            ).fetchone()
             jobs = {
                 job: {"cells": cells, "answered": answered, "unsure": uns, "unanswered": unans}
                 for job, cells, answered, uns, unans in con.execute(
@@ -576,6 +583,8 @@ class Workspace:
             "splits": splits,
             "left_out_of_review": int(skipped),
             "jobs": jobs,
+            "picked": {"patches": int(picked), "unanswered": int(unanswered_picks)},
+            "crop_store": CropStore(self.root).stats(),
         }
 
     # ----- review sessions (events one at a time, undo, skips, settlements) ------------
