@@ -20,7 +20,7 @@ __all__ = ["cli"]
 COMMANDS = {
     name: f"trainkit.cli.{name}"
     for name in (
-        "synth", "tile", "split", "train", "evaluate", "export", "scan", "sample", "verify",
+        "synth", "tile", "pick", "split", "train", "evaluate", "export", "scan", "sample", "verify",
         "review", "status", "demo",
     )
 }  # fmt: skip
@@ -56,7 +56,7 @@ def cli(click_ctx: click.Context, quiet: bool, debug: bool) -> None:
     """trainkit: build, check and export a concrete-crack patch screener on CPU.
 
     \b
-    Workflow:  synth/photos -> tile -> review -> split -> train -> evaluate -> export -> scan
+    Workflow:  synth/photos -> tile -> pick -> review -> split -> train -> evaluate -> export -> scan
     Each job:  scan -> sample -> review -> verify
     Try it:    trainkit demo --out demo-output
     """
