@@ -67,9 +67,11 @@ def prepare_session(
     kind = request.queue
     # the unlabelled and picked queues ask about unlabelled patches, audit and conflicts about
     # labelled ones: only those rows are read, in light form (an archive holds millions)
-    records = ws.queue_rows(labelled=kind not in ("unlabelled", "picked"))
-    events = ws.label_events() if kind in ("audit", "conflicts") else []
     picks = [p["patch_id"] for p in ws.picked_patches(unanswered=True)]
+    records = ws.queue_rows(
+        labelled=kind not in ("unlabelled", "picked"), ids=picks if kind == "picked" else None
+    )
+    events = ws.label_events() if kind in ("audit", "conflicts") else []
     probs = None
     if request.model is not None:
         wanted = set(picks) if kind == "picked" else None
