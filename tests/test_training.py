@@ -296,38 +296,23 @@ def test_selection_key_follows_the_configured_metric():
 # ----- patch cache -----------------------------------------------------------------------
 
 
-def test_crop_cache_is_reused_and_follows_the_crops(ws, monkeypatch):
-    import os
-
+def test_labelled_crops_are_cut_once_then_read_from_the_crop_store(ws, monkeypatch):
     from trainkit.core.taxonomy import load_class_set
     from trainkit.learning import data as data_mod
+    from trainkit.store import pixels as pixels_mod
 
     cs = load_class_set("orientation")
     fresh = data_mod.load_patch_set(ws, "val", cs, cache=False)
-    first = data_mod.load_patch_set(ws, "val", cs)  # builds (or reuses) the cache
-    assert np.array_equal(np.asarray(first.images), fresh.images)
-    assert isinstance(first.images, np.memmap)
+    first = data_mod.load_patch_set(ws, "val", cs)  # cuts and stores what is not stored
+    assert np.array_equal(first.images, fresh.images) and len(first) > 0
 
     def no_decoding(*_a, **_k):
-        raise AssertionError("decoded image files although the cache was valid")
+        raise AssertionError("decoded a photo although the crops were stored")
 
-    monkeypatch.setattr(data_mod, "_decode_crops", no_decoding)
+    monkeypatch.setattr(pixels_mod, "read_checked_photo", no_decoding)
     again = data_mod.load_patch_set(ws, "val", cs)
-    assert np.array_equal(np.asarray(again.images), fresh.images)
-    # Copy-on-write: writing to the mapped array never reaches the cache file.
-    again.images[0, 0, 0] = 255 - again.images[0, 0, 0]
-    assert np.array_equal(np.asarray(data_mod.load_patch_set(ws, "val", cs).images), fresh.images)
-
-    # A crop rewritten on disk gives a new key, so the cache is rebuilt (decode is called).
-    rec = next(r for r in ws.patches() if r.subset == "val" and r.label is not None)
-    crop = ws.root / rec.crop
-    st = crop.stat()
-    os.utime(crop, ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000))
-    try:
-        with pytest.raises(AssertionError, match="decoded image files"):
-            data_mod.load_patch_set(ws, "val", cs)
-    finally:
-        os.utime(crop, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert np.array_equal(again.images, fresh.images)
+    assert list(again.patch_ids) == list(fresh.patch_ids)
 
 
 # ----- settings ----------------------------------------------------------------------------

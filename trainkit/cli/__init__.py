@@ -65,6 +65,7 @@ def main(argv: list[str] | None = None) -> int:
     from trainkit.cli.group import cli
     from trainkit.cli.output import INTERRUPTED, report_crash, user_message
 
+    _show_notes()
     try:
         cli.main(args=argv, prog_name="trainkit", standalone_mode=False)
     except click.exceptions.Abort as exc:
@@ -92,6 +93,26 @@ def main(argv: list[str] | None = None) -> int:
         click.echo(f"trainkit: {message}", err=True)
         return EXIT_USAGE
     return EXIT_OK
+
+
+def _show_notes() -> None:
+    """Print the kit's notes (:class:`~trainkit.core.errors.TrainkitNote`) as one line each."""
+    import warnings
+
+    import click
+
+    from trainkit.core.errors import TrainkitNote
+
+    shown = warnings.showwarning
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, TrainkitNote):
+            click.echo(f"trainkit: note: {message}", err=True)
+        else:
+            shown(message, category, filename, lineno, file, line)
+
+    warnings.showwarning = show
+    warnings.simplefilter("always", TrainkitNote)
 
 
 def usage_line(exc) -> str:

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["TrainkitError"]
+__all__ = ["TrainkitError", "TrainkitNote"]
 
 
 class TrainkitError(ValueError):
@@ -14,3 +14,9 @@ class TrainkitError(ValueError):
     the kit and is shown with its traceback. It derives from ``ValueError`` so that code
     written against the older errors (``except ValueError``) keeps working.
     """
+
+
+class TrainkitNote(UserWarning):
+    """Something a user should hear about that is not an error (e.g. a workspace upgraded
+    on open); raised with :func:`warnings.warn`, printed by the command line as one
+    ``trainkit: note:`` line."""

@@ -234,7 +234,7 @@ def _run_experiment(exp_dir: str | Path, opts: EvaluationOptions, workspace) -> 
             f"workspace {ws_path} of experiment {exp} does not exist; pass --workspace"
         )
     ws = Workspace.open(ws_path)
-    records = ws.patches()
+    records = ws.patches(labelled=True)
     check_no_leak(records)
     data = load_patch_set(ws, opts.split, class_set, input_px=ckpt["input_px"])
     if len(data) == 0:

@@ -112,7 +112,7 @@ def build_workspace(
     if labels_csv is not None:
         report.stage("labels", None)
         paths = [labels_csv] if isinstance(labels_csv, (str, Path)) else list(labels_csv)
-        if not any(r.labelled for r in ws.patches()):
+        if not ws.patches(labelled=True):
             imported = [import_csv(ws, p, reviewer=reviewer) for p in paths]
         report.stage_done("labels", imported)
     report_split = None

@@ -26,7 +26,6 @@ from __future__ import annotations
 import csv
 import hashlib
 import re
-import shutil
 from pathlib import Path
 
 import numpy as np
@@ -119,7 +118,7 @@ def _current(ws: Workspace) -> list[tuple]:
     latest: dict[int, dict] = {}
     for e in ws.label_events():
         latest[e["patch_id"]] = e
-    return [(r, latest[r.id]) for r in ws.patches() if r.id in latest]
+    return [(r, latest[r.id]) for r in ws.patches(labelled=True) if r.id in latest]
 
 
 def export_csv(ws: Workspace, path: str | Path) -> int:
@@ -152,15 +151,23 @@ def export_folders(ws: Workspace, root: str | Path) -> dict[str, int]:
 
     Unsure patches go to ``ROOT/_unsure/``. Existing files of the same name are replaced.
     """
+    from PIL import Image
+
+    from trainkit.store.pixels import PatchPixels
+
     root = Path(root)
     counts: dict[str, int] = {}
-    for r, e in _current(ws):
-        cls = e["label"] or "_unsure"
-        src = ws.root / r.crop
-        dest = root / cls / folder_file_name(r.photo, r.box, src.suffix)
-        dest.parent.mkdir(parents=True, exist_ok=True)
-        shutil.copyfile(src, dest)
-        counts[cls] = counts.get(cls, 0) + 1
+    current = _current(ws)
+    with PatchPixels(ws) as pixels:
+        for start in range(0, len(current), 256):  # bounded memory; records in photo order
+            chunk = current[start : start + 256]
+            crops = pixels.get([r for r, _ in chunk])
+            for (r, e), rgb in zip(chunk, crops, strict=True):
+                cls = e["label"] or "_unsure"
+                dest = root / cls / folder_file_name(r.photo, r.box, ".png")
+                dest.parent.mkdir(parents=True, exist_ok=True)
+                Image.fromarray(rgb).save(dest, compress_level=1)
+                counts[cls] = counts.get(cls, 0) + 1
     return counts
 
 
@@ -259,7 +266,7 @@ def import_csv(
 
 
 def _by_id(ws: Workspace):
-    ids = {r.id for r in ws.patches()}
+    ids = ws.patch_ids()
 
     def find(row: dict, where: str) -> int:
         try:
@@ -306,8 +313,27 @@ def _pixel_digest(path: Path) -> str:
     from PIL import Image
 
     with Image.open(path) as im:
-        a = np.ascontiguousarray(np.asarray(im.convert("RGB")))
+        return _array_digest(np.asarray(im.convert("RGB")))
+
+
+def _array_digest(rgb: np.ndarray) -> str:
+    a = np.ascontiguousarray(rgb)
     return hashlib.sha1(a.tobytes() + str(a.shape).encode()).hexdigest()
+
+
+def _digests_by_pixels(ws: Workspace) -> dict[str, int]:
+    """Pixel digest of every patch's crop -> patch id (cut from the photos, not stored):
+    the fallback for folder files whose names were changed; slow on a whole archive."""
+    from trainkit.store.pixels import PatchPixels
+
+    out: dict[str, int] = {}
+    recs = ws.patches()
+    with PatchPixels(ws) as pixels:
+        for start in range(0, len(recs), 1024):
+            chunk = recs[start : start + 1024]
+            for r, rgb in zip(chunk, pixels.get(chunk, store=False, keep=True), strict=True):
+                out[_array_digest(rgb)] = r.id
+    return out
 
 
 def import_folders(
@@ -358,7 +384,7 @@ def import_folders(
                 pid = lookup.get((m["photo"], box))
             if pid is None:
                 if by_pixels is None:
-                    by_pixels = {_pixel_digest(ws.root / r.crop): r.id for r in ws.patches()}
+                    by_pixels = _digests_by_pixels(ws)
                 pid = by_pixels.get(_pixel_digest(f))
             if pid is None:
                 raise LabelsIOError(f"{f}: matches no patch of the workspace by name or pixels")

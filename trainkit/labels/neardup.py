@@ -23,8 +23,10 @@ __all__ = [
     "DEFAULT_MAX_DISTANCE",
     "HASH_BITS",
     "HASH_NAME",
+    "array_hash",
     "crop_hash",
     "hamming_distances",
+    "hash_arrays",
     "hash_files",
     "members_to_drop",
     "near_pairs",
@@ -47,12 +49,29 @@ _POPCOUNT8 = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint8)
 
 def crop_hash(path: str | Path) -> int:
     """The 64-bit pHash of an image file as an unsigned int (bit 63 = first coefficient)."""
-    import imagehash
     from PIL import Image
 
     with Image.open(path) as im:
-        bits = imagehash.phash(im, hash_size=8).hash
+        return _phash(im)
+
+
+def array_hash(rgb: np.ndarray) -> int:
+    """:func:`crop_hash` of a crop held as an (S, S, 3) uint8 RGB array."""
+    from PIL import Image
+
+    return _phash(Image.fromarray(np.ascontiguousarray(rgb)))
+
+
+def _phash(im) -> int:
+    import imagehash
+
+    bits = imagehash.phash(im, hash_size=8).hash
     return int.from_bytes(np.packbits(bits.ravel()).tobytes(), "big")
+
+
+def hash_arrays(images: np.ndarray) -> np.ndarray:
+    """:func:`array_hash` of each crop of an (N, S, S, 3) uint8 array, as uint64."""
+    return np.array([array_hash(a) for a in images], dtype=np.uint64)
 
 
 def hash_files(

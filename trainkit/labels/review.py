@@ -29,8 +29,8 @@ import numpy as np
 
 from trainkit.core.errors import TrainkitError
 from trainkit.core.experiment import Experiment
-from trainkit.core.grid import resize_patch
 from trainkit.core.taxonomy import ClassSet
+from trainkit.store.pixels import PatchPixels
 from trainkit.store.workspace import PatchRecord, Workspace
 
 __all__ = [
@@ -325,12 +325,26 @@ def parse_sheet_answer(text: str, n: int, class_set: ClassSet) -> dict[int, str 
 
 
 def load_patch(ws: Workspace, record: PatchRecord) -> np.ndarray:
-    """The stored crop of a patch as (S, S, 3) uint8 RGB."""
-    from PIL import Image
+    """A patch's crop as (S, S, 3) uint8 RGB, cut from its photo when not stored yet (and
+    then stored: a patch shown for review is about to be labelled).
 
-    path = ws.root / record.crop
-    with Image.open(path) as im:
-        return np.asarray(im.convert("RGB"))
+    Raises:
+        PhotoMissingError: the photo it must be cut from is missing or changed.
+    """
+    return _pixels(ws).one(record)
+
+
+_PIXELS: dict[Path, PatchPixels] = {}
+
+
+def _pixels(ws: Workspace) -> PatchPixels:
+    """One :class:`PatchPixels` per workspace for the review process: moving through a
+    photo's patches one at a time decodes the photo once."""
+    root = Path(ws.root).resolve()
+    if root not in _PIXELS:
+        _PIXELS.clear()  # one workspace at a time keeps at most its decoded photos
+        _PIXELS[root] = PatchPixels(ws)
+    return _PIXELS[root]
 
 
 def model_probabilities(
@@ -365,13 +379,12 @@ def _predict_records(ws, records, scr, path: Path, progress) -> dict[int, np.nda
         )
     out: dict[int, np.ndarray] = {}
     step = 64
+    pixels = _pixels(ws)
     for start in range(0, len(records), step):
         chunk = records[start : start + step]
-        imgs = []
-        for r in chunk:
-            imgs.append(resize_patch(load_patch(ws, r), scr.patch_px))
-        if imgs:
-            probs = scr.predict(np.stack(imgs))
+        if chunk:
+            # not stored: a suggestion for every unlabelled patch is not a choice to label it
+            probs = scr.predict(pixels.get(chunk, size=scr.patch_px, store=False, keep=True))
             out.update({r.id: p for r, p in zip(chunk, probs, strict=True)})
         if progress:
             progress(min(start + step, len(records)), len(records))
@@ -426,7 +439,7 @@ class Session:
         self.answered = 0  # labels given in this session (net of undo)
         self.started = time.monotonic()
         self._history: list[_Action] = []
-        self._records = {r.id: r for r in ws.patches()}
+        self._records = {r.id: r for r in ws.patches(ids=self.queue)}
         self._skipped = ws.review_skips(self.reviewer)
 
     # ----- state --------------------------------------------------------------

@@ -138,7 +138,9 @@ def split_workspace(
     """
     # A job's acceptance-sample cells estimate that job's figures: they never join a split,
     # nor do patches of a job's frames whose job record an interrupted sample never wrote.
-    records = [r for r in workspace.patches() if r.label is not None and not r.of_a_job]
+    records = [
+        r for r in workspace.patches(labelled=True) if r.label is not None and not r.of_a_job
+    ]
     if not records:
         raise SplitError(f"workspace {workspace.root} has no labelled patches; label some first")
     group_subset = assign_groups(
@@ -159,7 +161,7 @@ def split_workspace(
         ),
     }
     workspace.set_split(assignments, report)
-    check_no_leak(workspace.patches())
+    check_no_leak(workspace.patches(labelled=True))
     return report
 
 
@@ -226,13 +228,13 @@ def find_near_duplicates(
     """
     if examples < 0:
         raise SplitError(f"examples must be >= 0, got {examples}")
-    everything = workspace.patches()
+    everything = workspace.patches(labelled=True)
     records = [r for r in everything if r.subset in SUBSETS and r.label is not None]
     if not records:
         raise SplitError(
             f"workspace {workspace.root} has no split to check; run `trainkit split` first"
         )
-    hashes, ok = neardup.hash_files([workspace.root / r.crop for r in records], progress=progress)
+    hashes, ok = _crop_hashes(workspace, records, progress)
     subset_of = np.array([r.subset for r in records])
     members = {s: np.flatnonzero((subset_of == s) & ok) for s in SUBSETS}
     found: list[tuple[int, int, int]] = []  # (record index a, record index b, distance)
@@ -280,6 +282,39 @@ def find_near_duplicates(
         info["near_duplicates"] = report
         workspace.set_meta("split_info", json.dumps(info))
     return report
+
+
+def _crop_hashes(
+    workspace: Workspace,
+    records: Sequence[PatchRecord],
+    progress: Callable[[int, int], None] | None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """pHash of each record's crop (:mod:`trainkit.store.pixels`), a photo's patches at a time;
+    ``ok`` is False where the crop cannot be had (its photo missing or changed)."""
+    from trainkit.store.pixels import PatchPixels, PhotoMissingError
+
+    hashes = np.zeros(len(records), dtype=np.uint64)
+    ok = np.zeros(len(records), dtype=bool)
+    by_photo: dict[str, list[int]] = {}
+    for i, r in enumerate(records):
+        by_photo.setdefault(r.photo, []).append(i)
+    done = 0
+    with PatchPixels(workspace) as pixels:
+        for idx in by_photo.values():
+            try:
+                hashes[idx] = neardup.hash_arrays(pixels.get([records[i] for i in idx]))
+                ok[idx] = True
+            except PhotoMissingError:  # one by one: those with a crop file of their own count
+                for i in idx:
+                    try:
+                        hashes[i] = neardup.array_hash(pixels.one(records[i]))
+                        ok[i] = True
+                    except PhotoMissingError:  # unreadable, as a missing crop file was
+                        pass
+            done += len(idx)
+            if progress is not None:
+                progress(done, len(records))
+    return hashes, ok
 
 
 def near_duplicate_lines(report: dict) -> list[str]:

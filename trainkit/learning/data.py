@@ -1,4 +1,4 @@
-"""Patch arrays for training and evaluation: loading crops, augmentation with label remapping.
+"""Patch arrays for training and evaluation: labelled crops, augmentation with label remapping.
 
 Samples are uint8 RGB arrays (S, S, 3) with an integer class index. Geometric
 augmentation draws one of the symmetries of the square that the class set is
@@ -10,16 +10,12 @@ because it passes class labels through unchanged.
 
 from __future__ import annotations
 
-import hashlib
 import os
-from collections.abc import Collection, Sequence
+from collections.abc import Callable, Collection, Sequence
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 
-from trainkit.core.fsutil import atomic_path
-from trainkit.core.grid import resize_patch
 from trainkit.core.taxonomy import ClassSet, apply_d4
 from trainkit.learning.config import AugmentConfig
 
@@ -82,30 +78,28 @@ def load_patch_set(
     input_px: int | None = None,
     cache: bool = True,
     ids: Collection[int] | None = None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> PatchSet:
     """Read the labelled crops of one split subset ('train', 'val', 'test').
 
     With ``ids`` the patches are those ids instead (e.g. a job's cells, which belong to no
-    split); ``subset`` then only names the cache file.
+    split); ``subset`` is then only a name.
 
-    Patches whose current label is "unsure" are left out. With ``cache`` the decoded
-    uint8 crops are kept in ``WORKSPACE/cache/`` as one .npy file per subset, keyed by
-    the crops (path, size, modification time) and the input size, and opened
-    memory-mapped copy-on-write (writes never reach the file): later runs and epochs decode no image file at all, and a changed
-    crop or label set gives a new key (labels are not part of the cache). Crops are
-    written once by ``trainkit tile``; one edited by hand with its size and modification
-    time preserved would not be noticed: delete ``WORKSPACE/cache/`` after such edits.
+    Patches whose current label is "unsure" are left out. Crops come from
+    :class:`~trainkit.store.pixels.PatchPixels`: the workspace's crop store, else cut from
+    the photo (checked by its SHA-256) and, with ``cache``, kept in the crop store so the
+    next run decodes no photo.
     """
+    from trainkit.store.pixels import PatchPixels
+
     if ids is None:
-        recs = [r for r in workspace.patches() if r.subset == subset and r.label is not None]
+        recs = [r for r in workspace.patches(labelled=True) if r.subset == subset]
     else:
-        recs = [r for r in workspace.patches() if r.id in ids and r.label is not None]
+        recs = list(workspace.patches(ids=ids))
+    recs = [r for r in recs if r.label is not None]
     size = input_px or workspace.tile_px
-    root = Path(workspace.root)
-    if cache and recs:
-        imgs = _cached_crops(root, recs, size, subset)
-    else:
-        imgs = _decode_crops(root, recs, size)
+    with PatchPixels(workspace) as pixels:
+        imgs = pixels.get(recs, size=size, store=cache, progress=progress)
     return PatchSet(
         images=imgs,
         labels=np.array([class_set.index(r.label) for r in recs], dtype=np.int64),
@@ -116,48 +110,6 @@ def load_patch_set(
             [np.nan if r.patch_mm is None else r.patch_mm for r in recs], dtype=float
         ),
     )
-
-
-def _decode_crops(root: Path, recs, size: int) -> np.ndarray:
-    from PIL import Image
-
-    imgs = np.empty((len(recs), size, size, 3), dtype=np.uint8)
-    for i, r in enumerate(recs):
-        with Image.open(root / r.crop) as im:
-            imgs[i] = resize_patch(np.asarray(im.convert("RGB")), size)
-    return imgs
-
-
-def crop_cache_key(root: Path, recs, size: int) -> str:
-    """Digest of the crops' identity: patch id, crop path, file size and mtime, and the size."""
-    h = hashlib.sha256(f"trainkit-crops-1|{size}\n".encode())
-    for r in recs:
-        st = (root / r.crop).stat()
-        h.update(f"{r.id}|{r.crop}|{st.st_size}|{st.st_mtime_ns}\n".encode())
-    return h.hexdigest()[:20]
-
-
-def _cached_crops(root: Path, recs, size: int, subset: str) -> np.ndarray:
-    cache_dir = root / "cache"
-    key = crop_cache_key(root, recs, size)
-    path = cache_dir / f"crops-{subset}-{key}.npy"
-    if path.is_file():
-        try:
-            arr = np.load(path, mmap_mode="c")
-            if arr.shape == (len(recs), size, size, 3) and arr.dtype == np.uint8:
-                return arr
-        except (OSError, ValueError):  # a damaged cache file is rebuilt, never trusted
-            pass
-    imgs = _decode_crops(root, recs, size)
-    try:
-        cache_dir.mkdir(exist_ok=True)
-        for old in cache_dir.glob(f"crops-{subset}-*.npy"):
-            old.unlink(missing_ok=True)
-        with atomic_path(path) as tmp, tmp.open("wb") as fh:
-            np.save(fh, imgs)
-        return np.load(path, mmap_mode="c")
-    except OSError:  # read-only or full disk, or another run replaced the file: use memory
-        return imgs
 
 
 def build_photometric(cfg: AugmentConfig, seed: int | None = None):

@@ -76,7 +76,7 @@ def data_digest(
     job cells an adaptation learns from, with the subset it gave them)."""
     role = {i: k for k, ids in (adaptation.cells if adaptation else {}).items() for i in ids}
     h = hashlib.sha256()
-    for r in workspace.patches():
+    for r in workspace.patches(labelled=True):
         subset = r.subset if r.subset in subsets else role.get(r.id)
         if subset is not None and r.label is not None:
             h.update(f"{r.photo}|{r.box}|{r.label}|{subset}\n".encode())
@@ -136,7 +136,7 @@ def prepare_data(
             f"config class set {cfg.class_set!r} {list(class_set.names)} differs from the workspace's "
             f"{list(ws_classes.names)}"
         )
-    records = workspace.patches()
+    records = workspace.patches(labelled=True)
     check_no_leak(records)
     if not any(r.subset for r in records):
         raise TrainingError(

@@ -23,14 +23,16 @@ CREATE TABLE IF NOT EXISTS patches (
     photo_id INTEGER NOT NULL REFERENCES photos(id),
     row INTEGER NOT NULL, col INTEGER NOT NULL,
     x0 INTEGER NOT NULL, y0 INTEGER NOT NULL, x1 INTEGER NOT NULL, y1 INTEGER NOT NULL,
-    crop TEXT NOT NULL,                 -- crop file relative to the workspace
-    patch_mm REAL,                      -- surface width covered by the patch, NULL if unknown
+    crop TEXT NOT NULL,                 -- crop file relative to the workspace; '' = none (cut
+                                        -- on demand from the photo, trainkit.store.pixels)
+    patch_mm REAL,                      -- surface width covered by the patch; NULL when it is
+                                        -- (x1 - x0) * the photo's gsd_mm, or unknown
     focus REAL NOT NULL,                -- variance of the Laplacian of the grey crop
     clipped REAL NOT NULL,              -- fraction of grey pixels at <= 2 or >= 253
     flags TEXT NOT NULL DEFAULT '',     -- comma-separated quality flags
-    review_skip INTEGER NOT NULL DEFAULT 0,  -- 1: left out of the review queue (--skip-flagged)
-    UNIQUE (photo_id, x0, y0, x1, y1)
-);
+    review_skip INTEGER NOT NULL DEFAULT 0   -- 1: left out of the review queue (--skip-flagged)
+);  -- one box per photo: tiling writes a photo's patches in its one transaction
+CREATE INDEX IF NOT EXISTS patches_photo ON patches(photo_id);
 CREATE TABLE IF NOT EXISTS label_events (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
     patch_id INTEGER NOT NULL REFERENCES patches(id),

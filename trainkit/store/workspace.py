@@ -11,12 +11,13 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
-from collections.abc import Callable, Iterable, Iterator
+import warnings
+from collections.abc import Callable, Collection, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
-from trainkit.core.errors import TrainkitError
+from trainkit.core.errors import TrainkitError, TrainkitNote
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.store.schema import SCHEMA as _SCHEMA
 
@@ -86,6 +87,15 @@ class PatchRecord:
         if self.gsd_mm is None:
             return None
         return tuple(round(v * self.gsd_mm, 3) for v in self.box)  # type: ignore[return-value]
+
+
+def _stored_patch_mm(patch: dict, gsd_mm: float | None) -> float | None:
+    """The ``patch_mm`` column's value: NULL when it is the box width times the photo's
+    scale (what :meth:`Workspace.patches` computes then), so an archive's rows stay small."""
+    mm = patch.get("patch_mm")
+    if mm is None or (gsd_mm is not None and mm == (patch["x1"] - patch["x0"]) * gsd_mm):
+        return None
+    return mm
 
 
 class Workspace:
@@ -174,6 +184,15 @@ class Workspace:
                 "INSERT OR REPLACE INTO meta(key, value) VALUES ('migrated_from_2', ?)",
                 (str(time.time()),),
             )
+            n_files = con.execute("SELECT COUNT(*) FROM patches WHERE crop != ''").fetchone()[0]
+        warnings.warn(
+            f"workspace {self.root} upgraded to format {SCHEMA_VERSION}: patches are now kept by "
+            f"reference to their photos and cut on demand; its {n_files} crop files from the "
+            "older kit are still used as they are (nothing was moved or deleted), and the "
+            "training cache folder cache/ is no longer used (it may be deleted)",
+            TrainkitNote,
+            stacklevel=3,
+        )
 
     @contextmanager
     def connect(self) -> Iterator[sqlite3.Connection]:
@@ -277,7 +296,7 @@ class Workspace:
                         p["x1"],
                         p["y1"],
                         p["crop"],
-                        p.get("patch_mm"),
+                        _stored_patch_mm(p, gsd_mm),
                         p["focus"],
                         p["clipped"],
                         p.get("flags", ""),
@@ -305,20 +324,42 @@ class Workspace:
             rows = con.execute("SELECT * FROM photos ORDER BY id").fetchall()
         return [dict(r) for r in rows]
 
-    def patches(self) -> list[PatchRecord]:
-        """All patches in photo then grid order, with current label and split subset."""
-        q = """
+    def patches(
+        self, *, ids: Collection[int] | None = None, labelled: bool = False
+    ) -> list[PatchRecord]:
+        """Patches in photo then grid order, with current label and split subset.
+
+        Args:
+            ids: only these patch ids (unknown ids are left out).
+            labelled: only patches with at least one label event (unsure included).
+
+        Without either, every patch: on an archive of millions of patches, ask for what
+        is needed instead.
+        """
+        where = []
+        if labelled:
+            where.append("p.id IN (SELECT patch_id FROM label_events)")
+        q = f"""
         SELECT p.id, ph.name, ph.group_id, p.row, p.col, p.x0, p.y0, p.x1, p.y1, p.crop,
-               p.patch_mm, ph.gsd_mm, p.focus, p.clipped, p.flags,
+               COALESCE(p.patch_mm, (p.x1 - p.x0) * ph.gsd_mm), ph.gsd_mm, p.focus, p.clipped,
+               p.flags,
                (SELECT e.label FROM label_events e WHERE e.patch_id = p.id ORDER BY e.id DESC LIMIT 1),
                EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = p.id),
                s.subset, p.review_skip, j.job
         FROM patches p JOIN photos ph ON ph.id = p.photo_id
         LEFT JOIN split_assignments s ON s.patch_id = p.id
         LEFT JOIN job_cells j ON j.patch_id = p.id
-        ORDER BY ph.id, p.row, p.col
+        {"JOIN temp.wanted_patches w ON w.id = p.id" if ids is not None else ""}
+        {("WHERE " + " AND ".join(where)) if where else ""}
+        ORDER BY ph.id, p.row, p.col, p.id
         """
         with self.connect() as con:
+            if ids is not None:
+                con.execute("CREATE TEMP TABLE wanted_patches (id INTEGER PRIMARY KEY)")
+                con.executemany(
+                    "INSERT OR IGNORE INTO temp.wanted_patches(id) VALUES (?)",
+                    ((int(i),) for i in ids),
+                )
             rows = con.execute(q).fetchall()
         return [
             PatchRecord(
@@ -343,6 +384,27 @@ class Workspace:
             )
             for r in rows
         ]
+
+    def patch_ids(self) -> set[int]:
+        """Every patch id."""
+        with self.connect() as con:
+            return {int(r[0]) for r in con.execute("SELECT id FROM patches")}
+
+    def photo_sources(self, names: Iterable[str]) -> list[dict]:
+        """Where each named photo is and what it holds: ``name``, ``source_path``, ``sha256``,
+        ``grid_px`` (the side of its grid's boxes in photo pixels, None from older kits)."""
+        wanted = list(dict.fromkeys(names))
+        out: list[dict] = []
+        keys = ("name", "source_path", "sha256", "grid_px")
+        with self.connect() as con:
+            for i in range(0, len(wanted), 500):
+                chunk = wanted[i : i + 500]
+                marks = ",".join("?" * len(chunk))
+                rows = con.execute(
+                    f"SELECT {', '.join(keys)} FROM photos WHERE name IN ({marks})", chunk
+                )
+                out.extend(dict(zip(keys, r, strict=True)) for r in rows)
+        return out
 
     def patch_lookup(self) -> dict[tuple[str, tuple[int, int, int, int]], int]:
         """Map (photo name, box) -> patch id, for importing labels keyed by place."""
@@ -394,7 +456,7 @@ class Workspace:
             WorkspaceError: an assigned patch belongs to a job's sample (see
                 :attr:`PatchRecord.of_a_job`); those never join a split.
         """
-        jobbed = sorted(r.id for r in self.patches() if r.of_a_job and r.id in assignments)
+        jobbed = sorted(r.id for r in self.patches(ids=assignments) if r.of_a_job)
         if jobbed:
             raise WorkspaceError(
                 f"{len(jobbed)} patches of job samples (e.g. patch {jobbed[0]}) cannot join a "
@@ -426,44 +488,58 @@ class Workspace:
         sampled ``cells``: ``answered`` with a class, as ``trainkit verify`` counts them,
         ``unsure`` and ``unanswered``), plus descriptive fields.
         """
-        recs = self.patches()
         names = self.class_set.names
         labeled = dict.fromkeys(names, 0)
         splits = {"train": 0, "val": 0, "test": 0}
-        flagged = unsure = unlabeled = 0
-        for r in recs:
-            if not r.labelled:
-                unlabeled += 1
-            elif r.label is None:
-                unsure += 1
-            else:
-                labeled[r.label] += 1
-            if r.subset and r.label is not None:
-                splits[r.subset] += 1
-            flagged += bool(r.flags)
+        latest = (  # each labelled patch's newest event
+            "SELECT e.patch_id, e.label FROM label_events e"
+            " JOIN (SELECT patch_id, MAX(id) AS last FROM label_events GROUP BY patch_id) m"
+            " ON e.id = m.last"
+        )
+        job_photo = f"(SELECT id FROM photos WHERE group_id LIKE '{JOB_GROUP_PREFIX}%')"
         with self.connect() as con:
             n_photos = con.execute("SELECT COUNT(*) FROM photos").fetchone()[0]
+            n_patches, flagged, skipped = con.execute(
+                "SELECT COUNT(*), COALESCE(SUM(flags != ''), 0), COALESCE(SUM(review_skip), 0)"
+                " FROM patches"
+            ).fetchone()
+            unsure = labelled = 0
+            for label, n in con.execute(f"SELECT label, COUNT(*) FROM ({latest}) GROUP BY label"):
+                labelled += n
+                if label is None:
+                    unsure += n
+                else:
+                    labeled[label] = labeled.get(label, 0) + n
+            for subset, n in con.execute(
+                f"SELECT s.subset, COUNT(*) FROM split_assignments s JOIN ({latest}) l"
+                " ON l.patch_id = s.patch_id JOIN patches p ON p.id = s.patch_id"
+                " WHERE l.label IS NOT NULL AND s.patch_id NOT IN (SELECT patch_id FROM job_cells)"
+                f" AND p.photo_id NOT IN {job_photo} GROUP BY s.subset"
+            ):
+                splits[subset] += n
+            jobs = {
+                job: {"cells": cells, "answered": answered, "unsure": uns, "unanswered": unans}
+                for job, cells, answered, uns, unans in con.execute(
+                    f"SELECT j.job, COUNT(*), COALESCE(SUM(l.patch_id IS NOT NULL AND l.label IS NOT NULL), 0),"
+                    " COALESCE(SUM(l.patch_id IS NOT NULL AND l.label IS NULL), 0),"
+                    " COALESCE(SUM(l.patch_id IS NULL), 0)"
+                    f" FROM job_cells j LEFT JOIN ({latest}) l ON l.patch_id = j.patch_id"
+                    " GROUP BY j.job ORDER BY j.job"
+                )
+            }
         return {
             "workspace": str(self.root),
             "class_set": self.class_set.name,
             "tile_px": self.tile_px,
             "photos": int(n_photos),
-            "patches": len(recs),
-            "flagged": flagged,
+            "patches": int(n_patches),
+            "flagged": int(flagged),
             "labeled": labeled,
             "unsure": unsure,
-            "unlabeled": unlabeled,
+            "unlabeled": int(n_patches) - labelled,
             "splits": splits,
-            "left_out_of_review": sum(r.review_skip for r in recs),
-            "jobs": {
-                j: {
-                    "cells": sum(r.job == j for r in recs),
-                    "answered": sum(r.job == j and r.label is not None for r in recs),
-                    "unsure": sum(r.job == j and r.labelled and r.label is None for r in recs),
-                    "unanswered": sum(r.job == j and not r.labelled for r in recs),
-                }
-                for j in sorted({r.job for r in recs if r.job is not None})
-            },
+            "left_out_of_review": int(skipped),
+            "jobs": jobs,
         }
 
     # ----- review sessions (events one at a time, undo, skips, settlements) ------------
