@@ -385,9 +385,9 @@ print(json.dumps({"import_seconds": t1 - t0, "queue_seconds": t2 - t1,
 
 _LABEL_CHILD = """
 import csv, json, sys, time
-from pathlib import Path
 import numpy as np
 from trainkit.labels.labels_io import import_csv
+from trainkit.store.cropstore import CropStore
 from trainkit.store.pixels import PatchPixels
 from trainkit.store.workspace import Workspace
 a = json.loads(sys.argv[1])
@@ -395,8 +395,8 @@ ws = Workspace.open(a["ws"])
 t0 = time.perf_counter()
 records = ws.patches()
 rng = np.random.default_rng(a["seed"])
-chosen = sorted(rng.choice(len(records), size=a["count"], replace=False).tolist())
-chosen = [records[i] for i in chosen]
+chosen = [records[i] for i in sorted(rng.choice(len(records), size=a["count"], replace=False))]
+del records
 t1 = time.perf_counter()
 names = ws.class_set.names
 with open(a["csv"], "w", newline="") as f:
@@ -408,12 +408,11 @@ added = import_csv(ws, a["csv"], reviewer="benchmark")
 t2 = time.perf_counter()
 with PatchPixels(ws) as px:
     cut = px.store(chosen)
-    store_path = px.store_path
 t3 = time.perf_counter()
-store_bytes = sum(p.stat().st_size for p in Path(store_path).parent.glob(Path(store_path).name + "*"))
 print(json.dumps({"draw_seconds": t1 - t0, "label_seconds": t2 - t1, "cut_seconds": t3 - t2,
-                  "labels_added": int(added), "cut": int(cut), "crop_store_bytes": store_bytes,
-                  "photos_touched": len({r.photo_id for r in chosen})}))
+                  "labels_added": int(added), "cut": int(cut),
+                  "crop_store": CropStore(ws.root).stats(),
+                  "photos_touched": len({r.photo for r in chosen})}))
 """
 
 
@@ -589,8 +588,10 @@ def label_patches(ws: Path, count: int, scratch: Path, *, photos: int) -> dict:
         "cut": got["cut"],
         "cut_and_cache_seconds": round(got["cut_seconds"], 3),
         "cut_and_cache_s_per_patch": round(got["cut_seconds"] / count, 5),
-        "crop_store_bytes": got["crop_store_bytes"],
-        "crop_store_bytes_per_labelled_patch": round(got["crop_store_bytes"] / count),
+        "crop_store_bytes": got["crop_store"]["file_bytes"],
+        "crop_store_crops": got["crop_store"]["crops"],
+        "crop_store_png_bytes": got["crop_store"]["png_bytes"],
+        "crop_store_bytes_per_labelled_patch": round(got["crop_store"]["file_bytes"] / count),
         "workspace_bytes_growth": after_bytes - before_bytes,
         "workspace_files_growth": after_files - before_files,
     }
