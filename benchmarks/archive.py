@@ -385,34 +385,30 @@ print(json.dumps({"import_seconds": t1 - t0, "queue_seconds": t2 - t1,
 
 _LABEL_CHILD = """
 import csv, json, sys, time
-import numpy as np
 from trainkit.labels.labels_io import import_csv
 from trainkit.store.cropstore import CropStore
 from trainkit.store.pixels import PatchPixels
 from trainkit.store.workspace import Workspace
 a = json.loads(sys.argv[1])
 ws = Workspace.open(a["ws"])
-t0 = time.perf_counter()
-records = ws.patches()
-rng = np.random.default_rng(a["seed"])
-chosen = [records[i] for i in sorted(rng.choice(len(records), size=a["count"], replace=False))]
-del records
-t1 = time.perf_counter()
+ids = [p["patch_id"] for p in ws.picked_patches()]
 names = ws.class_set.names
+t0 = time.perf_counter()
 with open(a["csv"], "w", newline="") as f:
     w = csv.writer(f)
     w.writerow(["patch_id", "label"])
-    for i, r in enumerate(chosen):
-        w.writerow([r.id, names[i % len(names)]])
+    for i, pid in enumerate(ids):
+        w.writerow([pid, names[i % len(names)]])
 added = import_csv(ws, a["csv"], reviewer="benchmark")
-t2 = time.perf_counter()
+t1 = time.perf_counter()
+records = ws.patches(labelled=True)
 with PatchPixels(ws) as px:
-    cut = px.store(chosen)
-t3 = time.perf_counter()
-print(json.dumps({"draw_seconds": t1 - t0, "label_seconds": t2 - t1, "cut_seconds": t3 - t2,
+    cut = px.store(records)
+t2 = time.perf_counter()
+print(json.dumps({"label_seconds": t1 - t0, "store_seconds": t2 - t1, "labelled": len(records),
                   "labels_added": int(added), "cut": int(cut),
                   "crop_store": CropStore(ws.root).stats(),
-                  "photos_touched": len({r.photo for r in chosen})}))
+                  "photos_touched": len({r.photo for r in records})}))
 """
 
 
@@ -451,18 +447,7 @@ def _child(code: str, arg, *, memory: bool = False) -> dict:
 
 def time_status(ws: Path) -> float:
     """Wall seconds of ``python -m trainkit status WS`` (interpreter start included)."""
-    t0 = time.perf_counter()
-    run = subprocess.run(
-        [sys.executable, "-m", "trainkit", "status", str(ws)],
-        capture_output=True,
-        text=True,
-        env=_env(),
-        check=False,
-    )
-    seconds = time.perf_counter() - t0
-    if run.returncode != 0:
-        raise RuntimeError(f"trainkit status failed: {run.stderr.strip()[-500:]}")
-    return seconds
+    return run_cli("status", str(ws))[0]
 
 
 def load() -> list[float]:
@@ -572,26 +557,50 @@ def measure_size(
     return row, None
 
 
-def label_patches(ws: Path, count: int, scratch: Path, *, photos: int) -> dict:
-    """Label ``count`` patches drawn by seed and cut and cache their crops; the costs."""
-    before_bytes, before_files = folder_usage(ws)
-    got = _child(
-        _LABEL_CHILD, {"ws": str(ws), "count": count, "seed": SEED, "csv": str(scratch / "l.csv")}
+def run_cli(*args: str) -> tuple[float, str]:
+    """Wall seconds and stdout of ``python -m trainkit ARGS`` (interpreter start included)."""
+    t0 = time.perf_counter()
+    run = subprocess.run(
+        [sys.executable, "-m", "trainkit", *args],
+        capture_output=True,
+        text=True,
+        env=_env(),
+        check=False,
     )
+    seconds = time.perf_counter() - t0
+    if run.returncode != 0:
+        raise RuntimeError(f"trainkit {args[0]} failed: {run.stderr.strip()[-500:]}")
+    return seconds, run.stdout
+
+
+def label_patches(ws: Path, count: int, scratch: Path, *, photos: int) -> dict:
+    """Pick ``count`` patches (``trainkit pick``, which cuts and caches their crops), open
+    review on them, label them (``import_csv``) and make sure every labelled crop is
+    cached (``PatchPixels.store``: nothing left to cut); the costs of each step."""
+    before_bytes, before_files = folder_usage(ws)
+    pick_s, out = run_cli("pick", str(ws), "--patches", str(count), "--seed", str(SEED), "--json")
+    pick = json.loads(out)
+    rev = _child(_REVIEW_CHILD, str(ws))
+    got = _child(_LABEL_CHILD, {"ws": str(ws), "csv": str(scratch / "labels.csv")})
     after_bytes, after_files = folder_usage(ws)
+    store = got["crop_store"]
     return {
         "photos": photos,
-        "patches": count,
+        "patches": got["labelled"],
+        "picked": pick["picked"],
         "photos_touched": got["photos_touched"],
-        "draw_seconds": round(got["draw_seconds"], 3),
+        "pick_seconds": round(pick_s, 3),
+        "pick_s_per_patch": round(pick_s / max(1, pick["picked"]), 5),
+        "pick_cached": pick["crops"]["cached"],
+        "review_first_patch_seconds": round(rev["wall_seconds"], 3),
+        "review_queue_length": rev["queue_length"],
         "label_import_seconds": round(got["label_seconds"], 3),
-        "cut": got["cut"],
-        "cut_and_cache_seconds": round(got["cut_seconds"], 3),
-        "cut_and_cache_s_per_patch": round(got["cut_seconds"] / count, 5),
-        "crop_store_bytes": got["crop_store"]["file_bytes"],
-        "crop_store_crops": got["crop_store"]["crops"],
-        "crop_store_png_bytes": got["crop_store"]["png_bytes"],
-        "crop_store_bytes_per_labelled_patch": round(got["crop_store"]["file_bytes"] / count),
+        "cut_after_labelling": got["cut"],
+        "store_check_seconds": round(got["store_seconds"], 3),
+        "crop_store_bytes": store["file_bytes"],
+        "crop_store_crops": store["crops"],
+        "crop_store_png_bytes": store["png_bytes"],
+        "crop_store_bytes_per_labelled_patch": round(store["file_bytes"] / got["labelled"]),
         "workspace_bytes_growth": after_bytes - before_bytes,
         "workspace_files_growth": after_files - before_files,
     }
@@ -820,9 +829,11 @@ def print_table(result: dict) -> None:
         )
         print(
             f"\nlabelled: {lab['patches']:,} patches of {lab['photos']:,} photos "
-            f"({lab['photos_touched']:,} photos touched): cut and cached in "
-            f"{lab['cut_and_cache_seconds']:.1f} s, crop store "
-            f"{lab['crop_store_bytes_per_labelled_patch'] / 1e3:.1f} KB per patch{_mark(v)}"
+            f"({lab['photos_touched']:,} photos touched): `trainkit pick` chose them and cut "
+            f"and cached {lab['pick_cached']:,} crops in {lab['pick_seconds']:.1f} s; review's "
+            f"first patch after {lab['review_first_patch_seconds']:.2f} s; crop store "
+            f"{lab['crop_store_bytes_per_labelled_patch'] / 1e3:.1f} KB per labelled patch"
+            f"{_mark(v)}"
         )
     print("\nleast-squares line per total (slope per photo, intercept, largest |residual|):")
     for name, fit in result["linearity"].items():
