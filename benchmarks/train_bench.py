@@ -103,15 +103,16 @@ def export_image_folders(
     """
     from PIL import Image
 
+    from trainkit.store.pixels import PatchPixels
+
     counts: dict[str, dict[str, int]] = {s: {} for s in subsets}
-    for r in workspace.patches():
-        if r.subset not in subsets or r.label is None:
-            continue
-        folder = out_dir / r.subset / r.label
-        folder.mkdir(parents=True, exist_ok=True)
-        with Image.open(Path(workspace.root) / r.crop) as im:
-            im.convert("RGB").save(folder / f"{r.id:06d}.png")
-        counts[r.subset][r.label] = counts[r.subset].get(r.label, 0) + 1
+    recs = [r for r in workspace.patches(labelled=True) if r.subset in subsets and r.label]
+    with PatchPixels(workspace) as pixels:
+        for r, rgb in zip(recs, pixels.get(recs), strict=True):
+            folder = out_dir / r.subset / r.label
+            folder.mkdir(parents=True, exist_ok=True)
+            Image.fromarray(rgb).save(folder / f"{r.id:06d}.png")
+            counts[r.subset][r.label] = counts[r.subset].get(r.label, 0) + 1
     return counts
 
 

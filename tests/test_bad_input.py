@@ -25,6 +25,7 @@ from trainkit.cli import main
 from trainkit.core.taxonomy import load_class_set
 from trainkit.intake.tiling import tile_into_workspace
 from trainkit.labels.labels_io import LabelsIOError, import_csv
+from trainkit.store.pixels import PatchPixels
 from trainkit.store.workspace import Workspace
 
 TILE = 64
@@ -167,7 +168,7 @@ def test_photo_smaller_than_one_patch_gives_one_padded_patch(tmp_path, capsys, h
     assert (photo["name"], photo["width"], photo["height"]) == ("tiny.png", w, h)
     (patch,) = ws.patches()
     assert patch.box == (0, 0, w, h)  # the true extent is recorded
-    crop = np.asarray(Image.open(ws.root / patch.crop))
+    crop = PatchPixels(ws).one(patch)  # cut from the photo on demand
     # Reference: numpy's own edge padding of the photo to one full patch.
     ref = np.pad(arr, [(0, TILE - h), (0, TILE - w), (0, 0)], mode="edge")
     np.testing.assert_array_equal(crop, ref)

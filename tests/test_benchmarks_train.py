@@ -22,7 +22,9 @@ def test_export_gives_imagefolder_one_folder_per_class_with_the_workspace_counts
     ws = tb.build_workspace(tmp_path, n_photos=10, tile_px=64)
     counts = tb.export_image_folders(ws, tmp_path / "ref")
     records = [r for r in ws.patches() if r.label is not None]
-    crops = {r.id: r.crop for r in records}
+    from trainkit.store.pixels import PatchPixels
+
+    crops = dict(zip((r.id for r in records), PatchPixels(ws).get(records), strict=True))
     for subset in ("train", "test"):
         expected = Counter(r.label for r in records if r.subset == subset)
         assert expected, f"the split left {subset} empty; the check below would prove nothing"
@@ -32,9 +34,8 @@ def test_export_gives_imagefolder_one_folder_per_class_with_the_workspace_counts
         assert ds.class_to_idx == {name: i for i, name in enumerate(sorted(expected))}
         assert Counter(ds.classes[t] for t in ds.targets) == expected
         for path, _ in ds.samples:  # lossless: the reference sees the kit's pixels
-            crop = tmp_path / "workspace" / crops[int(Path(path).stem)]
-            with Image.open(path) as exported, Image.open(crop) as original:
-                np.testing.assert_array_equal(np.asarray(exported), np.asarray(original))
+            with Image.open(path) as exported:
+                np.testing.assert_array_equal(np.asarray(exported), crops[int(Path(path).stem)])
     assert not (tmp_path / "ref" / "val").exists()  # only the subsets asked for
 
 

@@ -18,6 +18,7 @@ from trainkit.cli import cli, main
 COMMANDS = [
     "synth",
     "tile",
+    "pick",
     "review",
     "split",
     "train",

@@ -202,7 +202,7 @@ def test_cut_patch_defaults_to_the_tile_side_for_small_boxes():
 
 
 def test_a_version_2_workspace_opens_and_keeps_using_its_crop_files(tmp_path):
-    from tests._helpers import make_ws
+    from _helpers import make_ws
 
     ws = make_ws(tmp_path / "ws", 2, 3, size=32, gsd_mm=0.5)
     want = {r.id: np.asarray(Image.open(ws.root / r.crop).convert("RGB")) for r in ws.patches()}
@@ -227,7 +227,7 @@ def test_a_version_2_workspace_opens_and_keeps_using_its_crop_files(tmp_path):
 
 def test_summary_counts_equal_the_records(tmp_path):
     # The SQL summary against the same counts made from every PatchRecord.
-    from tests._helpers import make_ws
+    from _helpers import make_ws
 
     ws = make_ws(tmp_path / "ws", 3, 4, skip=[3])
     ids = [r.id for r in ws.patches()]
@@ -235,16 +235,22 @@ def test_summary_counts_equal_the_records(tmp_path):
                   reviewer="ana")  # fmt: skip
     ws.add_labels([(ids[0], "horizontal")], reviewer="bo")
     ws.set_split({ids[0]: "train", ids[1]: "test", ids[2]: "val", ids[5]: "val"}, {})
+    ws.record_pick(
+        [{"patch_id": i, "reason": "spread", "score": None} for i in (ids[6], ids[8])],
+        seed=0, model=None, design={},
+    )  # fmt: skip
+    ws.add_labels([(ids[8], "none")], reviewer="ana")
     s = ws.summary()
+    assert s["picked"] == {"patches": 2, "unanswered": 1}
     recs = ws.patches()
     assert s["patches"] == len(recs) == 12 and s["photos"] == 3
     want = dict.fromkeys(ws.class_set.names, 0)
     for r in recs:
         if r.label is not None:
             want[r.label] += 1
-    assert s["labeled"] == want and want["horizontal"] == 1 and want["none"] == 0
+    assert s["labeled"] == want and want["horizontal"] == 1 and want["none"] == 1
     assert s["unsure"] == sum(r.labelled and r.label is None for r in recs) == 1
-    assert s["unlabeled"] == sum(not r.labelled for r in recs) == 8
+    assert s["unlabeled"] == sum(not r.labelled for r in recs) == 7
     assert s["splits"] == {"train": 1, "val": 1, "test": 1}
     assert s["left_out_of_review"] == sum(r.review_skip for r in recs) == 3
     assert s["flagged"] == sum(bool(r.flags) for r in recs)
@@ -254,7 +260,7 @@ def test_the_command_line_prints_the_upgrade_note_once(tmp_path):
     import subprocess
     import sys
 
-    from tests._helpers import make_ws
+    from _helpers import make_ws
 
     ws = make_ws(tmp_path / "ws", 1, 2, size=32)
     con = sqlite3.connect(ws.db_path)

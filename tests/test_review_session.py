@@ -11,6 +11,7 @@ import pexpect
 from _helpers import make_ws
 
 from trainkit.core.taxonomy import load_class_set
+from trainkit.store.pixels import PatchPixels
 from trainkit.store.workspace import Workspace
 
 TIMEOUT = 20
@@ -184,7 +185,7 @@ def test_model_queue_through_the_command(demo_run, tmp_path):
     labelled = {r.id for r in recs if r.labelled}
     assert len(labelled) == 24  # one 6 x 4 sheet
     sess = ort.InferenceSession(str(out / "model.onnx"), providers=["CPUExecutionProvider"])
-    imgs = np.stack([np.asarray(PILImage.open(ws.root / r.crop).convert("RGB")) for r in recs])
+    imgs = PatchPixels(ws).get(recs, store=False)
     probs = sess.run(None, {"image": imgs})[0]
     top2 = np.sort(probs, axis=1)[:, -2:]
     margin = top2[:, 1] - top2[:, 0]

@@ -7,6 +7,7 @@ import sqlite3
 import pytest
 from _helpers import make_ws
 
+from trainkit.core.errors import TrainkitNote
 from trainkit.core.taxonomy import load_class_set
 from trainkit.labels.splits import SplitError, assign_groups, check_no_leak, split_workspace
 from trainkit.store.workspace import Workspace, WorkspaceError
@@ -114,7 +115,63 @@ def test_version_1_workspace_is_migrated_to_the_new_origin_words(tmp_path):
             )
         con.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
     con.close()
-    again = Workspace.open(ws.root)
+    with pytest.warns(TrainkitNote, match="upgraded to format 3"):
+        again = Workspace.open(ws.root)
     assert [e["origin"] for e in again.label_events()] == ["reviewer", "file"]
     assert [e["origin"] for e in again.undone_events()] == ["suggestion"]
     assert again.meta("schema_version") == "3"  # then on through version 2 to 3
+
+
+def test_patches_by_ids_and_labelled_equal_the_filtered_list(tmp_path):
+    ws = make_ws(tmp_path / "ws", 3, 4)
+    every = ws.patches()
+    ids = [r.id for r in every]
+    ws.add_labels([(ids[7], "map"), (ids[2], None)], reviewer="ana")
+    ws.undo_label_event(ws.add_label_event(ids[4], "none", reviewer="ana"))
+    every = ws.patches()
+    assert ws.patches(labelled=True) == [r for r in every if r.labelled]
+    want = {ids[9], ids[0], ids[5], 10**6}  # an unknown id is left out
+    assert ws.patches(ids=want) == [r for r in every if r.id in want]
+    assert ws.patches(ids=[]) == [] and ws.patch_ids() == set(ids)
+
+
+def test_a_photos_patches_are_one_id_range_recorded_on_the_photo(tmp_path):
+    # Patches are found by photo through this range (the rowid), not an index over all rows.
+    ws = make_ws(tmp_path / "ws", 3, 5)
+    with ws.connect() as con:
+        for pid, first, last in con.execute("SELECT id, first_patch, last_patch FROM photos"):
+            ids = [r[0] for r in con.execute("SELECT id FROM patches WHERE photo_id = ?", (pid,))]
+            assert ids == list(range(first, last + 1)) and len(ids) == 5
+        plan = " ".join(
+            str(r)
+            for r in con.execute(
+                "EXPLAIN QUERY PLAN SELECT id FROM patches WHERE id BETWEEN 6 AND 10"
+            )
+        )
+    assert "INTEGER PRIMARY KEY" in plan  # SQLite's own plan: a search by rowid, no scan
+
+
+def test_queue_rows_are_the_records_a_queue_needs(tmp_path):
+    from trainkit.labels.review import Session, build_queue
+
+    ws = make_ws(tmp_path / "ws", 40, 10, skip=[4])  # 400 patches: longer than a read window
+    ids = [r.id for r in ws.patches()]
+    ws.add_labels([(ids[3], "map"), (ids[250], None)], reviewer="ana")
+    every = ws.patches()
+    for labelled in (False, True):
+        rows = ws.queue_rows(labelled=labelled)
+        want = [(r.id, r.labelled, r.review_skip, r.job) for r in every if r.labelled == labelled]
+        assert [tuple(r) for r in rows] == want
+    queue = build_queue(ws.queue_rows(labelled=False), reviewer="bo")
+    assert queue == build_queue(every, reviewer="bo")
+    assert len(queue) == 400 - 40 - 2  # left out of review (column 4), labelled
+    session = Session(ws, "bo", queue)
+    by_id = {r.id: r for r in every}
+    seen = []
+    while (rec := session.current()) is not None:  # records come a window at a time
+        assert rec == by_id[rec.id]
+        seen.append(rec.id)
+        session.skip()
+        if len(seen) == len(queue):
+            break
+    assert seen == queue

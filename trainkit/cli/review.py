@@ -25,9 +25,9 @@ def _default_reviewer() -> str:
 
 
 @click.command(
-    epilog="Examples: trainkit review ws --reviewer ana | trainkit review ws --model "
-    "experiments/first | trainkit review ws --sheet --viewer xdg-open | trainkit review ws "
-    "--agreement"
+    epilog="Examples: trainkit review ws --reviewer ana | trainkit review ws --queue picked | "
+    "trainkit review ws --model experiments/first | trainkit review ws --sheet --viewer "
+    "xdg-open | trainkit review ws --agreement"
 )
 @workspace_argument(must_exist=False)
 @click.option(
@@ -38,11 +38,11 @@ def _default_reviewer() -> str:
 @click.option(
     "--queue",
     "queue_kind",
-    type=click.Choice(["unlabelled", "audit", "conflicts"]),
+    type=click.Choice(["unlabelled", "audit", "conflicts", "picked"]),
     default="unlabelled",
     show_default=True,
-    help="unlabelled patches; a random audit sample of labelled ones; or reviewer disagreements "
-    "to settle.",
+    help="unlabelled patches (those chosen by `trainkit pick` first); a random audit sample of "
+    "labelled ones; reviewer disagreements to settle; or only the picked patches, in pick order.",
 )
 @click.option(
     "--model",
@@ -148,7 +148,14 @@ def review(
             with progress_bar(ctx, "model predictions") as bar:
                 session = prepare_session(ws, request, progress=lambda d, n: bar.update(d, n))
         if session is None:
-            ctx.console.print(f"nothing to review in the {queue_kind} queue of {ws.root}")
+            hint = (
+                f" (no unanswered picks; choose some with: trainkit pick {ws_dir} --patches N)"
+                if queue_kind == "picked"
+                else ""
+            )
+            ctx.console.print(
+                f"nothing to review in the {queue_kind} queue of {ws.root}{hint}", soft_wrap=True
+            )
             return
         console = Console(highlight=False, soft_wrap=True)
         result = run_review(ws, request, session, console)

@@ -7,14 +7,17 @@ Queues (which patches a session asks about, in which order):
 
 - ``unlabelled`` (default): patches never labelled, in photo then grid order; with model
   probabilities, lowest margin first (top-1 minus top-2 probability; ties keep photo
-  order), so the patches the model is least sure about are answered first.
+  order), so the patches the model is least sure about are answered first. Patches
+  picked to be labelled (``trainkit pick``, :mod:`trainkit.labels.picking`) and not
+  answered yet come before the rest, in pick then rank order.
+- ``picked``: only the picked patches not answered yet, in pick then rank order.
 - ``audit``: a seeded random sample of already-labelled patches this reviewer has not
   labelled, shown without their current label, to measure agreement.
 - ``conflicts``: patches whose reviewers' latest labels disagree and that nobody has
   settled since; the answer is recorded as a settlement of those reviewers' labels.
 
 In every queue, patches with ``review_skip`` set (``tile --skip-flagged``) are left out,
-and patches this reviewer skipped come last. Resuming is re-building the queue: what
+a job's sampled cells come first, and patches this reviewer skipped come last. Resuming is re-building the queue: what
 was answered has left it, so a new session starts where the last one stopped.
 """
 
@@ -22,6 +25,7 @@ from __future__ import annotations
 
 import time
 from collections import defaultdict
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -49,7 +53,7 @@ __all__ = [
     "model_probabilities",
 ]
 
-QUEUES = ("unlabelled", "audit", "conflicts")
+QUEUES = ("unlabelled", "audit", "conflicts", "picked")
 UNSURE_TOKENS = ("x", "unsure")
 
 
@@ -87,6 +91,7 @@ def build_queue(
     events: list[dict] | None = None,
     audit_size: int = 50,
     seed: int = 0,
+    picks: Sequence[int] | None = None,
 ) -> list[int]:
     """Patch ids to review, in order (see the module docstring for each queue's rule).
 
@@ -99,11 +104,15 @@ def build_queue(
         events: all label events (``Workspace.label_events()``), needed by audit and conflicts.
         audit_size: how many labelled patches the audit sample draws.
         seed: random seed of the audit sample (same seed, same sample).
+        picks: picked patch ids in pick then rank order
+            (``Workspace.picked_patches()``); they lead the unlabelled queue and make up
+            the picked queue.
     """
     if queue not in QUEUES:
         raise ReviewError(f"unknown queue {queue!r}; choose one of: {', '.join(QUEUES)}")
     skipped = skipped or {}
     pool = [r for r in records if not r.review_skip]
+    rank = {pid: k for k, pid in enumerate(dict.fromkeys(picks or ()))}
     if queue == "unlabelled":
         ids = [r.id for r in pool if not r.labelled]
         if probabilities:
@@ -112,6 +121,12 @@ def build_queue(
                 raise ReviewError(f"no model probabilities for patches {missing[:5]}")
             m = margins(np.stack([probabilities[i] for i in ids])) if ids else np.zeros(0)
             ids = [ids[k] for k in np.argsort(m, kind="stable")]
+        # patches picked to be labelled come first, in pick then rank order
+        ids = sorted((i for i in ids if i in rank), key=rank.__getitem__) + [
+            i for i in ids if i not in rank
+        ]
+    elif queue == "picked":
+        ids = sorted((r.id for r in pool if not r.labelled and r.id in rank), key=rank.__getitem__)
     elif queue == "audit":
         mine = {e["patch_id"] for e in events or [] if e["reviewer"] == reviewer}
         cand = [r.id for r in pool if r.labelled and r.id not in mine]
@@ -439,7 +454,7 @@ class Session:
         self.answered = 0  # labels given in this session (net of undo)
         self.started = time.monotonic()
         self._history: list[_Action] = []
-        self._records = {r.id: r for r in ws.patches(ids=self.queue)}
+        self._records: dict[int, PatchRecord] = {}  # read a window at a time (see record)
         self._skipped = ws.review_skips(self.reviewer)
 
     # ----- state --------------------------------------------------------------
@@ -449,7 +464,16 @@ class Session:
         return self.current() is None
 
     def record(self, patch_id: int) -> PatchRecord:
-        return self._records[patch_id]
+        """The patch's record, read with the next patches of the queue when not read yet."""
+        rec = self._records.get(patch_id)
+        if rec is None:
+            window = {patch_id, *self.queue[self.pos : self.pos + self._WINDOW]}
+            self._records.update((r.id, r) for r in self.ws.patches(ids=window))
+            rec = self._records[patch_id]
+        return rec
+
+    #: Records read at once as the queue moves on (a queue may be millions of patches long).
+    _WINDOW = 256
 
     def current(self) -> PatchRecord | None:
         """The patch to answer now, or None at the end of the queue."""
@@ -458,7 +482,7 @@ class Session:
             if self.check_fresh and self.ws.label_history(pid):
                 del self.queue[self.pos]  # another reviewer labelled it meanwhile
                 continue
-            return self._records[pid]
+            return self.record(pid)
         return None
 
     def upcoming(self, n: int) -> list[PatchRecord]:
@@ -576,4 +600,4 @@ class Session:
                     self.ws.set_review_skip(pid, self.reviewer, skipped=False)
                     self._skipped.pop(pid, None)
         self.pos = act.pos
-        return self._records[act.patch_ids[0]]
+        return self.record(act.patch_ids[0])

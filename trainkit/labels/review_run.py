@@ -24,7 +24,8 @@ class ReviewRequest:
 
     Args:
         reviewer: the name stored with every label.
-        queue: ``unlabelled``, ``audit`` or ``conflicts`` (see :mod:`trainkit.labels.review`).
+        queue: ``unlabelled``, ``audit``, ``conflicts`` or ``picked`` (see
+            :mod:`trainkit.labels.review`).
         model: an exported model (``.onnx`` or experiment folder): least certain patches
             first in the unlabelled queue, and its suggestion on Enter.
         audit_size: patches in the audit sample.
@@ -64,14 +65,22 @@ def prepare_session(
     from trainkit.labels.review import model_probabilities
 
     kind = request.queue
-    records = ws.patches()
-    events = ws.label_events() if kind != "unlabelled" else []
+    # the unlabelled and picked queues ask about unlabelled patches, audit and conflicts about
+    # labelled ones: only those rows are read, in light form (an archive holds millions)
+    records = ws.queue_rows(labelled=kind not in ("unlabelled", "picked"))
+    events = ws.label_events() if kind in ("audit", "conflicts") else []
+    picks = [p["patch_id"] for p in ws.picked_patches(unanswered=True)]
     probs = None
     if request.model is not None:
+        wanted = set(picks) if kind == "picked" else None
         todo = [
-            r for r in records if not r.review_skip and (kind != "unlabelled" or not r.labelled)
+            r.id
+            for r in records
+            if not r.review_skip
+            and (kind not in ("unlabelled", "picked") or not r.labelled)
+            and (wanted is None or r.id in wanted)
         ]
-        probs = model_probabilities(request.model, ws, todo, progress=progress)
+        probs = model_probabilities(request.model, ws, ws.patches(ids=todo), progress=progress)
     queue = build_queue(
         records,
         reviewer=request.reviewer,
@@ -81,6 +90,7 @@ def prepare_session(
         events=events,
         audit_size=request.audit_size,
         seed=request.seed,
+        picks=picks,
     )
     if not queue:
         return None
@@ -93,7 +103,7 @@ def prepare_session(
         queue,
         suggestions=probs,
         settles=settles,
-        check_fresh=kind == "unlabelled",
+        check_fresh=kind in ("unlabelled", "picked"),
     )
 
 

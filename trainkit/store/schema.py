@@ -15,7 +15,9 @@ CREATE TABLE IF NOT EXISTS photos (
     roi TEXT,                           -- region of interest as given, NULL for the whole photo
     sha256 TEXT NOT NULL,
     added_at REAL NOT NULL,
-    grid_px INTEGER                     -- side of the grid's boxes in photo pixels (NULL: older kits)
+    grid_px INTEGER,                    -- side of the grid's boxes in photo pixels (NULL: older kits)
+    first_patch INTEGER,                -- its patches' ids are first_patch..last_patch (tiled in
+    last_patch INTEGER                  -- one transaction; NULL: job frames, older kits)
 );
 CREATE INDEX IF NOT EXISTS photos_sha ON photos(sha256);
 CREATE TABLE IF NOT EXISTS patches (
@@ -32,7 +34,9 @@ CREATE TABLE IF NOT EXISTS patches (
     flags TEXT NOT NULL DEFAULT '',     -- comma-separated quality flags
     review_skip INTEGER NOT NULL DEFAULT 0   -- 1: left out of the review queue (--skip-flagged)
 );  -- one box per photo: tiling writes a photo's patches in its one transaction
-CREATE INDEX IF NOT EXISTS patches_photo ON patches(photo_id);
+-- Patches looked up by photo and box are those with a crop file (a job's cells): an index
+-- over every patch would add about a sixth to an archive's rows, which need none.
+CREATE INDEX IF NOT EXISTS patches_cropfile_photo ON patches(photo_id) WHERE crop != '';
 CREATE TABLE IF NOT EXISTS label_events (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
     patch_id INTEGER NOT NULL REFERENCES patches(id),
@@ -87,4 +91,19 @@ CREATE TABLE IF NOT EXISTS split_assignments (
     patch_id INTEGER PRIMARY KEY REFERENCES patches(id),
     subset TEXT NOT NULL CHECK (subset IN ('train', 'val', 'test'))
 );
+CREATE TABLE IF NOT EXISTS label_picks (  -- append-only: every pick of patches to label is kept
+    pick INTEGER PRIMARY KEY,           -- the pick's number, 1, 2, ... in the order made
+    seed INTEGER NOT NULL,
+    model TEXT,                         -- the model that guided it (path), NULL for a spread pick
+    design TEXT NOT NULL,               -- JSON: what was asked, the quotas, the pool and its rules
+    created_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS label_pick_patches (
+    patch_id INTEGER PRIMARY KEY REFERENCES patches(id),  -- a patch is picked at most once
+    pick INTEGER NOT NULL REFERENCES label_picks(pick),
+    rank INTEGER NOT NULL,              -- 1 = the first to label in its pick
+    reason TEXT NOT NULL,               -- spread | uncertain | diverse (PICK_REASONS)
+    score REAL                          -- the model's margin (top-1 minus top-2), NULL for spread
+);
+CREATE INDEX IF NOT EXISTS label_pick_patches_order ON label_pick_patches(pick, rank);
 """

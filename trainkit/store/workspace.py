@@ -16,15 +16,18 @@ from collections.abc import Callable, Collection, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
+from typing import NamedTuple
 
 from trainkit.core.errors import TrainkitError, TrainkitNote
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
+from trainkit.store.cropstore import CropStore
 from trainkit.store.schema import SCHEMA as _SCHEMA
 
 __all__ = [
     "Workspace",
     "WorkspaceError",
     "PatchRecord",
+    "QueueRow",
     "DB_NAME",
     "LABEL_ORIGINS",
     "JOB_GROUP_PREFIX",
@@ -98,6 +101,16 @@ def _stored_patch_mm(patch: dict, gsd_mm: float | None) -> float | None:
     return mm
 
 
+class QueueRow(NamedTuple):
+    """A patch as a review queue needs it (:meth:`Workspace.queue_rows`): far lighter than a
+    :class:`PatchRecord` when there are millions."""
+
+    id: int
+    labelled: bool
+    review_skip: bool
+    job: str | None
+
+
 class Workspace:
     """Handle on a workspace folder; open it with :meth:`create` or :meth:`open`."""
 
@@ -122,7 +135,6 @@ class Workspace:
                 )
             return ws
         ws.root.mkdir(parents=True, exist_ok=True)
-        (ws.root / "patches").mkdir(exist_ok=True)
         with ws.connect() as con:
             con.executescript(_SCHEMA)
             con.executemany(
@@ -175,8 +187,9 @@ class Workspace:
         photos tiled from now on store no crop files."""
         with self.connect() as con:
             cols = [r[1] for r in con.execute("PRAGMA table_info(photos)")]
-            if "grid_px" not in cols:
-                con.execute("ALTER TABLE photos ADD COLUMN grid_px INTEGER")
+            for col in ("grid_px", "first_patch", "last_patch"):
+                if col not in cols:
+                    con.execute(f"ALTER TABLE photos ADD COLUMN {col} INTEGER")
             con.execute(
                 "UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION),)
             )
@@ -284,27 +297,38 @@ class Workspace:
                 ),
             )
             pid = int(cur.lastrowid)
+            # ids first..first+n-1, so a photo's patches are found by id range (no index over
+            # every patch is needed); the write lock of this transaction keeps them free
+            first = int(con.execute("SELECT COALESCE(MAX(id), 0) + 1 FROM patches").fetchone()[0])
+            rows = [
+                (
+                    first + k,
+                    pid,
+                    p["row"],
+                    p["col"],
+                    p["x0"],
+                    p["y0"],
+                    p["x1"],
+                    p["y1"],
+                    p["crop"],
+                    _stored_patch_mm(p, gsd_mm),
+                    p["focus"],
+                    p["clipped"],
+                    p.get("flags", ""),
+                    int(p.get("review_skip", 0)),
+                )
+                for k, p in enumerate(patches)
+            ]
             con.executemany(
-                f"INSERT INTO patches(photo_id, {cols}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [
-                    (
-                        pid,
-                        p["row"],
-                        p["col"],
-                        p["x0"],
-                        p["y0"],
-                        p["x1"],
-                        p["y1"],
-                        p["crop"],
-                        _stored_patch_mm(p, gsd_mm),
-                        p["focus"],
-                        p["clipped"],
-                        p.get("flags", ""),
-                        int(p.get("review_skip", 0)),
-                    )
-                    for p in patches
-                ],
+                f"INSERT INTO patches(id, photo_id, {cols})"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                rows,
             )
+            if rows:
+                con.execute(
+                    "UPDATE photos SET first_patch = ?, last_patch = ? WHERE id = ?",
+                    (first, first + len(rows) - 1, pid),
+                )
         return pid
 
     def photo_hashes(self) -> dict[str, str]:
@@ -337,8 +361,8 @@ class Workspace:
         is needed instead.
         """
         where = []
-        if labelled:
-            where.append("p.id IN (SELECT patch_id FROM label_events)")
+        if labelled:  # driven by the label events, not by a scan of every patch
+            where.append("p.id IN (SELECT DISTINCT patch_id FROM label_events)")
         q = f"""
         SELECT p.id, ph.name, ph.group_id, p.row, p.col, p.x0, p.y0, p.x1, p.y1, p.crop,
                COALESCE(p.patch_mm, (p.x1 - p.x0) * ph.gsd_mm), ph.gsd_mm, p.focus, p.clipped,
@@ -346,10 +370,11 @@ class Workspace:
                (SELECT e.label FROM label_events e WHERE e.patch_id = p.id ORDER BY e.id DESC LIMIT 1),
                EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = p.id),
                s.subset, p.review_skip, j.job
-        FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        FROM {"temp.wanted_patches w CROSS JOIN" if ids is not None else ""} patches p
+        {"ON p.id = w.id" if ids is not None else ""}
+        JOIN photos ph ON ph.id = p.photo_id
         LEFT JOIN split_assignments s ON s.patch_id = p.id
         LEFT JOIN job_cells j ON j.patch_id = p.id
-        {"JOIN temp.wanted_patches w ON w.id = p.id" if ids is not None else ""}
         {("WHERE " + " AND ".join(where)) if where else ""}
         ORDER BY ph.id, p.row, p.col, p.id
         """
@@ -384,6 +409,18 @@ class Workspace:
             )
             for r in rows
         ]
+
+    def queue_rows(self, *, labelled: bool) -> list[QueueRow]:
+        """What a review queue is built from (:func:`trainkit.labels.review.build_queue`), for
+        the labelled or the never-labelled patches, in photo then grid order."""
+        q = f"""
+        SELECT p.id, p.review_skip, j.job FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        LEFT JOIN job_cells j ON j.patch_id = p.id
+        WHERE p.id {"" if labelled else "NOT "}IN (SELECT patch_id FROM label_events)
+        ORDER BY ph.id, p.row, p.col, p.id
+        """
+        with self.connect() as con:
+            return [QueueRow(int(i), labelled, bool(s), j) for i, s, j in con.execute(q)]
 
     def patch_ids(self) -> set[int]:
         """Every patch id."""
@@ -486,7 +523,9 @@ class Workspace:
         ``unsure`` (labelled but marked unsure), ``unlabeled`` (never labelled) and
         ``splits`` (subset name -> labelled patches in it), ``jobs`` (job name -> its
         sampled ``cells``: ``answered`` with a class, as ``trainkit verify`` counts them,
-        ``unsure`` and ``unanswered``), plus descriptive fields.
+        ``unsure`` and ``unanswered``), ``picked`` (``patches`` picked for labelling by
+        ``trainkit pick``, ``unanswered`` of them) and ``crop_store`` (crops kept, their
+        PNG bytes and the file's bytes), plus descriptive fields.
         """
         names = self.class_set.names
         labeled = dict.fromkeys(names, 0)
@@ -517,6 +556,10 @@ class Workspace:
                 f" AND p.photo_id NOT IN {job_photo} GROUP BY s.subset"
             ):
                 splits[subset] += n
+            picked, unanswered_picks = con.execute(
+                "SELECT COUNT(*), COALESCE(SUM(patch_id NOT IN (SELECT patch_id FROM label_events)), 0)"
+                " FROM label_pick_patches"
+            ).fetchone()
             jobs = {
                 job: {"cells": cells, "answered": answered, "unsure": uns, "unanswered": unans}
                 for job, cells, answered, uns, unans in con.execute(
@@ -540,6 +583,8 @@ class Workspace:
             "splits": splits,
             "left_out_of_review": int(skipped),
             "jobs": jobs,
+            "picked": {"patches": int(picked), "unanswered": int(unanswered_picks)},
+            "crop_store": CropStore(self.root).stats(),
         }
 
     # ----- review sessions (events one at a time, undo, skips, settlements) ------------
@@ -756,7 +801,7 @@ class Workspace:
                     box = (int(p["x0"]), int(p["y0"]), int(p["x1"]), int(p["y1"]))
                     old = con.execute(
                         "SELECT id FROM patches WHERE photo_id = ? AND x0 = ? AND y0 = ?"
-                        " AND x1 = ? AND y1 = ?",
+                        " AND x1 = ? AND y1 = ? AND crop != ''",  # job cells have crop files
                         (photo_id, *box),
                     ).fetchone()
                     if old is not None:  # left by an interrupted sample: its crop is this one
@@ -800,6 +845,7 @@ class Workspace:
         nothing (no label, undone label, skip or split), then photos left without patches."""
         con.execute(
             """DELETE FROM patches WHERE photo_id IN (SELECT id FROM photos WHERE group_id = ?)
+               AND crop != ''
                AND id NOT IN (SELECT patch_id FROM job_cells)
                AND id NOT IN (SELECT patch_id FROM label_events)
                AND id NOT IN (SELECT patch_id FROM undone_label_events)
@@ -880,3 +926,150 @@ class Workspace:
             dict(zip(keys, (*r[:6], bool(r[6]), r[7], r[8], tuple(r[9:13])), strict=True))
             for r in rows
         ]
+
+    # ----- label picks -------------------------------------------------------------------
+    #: The patches a pick may draw: not left out of review, of no job, never labelled (an
+    #: unsure answer counts as labelled), not picked before. ``?`` is the job group prefix.
+    #: (``NOT IN`` lets SQLite build each excluded set once; measured twice as fast as
+    #: ``NOT EXISTS`` per row on 1.5 million patches.)
+    _PICKABLE = """
+        p.review_skip = 0 AND substr(ph.group_id, 1, length(?)) != ?
+        AND p.id NOT IN (SELECT patch_id FROM label_events)
+        AND p.id NOT IN (SELECT patch_id FROM job_cells)
+        AND p.id NOT IN (SELECT patch_id FROM label_pick_patches)
+    """
+    #: A patch's surface width in mm: as stored, else its box width times its photo's scale.
+    _PATCH_MM = "COALESCE(p.patch_mm, (p.x1 - p.x0) * ph.gsd_mm)"
+
+    def pick_strata(self) -> list[tuple[int, str, float | None, bool, int]]:
+        """Patches a pick may draw, counted by SQL: one row (photo id, group, patch mm,
+        flagged, count) per photo, scale and quality, in photo order."""
+        q = f"""
+        SELECT p.photo_id, ph.group_id, {self._PATCH_MM} AS mm, p.flags != '' AS flagged,
+               COUNT(*)
+        FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        WHERE {self._PICKABLE}
+        GROUP BY p.photo_id, mm, flagged ORDER BY p.photo_id, mm, flagged
+        """
+        with self.connect() as con:
+            rows = con.execute(q, (JOB_GROUP_PREFIX, JOB_GROUP_PREFIX)).fetchall()
+        return [(int(a), str(g), mm, bool(f), int(n)) for a, g, mm, f, n in rows]
+
+    def pick_candidates(
+        self, photo_ids: Iterable[int]
+    ) -> Iterator[tuple[int, list[tuple[int, float | None, bool]]]]:
+        """For each photo id in turn: (photo id, [(patch id, patch mm, flagged), ...]) of the
+        patches of that photo a pick may draw, by patch id; one connection for them all,
+        one photo's rows in memory at a time."""
+        q = f"""
+        SELECT p.id, {self._PATCH_MM}, p.flags != ''
+        FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        WHERE p.id BETWEEN ? AND ? AND p.photo_id = ?
+        AND p.review_skip = 0 AND substr(ph.group_id, 1, length(?)) != ?
+        AND p.id NOT IN temp._unpickable ORDER BY p.id
+        """
+        with self.connect() as con:
+            con.execute(
+                "CREATE TEMP TABLE _unpickable (id INTEGER PRIMARY KEY)"
+            )  # the excluded ids, gathered once (they are few next to the patches)
+            con.execute(
+                "INSERT OR IGNORE INTO _unpickable SELECT patch_id FROM label_events"
+                " UNION SELECT patch_id FROM job_cells UNION SELECT patch_id FROM label_pick_patches"
+            )
+            for photo in photo_ids:
+                # a tiled photo's patches are an id range (a search by rowid); job frames and
+                # older kits' photos have none: all ids, found through their own index
+                first, last = con.execute(
+                    "SELECT COALESCE(first_patch, 0), COALESCE(last_patch, ?) FROM photos"
+                    " WHERE id = ?",
+                    (1 << 62, int(photo)),
+                ).fetchone()
+                rows = con.execute(q, (first, last, int(photo), JOB_GROUP_PREFIX, JOB_GROUP_PREFIX))
+                yield int(photo), [(int(i), mm, bool(f)) for i, mm, f in rows.fetchall()]
+
+    def group_subsets(self) -> dict[str, set[str]]:
+        """Photo group -> the split subsets its patches are in (groups in no split absent)."""
+        q = """
+        SELECT DISTINCT ph.group_id, s.subset FROM split_assignments s
+        JOIN patches p ON p.id = s.patch_id JOIN photos ph ON ph.id = p.photo_id
+        """
+        out: dict[str, set[str]] = {}
+        with self.connect() as con:
+            for group, subset in con.execute(q):
+                out.setdefault(str(group), set()).add(str(subset))
+        return out
+
+    def record_pick(
+        self, patches: list[dict], *, seed: int, model: str | None, design: dict
+    ) -> int:
+        """Append one pick (never changing an earlier one) in one transaction; returns its number.
+
+        Args:
+            patches: one dict per picked patch, in rank order: ``patch_id``, ``reason``
+                (one of ``spread``, ``uncertain``, ``diverse``) and ``score`` (or None).
+            seed: the pick's random seed.
+            model: the model that guided it, or None.
+            design: JSON-ready description of what was asked and how it was drawn.
+
+        Raises:
+            WorkspaceError: a patch can no longer be picked (labelled, picked, left out of
+                review or put in a job by another run meanwhile); nothing is recorded.
+        """
+        ids = [int(p["patch_id"]) for p in patches]
+        with self.connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            con.execute("CREATE TEMP TABLE IF NOT EXISTS _pick_ids (id INTEGER PRIMARY KEY)")
+            con.execute("DELETE FROM _pick_ids")
+            con.executemany("INSERT OR IGNORE INTO _pick_ids(id) VALUES (?)", [(i,) for i in ids])
+            ok = con.execute(
+                f"SELECT COUNT(*) FROM _pick_ids t CROSS JOIN patches p ON p.id = t.id"
+                f" JOIN photos ph ON ph.id = p.photo_id WHERE {self._PICKABLE}",
+                (JOB_GROUP_PREFIX, JOB_GROUP_PREFIX),
+            ).fetchone()[0]
+            if ok != len(ids):
+                raise WorkspaceError(
+                    f"{len(ids) - ok} of the {len(ids)} patches drawn can no longer be picked "
+                    f"in {self.root} (picked twice, or labelled, left out of review or put in a "
+                    "job by another run meanwhile); run the pick again"
+                )
+            number = con.execute("SELECT COALESCE(MAX(pick), 0) + 1 FROM label_picks").fetchone()[0]
+            con.execute(
+                "INSERT INTO label_picks(pick, seed, model, design, created_at)"
+                " VALUES (?, ?, ?, ?, ?)",
+                (int(number), int(seed), model, json.dumps(design), time.time()),
+            )
+            con.executemany(
+                "INSERT INTO label_pick_patches(patch_id, pick, rank, reason, score)"
+                " VALUES (?, ?, ?, ?, ?)",
+                [
+                    (pid, int(number), rank, str(p["reason"]),
+                     None if p.get("score") is None else float(p["score"]))
+                    for rank, (pid, p) in enumerate(zip(ids, patches, strict=True), start=1)
+                ],
+            )  # fmt: skip
+            con.execute("DROP TABLE _pick_ids")
+        return int(number)
+
+    def picks(self) -> list[dict]:
+        """Every pick, oldest first: ``pick``, ``seed``, ``model``, ``design`` (dict),
+        ``created_at`` and ``patches`` (how many it drew)."""
+        q = """
+        SELECT k.pick, k.seed, k.model, k.design, k.created_at,
+               (SELECT COUNT(*) FROM label_pick_patches x WHERE x.pick = k.pick)
+        FROM label_picks k ORDER BY k.pick
+        """
+        keys = ("pick", "seed", "model", "design", "created_at", "patches")
+        with self.connect() as con:
+            rows = con.execute(q).fetchall()
+        return [dict(zip(keys, (*r[:3], json.loads(r[3]), *r[4:]), strict=True)) for r in rows]
+
+    def picked_patches(self, *, unanswered: bool = False) -> list[dict]:
+        """The picked patches in pick then rank order: ``patch_id``, ``pick``, ``rank``,
+        ``reason``, ``score``; with ``unanswered``, only those nobody has labelled yet."""
+        q = "SELECT k.patch_id, k.pick, k.rank, k.reason, k.score FROM label_pick_patches k"
+        if unanswered:
+            q += " WHERE NOT EXISTS (SELECT 1 FROM label_events e WHERE e.patch_id = k.patch_id)"
+        keys = ("patch_id", "pick", "rank", "reason", "score")
+        with self.connect() as con:
+            rows = con.execute(q + " ORDER BY k.pick, k.rank").fetchall()
+        return [dict(zip(keys, r, strict=True)) for r in rows]
