@@ -14,9 +14,9 @@ Everything is invented with the kit's own generator (trainkit.synth; no real pho
        default engine, recorded) into a new workspace with 1 and with 2 workers: seconds
        per photo, the bound's share of it per process, the speed-up of 2 over 1;
    (c) the workspace's bytes and files, per photo and as a share of the archive's bytes;
-   (d) peak memory: the highest sum of VmRSS over the tiling process and every process
-       below it (pool workers, their server), sampled from /proc every 0.1 s, and the
-       tiling process's own VmHWM;
+   (d) peak memory of the tiling process and every process below it (pool workers,
+       their server): each one's high-water mark (VmHWM, read from /proc) added up, and
+       the highest sum of their VmRSS at one sample (every 0.1 s);
    (e) ``status``: the wall time of ``python -m trainkit status WS`` as a user runs it
        (interpreter start included) and of ``Workspace.open(WS).summary()``;
    (f) opening review: the wall time of a fresh process that builds the unlabelled queue
@@ -236,24 +236,32 @@ def process_tree(pid: int) -> list[int]:
     return out
 
 
-def _rss_kb(pid: int) -> int | None:
+def _memory_kb(pid: int) -> tuple[int, int] | None:
+    """(VmRSS, VmHWM) of a process in kB, or None when it is gone (or a zombie)."""
+    got = {}
     try:
         with open(f"/proc/{pid}/status") as f:
             for line in f:
-                if line.startswith("VmRSS:"):
-                    return int(line.split()[1])
+                if line.startswith(("VmRSS:", "VmHWM:")):
+                    got[line[:5]] = int(line.split()[1])
     except OSError:
-        pass
-    return None  # gone, or a zombie (no VmRSS line)
+        return None
+    return (got["VmRSS"], got["VmHWM"]) if len(got) == 2 else None
 
 
 class TreeMemory:
-    """The peak resident memory of a process and its descendants, sampled from /proc.
+    """The peak resident memory of a process and its descendants, from /proc.
 
-    A thread reads VmRSS of every process in the tree every ``interval`` seconds while
-    the ``with`` block runs. ``peak_total_mb`` is the highest sum over one sample (pages
-    shared between processes count once per process, so the sum is an upper bound of
-    the memory the tree holds); a peak shorter than the interval can be missed.
+    A thread reads VmRSS and VmHWM of every process in the tree every ``interval``
+    seconds while the ``with`` block runs. Two figures:
+
+    - ``peak_hwm_sum_mb``: each process's own high-water mark (the kernel's VmHWM, last
+      seen), added up: a short peak is never missed, and since the processes' peaks need
+      not coincide it is an upper bound of what the tree held at once;
+    - ``peak_total_mb``: the highest sum of VmRSS over one sample (a peak shorter than
+      the interval can be missed).
+
+    Pages shared between processes count once per process in both.
     """
 
     def __init__(self, pid: int, *, interval: float = SAMPLE_INTERVAL) -> None:
@@ -261,19 +269,19 @@ class TreeMemory:
         self.interval = interval
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
-        self._peak_total = self._peak_single = 0
-        self._seen: set[int] = set()
+        self._peak_total = 0
+        self._hwm: dict[int, int] = {}
         self._samples = 0
 
     def _sample(self) -> bool:
-        sizes = {p: _rss_kb(p) for p in process_tree(self.pid)}
+        sizes = {p: _memory_kb(p) for p in process_tree(self.pid)}
         sizes = {p: kb for p, kb in sizes.items() if kb is not None}
         if not sizes:
             return False
         self._samples += 1
-        self._seen.update(sizes)
-        self._peak_total = max(self._peak_total, sum(sizes.values()))
-        self._peak_single = max(self._peak_single, max(sizes.values()))
+        self._peak_total = max(self._peak_total, sum(rss for rss, _ in sizes.values()))
+        for p, (_, hwm) in sizes.items():
+            self._hwm[p] = max(self._hwm.get(p, 0), hwm)
         return True
 
     def _run(self) -> None:
@@ -290,12 +298,21 @@ class TreeMemory:
         if self._thread is not None:
             self._thread.join()
 
-    def result(self) -> dict:
-        """Peak of the tree's summed VmRSS, the largest single process, processes, samples."""
+    def result(self, *, own_hwm_mb: float | None = None) -> dict:
+        """The figures (MB = MiB), the largest single process, processes seen, samples.
+
+        Args:
+            own_hwm_mb: the watched process's final VmHWM if known (it may have grown
+                after the last sample); its part of ``peak_hwm_sum_mb`` is raised to it.
+        """
+        hwm = dict(self._hwm)
+        if own_hwm_mb is not None and self._samples:
+            hwm[self.pid] = max(hwm.get(self.pid, 0), round(own_hwm_mb * 1024))
         return {
+            "peak_hwm_sum_mb": round(sum(hwm.values()) / 1024, 1),
             "peak_total_mb": round(self._peak_total / 1024, 1),
-            "peak_single_mb": round(self._peak_single / 1024, 1),
-            "processes_seen": len(self._seen),
+            "peak_single_mb": round(max(hwm.values(), default=0) / 1024, 1),
+            "processes_seen": len(hwm),
             "samples": self._samples,
         }
 
@@ -441,7 +458,7 @@ def _child(code: str, arg, *, memory: bool = False) -> dict:
     got = json.loads(out.strip().splitlines()[-1])
     got["wall_seconds"] = wall
     if memory:
-        got["tree"] = mem.result()
+        got["tree"] = mem.result(own_hwm_mb=got.get("peak_mb"))
     return got
 
 
@@ -492,12 +509,13 @@ def measure_size(
     archive_bytes = sum(p.stat().st_size for p in paths)
     say(quiet, f"  decode bound ({n} photos) ...")
     dec = _child(_DECODE_CHILD, [str(p) for p in paths])
-    bound = dec["seconds"] / n
+    decode_s = round(dec["seconds"], 4)  # the figures below follow from the stored totals
+    bound = decode_s / n
     row: dict = {
         "photos": n,
         "archive_bytes": archive_bytes,
-        "decode_seconds": round(dec["seconds"], 3),
-        "decode_s_per_photo": round(bound, 5),
+        "decode_seconds": decode_s,
+        "decode_s_per_photo": round(bound, 6),
         "decode_peak_mb": round(dec["peak_mb"], 1),
         "tiling": {},
     }
@@ -509,16 +527,18 @@ def measure_size(
         say(quiet, f"  tiling with {k} worker{'s' if k > 1 else ''} ...")
         t = tile_once(paths, archive_root, ws, tile_px=tile_px, workers=k)
         ws_bytes, ws_files = folder_usage(ws)
-        per_photo = t["seconds"] / n
+        seconds = round(t["seconds"], 4)
+        per_photo = seconds / n
         row["tiling"][str(k)] = {
             "workers": k,
             "engine": t["engine"],
-            "seconds": round(t["seconds"], 3),
-            "s_per_photo": round(per_photo, 5),
+            "seconds": seconds,
+            "s_per_photo": round(per_photo, 6),
             "decode_bound_share": round(bound / per_photo, 4),
             "decode_bound_share_per_process": round(bound / (per_photo * k), 4),
             "patches": t["patches_added"],
-            "peak_tree_mb": t["tree"]["peak_total_mb"],
+            "peak_tree_mb": t["tree"]["peak_hwm_sum_mb"],
+            "peak_tree_sampled_mb": t["tree"]["peak_total_mb"],
             "peak_tree_single_process_mb": t["tree"]["peak_single_mb"],
             "peak_tree_processes_seen": t["tree"]["processes_seen"],
             "peak_tree_samples": t["tree"]["samples"],
@@ -820,7 +840,7 @@ def print_table(result: dict) -> None:
     print(
         "  bound = plain OpenCV read + decode s/photo of the same files (one thread); "
         "share/proc = bound / (tiling s/photo x workers); ws/arch = workspace bytes / archive "
-        "bytes; peak MB = highest summed VmRSS of the tiling process and its workers"
+        "bytes; peak MB = the tiling process's and its workers' VmHWM added up"
     )
     lab = result.get("labelled")
     if lab:
@@ -967,9 +987,12 @@ def main(argv: list[str] | None = None) -> int:
         "load": {"start": load_start, "end": load_end},
         "tile_px": args.tile_px,
         "tiling_engine": json.loads(engines.pop()) if len(engines) == 1 else sorted(engines),
-        "peak_memory_covers": "highest sum, over samples every "
-        f"{SAMPLE_INTERVAL} s, of VmRSS of the tiling process and every process below it "
-        "(pool workers and their server); peak_tiling_process_mb is that process's own VmHWM",
+        "peak_memory_covers": "peak_tree_mb: the tiling process and every process below "
+        "it (pool workers and their server), each one's own high-water mark (VmHWM, read "
+        f"from /proc every {SAMPLE_INTERVAL} s; the tiling process's final one) added up, an "
+        "upper bound of what they held at once; peak_tree_sampled_mb: the highest sum of "
+        "their VmRSS at one sample; peak_tiling_process_mb: the tiling process alone "
+        "(VmHWM); MB = MiB; shared pages count once per process",
         "photo_sizes_measured": sizes,
         "archive": {
             "photos": sizes[-1],
