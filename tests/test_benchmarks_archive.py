@@ -217,6 +217,8 @@ def test_quick_run_figures_follow_from_the_measurements(arc, tmp_path):
     assert lin["residuals"] == pytest.approx([0, 0], abs=1e-3)
     e = result["extrapolated"]
     assert e["photos"] == 40_000 and "not measured" in e["note"]
+    # a wait is never extrapolated below what was measured
+    assert e["status_cli_seconds"] >= max(r["status"]["cli_seconds"] for r in result["sizes"])
     assert e["tiling_hours_run_1"] == pytest.approx(
         (ys[0] + slope * (40_000 - sizes[0])) / 3600, rel=1e-3, abs=1e-3
     )
