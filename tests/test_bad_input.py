@@ -79,12 +79,12 @@ def tile_cli(args, capsys) -> tuple[int, list[str]]:
 
 
 def stored(ws_dir: Path) -> tuple[list[str], list[str]]:
-    """Photo names in the workspace and the crop folders under patches/."""
+    """Photo names in the workspace and the photos its patch rows belong to (tiling writes
+    no crop files: a patches/ folder must not appear)."""
     ws = Workspace.open(ws_dir)
     names = [r["name"] for r in ws.photos()]
-    patches = ws_dir / "patches"
-    dirs = sorted(p.name for p in patches.iterdir()) if patches.exists() else []
-    return names, dirs
+    assert not (ws_dir / "patches").exists()
+    return names, sorted({r.photo for r in ws.patches()})
 
 
 def good_photo(folder: Path, name="good.png", h=100, w=150) -> Path:
@@ -124,7 +124,7 @@ def test_bad_file_next_to_a_good_one_is_skipped_with_exit_1(tmp_path, capsys, na
     assert len(lines) == 1
     assert re.fullmatch(rf"trainkit: photo {re.escape(name)} {reason}; skipped", lines[0]), lines
     names, dirs = stored(tmp_path / "ws")
-    assert names == ["good.png"] and len(dirs) == 1  # only the good photo's crops
+    assert names == ["good.png"] and dirs == ["good.png"]  # only the good photo's patches
 
 
 @pytest.mark.parametrize("name", sorted(CASES))

@@ -323,5 +323,5 @@ def test_bad_files_are_skipped_with_one_line_each_and_nothing_partial(tmp_path):
         assert name in text
     assert "larger than the limit" in text
     assert [r["name"] for r in ws.photos()] == [good[0].name]
-    crop_dirs = list((ws.root / "patches").iterdir())
-    assert len(crop_dirs) == 1  # no crops written for the skipped files
+    assert {r.photo for r in ws.patches()} == {good[0].name}  # no rows of skipped files
+    assert not (ws.root / "patches").exists()  # and no crop file at all

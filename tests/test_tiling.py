@@ -88,3 +88,89 @@ def test_quality_flags():
     rng = np.random.default_rng(0)
     textured = rng.integers(60, 200, (64, 64, 3)).astype(np.uint8)
     assert quality_measures(textured)["flags"] == ""
+
+
+# ----- the grid's quality measured at once equals patch by patch ----------------------
+
+
+def _test_photos():
+    """Random noise, a synthetic concrete photo, and one with flat, black and white parts
+    (so every flag is raised somewhere)."""
+    from trainkit.synth import SynthOptions, generate_photo
+
+    rng = np.random.default_rng(22)
+    noise = rng.integers(0, 256, (203, 317, 3), dtype=np.uint8)
+    synth = generate_photo(7, SynthOptions(height=240, width=320)).image
+    mixed = synth.copy()
+    mixed[:96, :96] = 128  # flat: blurred, low texture
+    mixed[100:180, 150:260] = 255  # clipped: exposure
+    mixed[190:, :40] = 0
+    return {"noise": noise, "synth": synth, "mixed": mixed}
+
+
+@pytest.mark.parametrize(
+    "tile_px, src_px, overlap",
+    [
+        (32, 32, 0.0),  # boxes read in place, the last row and column shifted inward
+        (32, 32, 0.5),  # overlapping boxes
+        (32, 50, 0.0),  # tiling by physical size: boxes shrunk to the patch size
+        (32, 20, 0.25),  # ... and enlarged
+        (16, 16, 0.0),  # the smallest patch the command line allows
+    ],
+)
+def test_grid_quality_equals_the_per_patch_measures(tile_px, src_px, overlap):
+    """The batch measures equal cutting each patch and measuring it alone (the reference,
+    itself checked against OpenCV and SciPy above), on the same pixels."""
+    from trainkit.core.grid import iter_patch_boxes, overlap_to_stride
+    from trainkit.intake.quality import grid_quality
+    from trainkit.store.pixels import cut_patch
+
+    flags_seen = set()
+    for name, img in _test_photos().items():
+        stride = overlap_to_stride(src_px, overlap)
+        boxes = [b.box for b in iter_patch_boxes(*img.shape[:2], src_px, stride)]
+        got = grid_quality(img, boxes, tile_px=tile_px, src_px=src_px)
+        want = [quality_measures(cut_patch(img, b, tile_px, src_px)) for b in boxes]
+        assert len(got) == len(want) == len(boxes)
+        for box, g, w in zip(boxes, got, want, strict=True):
+            # numpy's variance is a two-pass float sum; the batch's is exact: equal to
+            # floating-point rounding
+            assert g["focus"] == pytest.approx(w["focus"], rel=1e-12, abs=1e-9), (name, box)
+            assert g["clipped"] == w["clipped"], (name, box)
+            assert g["flags"] == w["flags"], (name, box)
+            flags_seen.update(f for f in g["flags"].split(",") if f)
+    assert flags_seen == {"blurred", "exposure", "low_texture"}
+
+
+def test_grid_quality_of_a_photo_smaller_than_one_patch_is_the_padded_patch():
+    from trainkit.intake.quality import grid_quality
+    from trainkit.store.pixels import cut_patch
+
+    img = np.random.default_rng(3).integers(0, 256, (20, 45, 3), dtype=np.uint8)
+    box = (0, 0, 45, 20)  # the grid's one box keeps the photo's true extent
+    [got] = grid_quality(img, [box], tile_px=32, src_px=64)
+    want = quality_measures(cut_patch(img, box, 32, 64))
+    assert got["focus"] == pytest.approx(want["focus"], rel=1e-12)
+    assert (got["clipped"], got["flags"]) == (want["clipped"], want["flags"])
+    [got] = grid_quality(img, [box], tile_px=64, src_px=64)  # padded, not resampled
+    want = quality_measures(cut_patch(img, box, 64, 64))
+    assert got["focus"] == pytest.approx(want["focus"], rel=1e-12)
+    assert (got["clipped"], got["flags"]) == (want["clipped"], want["flags"])
+
+
+def test_grid_focus_matches_scipy_laplace_with_mirrored_borders():
+    """Outside reference: scipy.ndimage.laplace with mode="mirror" (d c b | a b c d | c b a,
+    OpenCV's BORDER_REFLECT_101) on each grey patch alone, and numpy's variance."""
+    import cv2
+    from scipy import ndimage
+
+    from trainkit.core.grid import iter_patch_boxes
+    from trainkit.intake.quality import grid_quality
+
+    img = _test_photos()["synth"]
+    boxes = [b.box for b in iter_patch_boxes(*img.shape[:2], 48, 48)]
+    got = grid_quality(img, boxes, tile_px=48, src_px=48)
+    grey = cv2.cvtColor(img, cv2.COLOR_RGB2GRAY).astype(np.float64)
+    for (x0, y0, x1, y1), g in zip(boxes, got, strict=True):
+        lap = ndimage.laplace(grey[y0:y1, x0:x1], mode="mirror")
+        assert g["focus"] == pytest.approx(lap.var(), rel=1e-12)

@@ -26,6 +26,8 @@ __all__ = [
     "seed_option",
     "epochs_option",
     "workers_option",
+    "engine_option",
+    "scheduler_option",
     "gsd_mm_option",
     "tile_px_option",
     "classes_option",
@@ -102,6 +104,27 @@ def workers_option(help: str, default: int | None = None) -> Callable[[F], F]:
         default=default,
         show_default=default is not None,
         help=help,
+    )
+
+
+def engine_option(help: str) -> Callable[[F], F]:
+    """``--engine``: run here, or on a Dask distributed cluster (with ``--scheduler``)."""
+    return click.option(
+        "--engine",
+        type=click.Choice(["local", "dask"]),
+        default="local",
+        show_default=True,
+        help=help,
+    )
+
+
+def scheduler_option() -> Callable[[F], F]:
+    """``--scheduler``: the Dask scheduler's address for ``--engine dask``."""
+    return click.option(
+        "--scheduler",
+        default=None,
+        metavar="ADDRESS",
+        help="Dask scheduler address for --engine dask, e.g. tcp://scheduler-host:8786.",
     )
 
 

@@ -10,8 +10,10 @@ import click
 from trainkit.cli.options import (
     FiniteFloatRange,
     classes_option,
+    engine_option,
     gather,
     scale_options,
+    scheduler_option,
     tile_px_option,
     workers_option,
 )
@@ -32,8 +34,10 @@ class TileSettings:
     group_by: str
     group_pattern: str | None
     skip_flagged: bool
-    crop_format: str
+    crop_format: str | None
     workers: int | None
+    engine: str
+    scheduler: str | None
     max_megapixels: float
 
 
@@ -91,12 +95,8 @@ class TileSettings:
 @click.option(
     "--skip-flagged", is_flag=True, help="Leave patches with quality flags out of the review queue."
 )
-@click.option(
-    "--crop-format",
-    type=click.Choice(["tiff", "png"]),
-    default="tiff",
-    show_default=True,
-    help="Lossless crop files: uncompressed TIFF (fast) or PNG (smaller, slower to write).",
+@click.option(  # deprecated: tiling writes no crops; accepted so that scripts keep working
+    "--crop-format", type=click.Choice(["tiff", "png"]), default=None, hidden=True
 )
 @classes_option("Class set of a new workspace: orientation, presence or a YAML file.")
 @click.option(
@@ -106,6 +106,8 @@ class TileSettings:
     "rows with an empty label are skipped and counted; loading the same file again adds nothing).",
 )
 @workers_option("Parallel processes (default: all cores).")
+@engine_option("Decode here, or on a Dask distributed cluster.")
+@scheduler_option()
 @click.option(
     "--max-megapixels",
     type=FiniteFloatRange(min=1),
@@ -127,18 +129,22 @@ def tile(
 ) -> None:
     """Cut photos into patches in a workspace, with scale, quality flags and provenance.
 
-    Scale per photo, first found wins: sidecar gsd_mm; sidecar camera geometry;
+    A patch is a row (photo, box, scale, quality); no pixels are copied: they are cut
+    from the photo when a patch is reviewed or learned from, so keep the photos where
+    they are. Scale per photo, first found wins: sidecar gsd_mm; sidecar camera geometry;
     --gsd-mm; --distance-m with --focal-mm and --sensor-width-mm; EXIF focal length
-    with a distance. Re-running on the same photos adds only what is new.
+    with a distance. Re-running on the same photos adds only what is new; a stopped
+    run continues from its last stored photo.
     """
     from trainkit.core.decode import find_images, skipped_files_line
     from trainkit.core.taxonomy import load_class_set
     from trainkit.intake.sidecar import read_sidecar
-    from trainkit.intake.tiling import tile_into_workspace
+    from trainkit.intake.tiling import check_engine, tile_into_workspace
     from trainkit.labels.labels_io import import_csv
     from trainkit.store.workspace import Workspace
 
     with user_errors(ctx):
+        check_engine(settings.engine, settings.scheduler)  # before anything is written
         others: list[Path] = []
         found = find_images(list(photos), skipped=others)
         if not found:
@@ -146,6 +152,11 @@ def tile(
         if others:
             warn(skipped_files_line(others))
         side = read_sidecar(sidecar) if sidecar else {}
+        if settings.crop_format is not None:
+            warn(
+                "--crop-format is ignored: tiling no longer writes crops (patches are cut "
+                "from the photos when needed)"
+            )
         ws = Workspace.create(ws_dir, class_set=load_class_set(classes), tile_px=settings.tile_px)
         with progress_bar(ctx, "tiling photos", len(found)) as bar:
             res = tile_into_workspace(
@@ -158,8 +169,9 @@ def tile(
                 group_by=settings.group_by,
                 group_pattern=settings.group_pattern,
                 skip_flagged=settings.skip_flagged,
-                crop_format=settings.crop_format,
                 workers=settings.workers,
+                engine=settings.engine,
+                scheduler=settings.scheduler,
                 max_pixels=int(settings.max_megapixels * 1e6),
                 roots={p: r for p, r in found if r is not None},
                 progress=lambda i, n, name: bar.update(i, n),

@@ -1,4 +1,15 @@
-"""Photos into a workspace: hash, decode, scale, cut on the tile grid, measure quality, save crops.
+"""Photos into a workspace: hash, decode, scale, lay the tile grid, measure quality; rows only.
+
+Tiling stores no pixels. A patch is a row (photo, box, scale, quality flags, provenance);
+its pixels are cut from the photo when someone needs them, by the one cutting rule
+(:func:`trainkit.store.pixels.cut_patch`), from the box and the grid's box side in photo
+pixels recorded with the photo (``grid_px``).
+
+Photos are hashed, decoded and measured by workers (a process pool on this machine by
+default, or threads, or a Dask cluster); this process is the one writer of the workspace
+and stores the photos in the order given, one transaction each, so the rows and their ids
+do not depend on the engine or the number of workers, and a run stopped at any point
+continues from its last stored photo.
 
 The grid and its border rule are :mod:`trainkit.core.grid`'s; the scale precedence is
 :mod:`trainkit.intake.scale`'s; quality flags come from :mod:`trainkit.intake.quality`.
@@ -6,6 +17,7 @@ The grid and its border rule are :mod:`trainkit.core.grid`'s; the scale preceden
 
 from __future__ import annotations
 
+from collections import deque
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -14,20 +26,55 @@ import numpy as np
 
 from trainkit.core.cores import usable_cores
 from trainkit.core.errors import TrainkitError
-from trainkit.core.grid import PatchBox, crop, iter_patch_boxes, overlap_to_stride
-from trainkit.intake.quality import quality_measures
+from trainkit.core.grid import PatchBox, iter_patch_boxes, overlap_to_stride
+from trainkit.intake.quality import grid_quality
 from trainkit.intake.scale import ScaleOptions, resolve_scale
 from trainkit.intake.sidecar import _check_date, parse_roi, roi_fraction
+from trainkit.store.pixels import cut_patch
 from trainkit.store.workspace import Workspace
 
-__all__ = ["TilingError"]
+__all__ = ["TilingError", "ENGINES", "PARALLEL_MODES", "check_engine"]
+
+#: Where the photos are decoded: on this machine, or on a Dask distributed cluster.
+ENGINES = ("local", "dask")
+#: How the local engine runs its workers.
+PARALLEL_MODES = ("processes", "threads")
+#: Photos handed to the workers ahead of the one being stored, per worker: bounds the
+#: memory of a run (results wait in input order) whatever the archive's size.
+AHEAD_PER_WORKER = 3
+#: Seconds to wait for a Dask scheduler to answer.
+DASK_CONNECT_TIMEOUT_S = 30
 
 
 class TilingError(TrainkitError):
     """Tiling options that cannot be used; the message names the option and the valid choices."""
 
 
-# ----- photos into a workspace -------------------------------------------------------
+# ----- one photo ---------------------------------------------------------------------
+
+
+def photo_grid(
+    height: int,
+    width: int,
+    *,
+    tile_px: int,
+    overlap: float = 0.0,
+    tile_mm: float | None = None,
+    gsd_mm: float | None = None,
+) -> tuple[int, list[PatchBox]]:
+    """The tile grid of a photo: the boxes' side in photo pixels, and the boxes.
+
+    With ``tile_mm`` the side is ``tile_mm / gsd_mm`` photo pixels (each patch is then
+    resampled to ``tile_px`` when cut); otherwise it is ``tile_px``.
+    """
+    if tile_mm is not None:
+        if gsd_mm is None:
+            raise TilingError("tiling by physical size (tile_mm) needs the photo's scale (gsd_mm)")
+        src_px = max(1, int(round(tile_mm / gsd_mm)))
+    else:
+        src_px = tile_px
+    stride = overlap_to_stride(src_px, overlap)
+    return src_px, list(iter_patch_boxes(height, width, src_px, stride))
 
 
 def tile_photo(
@@ -38,33 +85,15 @@ def tile_photo(
     tile_mm: float | None = None,
     gsd_mm: float | None = None,
 ) -> list[tuple[PatchBox, np.ndarray]]:
-    """Cut one RGB photo into (box, tile_px x tile_px crop) pairs covering the whole photo.
+    """Cut one RGB photo into (box, tile_px x tile_px patch) pairs covering the whole photo.
 
-    With ``tile_mm`` the box side in photo pixels is ``tile_mm / gsd_mm`` and each crop
-    is resampled (area interpolation) to ``tile_px``; boxes stay in photo pixels.
+    The grid is :func:`photo_grid`'s and each patch is cut by
+    :func:`trainkit.store.pixels.cut_patch` (boxes stay in photo pixels).
     """
-    import cv2
-
-    if tile_mm is not None:
-        if gsd_mm is None:
-            raise TilingError("tiling by physical size (tile_mm) needs the photo's scale (gsd_mm)")
-        src_tile = max(1, int(round(tile_mm / gsd_mm)))
-    else:
-        src_tile = tile_px
-    h, w = image.shape[:2]
-    stride = overlap_to_stride(src_tile, overlap)
-    out = []
-    for pb in iter_patch_boxes(h, w, src_tile, stride):
-        patch = crop(image, pb.box, src_tile)
-        if src_tile != tile_px:
-            interp = cv2.INTER_AREA if src_tile > tile_px else cv2.INTER_LINEAR
-            patch = cv2.resize(patch, (tile_px, tile_px), interpolation=interp)
-        out.append((pb, patch))
-    return out
-
-
-#: Lossless formats for the stored crops (measured in benchmarks/run.py tiling).
-CROP_FORMATS = ("tiff", "png")
+    src_px, boxes = photo_grid(
+        *image.shape[:2], tile_px=tile_px, overlap=overlap, tile_mm=tile_mm, gsd_mm=gsd_mm
+    )
+    return [(pb, cut_patch(image, pb.box, tile_px, src_px)) for pb in boxes]
 
 
 @dataclass(frozen=True)
@@ -73,7 +102,6 @@ class IntakeJob:
 
     path: str
     name: str
-    root: str
     tile_px: int
     overlap: float
     tile_mm: float | None
@@ -82,24 +110,24 @@ class IntakeJob:
     group: str
     date: str | None
     known_hash: str | None  # hash of a photo already stored under this name
-    known_hashes: frozenset
     max_pixels: int
     skip_flagged: bool
-    crop_format: str = "tiff"
 
 
-def _process(job: IntakeJob) -> dict:
-    """Worker: hash, decode, scale, tile, measure, save crops. Returns plain data, no pixels."""
+def _process(job: IntakeJob, known_hashes: frozenset | set) -> dict:
+    """Worker: hash, decode, scale, lay the grid, measure quality. Returns rows, no pixels.
+
+    The photo is decoded with OpenCV where it can be (:func:`trainkit.core.decode.read_rgb_fast`),
+    so the quality measures see OpenCV's pixels, which may differ from Pillow's by a level
+    or two (the crops shown and learned from are cut from Pillow's); the flags are
+    thresholds on those measures.
+    """
     import hashlib
     import time
 
-    import cv2
-    from PIL import Image
-
-    from trainkit.core.decode import PhotoError, read_rgb
+    from trainkit.core.decode import PhotoError, read_rgb_fast
     from trainkit.intake.scale import read_exif
 
-    cv2.setNumThreads(1)
     path = Path(job.path)
     try:
         data = path.read_bytes()
@@ -120,12 +148,12 @@ def _process(job: IntakeJob) -> dict:
             "error": f"photo {job.name} changed since it was tiled (content hash differs); "
             "skipped: give the new version another name to add it",
         }
-    if digest in job.known_hashes:
+    if digest in known_hashes:
         return {"name": job.name, "status": "moved", "sha256": digest}
     t0 = time.perf_counter()
     notes: list[str] = []
     try:
-        image = read_rgb(path, max_pixels=job.max_pixels, data=data, notes=notes)
+        image = read_rgb_fast(path, max_pixels=job.max_pixels, data=data, notes=notes)
     except PhotoError as exc:
         return {"name": job.name, "status": "error", "error": f"{exc}; skipped"}
     t_decode = time.perf_counter() - t0
@@ -133,25 +161,18 @@ def _process(job: IntakeJob) -> dict:
     h, w = image.shape[:2]
     gsd, gsd_source = resolve_scale(job.rec, w, job.scale, exif)
     try:
-        tiles = tile_photo(
-            image, tile_px=job.tile_px, overlap=job.overlap, tile_mm=job.tile_mm, gsd_mm=gsd
+        src_px, boxes = photo_grid(
+            h, w, tile_px=job.tile_px, overlap=job.overlap, tile_mm=job.tile_mm, gsd_mm=gsd
         )
     except ValueError as exc:
         return {"name": job.name, "status": "error", "error": f"photo {job.name}: {exc}; skipped"}
+    quality = grid_quality(image, [pb.box for pb in boxes], tile_px=job.tile_px, src_px=src_px)
+    del image
     roi = parse_roi(job.rec["roi"], f"photo {job.name}") if "roi" in job.rec else None
-    rel_dir = f"patches/{digest[:16]}"
-    crop_dir = Path(job.root) / rel_dir
-    crop_dir.mkdir(parents=True, exist_ok=True)
     rows = []
-    for pb, patch in tiles:
-        q = quality_measures(patch)
+    for pb, q in zip(boxes, quality, strict=True):
         if roi is not None and roi_fraction(roi, pb.box, h, w) < 0.5:
             q["flags"] = ",".join(f for f in (q["flags"], "outside_roi") if f)
-        rel = f"{rel_dir}/r{pb.row:03d}_c{pb.col:03d}.{job.crop_format}"
-        if job.crop_format == "png":
-            Image.fromarray(patch).save(Path(job.root) / rel, compress_level=1)
-        else:  # uncompressed TIFF: lossless and about 10x faster to write than PNG
-            Image.fromarray(patch).save(Path(job.root) / rel, format="TIFF")
         rows.append(
             {
                 "row": pb.row,
@@ -160,7 +181,7 @@ def _process(job: IntakeJob) -> dict:
                 "y0": pb.y0,
                 "x1": pb.x1,
                 "y1": pb.y1,
-                "crop": rel,
+                "crop": "",  # no pixels stored: cut from the photo on demand
                 "patch_mm": None if gsd is None else (pb.x1 - pb.x0) * gsd,
                 "review_skip": int(job.skip_flagged and bool(q["flags"])),
                 **q,
@@ -175,6 +196,7 @@ def _process(job: IntakeJob) -> dict:
         "height": h,
         "gsd_mm": gsd,
         "gsd_source": gsd_source,
+        "grid_px": src_px,
         "date": job.date or exif.capture_date,
         "roi": job.rec.get("roi"),
         "patches": rows,
@@ -182,6 +204,50 @@ def _process(job: IntakeJob) -> dict:
         "seconds_decode": t_decode,
         "seconds_total": time.perf_counter() - t0,
     }
+
+
+def dask_tile_task(job: IntakeJob, known_hashes: frozenset) -> dict:
+    """One photo on a Dask worker: :func:`_process`, with OpenCV on one thread."""
+    import cv2
+
+    cv2.setNumThreads(1)
+    return _process(job, known_hashes)
+
+
+#: The workspace's known photo hashes in a pool worker process, set once by
+#: :func:`_pool_init` (sent once per worker rather than with each of thousands of photos).
+_POOL_KNOWN: frozenset = frozenset()
+
+
+def _pool_init(known_hashes: frozenset) -> None:
+    """Set up a pool worker: one OpenCV thread, Ctrl-C left to the main process, and an
+    exit as soon as the main process is gone (killed), so no worker outlives it."""
+    import multiprocessing
+    import os
+    import signal
+    import threading
+
+    import cv2
+
+    global _POOL_KNOWN
+    _POOL_KNOWN = known_hashes
+    cv2.setNumThreads(1)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    parent = multiprocessing.parent_process()
+    if parent is not None:
+
+        def leave_with_parent() -> None:
+            parent.join()
+            os._exit(1)
+
+        threading.Thread(target=leave_with_parent, daemon=True).start()
+
+
+def _pool_task(job: IntakeJob) -> dict:
+    return _process(job, _POOL_KNOWN)
+
+
+# ----- photos into a workspace -------------------------------------------------------
 
 
 def _name_and_group(
@@ -211,22 +277,26 @@ def tile_into_workspace(
     group_by: str = "sidecar",
     group_pattern: str | None = None,
     skip_flagged: bool = False,
-    crop_format: str = "tiff",
     workers: int | None = None,
-    parallel: str = "threads",
+    parallel: str = "processes",
+    engine: str = "local",
+    scheduler: str | None = None,
     max_pixels: int | None = None,
     roots: dict[Path, Path] | None = None,
     progress: Callable[[int, int, str], None] | None = None,
+    crop_format: str | None = None,
 ) -> dict:
-    """Tile photos into a workspace: hash, decode, scale, cut, measure quality, save crops.
+    """Tile photos into a workspace: hash, decode, scale, lay the grid, measure quality.
 
     Photos are named by their path relative to the folder they were found in (``roots``
     maps each file to that folder; a file given directly is named by its file name).
     Re-running is idempotent: a photo already present (same name, same SHA-256) is
-    skipped, a moved photo (known hash, new name) only has its location updated, and a
-    changed photo (same name, new hash) is reported and skipped. Unreadable photos are
-    reported and skipped; each photo and its patches are stored in one transaction, so an
-    interrupted run leaves the database consistent and a re-run continues.
+    skipped (its location updated if it is now found elsewhere), a moved photo (known
+    hash, new name) only has its location updated, and a changed photo (same name, new
+    hash) is reported and skipped. Unreadable photos are reported and skipped. Each photo
+    and its patches are stored in one transaction, in the order of ``photos``, so an
+    interrupted run leaves the database consistent and a re-run continues where it
+    stopped, ending with the rows an uninterrupted run gives.
 
     Args:
         group_by: "sidecar" takes the split group from the sidecar's structure/group/site
@@ -234,25 +304,42 @@ def tile_into_workspace(
         group_pattern: a regular expression searched in the photo's relative name, with
             optional named groups ``group`` and ``date`` (YYYY-MM-DD).
         skip_flagged: leave patches with any quality flag out of the review queue.
-        crop_format: "tiff" (uncompressed, fastest; about 150 KB per 224-px crop) or
-            "png" (about 2.5x smaller, several times slower to write; see benchmarks).
-        workers: photos decoded and cropped in parallel (default: the usable cores).
-        parallel: "threads" (default) or "processes" (measured in benchmarks/run.py tiling).
+        workers: local workers (default: the usable cores; 1 tiles in this process).
+        parallel: "processes" (default) or "threads" for the local workers.
+        engine: "local", or "dask" to decode on the Dask cluster at ``scheduler``
+            (every worker must see the photos at the same absolute paths; this process
+            writes the workspace).
+        scheduler: the Dask scheduler's address, e.g. tcp://scheduler-host:8786.
+        progress: called with (photos done, photos, name) after each photo is stored.
+        crop_format: ignored; crops are no longer written at tiling (deprecated).
 
     Returns:
         Counts (added, present, moved, skipped, patches, flagged, left out of review),
         the problems as one line each, notes on photos added (e.g. only page 1 of a
         multi-page file is used) one line each, and timing (photos per second, decode share).
+
+    Raises:
+        TilingError: an option out of range, or the Dask engine cannot be used (dask is
+            not installed, the scheduler cannot be reached).
     """
     import time
+    from contextlib import closing
 
     from trainkit.core.decode import DEFAULT_MAX_PIXELS
 
-    pattern = _check_options(group_by, parallel, crop_format, group_pattern)
+    if crop_format is not None:
+        import warnings
+
+        warnings.warn(
+            "crop_format is ignored: tiling no longer writes crops (patches are cut from "
+            "the photos on demand)",
+            DeprecationWarning,
+            stacklevel=2,
+        )
+    pattern = _check_options(group_by, parallel, engine, scheduler, group_pattern)
     template = IntakeJob(
         path="",
         name="",
-        root=str(workspace.root),
         tile_px=workspace.tile_px,
         overlap=overlap,
         tile_mm=tile_mm,
@@ -261,46 +348,64 @@ def tile_into_workspace(
         group="",
         date=None,
         known_hash=None,
-        known_hashes=frozenset(),
         max_pixels=max_pixels or DEFAULT_MAX_PIXELS,
         skip_flagged=skip_flagged,
-        crop_format=crop_format,
     )
+    tally = _Tally(workspace)
     jobs, problems, skipped = _plan_jobs(
-        photos, workspace, template, sidecar or {}, roots or {}, pattern, group_by
+        photos, template, tally.known, sidecar or {}, roots or {}, pattern, group_by
     )
-    tally = _Tally(workspace, jobs, problems, skipped)
-    n_workers = workers or usable_cores()
+    tally.problems.extend(problems)
+    tally.counts["photos_skipped"] += skipped
+    n_workers = max(1, min(workers or usable_cores(), len(jobs)))
+    known_hashes = frozenset(tally.known.values())
     t0 = time.perf_counter()
-    for i, res in enumerate(_run_jobs(jobs, n_workers, parallel), start=1):
-        tally.record(res)
-        if progress:
-            progress(i, len(jobs), res["name"])
+    if engine == "dask":
+        results = _dask(jobs, known_hashes, scheduler or "")
+    else:
+        results = _local(jobs, known_hashes, n_workers, parallel)
+    # One connection held open for the run: SQLite checkpoints its write-ahead log into
+    # the database when the last connection closes, which would be at every photo.
+    with workspace.connect(), closing(results):  # closing: stop the workers on an error
+        for i, (job, res) in enumerate(zip(jobs, results, strict=True), start=1):
+            tally.record(job, res)
+            if progress:
+                progress(i, len(jobs), res["name"])
     wall = time.perf_counter() - t0
     added = tally.counts["photos_added"]
     return {
         **tally.counts,
-        "problems": problems,
+        "problems": tally.problems,
         "notes": tally.notes,
         "seconds": round(wall, 3),
         "photos_per_second": round(added / wall, 3) if wall > 0 and added else 0.0,
         "decode_share": round(tally.decode_s / tally.total_s, 3) if tally.total_s > 0 else None,
         "workers": n_workers,
+        "engine": engine,
     }
 
 
-def _check_options(group_by: str, parallel: str, crop_format: str, group_pattern: str | None):
+def check_engine(engine: str, scheduler: str | None) -> None:
+    """Refuse an unknown engine, or the Dask engine without a scheduler's address."""
+    if engine not in ENGINES:
+        raise TilingError(f"invalid engine {engine!r}; choose one of: {', '.join(ENGINES)}")
+    if engine == "dask" and not scheduler:
+        raise TilingError("the dask engine needs --scheduler ADDRESS (e.g. tcp://127.0.0.1:8786)")
+
+
+def _check_options(
+    group_by: str, parallel: str, engine: str, scheduler: str | None, group_pattern: str | None
+):
     """Validate the choices of :func:`tile_into_workspace`; returns the compiled group pattern."""
     import re
 
     if group_by not in ("sidecar", "photo"):
         raise TilingError(f"invalid group_by {group_by!r}; choose one of: sidecar, photo")
-    if parallel not in ("threads", "processes"):
-        raise TilingError(f"invalid parallel mode {parallel!r}; choose one of: threads, processes")
-    if crop_format not in CROP_FORMATS:
+    if parallel not in PARALLEL_MODES:
         raise TilingError(
-            f"invalid crop format {crop_format!r}; choose one of: {', '.join(CROP_FORMATS)}"
+            f"invalid parallel mode {parallel!r}; choose one of: {', '.join(PARALLEL_MODES)}"
         )
+    check_engine(engine, scheduler)
     try:
         return re.compile(group_pattern) if group_pattern else None
     except re.error as exc:
@@ -311,8 +416,8 @@ def _check_options(group_by: str, parallel: str, crop_format: str, group_pattern
 
 def _plan_jobs(
     photos: list[Path],
-    workspace: Workspace,
     template: IntakeJob,
+    known: dict[str, str],
     sidecar: dict[str, dict],
     roots: dict[Path, Path],
     pattern,
@@ -323,8 +428,6 @@ def _plan_jobs(
     import os
     from dataclasses import replace
 
-    known = workspace.photo_hashes()
-    known_hashes = frozenset(known.values())
     jobs: list[IntakeJob] = []
     seen_names: set[str] = set()
     problems: list[str] = []
@@ -356,67 +459,118 @@ def _plan_jobs(
                 group=group,
                 date=date,
                 known_hash=known.get(name),
-                known_hashes=known_hashes,
             )
         )
     return jobs, problems, skipped
 
 
-def _run_jobs(jobs: list[IntakeJob], n_workers: int, parallel: str) -> Iterator[dict]:
-    """Results of :func:`_process` for each job, in job order."""
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
+def _in_order(submit: Callable, jobs: list[IntakeJob], ahead: int) -> Iterator[dict]:
+    """Results of ``submit(job).result()`` in job order, with at most ``ahead`` jobs
+    submitted and not yet handed on (the results that finish early wait in order)."""
+    pending: deque = deque(submit(job) for job in jobs[:ahead])
+    following = iter(jobs[ahead:])
+    while pending:
+        res = pending.popleft().result()
+        job = next(following, None)
+        if job is not None:
+            pending.append(submit(job))
+        yield res
 
-    if n_workers <= 1 or len(jobs) <= 1:
-        yield from map(_process, jobs)
-    elif parallel == "threads":
-        # Decoding (Pillow), hashing, quality measures (OpenCV) and file writes release the
-        # GIL, so threads share the cores without process start-up or pickling.
-        with ThreadPoolExecutor(min(n_workers, len(jobs))) as pool:
-            yield from pool.map(_process, jobs)
+
+def _local(
+    jobs: list[IntakeJob], known_hashes: frozenset, n_workers: int, parallel: str
+) -> Iterator[dict]:
+    """Results of :func:`_process` for each job, in job order, from local workers."""
+    import multiprocessing
+    from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
+
+    import cv2
+
+    if n_workers <= 1:
+        threads = cv2.getNumThreads()
+        cv2.setNumThreads(1)  # one process, one core: as each pool worker runs
+        try:
+            for job in jobs:
+                yield _process(job, known_hashes)
+        finally:
+            cv2.setNumThreads(threads)
+        return
+    pool: Executor
+    if parallel == "threads":
+        # Decoding, hashing and the quality measures (OpenCV) release the GIL.
+        pool = ThreadPoolExecutor(n_workers)
+        task: Callable = lambda job: pool.submit(_process, job, known_hashes)  # noqa: E731
     else:
         # forkserver, not fork: forking a process that already runs OpenMP/BLAS threads
         # (torch, OpenCV) can deadlock the child.
         ctx = multiprocessing.get_context("forkserver")
-        with ProcessPoolExecutor(min(n_workers, len(jobs)), mp_context=ctx) as pool:
-            yield from pool.map(_process, jobs)
+        ctx.set_forkserver_preload(["trainkit.intake.tiling"])
+        pool = ProcessPoolExecutor(
+            n_workers, mp_context=ctx, initializer=_pool_init, initargs=(known_hashes,)
+        )
+        task = lambda job: pool.submit(_pool_task, job)  # noqa: E731
+    try:
+        yield from _in_order(task, jobs, AHEAD_PER_WORKER * n_workers)
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _dask(jobs: list[IntakeJob], known_hashes: frozenset, scheduler: str) -> Iterator[dict]:
+    """Results of :func:`dask_tile_task` for each job, in job order, from a Dask cluster."""
+    try:
+        from distributed import Client
+    except ImportError:
+        raise TilingError(
+            "the dask engine needs dask.distributed: pip install 'trainkit-concrete[dask]'"
+        ) from None
+    try:
+        client = Client(scheduler, timeout=DASK_CONNECT_TIMEOUT_S)
+    except (OSError, ValueError) as exc:
+        raise TilingError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
+    try:
+        [known] = client.scatter([known_hashes], broadcast=True)
+        threads = sum(client.nthreads().values()) or 1
+        task = lambda job: client.submit(dask_tile_task, job, known, pure=False)  # noqa: E731
+        yield from _in_order(task, jobs, AHEAD_PER_WORKER * threads)
+    finally:
+        client.close()
 
 
 class _Tally:
     """Stores each photo's result in the workspace and keeps the run's counts."""
 
-    def __init__(
-        self, workspace: Workspace, jobs: list[IntakeJob], problems: list[str], skipped: int
-    ) -> None:
+    def __init__(self, workspace: Workspace) -> None:
         self.workspace = workspace
-        self.by_name = {j.name: j for j in jobs}
-        self.hash_to_name = {v: k for k, v in workspace.photo_hashes().items()}
-        self.problems = problems
+        photos = workspace.photos()
+        self.known = {r["name"]: r["sha256"] for r in photos}
+        self.source_path = {r["name"]: r["source_path"] for r in photos}
+        self.hash_to_name = {r["sha256"]: r["name"] for r in photos}
+        self.problems: list[str] = []
         self.notes: list[str] = []
         self.decode_s = self.total_s = 0.0
         self.counts = {
             "photos_added": 0,
             "photos_already_present": 0,
             "photos_moved": 0,
-            "photos_skipped": skipped,
+            "photos_skipped": 0,
             "patches_added": 0,
             "patches_flagged": 0,
             "patches_left_out_of_review": 0,
         }
 
-    def record(self, res: dict) -> None:
+    def record(self, job: IntakeJob, res: dict) -> None:
         counts, st = self.counts, res["status"]
         if st == "present":
+            if self.source_path.get(job.name) != job.path:  # found elsewhere: re-pointed
+                self.workspace.set_source_path(job.name, job.path)
             counts["photos_already_present"] += 1
         elif st == "moved":
-            job = self.by_name[res["name"]]
             self.workspace.set_source_path(self.hash_to_name[res["sha256"]], job.path)
             counts["photos_moved"] += 1
         elif st in ("error", "changed"):
             self.problems.append(res["error"])
             counts["photos_skipped"] += 1
         else:
-            job = self.by_name[res["name"]]
             self.workspace.add_photo_with_patches(
                 name=res["name"],
                 source_path=job.path,
@@ -430,6 +584,7 @@ class _Tally:
                 roi=res["roi"],
                 sha256=res["sha256"],
                 patches=res["patches"],
+                grid_px=res["grid_px"],
             )
             self.notes.extend(res.get("notes", []))
             counts["photos_added"] += 1
