@@ -534,8 +534,8 @@ def measure_size(
             "engine": t["engine"],
             "seconds": seconds,
             "s_per_photo": round(per_photo, 6),
-            "decode_bound_share": round(bound / per_photo, 4),
-            "decode_bound_share_per_process": round(bound / (per_photo * k), 4),
+            "decode_bound_share": round(bound / per_photo, 5),
+            "decode_bound_share_per_process": round(bound / (per_photo * k), 5),
             "patches": t["patches_added"],
             "peak_tree_mb": t["tree"]["peak_hwm_sum_mb"],
             "peak_tree_sampled_mb": t["tree"]["peak_total_mb"],
@@ -716,7 +716,7 @@ def extrapolation(lin: dict) -> dict:
     n = EXTRAPOLATE_TO
 
     def wait(name: str) -> float:
-        return round(max(at(lin[name], n), max(lin[name]["totals"])), 2)
+        return round(max(at(lin[name], n), max(lin[name]["totals"])), 3)
 
     out: dict = {
         "photos": n,
