@@ -210,7 +210,7 @@ def test_photos_found_elsewhere_are_re_pointed_not_added_again(tmp_path):
     shutil.rmtree(folder)
     photos, roots = listed(moved)
     res = tile_into_workspace(photos, ws, roots=roots, workers=2)
-    assert (res["photos_added"], res["photos_already_present"]) == (0, 3)
+    assert (res["photos_added"], res["photos_moved"], res["photos_already_present"]) == (0, 3, 0)
     after = table_rows(ws)
     assert after["patches"] == before["patches"]
     assert {r["source_path"] for r in ws.photos()} == {

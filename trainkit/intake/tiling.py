@@ -563,7 +563,9 @@ class _Tally:
         if st == "present":
             if self.source_path.get(job.name) != job.path:  # found elsewhere: re-pointed
                 self.workspace.set_source_path(job.name, job.path)
-            counts["photos_already_present"] += 1
+                counts["photos_moved"] += 1
+            else:
+                counts["photos_already_present"] += 1
         elif st == "moved":
             self.workspace.set_source_path(self.hash_to_name[res["sha256"]], job.path)
             counts["photos_moved"] += 1
