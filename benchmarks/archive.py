@@ -335,7 +335,7 @@ import json, sys, time
 import cv2
 import numpy as np
 cv2.setNumThreads(1)
-paths = json.loads(sys.argv[1])
+paths = json.loads(sys.stdin.read())
 t0 = time.perf_counter()
 for p in paths:
     with open(p, "rb") as f:
@@ -355,7 +355,7 @@ from pathlib import Path
 from trainkit.core.taxonomy import load_class_set
 from trainkit.intake.tiling import tile_into_workspace
 from trainkit.store.workspace import Workspace
-a = json.loads(sys.argv[1])
+a = json.loads(sys.stdin.read())
 paths = [Path(p) for p in a["paths"]]
 root = Path(a["root"])
 params = inspect.signature(tile_into_workspace).parameters
@@ -375,7 +375,7 @@ import json, sys, time
 t0 = time.perf_counter()
 from trainkit.store.workspace import Workspace
 t1 = time.perf_counter()
-ws = Workspace.open(sys.argv[1])
+ws = Workspace.open(json.loads(sys.stdin.read()))
 t2 = time.perf_counter()
 summary = ws.summary()
 t3 = time.perf_counter()
@@ -390,7 +390,7 @@ from trainkit.labels.review import load_patch
 from trainkit.labels.review_run import ReviewRequest, prepare_session
 from trainkit.store.workspace import Workspace
 t1 = time.perf_counter()
-ws = Workspace.open(sys.argv[1])
+ws = Workspace.open(json.loads(sys.stdin.read()))
 session = prepare_session(ws, ReviewRequest(reviewer="benchmark"))
 t2 = time.perf_counter()
 pixels = load_patch(ws, session.current())
@@ -406,7 +406,7 @@ from trainkit.labels.labels_io import import_csv
 from trainkit.store.cropstore import CropStore
 from trainkit.store.pixels import PatchPixels
 from trainkit.store.workspace import Workspace
-a = json.loads(sys.argv[1])
+a = json.loads(sys.stdin.read())
 ws = Workspace.open(a["ws"])
 ids = [p["patch_id"] for p in ws.picked_patches()]
 names = ws.class_set.names
@@ -439,19 +439,24 @@ def _env() -> dict:
 def _child(code: str, arg, *, memory: bool = False) -> dict:
     """Run ``code`` in a fresh interpreter; its last stdout line (JSON) plus its wall time.
 
+    ``arg`` goes to the child's stdin as JSON (2,000 paths do not fit on a command line).
     With ``memory`` the process tree's memory is sampled (:class:`TreeMemory`) and added
     under ``tree``.
     """
-    cmd = [sys.executable, "-c", code, arg if isinstance(arg, str) else json.dumps(arg)]
     t0 = time.perf_counter()
     proc = subprocess.Popen(
-        cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env()
+        [sys.executable, "-c", code],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=_env(),
     )
     if memory:
         with TreeMemory(proc.pid) as mem:
-            out, err = proc.communicate()
+            out, err = proc.communicate(json.dumps(arg))
     else:
-        out, err = proc.communicate()
+        out, err = proc.communicate(json.dumps(arg))
     wall = time.perf_counter() - t0
     if proc.returncode != 0:
         raise RuntimeError(f"measurement process failed:\n{err[-2000:]}")

@@ -153,6 +153,18 @@ def test_tree_memory_of_a_finished_process_is_empty(arc):
     assert mem.result()["samples"] == 0
 
 
+def test_a_measurement_process_takes_an_archive_sized_argument(arc):
+    # 2,000 paths of a scratch folder are about 170 KB of JSON, more than Linux lets one
+    # command-line argument hold (MAX_ARG_STRLEN, 128 KiB; execve(2)).
+    paths = [
+        f"/tmp/scratch/trainkit-archive-x/archive/job00/frame_{i:05d}.jpg" for i in range(3000)
+    ]
+    got = arc._child(
+        "import json, sys; print(json.dumps({'n': len(json.loads(sys.stdin.read()))}))", paths
+    )
+    assert got["n"] == 3000
+
+
 def test_quick_run_figures_follow_from_the_measurements(arc, tmp_path):
     out = tmp_path / "out"
     assert arc.main([str(out), "--quick", "--quiet", "--scratch", str(tmp_path)]) == 0
