@@ -22,9 +22,10 @@ Everything is invented with the kit's own generator (trainkit.synth; no real pho
    (f) opening review: the wall time of a fresh process that builds the unlabelled queue
        (``prepare_session``) and has the first patch's pixels ready, what a reviewer
        waits for before the first screen.
-3. On the largest size: 2,000 patches (a seeded draw) get labels (``import_csv``) and
-   their crops cut and cached (``PatchPixels.store``): crop-store bytes per labelled
-   patch and the seconds to cut and cache them.
+3. On the largest size: 2,000 patches picked by ``trainkit pick`` (which cuts and caches
+   their crops), review opened on the picked queue (what an archive's reviewer uses) and
+   the picks labelled (``import_csv``): crop-store bytes per labelled patch and the
+   seconds of each step.
 4. A least-squares line over the sizes for each total, with residuals (the issue wants
    cost linear in photos), and each total on its line at 40,000 photos: an
    extrapolation, not a measurement.
@@ -390,8 +391,9 @@ from trainkit.labels.review import load_patch
 from trainkit.labels.review_run import ReviewRequest, prepare_session
 from trainkit.store.workspace import Workspace
 t1 = time.perf_counter()
-ws = Workspace.open(json.loads(sys.stdin.read()))
-session = prepare_session(ws, ReviewRequest(reviewer="benchmark"))
+a = json.loads(sys.stdin.read())
+ws = Workspace.open(a["ws"])
+session = prepare_session(ws, ReviewRequest(reviewer="benchmark", queue=a["queue"]))
 t2 = time.perf_counter()
 pixels = load_patch(ws, session.current())
 t3 = time.perf_counter()
@@ -567,7 +569,7 @@ def measure_size(
         "library_open_seconds": round(lib["open_seconds"], 4),
         "library_summary_seconds": round(lib["summary_seconds"], 4),
     }
-    rev = _child(_REVIEW_CHILD, str(ws))
+    rev = _child(_REVIEW_CHILD, {"ws": str(ws), "queue": "unlabelled"})
     row["review"] = {
         "first_patch_seconds": round(rev["wall_seconds"], 3),
         "import_seconds": round(rev["import_seconds"], 3),
@@ -605,7 +607,7 @@ def label_patches(ws: Path, count: int, scratch: Path, *, photos: int) -> dict:
     before_bytes, before_files = folder_usage(ws)
     pick_s, out = run_cli("pick", str(ws), "--patches", str(count), "--seed", str(SEED), "--json")
     pick = json.loads(out)
-    rev = _child(_REVIEW_CHILD, str(ws))
+    rev = _child(_REVIEW_CHILD, {"ws": str(ws), "queue": "picked"})
     got = _child(_LABEL_CHILD, {"ws": str(ws), "csv": str(scratch / "labels.csv")})
     after_bytes, after_files = folder_usage(ws)
     store = got["crop_store"]
