@@ -29,6 +29,7 @@ SCREENING_KEYS = {
     "tp", "fn", "fp",
     "tn", "recall", "recall_ci_low", "recall_ci_high", "recall_interval", "specificity",
     "false_alarm_rate", "precision", "flagged_share", "validation", "at_default_threshold",
+    "promise",
 }  # fmt: skip
 PER_CLASS_KEYS = {
     "name", "index", "precision", "recall", "f1", "support", "recall_ci_low", "recall_ci_high",
@@ -353,6 +354,31 @@ def test_threshold_from_a_false_alarm_budget_on_validation(evaluated, tmp_path):
     assert s["validation"]["recall"] == pytest.approx(tpr[fpr <= 0.05 + 1e-12].max())
     html = (c / "evaluation" / "report.html").read_text(encoding="utf-8")
     assert "Allowing at most 5% false alarms on validation" in html
+
+
+def test_the_threshold_carries_a_recall_promise_recomputed_with_scipy(evaluated):
+    """The recall-target threshold is the k-th lowest validation crack score, k the largest
+    with P(Beta(k, n + 1 - k) <= 1 - target) >= the confidence (scipy's beta distribution;
+    order statistics of a continuous score), and the report says what it promises."""
+    from scipy import stats
+
+    from trainkit.core.contract import screening_probability
+    from trainkit.judging.evaluation import EvaluationOptions, _run_experiment
+
+    a, _, res = evaluated
+    s, pr = res["screening"], res["screening"]["promise"]
+    run = _run_experiment(a, EvaluationOptions(), None)
+    crack = np.sort(screening_probability(run.val.probs)[run.val.labels != 0])
+    n, target, conf = crack.size, s["target_recall"], pr["confidence"]
+    assert pr["cracks"] == n and pr["target"] == target and conf == 0.9
+    ok = [k for k in range(1, n + 1) if stats.beta.cdf(1 - target, k, n + 1 - k) >= conf]
+    assert pr["kept"] == bool(ok)
+    k = max(ok) if ok else 1
+    assert pr["below"] == k and pr["threshold"] == pytest.approx(crack[k - 1])
+    assert s["threshold"] == pytest.approx(pr["threshold"]) == pr["operating_threshold"]
+    html = (a / "evaluation" / "report.html").read_text(encoding="utf-8")
+    assert ("promises recall" in html) if ok else ("NO RECALL PROMISE" in html)
+    assert ("promised with confidence 0.9" in s["threshold_source"]) == bool(ok)
 
 
 def test_two_evaluations_of_one_experiment_at_once_both_finish_whole(evaluated, tmp_path):

@@ -3,8 +3,9 @@
 Writes into ``EXP/evaluation/``: ``predictions.csv`` (one row per patch; every
 figure can be recomputed from it), ``metrics.json``, the plots and
 ``report.html``; with ``against`` also ``disagreements.csv``. The operating
-threshold is chosen on the validation subset for a target screening recall and
-then reported on the evaluated subset. The figures come from
+threshold is chosen on the validation subset so that a target screening recall holds
+with stated confidence (:func:`trainkit.judging.scoring.choose_threshold`) and then
+reported on the evaluated subset. The figures come from
 :func:`trainkit.judging.scoring.score_predictions` (pure) and the comparison from
 :mod:`trainkit.judging.comparison`; this module runs the model and writes the files.
 
@@ -38,6 +39,14 @@ key                                    meaning
                                        ``flagged_share`` (share of all patches flagged)
 ``screening.validation``               the same counts and rates on validation at the threshold
                                        (``null`` without validation patches)
+``screening.promise``                  under a target recall, what the threshold promises:
+                                       ``threshold`` (the validation rule's), ``target``,
+                                       ``confidence``, ``cracks`` (validation cracks, n),
+                                       ``below`` (k: the k-th lowest crack score),
+                                       ``achieved_confidence``, ``recall_bound``,
+                                       ``validation_recall``, ``kept`` (false: too few
+                                       cracks, no promise), ``cracks_needed``,
+                                       ``operating_threshold``; ``null`` under a budget
 ``screening.at_default_threshold``     the counts and rates at 0.5, to show what the target
                                        recall costs in false alarms
 ``expected_calibration_error``         ECE of the argmax confidence, 10 equal-width bins
@@ -103,6 +112,7 @@ from trainkit.judging.comparison import (
     write_disagreements,
 )
 from trainkit.judging.scoring import (
+    DEFAULT_PROMISE_CONFIDENCE,
     Scored,
     cascade_block,
     choose_threshold,
@@ -136,6 +146,9 @@ class EvaluationOptions:
             before and after. Report only: predictions, threshold and export are unchanged.
         max_false_alarms: instead of a target recall, choose the operating threshold on
             validation as the lowest one whose false-alarm rate there is at most this.
+        threshold_confidence: the confidence with which the threshold must keep
+            ``target_recall`` given the number of validation cracks (see
+            :func:`trainkit.judging.scoring.choose_threshold`).
     """
 
     split: str = "test"
@@ -145,6 +158,7 @@ class EvaluationOptions:
     interval_method: str = "wilson"
     temperature_scaling: bool = False
     max_false_alarms: float | None = None
+    threshold_confidence: float = DEFAULT_PROMISE_CONFIDENCE
 
     def __post_init__(self) -> None:
         if self.split not in ("test", "val"):
@@ -160,6 +174,15 @@ class EvaluationOptions:
         mfa = self.max_false_alarms
         if mfa is not None and not 0.0 <= float(mfa) < 1.0:
             raise EvaluationError(f"expected max_false_alarms in [0, 1), got {mfa}")
+        if not 0.0 < float(self.threshold_confidence) < 1.0:
+            raise EvaluationError(
+                f"expected threshold_confidence in (0, 1), got {self.threshold_confidence}"
+            )
+        if self.max_false_alarms is None and not 0.0 < float(self.target_recall) < 1.0:
+            raise EvaluationError(
+                f"expected target_recall in (0, 1) (a recall of 1 cannot be promised from "
+                f"a sample), got {self.target_recall}"
+            )
 
 
 # --------------------------------------------------------------------------- running a model
@@ -180,6 +203,7 @@ class _Run:
     threshold: float
     threshold_source: str
     stage1: tuple[np.ndarray, np.ndarray] | None = None  # first stage's screening (test, val)
+    promise: dict | None = None  # the recall promise of the validation threshold
 
     def side(self) -> Side:
         return Side(str(self.exp), self.test, self.keys, self.threshold, self.threshold_source)
@@ -246,8 +270,11 @@ def _run_experiment(exp_dir: str | Path, opts: EvaluationOptions, workspace) -> 
     nc = class_set.num_classes
     test, val = _scored(model, data, nc), _scored(model, val_data, nc)
     # Operating threshold: chosen on validation, reported on the evaluated subset.
-    threshold, source = choose_threshold(
-        val, target_recall=opts.target_recall, max_false_alarms=opts.max_false_alarms
+    threshold, source, promise = choose_threshold(
+        val,
+        target_recall=opts.target_recall,
+        max_false_alarms=opts.max_false_alarms,
+        confidence=opts.threshold_confidence,
     )
     job, weights = _job_validation(model, ws, ckpt, class_set)
     threshold, source = threshold_for_job_too(
@@ -260,7 +287,18 @@ def _run_experiment(exp_dir: str | Path, opts: EvaluationOptions, workspace) -> 
 
         first = load_stage1(ckpt["cascade"])
         stage1 = tuple(_scored(first, d, 2).screening for d in (data, val_data))
-    return _Run(exp, ckpt, class_set, ws, data, keys, test, val, threshold, source, stage1)
+    return _Run(exp, ckpt, class_set, ws, data, keys, test, val, threshold, source, stage1, promise)
+
+
+def _promise_block(run: _Run) -> dict | None:
+    """The recall promise of the operating threshold (None under a false-alarm budget).
+
+    ``threshold`` is the validation rule's; the operating threshold may be lower (an
+    adapted model's job cells asked for it), which flags more and keeps the promise.
+    """
+    if run.promise is None:
+        return None
+    return {**run.promise, "operating_threshold": run.threshold}
 
 
 def _cascade_figures(run: _Run, opts: EvaluationOptions) -> dict | None:
@@ -337,6 +375,7 @@ def evaluate_experiment(
             require_recall=opts.require_recall,
             temperature_scaling=opts.temperature_scaling,
         )
+        result["screening"]["promise"] = _promise_block(run)
         result["cascade"] = _cascade_figures(run, opts)
         comparison = arrays = None
         if against is not None:

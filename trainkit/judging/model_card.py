@@ -404,6 +404,22 @@ def _threshold(metrics: MetricsRecord | None, export: ExportRecord) -> list[str]
             f"For comparison, at 0.500 the test set would have had {d.get('fp')} false alarms "
             f"and screening recall {_f(d.get('recall'))}."
         )
+    pr = s.get("promise")
+    if pr and pr.get("kept"):
+        lines.append(
+            f"Promise: on photos like the validation photos, recall >= {_f(pr.get('target'))} "
+            f"with confidence {_f(pr.get('confidence'))} (set on {pr.get('cracks')} validation "
+            "cracks by a distribution-free order-statistic bound that counts them as "
+            "independent; cracks of one photo resemble each other, so it is weaker than stated "
+            "when few photos hold them)."
+        )
+    elif pr:
+        lines.append(
+            f"**No recall promise**: validation held {pr.get('cracks')} cracks, fewer than the "
+            f"{pr.get('cracks_needed')} a promise of recall >= {_f(pr.get('target'))} with "
+            f"confidence {_f(pr.get('confidence'))} needs; this threshold keeps that recall with "
+            f"confidence {_f(pr.get('achieved_confidence'))} only."
+        )
     if s.get("threshold_independent") is False:
         lines.append(
             "The threshold was chosen on the evaluated patches themselves, so the test "

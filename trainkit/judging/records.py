@@ -142,6 +142,22 @@ class RatesRecord(TypedDict, total=False):
     false_alarm_rate: float | None
 
 
+class PromiseRecord(TypedDict, total=False):
+    """The recall promise of a threshold chosen for a target recall (metrics.RecallPromise)."""
+
+    threshold: float
+    target: float
+    confidence: float
+    cracks: int
+    below: int
+    achieved_confidence: float
+    recall_bound: float
+    validation_recall: float
+    kept: bool
+    cracks_needed: int
+    operating_threshold: float
+
+
 class ScreeningRecord(TypedDict, total=False):
     """The headline: crack against no crack at the chosen threshold."""
 
@@ -155,6 +171,7 @@ class ScreeningRecord(TypedDict, total=False):
     threshold: float
     threshold_source: str
     threshold_independent: bool
+    promise: PromiseRecord | None
     validation: CountsRecord | None
     at_default_threshold: CountsRecord
 

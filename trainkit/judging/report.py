@@ -30,6 +30,7 @@ from trainkit.judging.plots import (
     plot_reliability,
     plot_screening_curves,
 )
+from trainkit.judging.scoring import lowest_rank
 
 __all__ = ["write_report", "CONFUSION_PNG"]
 
@@ -282,11 +283,55 @@ def _screening(R: dict, out: Path) -> str:
     return f"""<h2>Screening: crack vs none</h2>
 <p>A patch is flagged when its screening probability 1 &minus; P(none) is at least the
 threshold. {cost_txt}</p>
+{_promise(R)}
 <table><tr><th>where, threshold</th><th>threshold</th><th>recall</th>
 <th>recall {level} interval</th><th>cracks found</th><th>specificity</th>
 <th>false-alarm rate</th><th>false alarms</th><th>precision</th><th>share flagged</th></tr>
 {rows}</table>
 {_img_tag(out / "screening_curves.png", "precision-recall and ROC curves")}"""
+
+
+def _promise(R: dict) -> str:
+    """What the threshold promises, and whether the evaluated subset kept it."""
+    pr = R["screening"].get("promise")
+    if not pr:
+        return ""
+    s, split = R["screening"], _e(R["split"])
+    measured = s.get("recall")
+    kept_here = measured is not None and measured >= pr["target"]
+    here = (
+        f"On the {split} patches it found {_m(R, 'screening.recall')} of cracks: the target "
+        f"{'was' if kept_here else 'was NOT'} reached here (one draw; the promise is about how "
+        "often such a threshold reaches it)."
+    )
+    if pr["kept"]:
+        cls, head = (
+            "pass",
+            (
+                f"The threshold promises recall &ge; {pr['target']:g} with confidence "
+                f"{pr['confidence']:g}: it is the score of the {lowest_rank(pr['below'])} of "
+                f"{pr['cracks']} validation cracks, the highest a distribution-free order-statistic "
+                f"bound allows (at confidence {pr['confidence']:g} recall is at least "
+                f"{pr['recall_bound']:.3f})."
+            ),
+        )
+    else:
+        cls, head = (
+            "fail",
+            (
+                f"NO RECALL PROMISE: validation holds {pr['cracks']} cracks, fewer than the "
+                f"{pr['cracks_needed']} a promise of recall &ge; {pr['target']:g} with confidence "
+                f"{pr['confidence']:g} needs. The threshold is the lowest validation crack's score, "
+                f"which keeps the target with confidence {pr['achieved_confidence']:.2f} only; "
+                "label more validation cracks before trusting it."
+            ),
+        )
+    return (
+        f'<p class="verdict {cls}">{head}</p><p>{here} The promise holds for photos like '
+        "the validation photos, treating their cracks as independent draws; cracks of one "
+        "photo resemble each other, so a few photos promise less than their crack count "
+        "says.</p>"
+    )
 
 
 def _cascade(R: dict) -> str:

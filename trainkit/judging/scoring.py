@@ -34,6 +34,8 @@ __all__ = [
 ]
 
 METRICS_VERSION = 1
+#: Confidence of the recall promise an operating threshold carries (``--threshold-confidence``).
+DEFAULT_PROMISE_CONFIDENCE = 0.9
 
 
 @dataclass
@@ -70,25 +72,65 @@ class Scored:
 
 
 def choose_threshold(
-    val: Scored | None, *, target_recall: float, max_false_alarms: float | None = None
-) -> tuple[float, str]:
-    """The operating threshold chosen on validation, and how it was chosen, in words.
+    val: Scored | None,
+    *,
+    target_recall: float,
+    max_false_alarms: float | None = None,
+    confidence: float = DEFAULT_PROMISE_CONFIDENCE,
+) -> tuple[float, str, dict | None]:
+    """The operating threshold chosen on validation, how it was chosen in words, and the
+    recall promise it carries (None under a false-alarm budget or without validation cracks).
 
     With ``max_false_alarms`` the lowest threshold whose validation false-alarm rate is
-    at most that budget; otherwise the highest threshold reaching ``target_recall`` on
-    validation's crack patches. Without the patches a rule needs, 0.5 and the reason.
+    at most that budget. Otherwise the highest threshold at which recall >=
+    ``target_recall`` holds with ``confidence`` given the number of validation cracks
+    (:func:`trainkit.metrics.threshold_with_recall_promise`); with too few cracks for
+    that promise, the lowest validation crack's score, and the words say how much
+    confidence the cracks give and how many the promise needs. Without the patches a
+    rule needs, 0.5 and the reason.
     """
     if max_false_alarms is not None:
         if val is not None and len(val) and np.any(~val.is_crack):
             t = M.threshold_for_false_alarms(
                 val.is_crack, val.screening, max_false_alarm_rate=max_false_alarms
             )
-            return float(t), f"validation subset, false-alarm rate at most {max_false_alarms:g}"
-        return 0.5, "default 0.5 (validation has no clean patches)"
+            return (
+                float(t),
+                f"validation subset, false-alarm rate at most {max_false_alarms:g}",
+                None,
+            )
+        return 0.5, "default 0.5 (validation has no clean patches)", None
     if val is not None and len(val) and np.any(val.is_crack):
-        t = M.threshold_for_recall(val.is_crack, val.screening, target_recall=target_recall)
-        return float(t), f"validation subset, target screening recall {target_recall:g}"
-    return 0.5, "default 0.5 (validation has no crack patches)"
+        pr = M.threshold_with_recall_promise(
+            val.is_crack, val.screening, target_recall=target_recall, confidence=confidence
+        )
+        return pr.threshold, promise_words(pr.as_dict()), pr.as_dict()
+    return 0.5, "default 0.5 (validation has no crack patches)", None
+
+
+def promise_words(pr: dict) -> str:
+    """How a threshold with a recall promise was chosen, in one sentence's words."""
+    n, k = pr["cracks"], pr["below"]
+    if pr["kept"]:
+        return (
+            f"validation subset: recall >= {pr['target']:g} promised with confidence "
+            f"{pr['confidence']:g} on photos like the validation photos (the {lowest_rank(k)} of {n} "
+            "validation crack scores; order-statistic bound)"
+        )
+    return (
+        f"validation subset: only {n} validation cracks, fewer than the {pr['cracks_needed']} "
+        f"a promise of recall >= {pr['target']:g} with confidence {pr['confidence']:g} needs; "
+        f"the lowest crack score is used, which keeps that recall with confidence "
+        f"{pr['achieved_confidence']:.2f} only (NO PROMISE: label more validation cracks)"
+    )
+
+
+def lowest_rank(k: int) -> str:
+    """ "lowest", "2nd lowest", ...: the k-th lowest in words."""
+    if k == 1:
+        return "lowest"
+    suffix = "th" if 10 <= k % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(k % 10, "th")
+    return f"{k}{suffix} lowest"
 
 
 def threshold_for_job_too(

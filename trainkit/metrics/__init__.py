@@ -22,20 +22,25 @@ from trainkit.metrics.classification import (
     row_normalise,
 )
 from trainkit.metrics.screening import (
+    RecallPromise,
+    cracks_needed_for_promise,
     recall_at_false_alarm,
     screening_scores,
     threshold_for_false_alarms,
     threshold_for_recall,
+    threshold_with_recall_promise,
     weighted_thresholds,
 )
 
 __all__ = [
     "Interval",
+    "RecallPromise",
     "INTERVAL_METHODS",
     "MetricsError",
     "breakdown",
     "cohen_kappa",
     "confusion_matrix",
+    "cracks_needed_for_promise",
     "expected_calibration_error",
     "fit_temperature",
     "mcnemar_test",
@@ -51,4 +56,5 @@ __all__ = [
     "softmax",
     "threshold_for_false_alarms",
     "threshold_for_recall",
+    "threshold_with_recall_promise",
 ]

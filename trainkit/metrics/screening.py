@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from typing import Any, cast
 
 import numpy as np
@@ -107,6 +108,131 @@ def threshold_for_recall(
         m += 1
     pos_scores = np.sort(p[y])[::-1]
     return float(pos_scores[m - 1])
+
+
+@dataclass(frozen=True)
+class RecallPromise:
+    """A threshold chosen so that recall >= ``target`` holds with stated confidence.
+
+    Attributes:
+        threshold: flag a patch when its crack probability is >= this.
+        target: the recall promised.
+        confidence: the confidence asked for.
+        cracks: validation cracks the choice rests on (n).
+        below: validation cracks at or below the threshold, the threshold's own included
+            (k: the threshold is the k-th lowest crack score).
+        achieved_confidence: the probability, over draws of n validation cracks, that recall
+            at a threshold chosen this way is >= ``target`` (>= ``confidence`` when ``kept``).
+        recall_bound: recall at the threshold is at least this with ``confidence``.
+        validation_recall: the share of the validation cracks the threshold flags.
+        kept: whether the promise is made; False when n is too few for it (``cracks_needed``).
+        cracks_needed: the fewest validation cracks for which this promise can be made.
+    """
+
+    threshold: float
+    target: float
+    confidence: float
+    cracks: int
+    below: int
+    achieved_confidence: float
+    recall_bound: float
+    validation_recall: float
+    kept: bool
+    cracks_needed: int
+
+    def as_dict(self) -> dict[str, Any]:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+
+def cracks_needed_for_promise(target_recall: float, confidence: float) -> int:
+    """The fewest validation cracks for which :func:`threshold_with_recall_promise` can
+    promise recall >= ``target_recall`` with ``confidence``: the smallest n with
+    ``1 - target**n >= confidence`` (a threshold at the lowest of n crack scores misses a
+    new crack with probability Beta(1, n); with target 0.95 and confidence 0.95, 59 --
+    the success-run count of reliability testing)."""
+    target = _unit_number(target_recall, "target_recall", "(0, 1]")
+    conf = _confidence(confidence)
+    if target >= 1.0:
+        raise ValueError("a recall of 1 can never be promised from a finite sample")
+    n = math.ceil(math.log1p(-conf) / math.log(target))
+    while n > 1 and 1.0 - target ** (n - 1) >= conf:
+        n -= 1
+    while 1.0 - target**n < conf:
+        n += 1
+    return max(1, n)
+
+
+def _confidence(confidence: float) -> float:
+    c = float(confidence)
+    if not 0.0 < c < 1.0:
+        raise ValueError(f"expected confidence in (0, 1), got {confidence}")
+    return c
+
+
+def threshold_with_recall_promise(
+    y_true_crack: ArrayLike, p_crack: ArrayLike, *, target_recall: float, confidence: float
+) -> RecallPromise:
+    """The highest threshold at which recall >= ``target_recall`` holds with ``confidence``.
+
+    A distribution-free order-statistic rule (the binomial tail bound of risk-controlling
+    thresholds, Bates, Angelopoulos, Lei, Malik and Jordan 2021; the same arithmetic as
+    Wilks' tolerance limits). With the n validation crack scores sorted ascending
+    s_(1) <= ... <= s_(n), a new crack like them scores below s_(k) with probability
+    F(s_(k)), distributed Beta(k, n + 1 - k) over draws of the validation cracks; so
+    P(miss rate <= 1 - target) = P(Binomial(n, 1 - target) >= k), and the rule takes the
+    largest k where that is >= ``confidence`` (the highest threshold, fewest false alarms).
+    Ties only add flagged patches, so they keep the promise.
+
+    When n is too few (fewer than :func:`cracks_needed_for_promise`), no k keeps it: the
+    threshold is then the lowest validation crack score (k = 1, the most any validation
+    set of n cracks can support), ``kept`` is False and ``achieved_confidence`` says how
+    much confidence n cracks give.
+
+    The promise assumes new cracks are exchangeable with the validation cracks: it holds
+    for photos like the validation photos, and cracks of one photo resemble each other,
+    so a validation set of few photos promises less than its crack count says.
+
+    Raises:
+        MetricsError: no crack patch.
+        ValueError: target outside (0, 1), confidence outside (0, 1).
+    """
+    from scipy import stats
+
+    y = _as_bool(y_true_crack, "y_true_crack")
+    p = _as_unit_float(p_crack, "p_crack")
+    _same_length(y, p, "y_true_crack", "p_crack")
+    target = _unit_number(target_recall, "target_recall", "(0, 1]")
+    conf = _confidence(confidence)
+    if target >= 1.0:
+        raise ValueError("a recall of 1 can never be promised from a finite sample")
+    n = int(y.sum())
+    if n == 0:
+        raise MetricsError(
+            "expected at least one crack patch (y_true_crack true) to set a recall threshold, "
+            f"got 0 of {y.size}"
+        )
+    miss = 1.0 - target
+    ks = np.arange(1, n + 1)
+    # P(Binomial(n, miss) >= k) = P(Beta(k, n + 1 - k) <= miss), for every k at once
+    held = stats.binom.sf(ks - 1, n, miss)
+    ok = np.flatnonzero(held >= conf)
+    kept = ok.size > 0
+    k = int(ks[ok[-1]]) if kept else 1
+    scores = np.sort(p[y])
+    t = float(scores[k - 1])
+    bound = 1.0 - float(stats.beta.ppf(conf, k, n + 1 - k))
+    return RecallPromise(
+        threshold=t,
+        target=target,
+        confidence=conf,
+        cracks=n,
+        below=k,
+        achieved_confidence=float(held[k - 1]),
+        recall_bound=bound,
+        validation_recall=float(np.mean(p[y] >= t)),
+        kept=kept,
+        cracks_needed=cracks_needed_for_promise(target, conf),
+    )
 
 
 def _check_budget(budget: float) -> float:
