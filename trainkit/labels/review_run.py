@@ -24,7 +24,7 @@ class ReviewRequest:
 
     Args:
         reviewer: the name stored with every label.
-        queue: ``unlabelled``, ``audit``, ``conflicts`` or ``picked`` (see
+        queue: ``unlabelled``, ``audit``, ``conflicts``, ``picked`` or ``boundary`` (see
             :mod:`trainkit.labels.review`).
         model: an exported model (``.onnx`` or experiment folder): least certain patches
             first in the unlabelled queue, and its suggestion on Enter.
@@ -66,8 +66,16 @@ def prepare_session(
 
     kind = request.queue
     # the unlabelled and picked queues ask about unlabelled patches, audit and conflicts about
-    # labelled ones: only those rows are read, in light form (an archive holds millions)
-    records = ws.queue_rows(labelled=kind not in ("unlabelled", "picked"))
+    # labelled ones: only those rows are read, in light form (an archive holds millions);
+    # the boundary queue's patches are few and named by the drawings' measures
+    boundary = None
+    if kind == "boundary":
+        from trainkit.labels.drawings import BOUNDARY_QUEUE_DEG
+
+        boundary = [p for p, _ in ws.drawing_boundary_patches(BOUNDARY_QUEUE_DEG)]
+        records = ws.patches(ids=boundary)
+    else:
+        records = ws.queue_rows(labelled=kind not in ("unlabelled", "picked"))
     events = ws.label_events() if kind in ("audit", "conflicts") else []
     picks = [p["patch_id"] for p in ws.picked_patches(unanswered=True)]
     probs = None
@@ -91,6 +99,7 @@ def prepare_session(
         audit_size=request.audit_size,
         seed=request.seed,
         picks=picks,
+        boundary=boundary,
     )
     if not queue:
         return None
