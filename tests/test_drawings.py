@@ -540,6 +540,10 @@ def test_tile_imports_masks_and_says_what_it_left_out(tmp_path, capsys):
     assert "trainkit: 1 photos have no drawing (e.g. p1.png)" in cap.err
     ws = Workspace.open(tmp_path / "ws")
     assert {e["origin"] for e in ws.label_events()} == {"drawing"}
+    # a vertical crack is 22.5 degrees from a class boundary: nothing to confirm
+    assert main(["review", str(tmp_path / "ws"), "--queue", "boundary"]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "nothing to review in the boundary queue" in out and "--import-masks" in out
     # a mask of the wrong size: one line, exit 2, nothing more written
     _save(tmp_path / "bad" / "p1.png", np.zeros((100, 100)))
     before = _counts(ws)
