@@ -273,3 +273,15 @@ def test_the_command_line_prints_the_upgrade_note_once(tmp_path):
     assert len(notes) == 1 and "upgraded to format 3" in notes[0], first.stderr
     second = subprocess.run(run, capture_output=True, text=True, check=True)
     assert "note:" not in second.stderr
+
+
+def test_a_photo_re_pointed_while_a_session_runs_is_found_at_its_new_place(ws, tmp_path):
+    photo = _photo(tmp_path / "p.jpg", 32, 64, seed=9)
+    _add_by_reference(ws, photo, 32)
+    recs = ws.patches()
+    pixels = PatchPixels(ws)
+    first = pixels.get(recs[:1], store=False)  # the photo's place is now known to it
+    moved = tmp_path / "moved.jpg"
+    photo.rename(moved)
+    ws.set_source_path("p.jpg", str(moved))  # what `trainkit tile` on the new folder does
+    assert np.array_equal(pixels.get(recs[:1], store=False), first)

@@ -206,7 +206,14 @@ class PatchPixels:
         if image is not None:
             self._decoded.move_to_end(src.name)
             return image
-        image = read_checked_photo(src.path, src.sha256, src.name, self.ws.root)
+        try:
+            image = read_checked_photo(src.path, src.sha256, src.name, self.ws.root)
+        except PhotoMissingError:  # re-pointed by `trainkit tile` since it was looked up?
+            del self._sources[src.name]
+            fresh = self._photo_sources({src.name})[src.name]
+            if fresh.path == src.path:
+                raise
+            image = read_checked_photo(fresh.path, fresh.sha256, fresh.name, self.ws.root)
         if keep and self._keep:
             self._decoded[src.name] = image
             while len(self._decoded) > self._keep:
