@@ -278,6 +278,22 @@ def test_masks_become_labels_with_origin_checksum_width_and_length(tmp_path):
     assert m["angle_deg"] == pytest.approx(90, abs=1)
 
 
+def test_a_presence_workspace_gets_crack_and_none(tmp_path):
+    """In the presence-only class set the rule's catch-all class is ``crack``; no angle
+    class, so no patch is near a class boundary."""
+    ws = Workspace.create(tmp_path / "ws", class_set=load_class_set("presence"), tile_px=64)
+    ws.add_photo_with_patches(
+        name="a.jpg", source_path="/x/a.jpg", width=128, height=64, gsd_mm=None, group_id="g",
+        sha256="0" * 64, grid_px=64,
+        patches=[dict(row=0, col=c, x0=64 * c, y0=0, x1=64 * c + 64, y1=64, crop="",
+                      patch_mm=None, focus=1.0, clipped=0.0) for c in (0, 1)],
+    )  # fmt: skip
+    _save(tmp_path / "m" / "a.png", _vertical_mask(w=128, h=64, x=30))
+    import_masks(ws, tmp_path / "m", workers=1)
+    assert [r.label for r in ws.patches()] == ["crack", "none"]
+    assert all(m["boundary_deg"] is None for m in ws.drawing_measures().values())
+
+
 def test_a_mask_of_the_wrong_size_imports_nothing(tmp_path):
     ws = _workspace(tmp_path / "ws", {"a.jpg": (192, 128), "b.jpg": (192, 128)})
     _save(tmp_path / "m" / "a.png", _vertical_mask())
