@@ -216,6 +216,18 @@ def test_a_speck_makes_its_patch_ambiguous_not_none(blob):
     assert measure_patch(cracks_from_mask(mask * 0), (0, 0, 64, 64), ORIENT).truth.label == 0
 
 
+def test_specks_beside_a_crack_do_not_tilt_its_angle():
+    """A line at 30 degrees (OpenCV) with 40 lone pixels scattered beside it: the angle stays
+    within half a degree of the line's alone."""
+    mask = _line_mask(30, 1)
+    alone = measure_patch(cracks_from_mask(mask), FULL, ORIENT).truth.angle_deg
+    rng = np.random.default_rng(0)
+    for r, c in rng.integers(5, 60, (40, 2)):  # the upper-left corner, off the line
+        mask[r, c] = 255
+    noisy = measure_patch(cracks_from_mask(mask), FULL, ORIENT).truth
+    assert abs(noisy.angle_deg - alone) < 0.5 and noisy.label == ORIENT.index("diagonal_rising")
+
+
 # ----- a workspace ---------------------------------------------------------------------------
 
 

@@ -27,8 +27,9 @@ From a mask (:func:`cracks_from_mask`):
    over stretches of at most :data:`WIDTH_STRETCH_PX`;
 4. length: the simplified centreline's length clipped to the patch, as the rule counts it.
 
-A speck whose skeleton is one pixel becomes a 1-pixel segment, so a patch holding only
-specks is ambiguous, not ``none``.
+A speck whose skeleton is one pixel becomes 1 px of centreline without a direction, so a
+patch holding only specks is ambiguous, not ``none``, and specks beside a crack do not tilt
+its angle.
 """
 
 from __future__ import annotations
@@ -204,10 +205,12 @@ def _cracks_from_submask(m: np.ndarray) -> DrawnCracks:
             a = float(area[chain[0]]) if not claimed[chain[0]] else 1.0
             claimed[chain[0]] = True
             w = 2.0 * np.sqrt(max(a, 1.0) / np.pi)  # the diameter of a disc of its area
-            p0s.append(xy - [[0.5, 0.0]])
-            p1s.append(xy + [[0.5, 0.0]])
-            ws.append(np.array([w]))
-            halos.append(np.array([w / 2.0 + 1.0]))
+            # a cross of two half-pixel segments: 1 px of crack with no direction (0 and 90
+            # degrees cancel in the doubled-angle mean), so specks do not tilt a patch's angle
+            p0s.append(xy + [[-0.25, 0.0], [0.0, -0.25]])
+            p1s.append(xy + [[0.25, 0.0], [0.0, 0.25]])
+            ws.append(np.array([w, w]))
+            halos.append(np.array([w / 2.0 + 1.0] * 2))
             continue
         a0, a1, w = _chain_segments(xy, chain, area, claimed)
         p0s.append(a0)
