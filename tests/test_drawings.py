@@ -361,6 +361,24 @@ def test_importing_again_adds_nothing_and_a_persons_label_is_kept(tmp_path):
     assert _counts(ws) == (first.added + 1, 6)  # measures replaced, not added again
 
 
+def test_a_newer_drawing_wins_and_withdraws_a_label_it_finds_ambiguous(tmp_path):
+    ws = _workspace(tmp_path / "ws", {"a.jpg": (192, 128)})
+    _save(tmp_path / "m1" / "a.png", _vertical_mask(x=40))
+    import_masks(ws, tmp_path / "m1", workers=1)
+    pid = next(r.id for r in ws.patches() if r.box == (0, 0, 64, 64))
+    assert ws.patches(ids=[pid])[0].label == "vertical"
+    short = np.zeros((128, 192), np.uint8)
+    cv2.line(short, (40, 20), (40, 26), 255, 1)  # 7 px: ambiguous under the rule
+    f2 = _save(tmp_path / "m2" / "a.png", short)
+    res = import_masks(ws, tmp_path / "m2", workers=1)
+    assert res.withdrawn == 1
+    rec = ws.patches(ids=[pid])[0]
+    assert rec.labelled and rec.label is None  # unsure: out of training
+    m = ws.drawing_measures([pid])[pid]
+    assert m["drawing_sha256"] == hashlib.sha256(f2.read_bytes()).hexdigest()
+    assert m["label"] is None and "minimum" in m["reason"]
+
+
 def test_a_workspace_made_before_drawings_opens_and_imports(tmp_path):
     ws = _workspace(tmp_path / "ws", {"a.jpg": (192, 128)})
     with sqlite3.connect(ws.db_path) as con:

@@ -1220,10 +1220,15 @@ class Workspace:
         keys = [k for k in self.DRAWING_MEASURE_KEYS if k != "patch_id"]
         keys += ["event_id", "imported_at"]
         cols = ", ".join(f"m.{k}" for k in keys)
+        latest = self._LATEST_MEASURES
+        if ids is not None:  # only the wanted patches' rows are grouped (by the primary key)
+            latest = latest.replace(
+                "GROUP BY", "WHERE patch_id IN (SELECT id FROM temp._measured) GROUP BY"
+            )
         q = f"""
         SELECT m.patch_id, {cols}, ph.gsd_mm FROM drawing_measures m
         JOIN patches p ON p.id = m.patch_id JOIN photos ph ON ph.id = p.photo_id
-        WHERE m.rowid IN ({self._LATEST_MEASURES})
+        WHERE m.rowid IN ({latest})
         """
         out: dict[int, dict] = {}
         with self.connect() as con:
@@ -1232,7 +1237,6 @@ class Workspace:
                 con.executemany(
                     "INSERT OR IGNORE INTO _measured(id) VALUES (?)", ((int(i),) for i in ids)
                 )
-                q += " AND m.patch_id IN (SELECT id FROM _measured)"
             for r in con.execute(q):
                 rec = dict(zip(keys, r[1:-1], strict=True))
                 g = r[-1]
