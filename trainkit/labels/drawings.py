@@ -66,7 +66,7 @@ DRAWING_REVIEWER = "drawing"
 BOUNDARY_QUEUE_DEG = 10.0
 _DEFAULT_RULES = LabelRules()
 #: Files in a drawing folder that are not drawings and not worth a note.
-_QUIET_SUFFIXES = (".txt", ".md", ".json", ".csv", ".db", ".ini")
+_QUIET_SUFFIXES = (".txt", ".md", ".json", ".db", ".ini")
 
 
 @dataclass
