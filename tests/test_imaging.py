@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import io
 from pathlib import Path
 
 import numpy as np
@@ -152,6 +153,57 @@ def test_fast_jpeg_path_falls_back_for_grey_truncated_and_other_files(tmp_path):
     png = tmp_path / "x.png"
     Image.fromarray(arr).save(png)
     assert np.array_equal(read_rgb_fast(png, data=png.read_bytes()), arr)
+
+
+@pytest.mark.parametrize("orientation", range(1, 9))
+def test_luma_path_matches_pillows_grey_of_its_upright_colour(tmp_path, monkeypatch, orientation):
+    """Tiling's luminance-only decode against Pillow: its decode, ImageOps.exif_transpose,
+    then ``convert("L")`` (ITU-R 601-2 luma, Pillow's documented rule) as the reference."""
+    from PIL import ImageOps
+
+    import trainkit.core.decode as imaging
+    from trainkit.core.decode import read_luma_fast
+
+    rng = np.random.default_rng(10 + orientation)
+    base = (rng.random((48, 80, 3)) * 60 + np.linspace(0, 180, 80)[None, :, None]).astype(np.uint8)
+    base[..., 0] //= 2  # colour, not grey: the chroma is really left out
+    data = _jpeg_bytes(base, orientation)
+    path = tmp_path / "f.jpg"
+    path.write_bytes(data)
+    with Image.open(io.BytesIO(data)) as im:
+        want = np.asarray(ImageOps.exif_transpose(im).convert("L"))
+
+    def no_pillow(*_a, **_k):
+        raise AssertionError("fell back to Pillow: the OpenCV path was not taken")
+
+    monkeypatch.setattr(imaging, "read_rgb", no_pillow)
+    got = read_luma_fast(path, data=data)
+    assert got.shape == want.shape and got.dtype == np.uint8 and got.flags.c_contiguous
+    # Y straight from the decoder against Y of the rounded RGB: nearly always equal; a
+    # few levels apart only where a colour was clipped to 0-255 (measured: under 0.1 %
+    # of pixels more than 1 apart, at most 6).
+    diff = np.abs(got.astype(int) - want.astype(int))
+    assert diff.mean() < 0.05 and (diff > 1).mean() < 0.005 and diff.max() <= 8
+
+
+def test_luma_path_reads_grey_jpegs_and_hands_other_files_to_pillow(tmp_path):
+    from trainkit.core.decode import read_luma_fast
+
+    arr = np.random.default_rng(0).integers(0, 255, (40, 40, 3), dtype=np.uint8)
+    grey = _jpeg_bytes(arr, mode="L")
+    p = tmp_path / "g.jpg"
+    p.write_bytes(grey)
+    with Image.open(p) as im:
+        want = np.asarray(im)  # an 8-bit grey JPEG: Pillow's own levels
+    got = read_luma_fast(p, data=grey)
+    assert got.shape == (40, 40) and np.abs(got.astype(int) - want.astype(int)).max() <= 1
+    png = tmp_path / "x.png"
+    Image.fromarray(arr).save(png)
+    assert np.array_equal(read_luma_fast(png, data=png.read_bytes()), arr)  # RGB, as it is
+    cut = _jpeg_bytes(arr)[:-400]
+    p.write_bytes(cut)
+    with pytest.raises(PhotoError, match="cannot be decoded"):
+        read_luma_fast(p, data=cut)
 
 
 def _with_header_size(data: bytes, width: int, height: int) -> bytes:

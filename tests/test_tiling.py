@@ -120,13 +120,18 @@ def _test_photos():
 )
 def test_grid_quality_equals_the_per_patch_measures(tile_px, src_px, overlap):
     """The batch measures equal cutting each patch and measuring it alone (the reference,
-    itself checked against OpenCV and SciPy above), on the same pixels."""
+    itself checked against OpenCV and SciPy above), on the same pixels: RGB, and the grey
+    levels tiling decodes a JPEG to."""
+    import cv2
+
     from trainkit.core.grid import iter_patch_boxes, overlap_to_stride
     from trainkit.intake.quality import grid_quality
     from trainkit.store.pixels import cut_patch
 
     flags_seen = set()
-    for name, img in _test_photos().items():
+    photos = _test_photos()
+    photos.update({f"{k} grey": cv2.cvtColor(v, cv2.COLOR_RGB2GRAY) for k, v in photos.items()})
+    for name, img in photos.items():
         stride = overlap_to_stride(src_px, overlap)
         boxes = [b.box for b in iter_patch_boxes(*img.shape[:2], src_px, stride)]
         got = grid_quality(img, boxes, tile_px=tile_px, src_px=src_px)
@@ -174,3 +179,27 @@ def test_grid_focus_matches_scipy_laplace_with_mirrored_borders():
     for (x0, y0, x1, y1), g in zip(boxes, got, strict=True):
         lap = ndimage.laplace(grey[y0:y1, x0:x1], mode="mirror")
         assert g["focus"] == pytest.approx(lap.var(), rel=1e-12)
+
+
+def test_tiling_measures_from_the_luminance_decode_match_the_colour_decode():
+    """Tiling decodes a JPEG to its luminance only; on the demo's photos the measures equal
+    those of the colour decode's grey (``cv2.cvtColor``) to 1 % of focus, flags equal."""
+    from pathlib import Path
+
+    from trainkit.core.decode import read_luma_fast, read_rgb_fast
+    from trainkit.intake.quality import grid_quality
+    from trainkit.intake.tiling import photo_grid
+
+    photos = sorted((Path(__file__).parents[1] / "tiny_dataset" / "photos").glob("*.jpg"))[:6]
+    assert photos
+    for path in photos:
+        data = path.read_bytes()
+        luma, rgb = read_luma_fast(path, data=data), read_rgb_fast(path, data=data)
+        assert luma.ndim == 2 and luma.shape == rgb.shape[:2]
+        src_px, grid = photo_grid(*luma.shape, tile_px=64, overlap=0.0, tile_mm=None, gsd_mm=None)
+        boxes = [pb.box for pb in grid]
+        got = grid_quality(luma, boxes, tile_px=64, src_px=src_px)
+        want = grid_quality(rgb, boxes, tile_px=64, src_px=src_px)
+        for g, w in zip(got, want, strict=True):
+            assert g["focus"] == pytest.approx(w["focus"], rel=0.01)
+            assert g["flags"] == w["flags"]

@@ -162,6 +162,9 @@ def test_queue_rows_are_the_records_a_queue_needs(tmp_path):
         rows = ws.queue_rows(labelled=labelled)
         want = [(r.id, r.labelled, r.review_skip, r.job) for r in every if r.labelled == labelled]
         assert [tuple(r) for r in rows] == want
+        some = {ids[3], ids[250], *ids[100:400:7], 10**9}  # an unknown id is left out
+        rows = ws.queue_rows(labelled=labelled, ids=some)
+        assert [tuple(r) for r in rows] == [w for w in want if w[0] in some]
     queue = build_queue(ws.queue_rows(labelled=False), reviewer="bo")
     assert queue == build_queue(every, reviewer="bo")
     assert len(queue) == 400 - 40 - 2  # left out of review (column 4), labelled

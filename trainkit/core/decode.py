@@ -246,6 +246,32 @@ def _as_rgb(a: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(a)
 
 
+def _plain_jpeg(data: bytes, max_pixels: int, modes: tuple[str, ...]) -> tuple | None:
+    """(cv2, (width, height), EXIF orientation) when OpenCV may decode ``data``, else None.
+
+    A complete JPEG (start and end-of-image markers) of one of ``modes`` and at most
+    ``max_pixels``, with OpenCV installed; anything odd is left to Pillow's path, which
+    decides and words the error.
+    """
+    if not (data[:2] == b"\xff\xd8" and data.rstrip(b"\x00")[-2:] == b"\xff\xd9"):
+        return None
+    try:  # the header only
+        with open_image(io.BytesIO(data)) as im:
+            if im.format != "JPEG" or im.mode not in modes:
+                return None
+            size = im.size
+            orientation = im.getexif().get(0x0112, 1)
+    except Exception:
+        return None
+    try:  # OpenCV is optional here: the Screener's own install has only Pillow
+        import cv2
+    except ImportError:
+        return None
+    if size[0] * size[1] > max_pixels:
+        return None
+    return cv2, size, orientation
+
+
 def read_rgb_fast(
     path: str | Path,
     *,
@@ -261,27 +287,42 @@ def read_rgb_fast(
     end-of-image marker, a decoder failure) goes through :func:`read_rgb`, so errors
     and the colour rule stay the same.
     """
-    if data[:2] == b"\xff\xd8" and data.rstrip(b"\x00")[-2:] == b"\xff\xd9":
-        try:  # the header only; the size is checked below against max_pixels
-            with open_image(io.BytesIO(data)) as im:
-                plain = im.format == "JPEG" and im.mode == "RGB"
-                size = im.size
-                orientation = im.getexif().get(0x0112, 1) if plain else 1
-        except Exception:  # anything odd: Pillow's path decides and words the error
-            plain = False
-        try:  # OpenCV is optional here: the Screener's own install has only Pillow
-            import cv2
-        except ImportError:
-            plain = False
-        if plain and size[0] * size[1] <= max_pixels:
-            flags = cv2.IMREAD_COLOR | cv2.IMREAD_IGNORE_ORIENTATION
-            bgr = cv2.imdecode(np.frombuffer(data, np.uint8), flags)
-            if bgr is not None and bgr.shape[:2] == (size[1], size[0]):
-                rgb = cv2.cvtColor(
-                    bgr, cv2.COLOR_BGR2RGB, dst=bgr
-                )  # in place: one frame-sized buffer
-                step = _ORIENT.get(orientation)
-                return rgb if step is None else np.ascontiguousarray(step(rgb))
+    plain = _plain_jpeg(data, max_pixels, ("RGB",))
+    if plain is not None:
+        cv2, size, orientation = plain
+        flags = cv2.IMREAD_COLOR | cv2.IMREAD_IGNORE_ORIENTATION
+        bgr = cv2.imdecode(np.frombuffer(data, np.uint8), flags)
+        if bgr is not None and bgr.shape[:2] == (size[1], size[0]):
+            rgb = cv2.cvtColor(bgr, cv2.COLOR_BGR2RGB, dst=bgr)  # in place: one buffer
+            step = _ORIENT.get(orientation)
+            return rgb if step is None else np.ascontiguousarray(step(rgb))
+    return read_rgb(path, data=data, max_pixels=max_pixels, notes=notes)
+
+
+def read_luma_fast(
+    path: str | Path,
+    *,
+    data: bytes,
+    max_pixels: int = DEFAULT_MAX_PIXELS,
+    notes: list[str] | None = None,
+) -> np.ndarray:
+    """The photo's grey levels, upright: (H, W) uint8 for a complete 8-bit JPEG, else RGB.
+
+    A colour or grey JPEG is decoded by OpenCV to its luminance alone (the JPEG's Y
+    channel, ITU-R BT.601 weights, the same as the RGB-to-grey conversion of
+    ``cv2.cvtColor`` and of Pillow's ``convert("L")`` up to a level of rounding), which
+    skips the chroma and the colour conversion: about half the time of a colour decode of a
+    12-megapixel frame. Anything else goes through :func:`read_rgb` and comes back as
+    (H, W, 3) RGB, so callers that only need grey levels must accept both.
+    """
+    plain = _plain_jpeg(data, max_pixels, ("RGB", "L"))
+    if plain is not None:
+        cv2, size, orientation = plain
+        flags = cv2.IMREAD_GRAYSCALE | cv2.IMREAD_IGNORE_ORIENTATION
+        grey = cv2.imdecode(np.frombuffer(data, np.uint8), flags)
+        if grey is not None and grey.shape[:2] == (size[1], size[0]):
+            step = _ORIENT.get(orientation)
+            return grey if step is None else np.ascontiguousarray(step(grey))
     return read_rgb(path, data=data, max_pixels=max_pixels, notes=notes)
 
 

@@ -36,10 +36,14 @@ def quality_flags(focus: float, clipped: float, grey_std: float) -> str:
 
 
 def quality_measures(patch_rgb: np.ndarray) -> dict:
-    """Focus (variance of the Laplacian), clipped fraction and quality flags of a patch."""
+    """Focus (variance of the Laplacian), clipped fraction and quality flags of a patch.
+
+    The patch is (h, w, 3) uint8 RGB, converted to grey by ``cv2.cvtColor``, or already
+    grey (h, w) uint8.
+    """
     import cv2
 
-    grey = cv2.cvtColor(patch_rgb, cv2.COLOR_RGB2GRAY)
+    grey = patch_rgb if patch_rgb.ndim == 2 else cv2.cvtColor(patch_rgb, cv2.COLOR_RGB2GRAY)
     focus = float(cv2.Laplacian(grey, cv2.CV_64F).var())
     clipped = float(np.mean((grey <= 2) | (grey >= 253)))
     return {
@@ -65,7 +69,9 @@ def grid_quality(
     :func:`trainkit.store.pixels.cut_patch` and measured side by side the same way.
 
     Args:
-        image: the photo, (H, W, 3) uint8 RGB.
+        image: the photo, (H, W, 3) uint8 RGB, or its grey levels (H, W) uint8 (then
+            measured as they are; for RGB the grey is ``cv2.cvtColor``'s, as in
+            :func:`quality_measures`).
         boxes: the grid's boxes (x0, y0, x1, y1) in photo pixels.
         tile_px: the side of the patches measured.
         src_px: the side of the grid's boxes in photo pixels (the cutting rule's ``src_px``).
@@ -83,8 +89,14 @@ def grid_quality(
         for x0, y0, x1, y1 in boxes
     )
     sums: list[tuple[int, int, int, int, int]] = []
+
+    def to_grey(rgb_or_grey: np.ndarray) -> np.ndarray:
+        if rgb_or_grey.ndim == 2:
+            return rgb_or_grey
+        return cv2.cvtColor(rgb_or_grey, cv2.COLOR_RGB2GRAY)
+
     if in_place:
-        grey = cv2.cvtColor(image, cv2.COLOR_RGB2GRAY)
+        grey = to_grey(image)
         for y0, xa, k in _adjacent_runs(boxes, tile_px):
             sums.extend(_row_sums(grey[y0 : y0 + tile_px, xa : xa + k * tile_px], tile_px))
     else:
@@ -92,7 +104,7 @@ def grid_quality(
             side_by_side = np.concatenate(
                 [cut_patch(image, b, tile_px, src_px) for b in boxes[i : i + _CHUNK]], axis=1
             )
-            sums.extend(_row_sums(cv2.cvtColor(side_by_side, cv2.COLOR_RGB2GRAY), tile_px))
+            sums.extend(_row_sums(to_grey(side_by_side), tile_px))
     n = tile_px * tile_px
     out = []
     for lap_sum, lap_sq, grey_sum, grey_sq, n_clipped in sums:

@@ -117,15 +117,16 @@ class IntakeJob:
 def _process(job: IntakeJob, known_hashes: frozenset | set) -> dict:
     """Worker: hash, decode, scale, lay the grid, measure quality. Returns rows, no pixels.
 
-    The photo is decoded with OpenCV where it can be (:func:`trainkit.core.decode.read_rgb_fast`),
-    so the quality measures see OpenCV's pixels, which may differ from Pillow's by a level
-    or two (the crops shown and learned from are cut from Pillow's); the flags are
-    thresholds on those measures.
+    Tiling needs only grey levels: a JPEG is decoded by OpenCV to its luminance alone
+    (:func:`trainkit.core.decode.read_luma_fast`, about half a colour decode), so the
+    quality measures see those levels, which may differ from the grey of Pillow's colour
+    pixels by a level or two (the crops shown and learned from are cut from Pillow's);
+    the flags are thresholds on those measures. Other formats are decoded to RGB.
     """
     import hashlib
     import time
 
-    from trainkit.core.decode import PhotoError, read_rgb_fast
+    from trainkit.core.decode import PhotoError, read_luma_fast
     from trainkit.intake.scale import read_exif
 
     path = Path(job.path)
@@ -153,7 +154,7 @@ def _process(job: IntakeJob, known_hashes: frozenset | set) -> dict:
     t0 = time.perf_counter()
     notes: list[str] = []
     try:
-        image = read_rgb_fast(path, max_pixels=job.max_pixels, data=data, notes=notes)
+        image = read_luma_fast(path, max_pixels=job.max_pixels, data=data, notes=notes)
     except PhotoError as exc:
         return {"name": job.name, "status": "error", "error": f"{exc}; skipped"}
     t_decode = time.perf_counter() - t0

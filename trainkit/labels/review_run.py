@@ -68,6 +68,7 @@ def prepare_session(
     # the unlabelled and picked queues ask about unlabelled patches, audit and conflicts about
     # labelled ones: only those rows are read, in light form (an archive holds millions);
     # the boundary queue's patches are few and named by the drawings' measures
+    picks = [p["patch_id"] for p in ws.picked_patches(unanswered=True)]
     boundary = None
     if kind == "boundary":
         from trainkit.labels.drawings import BOUNDARY_QUEUE_DEG
@@ -75,9 +76,10 @@ def prepare_session(
         boundary = [p for p, _ in ws.drawing_boundary_patches(BOUNDARY_QUEUE_DEG)]
         records = ws.patches(ids=boundary)
     else:
-        records = ws.queue_rows(labelled=kind not in ("unlabelled", "picked"))
+        records = ws.queue_rows(
+            labelled=kind not in ("unlabelled", "picked"), ids=picks if kind == "picked" else None
+        )
     events = ws.label_events() if kind in ("audit", "conflicts") else []
-    picks = [p["patch_id"] for p in ws.picked_patches(unanswered=True)]
     probs = None
     if request.model is not None:
         wanted = set(picks) if kind == "picked" else None

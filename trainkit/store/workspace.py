@@ -385,11 +385,7 @@ class Workspace:
         """
         with self.connect() as con:
             if ids is not None:
-                con.execute("CREATE TEMP TABLE wanted_patches (id INTEGER PRIMARY KEY)")
-                con.executemany(
-                    "INSERT OR IGNORE INTO temp.wanted_patches(id) VALUES (?)",
-                    ((int(i),) for i in ids),
-                )
+                self._want_ids(con, ids)
             rows = con.execute(q).fetchall()
         return [
             PatchRecord(
@@ -415,17 +411,33 @@ class Workspace:
             for r in rows
         ]
 
-    def queue_rows(self, *, labelled: bool) -> list[QueueRow]:
+    def queue_rows(self, *, labelled: bool, ids: Collection[int] | None = None) -> list[QueueRow]:
         """What a review queue is built from (:func:`trainkit.labels.review.build_queue`), for
-        the labelled or the never-labelled patches, in photo then grid order."""
+        the labelled or the never-labelled patches, in photo then grid order; with ``ids``,
+        only those patches (a queue of picked patches reads a few thousand rows, not the
+        archive's millions)."""
         q = f"""
-        SELECT p.id, p.review_skip, j.job FROM patches p JOIN photos ph ON ph.id = p.photo_id
+        SELECT p.id, p.review_skip, j.job
+        FROM {"temp.wanted_patches w CROSS JOIN" if ids is not None else ""} patches p
+        {"ON p.id = w.id" if ids is not None else ""}
+        JOIN photos ph ON ph.id = p.photo_id
         LEFT JOIN job_cells j ON j.patch_id = p.id
         WHERE p.id {"" if labelled else "NOT "}IN (SELECT patch_id FROM label_events)
         ORDER BY ph.id, p.row, p.col, p.id
         """
         with self.connect() as con:
+            if ids is not None:
+                self._want_ids(con, ids)
             return [QueueRow(int(i), labelled, bool(s), j) for i, s, j in con.execute(q)]
+
+    @staticmethod
+    def _want_ids(con: sqlite3.Connection, ids: Collection[int]) -> None:
+        """Fill the connection's temporary table of wanted patch ids."""
+        con.execute("CREATE TEMP TABLE IF NOT EXISTS wanted_patches (id INTEGER PRIMARY KEY)")
+        con.execute("DELETE FROM temp.wanted_patches")
+        con.executemany(
+            "INSERT OR IGNORE INTO temp.wanted_patches(id) VALUES (?)", ((int(i),) for i in ids)
+        )
 
     def patch_ids(self) -> set[int]:
         """Every patch id."""
