@@ -26,6 +26,7 @@ def _default_reviewer() -> str:
 
 @click.command(
     epilog="Examples: trainkit review ws --reviewer ana | trainkit review ws --queue picked | "
+    "trainkit review ws --queue boundary | "
     "trainkit review ws --model experiments/first | trainkit review ws --sheet --viewer "
     "xdg-open | trainkit review ws --agreement"
 )
@@ -38,11 +39,13 @@ def _default_reviewer() -> str:
 @click.option(
     "--queue",
     "queue_kind",
-    type=click.Choice(["unlabelled", "audit", "conflicts", "picked"]),
+    type=click.Choice(["unlabelled", "audit", "conflicts", "picked", "boundary"]),
     default="unlabelled",
     show_default=True,
     help="unlabelled patches (those chosen by `trainkit pick` first); a random audit sample of "
-    "labelled ones; reviewer disagreements to settle; or only the picked patches, in pick order.",
+    "labelled ones; reviewer disagreements to settle; only the picked patches, in pick order; "
+    "or patches an imported crack drawing puts within 10 degrees of a class boundary (tile "
+    "--import-masks / --import-centrelines), nearest first, to confirm.",
 )
 @click.option(
     "--model",
@@ -148,11 +151,12 @@ def review(
             with progress_bar(ctx, "model predictions") as bar:
                 session = prepare_session(ws, request, progress=lambda d, n: bar.update(d, n))
         if session is None:
-            hint = (
-                f" (no unanswered picks; choose some with: trainkit pick {ws_dir} --patches N)"
-                if queue_kind == "picked"
-                else ""
-            )
+            hint = {
+                "picked": f" (no unanswered picks; choose some with: trainkit pick {ws_dir} "
+                "--patches N)",
+                "boundary": " (no drawn patch near a class boundary waits for a person; crack "
+                "drawings come in with: trainkit tile PHOTOS -w WS --import-masks DIR)",
+            }.get(queue_kind, "")
             ctx.console.print(
                 f"nothing to review in the {queue_kind} queue of {ws.root}{hint}", soft_wrap=True
             )

@@ -43,7 +43,7 @@ class TileSettings:
 
 @click.command(
     epilog="Example: trainkit tile photos/ --workspace ws --sidecar photos/scale.csv "
-    "--group-by photo"
+    "--group-by photo | trainkit tile photos/ -w ws --import-masks masks/"
 )
 @click.argument("photos", nargs=-1, required=True, type=click.Path(exists=True, path_type=Path))
 @click.option(
@@ -105,6 +105,19 @@ class TileSettings:
     help="CSV photo,x0,y0,x1,y1,label of existing labels to load (a class name or 'unsure'; "
     "rows with an empty label are skipped and counted; loading the same file again adds nothing).",
 )
+@click.option(
+    "--import-masks",
+    type=click.Path(exists=True, file_okay=False, path_type=Path),
+    help="Folder of crack masks, one per photo named as the photo (any lossless suffix: PNG, "
+    "TIFF...), single channel, non-zero = crack, at the photo's size: each patch labelled by "
+    "the patch label rule (origin drawing), with crack length and width.",
+)
+@click.option(
+    "--import-centrelines",
+    type=click.Path(exists=True, path_type=Path),
+    help="Traced crack centrelines in the photos' pixels: a CSV photo,crack_id,x,y[,width_px], "
+    "an SVG file named as its photo, or a folder of them; labelled like --import-masks.",
+)
 @workers_option("Parallel processes (default: all cores).")
 @engine_option("Decode here, or on a Dask distributed cluster.")
 @scheduler_option()
@@ -124,6 +137,8 @@ def tile(
     sidecar: Path | None,
     classes: str,
     import_labels: Path | None,
+    import_masks: Path | None,
+    import_centrelines: Path | None,
     scale: ScaleOptions,
     settings: TileSettings,
 ) -> None:
@@ -134,7 +149,9 @@ def tile(
     they are. Scale per photo, first found wins: sidecar gsd_mm; sidecar camera geometry;
     --gsd-mm; --distance-m with --focal-mm and --sensor-width-mm; EXIF focal length
     with a distance. Re-running on the same photos adds only what is new; a stopped
-    run continues from its last stored photo.
+    run continues from its last stored photo. --import-masks and --import-centrelines turn
+    a firm's crack drawings into patch labels (the rule the kit's generator labels its
+    own photos by), storing each patch's crack length and width; all or nothing.
     """
     from trainkit.core.decode import find_images, skipped_files_line
     from trainkit.core.taxonomy import load_class_set
@@ -181,12 +198,27 @@ def tile(
         ctx.console.print(_summary(res, settings.skip_flagged, ws.root))
         if import_labels:
             ctx.console.print(import_csv(ws, import_labels).describe(import_labels))
+        for source, kind in ((import_masks, "masks"), (import_centrelines, "centrelines")):
+            if source is not None:
+                _import_drawings(ctx, ws, source, kind, settings.workers)
     if res["photos_skipped"] and not (
         res["photos_added"] or res["photos_already_present"] or res["photos_moved"]
     ):
         raise SystemExit(EXIT_USAGE)  # nothing could be tiled
     if res["photos_skipped"]:
         raise SystemExit(EXIT_SKIPPED)
+
+
+def _import_drawings(ctx: Ctx, ws, source: Path, kind: str, workers: int | None) -> None:
+    """Import crack drawings into the tiled workspace and say what was and was not."""
+    from trainkit.labels.drawings import import_centrelines, import_masks
+
+    run = import_masks if kind == "masks" else import_centrelines
+    with progress_bar(ctx, f"importing {kind}") as bar:
+        res = run(ws, source, workers=workers, progress=lambda d, n: bar.update(d, n))
+    for note in res.notes:
+        warn(note)
+    ctx.console.print(res.describe(source), soft_wrap=True)
 
 
 def _summary(res: dict, skip_flagged: bool, root: Path) -> str:

@@ -1,7 +1,11 @@
 """Import and export of a workspace's labels as CSV and as a folder-per-class copy of the crops.
 
 CSV export columns: ``patch_id, photo, x0, y0, x1, y1, label, reviewer, origin,
-labelled_at`` (the current label; ``unsure`` for an unsure answer). CSV import — the
+labelled_at`` (the current label; ``unsure`` for an unsure answer), then what an imported
+crack drawing says of the patch, empty where no drawing was imported for it:
+``crack_angle_deg, crack_length_px, crack_width_px, crack_width_max_px`` (photo pixels),
+``crack_length_mm, crack_width_mm, crack_width_max_mm`` (where the photo's scale is known)
+and ``drawing_sha256`` (:mod:`trainkit.labels.drawings`). CSV import — the
 kit's one label importer, used by ``tile --import-labels``, ``review --import-csv``, the
 demo and the job samples — takes either ``patch_id, label`` or ``photo, x0, y0, x1, y1,
 label`` (so an export reads back, and so does ``trainkit synth``'s labels.csv), in UTF-8
@@ -37,6 +41,7 @@ from trainkit.core.textsafe import csv_cell, csv_uncell
 from trainkit.store.workspace import Workspace
 
 __all__ = [
+    "DRAWING_COLUMNS",
     "LabelsIOError",
     "ImportResult",
     "UNSURE_WORD",
@@ -47,6 +52,18 @@ __all__ = [
     "folder_file_name",
 ]
 
+#: Export columns from a patch's latest drawing measure: column -> measure key.
+_DRAWING_EXPORT = {
+    "crack_angle_deg": "angle_deg",
+    "crack_length_px": "length_px",
+    "crack_width_px": "width_px",
+    "crack_width_max_px": "width_max_px",
+    "crack_length_mm": "length_mm",
+    "crack_width_mm": "width_mm",
+    "crack_width_max_mm": "width_max_mm",
+    "drawing_sha256": "drawing_sha256",
+}
+DRAWING_COLUMNS = tuple(_DRAWING_EXPORT)
 EXPORT_COLUMNS = (
     "patch_id",
     "photo",
@@ -58,6 +75,7 @@ EXPORT_COLUMNS = (
     "reviewer",
     "origin",
     "labelled_at",
+    *DRAWING_COLUMNS,
 )
 _IMAGE_SUFFIXES = {".png", ".tif", ".tiff", ".jpg", ".jpeg", ".bmp", ".webp"}
 _NAME_RE = re.compile(r"^(?P<photo>.+)@(?P<x0>\d+)_(?P<y0>\d+)_(?P<x1>\d+)_(?P<y1>\d+)$")
@@ -131,13 +149,19 @@ def export_csv(ws: Workspace, path: str | Path) -> int:
     path.parent.mkdir(parents=True, exist_ok=True)
     with atomic_path(path) as tmp:
         rows = _current(ws)
+        drawn = ws.drawing_measures([r.id for r, _ in rows])
         with tmp.open("w", newline="", encoding="utf-8") as fh:
             w = csv.writer(fh)
             w.writerow(EXPORT_COLUMNS)
             for r, e in rows:
                 text = (r.photo, e["label"] or UNSURE_WORD, e["reviewer"], e["origin"])
                 photo, label, reviewer, origin = (csv_cell(t) for t in text)  # OWASP rule
-                w.writerow([r.id, photo, *r.box, label, reviewer, origin, f"{e['created_at']:.3f}"])
+                m = drawn.get(r.id, {})
+                measures = ["" if m.get(k) is None else m[k] for k in _DRAWING_EXPORT.values()]
+                w.writerow(
+                    [r.id, photo, *r.box, label, reviewer, origin, f"{e['created_at']:.3f}"]
+                    + measures
+                )
     return len(rows)
 
 

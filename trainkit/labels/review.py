@@ -15,6 +15,10 @@ Queues (which patches a session asks about, in which order):
   labelled, shown without their current label, to measure agreement.
 - ``conflicts``: patches whose reviewers' latest labels disagree and that nobody has
   settled since; the answer is recorded as a settlement of those reviewers' labels.
+- ``boundary``: patches an imported crack drawing (:mod:`trainkit.labels.drawings`) found
+  oriented within ``BOUNDARY_QUEUE_DEG`` of a class boundary and no person has labelled
+  since, nearest the boundary first: the drawing's label (or its ambiguity) for a person
+  to confirm or correct.
 
 In every queue, patches with ``review_skip`` set (``tile --skip-flagged``) are left out,
 a job's sampled cells come first, and patches this reviewer skipped come last. Resuming is re-building the queue: what
@@ -51,9 +55,10 @@ __all__ = [
     "agreement",
     "load_patch",
     "model_probabilities",
+    "describe_drawing",
 ]
 
-QUEUES = ("unlabelled", "audit", "conflicts", "picked")
+QUEUES = ("unlabelled", "audit", "conflicts", "picked", "boundary")
 UNSURE_TOKENS = ("x", "unsure")
 
 
@@ -92,6 +97,7 @@ def build_queue(
     audit_size: int = 50,
     seed: int = 0,
     picks: Sequence[int] | None = None,
+    boundary: Sequence[int] | None = None,
 ) -> list[int]:
     """Patch ids to review, in order (see the module docstring for each queue's rule).
 
@@ -107,6 +113,8 @@ def build_queue(
         picks: picked patch ids in pick then rank order
             (``Workspace.picked_patches()``); they lead the unlabelled queue and make up
             the picked queue.
+        boundary: patch ids of the boundary queue, nearest a class boundary first
+            (``Workspace.drawing_boundary_patches()``).
     """
     if queue not in QUEUES:
         raise ReviewError(f"unknown queue {queue!r}; choose one of: {', '.join(QUEUES)}")
@@ -127,6 +135,9 @@ def build_queue(
         ]
     elif queue == "picked":
         ids = sorted((r.id for r in pool if not r.labelled and r.id in rank), key=rank.__getitem__)
+    elif queue == "boundary":
+        keep = {r.id for r in pool}
+        ids = [pid for pid in dict.fromkeys(boundary or ()) if pid in keep]
     elif queue == "audit":
         mine = {e["patch_id"] for e in events or [] if e["reviewer"] == reviewer}
         cand = [r.id for r in pool if r.labelled and r.id not in mine]
@@ -336,6 +347,40 @@ def parse_sheet_answer(text: str, n: int, class_set: ClassSet) -> dict[int, str 
     return out
 
 
+# ----- drawings ----------------------------------------------------------------------------------
+
+
+def describe_drawing(measure: dict, *, short: bool = False) -> str:
+    """What a crack drawing says of a patch, in words: its label (or why it is ambiguous),
+    the crack's angle, length and widths (in mm too where the photo's scale is known).
+
+    ``short`` gives a few words for a contact sheet's note."""
+
+    def px_mm(px: float | None, mm: float | None) -> str:
+        return f"{px:.1f} px" + (f" ({mm:.2f} mm)" if mm is not None else "")
+
+    label = measure["label"] or "ambiguous"
+    if short:
+        parts = [f"drawn {label}"]
+        if measure["angle_deg"] is not None:
+            parts.append(f"{measure['angle_deg']:.0f} deg")
+        if measure["width_px"] is not None:
+            parts.append(f"w {measure['width_px']:.1f}px")
+        return " ".join(parts)
+    head = f"drawing: {label}" + (f" ({measure['reason']})" if measure["label"] is None else "")
+    if not measure["length_px"]:
+        return head
+    text = f"{head}; crack {px_mm(measure['length_px'], measure['length_mm'])} long"
+    if measure["width_px"] is not None:
+        text += f", {px_mm(measure['width_px'], measure['width_mm'])} wide"
+        text += f" (widest {px_mm(measure['width_max_px'], measure['width_max_mm'])})"
+    if measure["angle_deg"] is not None:
+        text += f"; angle {measure['angle_deg']:.1f} deg"
+    if measure["boundary_deg"] is not None:
+        text += f", {measure['boundary_deg']:.1f} deg from a class boundary"
+    return text
+
+
 # ----- patches and model -------------------------------------------------------------------------
 
 
@@ -455,6 +500,7 @@ class Session:
         self.started = time.monotonic()
         self._history: list[_Action] = []
         self._records: dict[int, PatchRecord] = {}  # read a window at a time (see record)
+        self._drawings: dict[int, dict] = {}  # drawing measures of the records read
         self._skipped = ws.review_skips(self.reviewer)
 
     # ----- state --------------------------------------------------------------
@@ -469,8 +515,15 @@ class Session:
         if rec is None:
             window = {patch_id, *self.queue[self.pos : self.pos + self._WINDOW]}
             self._records.update((r.id, r) for r in self.ws.patches(ids=window))
+            self._drawings.update(self.ws.drawing_measures(window))
             rec = self._records[patch_id]
         return rec
+
+    def drawing(self, patch_id: int) -> dict | None:
+        """What an imported crack drawing says of the patch (its latest measure, see
+        :meth:`~trainkit.store.workspace.Workspace.drawing_measures`), or None."""
+        self.record(patch_id)
+        return self._drawings.get(patch_id)
 
     #: Records read at once as the queue moves on (a queue may be millions of patches long).
     _WINDOW = 256

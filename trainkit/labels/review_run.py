@@ -24,7 +24,7 @@ class ReviewRequest:
 
     Args:
         reviewer: the name stored with every label.
-        queue: ``unlabelled``, ``audit``, ``conflicts`` or ``picked`` (see
+        queue: ``unlabelled``, ``audit``, ``conflicts``, ``picked`` or ``boundary`` (see
             :mod:`trainkit.labels.review`).
         model: an exported model (``.onnx`` or experiment folder): least certain patches
             first in the unlabelled queue, and its suggestion on Enter.
@@ -66,11 +66,19 @@ def prepare_session(
 
     kind = request.queue
     # the unlabelled and picked queues ask about unlabelled patches, audit and conflicts about
-    # labelled ones: only those rows are read, in light form (an archive holds millions)
+    # labelled ones: only those rows are read, in light form (an archive holds millions);
+    # the boundary queue's patches are few and named by the drawings' measures
     picks = [p["patch_id"] for p in ws.picked_patches(unanswered=True)]
-    records = ws.queue_rows(
-        labelled=kind not in ("unlabelled", "picked"), ids=picks if kind == "picked" else None
-    )
+    boundary = None
+    if kind == "boundary":
+        from trainkit.labels.drawings import BOUNDARY_QUEUE_DEG
+
+        boundary = [p for p, _ in ws.drawing_boundary_patches(BOUNDARY_QUEUE_DEG)]
+        records = ws.patches(ids=boundary)
+    else:
+        records = ws.queue_rows(
+            labelled=kind not in ("unlabelled", "picked"), ids=picks if kind == "picked" else None
+        )
     events = ws.label_events() if kind in ("audit", "conflicts") else []
     probs = None
     if request.model is not None:
@@ -93,6 +101,7 @@ def prepare_session(
         audit_size=request.audit_size,
         seed=request.seed,
         picks=picks,
+        boundary=boundary,
     )
     if not queue:
         return None

@@ -29,6 +29,7 @@ from trainkit.labels.review import (
     ReviewError,
     Session,
     SheetAnswerError,
+    describe_drawing,
     load_patch,
     parse_sheet_answer,
 )
@@ -48,7 +49,7 @@ __all__ = [
 #: Smallest terminal for key mode (columns, rows): a 48 x 48-pixel preview plus text.
 MIN_COLS, MIN_ROWS = 60, 34
 #: Lines of text around the preview in key mode.
-_TEXT_LINES = 10
+_TEXT_LINES = 11
 #: Ctrl-C as key mode reads it (the terminal's signal keys are off): it ends the run as
 #: interrupted, which the command line reports with a non-zero exit code.
 CTRL_C = "\x03"
@@ -215,6 +216,9 @@ def _patch_lines(session: Session, rec, img: np.ndarray) -> list[str]:
         + (f"  flags: {rec.flags}" if rec.flags else ""),
         "orientation: " + dominant_orientation(img).describe(session.class_set),
     ]
+    drawn = session.drawing(rec.id)
+    if drawn is not None:
+        lines.append(describe_drawing(drawn))
     sug = session.suggestion(rec.id)
     if sug:
         lines.append(f"model suggests: {sug[0]} ({sug[1]:.0%})  [Enter accepts]")
@@ -367,8 +371,11 @@ def _notes(session: Session, recs, imgs) -> list[str]:
     out = []
     for r, img in zip(recs, imgs, strict=True):
         sug = session.suggestion(r.id)
+        drawn = session.drawing(r.id)
         if sug:
             out.append(f"model: {sug[0]} {sug[1]:.0%}")
+        elif drawn is not None:
+            out.append(describe_drawing(drawn, short=True))
         else:
             o = dominant_orientation(img)
             out.append(

@@ -42,7 +42,7 @@ CREATE TABLE IF NOT EXISTS label_events (
     patch_id INTEGER NOT NULL REFERENCES patches(id),
     label TEXT,                         -- class name; NULL = unsure (kept out of training)
     reviewer TEXT NOT NULL,
-    origin TEXT NOT NULL,               -- reviewer | file | suggestion (LABEL_ORIGINS)
+    origin TEXT NOT NULL,               -- reviewer | file | suggestion | drawing (LABEL_ORIGINS)
     created_at REAL NOT NULL
 );
 CREATE INDEX IF NOT EXISTS label_events_patch ON label_events(patch_id, id);
@@ -106,4 +106,21 @@ CREATE TABLE IF NOT EXISTS label_pick_patches (
     score REAL                          -- the model's margin (top-1 minus top-2), NULL for spread
 );
 CREATE INDEX IF NOT EXISTS label_pick_patches_order ON label_pick_patches(pick, rank);
+CREATE TABLE IF NOT EXISTS drawing_measures (  -- what an imported crack drawing says of a patch
+    patch_id INTEGER NOT NULL REFERENCES patches(id),
+    drawing_sha256 TEXT NOT NULL,       -- SHA-256 of the drawing file (mask, SVG or CSV)
+    drawing TEXT NOT NULL,              -- the drawing file as given at import
+    kind TEXT NOT NULL,                 -- mask | svg | csv (DRAWING_KINDS)
+    label TEXT,                         -- class by the patch label rule; NULL = ambiguous
+    reason TEXT NOT NULL,               -- the rule's reason in words
+    angle_deg REAL,                     -- dominant crack angle (taxonomy convention), NULL: none
+    coherence REAL,                     -- doubled-angle resultant R in [0, 1], NULL: no crack
+    boundary_deg REAL,                  -- angle's distance to a class boundary (oriented cracks)
+    length_px REAL NOT NULL,            -- centreline length inside the patch, photo pixels
+    width_px REAL,                      -- mean crack width along it, photo pixels; NULL: unknown
+    width_max_px REAL,                  -- widest stretch of it, photo pixels; NULL: unknown
+    event_id INTEGER,                   -- the label event this import added, NULL if none
+    imported_at REAL NOT NULL,
+    PRIMARY KEY (patch_id, drawing_sha256)  -- the latest row of a patch (largest rowid) counts
+);
 """

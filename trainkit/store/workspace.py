@@ -30,15 +30,20 @@ __all__ = [
     "QueueRow",
     "DB_NAME",
     "LABEL_ORIGINS",
+    "DRAWING_KINDS",
     "JOB_GROUP_PREFIX",
     "job_group",
 ]
 
 DB_NAME = "workspace.sqlite"
 SCHEMA_VERSION = 3
-#: Where a label event came from: a reviewer's own answer, a label file, or a reviewer
-#: confirming the model's suggestion with one key.
-LABEL_ORIGINS = ("reviewer", "file", "suggestion")
+#: Where a label event came from: a reviewer's own answer, a label file, a reviewer
+#: confirming the model's suggestion with one key, or a firm's crack drawing (a mask or
+#: traced centrelines, labelled by the patch label rule; :mod:`trainkit.labels.drawings`).
+#: Older kits read the newer words as they are (the column is free text).
+LABEL_ORIGINS = ("reviewer", "file", "suggestion", "drawing")
+#: Kinds of crack drawing whose measures a workspace keeps (``drawing_measures.kind``).
+DRAWING_KINDS = ("mask", "svg", "csv")
 #: Version-1 workspaces named the origins otherwise (column ``source``); opened, they are migrated.
 _V1_ORIGINS = {"human": "reviewer", "imported": "file", "model-accepted": "suggestion"}
 #: Label value meaning "looked at, unsure": kept out of training and evaluation.
@@ -1085,3 +1090,185 @@ class Workspace:
         with self.connect() as con:
             rows = con.execute(q + " ORDER BY k.pick, k.rank").fetchall()
         return [dict(zip(keys, r, strict=True)) for r in rows]
+
+    # ----- crack drawings: what a firm's masks and traced centrelines say of patches ------
+    #: Columns of a drawing measure as :meth:`add_drawing_measures` takes them.
+    DRAWING_MEASURE_KEYS = ("patch_id", "drawing_sha256", "drawing", "kind", "label", "reason",
+                            "angle_deg", "coherence", "boundary_deg", "length_px", "width_px",
+                            "width_max_px")  # fmt: skip
+    #: Each measured patch's latest measure (the row stored last).
+    _LATEST_MEASURES = "SELECT MAX(rowid) FROM drawing_measures GROUP BY patch_id"
+
+    def drawing_photos(self) -> list[dict]:
+        """The photos a drawing may be imported for (tiled photos, not a job's frames):
+        ``id``, ``name``, ``width``, ``height``, ``gsd_mm``, in intake order."""
+        keys = ("id", "name", "width", "height", "gsd_mm")
+        with self.connect() as con:
+            rows = con.execute(
+                f"SELECT {', '.join(keys)} FROM photos WHERE substr(group_id, 1, length(?)) != ?"
+                " ORDER BY id",
+                (JOB_GROUP_PREFIX, JOB_GROUP_PREFIX),
+            ).fetchall()
+        return [dict(zip(keys, r, strict=True)) for r in rows]
+
+    def photo_patch_boxes(self, photo_id: int) -> list[tuple[int, tuple[int, int, int, int]]]:
+        """(patch id, box) of every patch of one photo, by id (a tiled photo's patches are
+        an id range: a search by rowid, no index over every patch needed)."""
+        with self.connect() as con:
+            first, last = con.execute(
+                "SELECT COALESCE(first_patch, 0), COALESCE(last_patch, ?) FROM photos WHERE id = ?",
+                (1 << 62, int(photo_id)),
+            ).fetchone()
+            rows = con.execute(
+                "SELECT id, x0, y0, x1, y1 FROM patches WHERE id BETWEEN ? AND ? AND photo_id = ?"
+                " ORDER BY id",
+                (first, last, int(photo_id)),
+            ).fetchall()
+        return [(int(r[0]), (int(r[1]), int(r[2]), int(r[3]), int(r[4]))) for r in rows]
+
+    def add_drawing_measures(
+        self, rows: Iterable[tuple], *, reviewer: str = "drawing"
+    ) -> dict[str, int]:
+        """Store what crack drawings say of patches, and their labels, in one transaction.
+
+        Each row holds the values of :attr:`DRAWING_MEASURE_KEYS` in that order; ``label``
+        is a class name, or None when the patch label rule finds the patch ambiguous.
+        A measure replaces the one the same drawing file (same SHA-256) gave the patch
+        before. Labels are label events of origin ``drawing`` under ``reviewer``, added when:
+
+        - the patch has no label yet, or its current label came from a drawing and differs
+          (an ambiguous patch whose current label came from a drawing gets an unsure answer:
+          the newer drawing withdraws the older one's label);
+        - never over a label a person gave (origin reviewer, file or suggestion): that
+          label is kept, and the measure is stored all the same.
+
+        Returns:
+            Counts: ``measured`` (rows stored), ``added`` (label events), ``unchanged``
+            (the drawing's label was already current), ``kept`` (a person's label kept),
+            ``withdrawn`` (unsure answers added), ``ambiguous`` (rows with no label).
+
+        Raises:
+            WorkspaceError: a class name this workspace does not have, an unknown drawing
+                kind or patch; nothing is stored.
+        """
+        names = set(self.class_set.names)
+        rows = [tuple(r) for r in rows]
+        counts = dict.fromkeys(
+            ("measured", "added", "unchanged", "kept", "withdrawn", "ambiguous"), 0
+        )
+        now = time.time()
+        with self.connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            con.execute("CREATE TEMP TABLE IF NOT EXISTS _drawn (id INTEGER PRIMARY KEY)")
+            con.execute("DELETE FROM _drawn")
+            con.executemany(
+                "INSERT OR IGNORE INTO _drawn(id) VALUES (?)", ((int(r[0]),) for r in rows)
+            )
+            known = con.execute(
+                "SELECT COUNT(*) FROM _drawn d JOIN patches p ON p.id = d.id"
+            ).fetchone()[0]
+            wanted = con.execute("SELECT COUNT(*) FROM _drawn").fetchone()[0]
+            if known != wanted:
+                raise WorkspaceError(
+                    f"{wanted - known} of the patches measured are not in workspace {self.root}"
+                )
+            current = {  # patch id -> (label, origin) of its newest label event
+                int(p): (lab, org)
+                for p, lab, org in con.execute(
+                    "SELECT e.patch_id, e.label, e.origin FROM label_events e JOIN"
+                    " (SELECT patch_id, MAX(id) AS last FROM label_events"
+                    "  WHERE patch_id IN (SELECT id FROM _drawn) GROUP BY patch_id) m"
+                    " ON e.id = m.last"
+                )
+            }
+            for r in rows:
+                rec = dict(zip(self.DRAWING_MEASURE_KEYS, r, strict=True))
+                pid, label = int(rec["patch_id"]), rec["label"]
+                if label is not None and label not in names:
+                    raise WorkspaceError(
+                        f"unknown class {label!r}; choose one of: {', '.join(sorted(names))}"
+                    )
+                if rec["kind"] not in DRAWING_KINDS:
+                    raise WorkspaceError(
+                        f"invalid drawing kind {rec['kind']!r}; choose one of: "
+                        f"{', '.join(DRAWING_KINDS)}"
+                    )
+                now_label, now_origin = current.get(pid, (None, None))
+                event = None
+                if label is None:
+                    counts["ambiguous"] += 1
+                if now_origin is not None and now_origin != "drawing":
+                    counts["kept"] += label is not None
+                elif now_origin == "drawing" and now_label == label:
+                    counts["unchanged"] += label is not None
+                elif label is not None or now_origin == "drawing":
+                    event = con.execute(
+                        "INSERT INTO label_events(patch_id, label, reviewer, origin, created_at)"
+                        " VALUES (?, ?, ?, 'drawing', ?)",
+                        (pid, label, reviewer, now),
+                    ).lastrowid
+                    current[pid] = (label, "drawing")
+                    counts["added" if label is not None else "withdrawn"] += 1
+                con.execute(
+                    "DELETE FROM drawing_measures WHERE patch_id = ? AND drawing_sha256 = ?",
+                    (pid, rec["drawing_sha256"]),
+                )
+                con.execute(
+                    f"INSERT INTO drawing_measures({', '.join(self.DRAWING_MEASURE_KEYS)},"
+                    " event_id, imported_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    (*r, event, now),
+                )
+                counts["measured"] += 1
+            con.execute("DROP TABLE _drawn")
+        return counts
+
+    def drawing_measures(self, ids: Collection[int] | None = None) -> dict[int, dict]:
+        """Each patch's latest drawing measure (of ``ids``, or of every measured patch).
+
+        Values: the :attr:`DRAWING_MEASURE_KEYS` (but ``patch_id``), ``event_id``,
+        ``imported_at``, and ``length_mm``, ``width_mm``, ``width_max_mm`` from the photo's
+        scale (None without scale or width).
+        """
+        keys = [k for k in self.DRAWING_MEASURE_KEYS if k != "patch_id"]
+        keys += ["event_id", "imported_at"]
+        cols = ", ".join(f"m.{k}" for k in keys)
+        latest = self._LATEST_MEASURES
+        if ids is not None:  # only the wanted patches' rows are grouped (by the primary key)
+            latest = latest.replace(
+                "GROUP BY", "WHERE patch_id IN (SELECT id FROM temp._measured) GROUP BY"
+            )
+        q = f"""
+        SELECT m.patch_id, {cols}, ph.gsd_mm FROM drawing_measures m
+        JOIN patches p ON p.id = m.patch_id JOIN photos ph ON ph.id = p.photo_id
+        WHERE m.rowid IN ({latest})
+        """
+        out: dict[int, dict] = {}
+        with self.connect() as con:
+            if ids is not None:
+                con.execute("CREATE TEMP TABLE _measured (id INTEGER PRIMARY KEY)")
+                con.executemany(
+                    "INSERT OR IGNORE INTO _measured(id) VALUES (?)", ((int(i),) for i in ids)
+                )
+            for r in con.execute(q):
+                rec = dict(zip(keys, r[1:-1], strict=True))
+                g = r[-1]
+                for k in ("length", "width", "width_max"):
+                    v = rec[f"{k}_px"]
+                    rec[f"{k}_mm"] = None if g is None or v is None else round(v * g, 4)
+                out[int(r[0])] = rec
+        return out
+
+    def drawing_boundary_patches(self, within_deg: float) -> list[tuple[int, float]]:
+        """Patches a drawing found oriented within ``within_deg`` of a class boundary and no
+        person has labelled since (no label, or the current label came from a drawing):
+        (patch id, distance in degrees), nearest the boundary first."""
+        q = f"""
+        SELECT m.patch_id, m.boundary_deg FROM drawing_measures m
+        WHERE m.rowid IN ({self._LATEST_MEASURES})
+        AND m.boundary_deg IS NOT NULL AND m.boundary_deg < ?
+        AND COALESCE((SELECT e.origin FROM label_events e WHERE e.patch_id = m.patch_id
+                      ORDER BY e.id DESC LIMIT 1), 'drawing') = 'drawing'
+        ORDER BY m.boundary_deg, m.patch_id
+        """
+        with self.connect() as con:
+            return [(int(p), float(d)) for p, d in con.execute(q, (float(within_deg),))]
