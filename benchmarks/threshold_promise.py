@@ -47,7 +47,11 @@ def scored_photos(exp: Path) -> dict:
         photos += list(s.photos)
         crack.append(np.asarray(s.labels) != 0)
         score.append(screening_probability(np.asarray(s.probs, dtype=np.float64)))
-    return {"photos": np.array(photos), "crack": np.concatenate(crack), "score": np.concatenate(score)}
+    return {
+        "photos": np.array(photos),
+        "crack": np.concatenate(crack),
+        "score": np.concatenate(score),
+    }
 
 
 def resplits(data: dict, *, draws: int, target: float, confidence: float, seed: int) -> dict:
