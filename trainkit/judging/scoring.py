@@ -126,7 +126,7 @@ def promise_words(pr: dict) -> str:
 
 
 def lowest_rank(k: int) -> str:
-    """ "lowest", "2nd lowest", ...: the k-th lowest in words."""
+    """The k-th lowest in words: "lowest", "2nd lowest", "3rd lowest", ..."""
     if k == 1:
         return "lowest"
     suffix = "th" if 10 <= k % 100 <= 20 else {1: "st", 2: "nd", 3: "rd"}.get(k % 10, "th")
