@@ -82,9 +82,7 @@ def test_generator_and_importer_label_by_one_function():
 def test_traced_truth_labels_like_the_generator_on_every_patch():
     """The generator's exact centrelines, imported as traced polylines, get the generator's
     own labels, angles and lengths on every patch (the same rule on the same geometry)."""
-    from trainkit.synth import SynthOptions, derive_patch_label, generate_photo
-
-    from trainkit.synth import Crack
+    from trainkit.synth import Crack, SynthOptions, derive_patch_label, generate_photo
 
     # a crack 2 px wide whose centreline runs 1.5 px below a box: its edge is in the box
     edge = Crack(np.array([[10.0, 65.5], [60.0, 65.5]]), np.array([2.0, 2.0]), "main", 1)

@@ -188,113 +188,236 @@ def _cracks_from_submask(m: np.ndarray) -> DrawnCracks:
     skel = skeletonize(m)
     graph = _SkeletonGraph(skel)
     spurs = graph.spurs(m)
-    if spurs:
-        skel[tuple(np.array(spurs).T)] = False
+    if len(spurs):
+        skel[spurs[:, 0], spurs[:, 1]] = False
         graph = _SkeletonGraph(skel)
     rc = graph.rc  # (M, 2) skeleton pixels, row and column
-    chains = graph.chains()
-    area = _pixels_per_skeleton_pixel(m, rc, _chain_ends(graph, chains))
-    claimed = np.zeros(len(rc), bool)
-    p0s: list[np.ndarray] = []
-    p1s: list[np.ndarray] = []
-    ws: list[np.ndarray] = []
-    halos: list[np.ndarray] = []
-    for chain in chains:
-        xy = rc[chain][:, ::-1] + 0.5  # pixel centres, x then y
-        if len(chain) == 1:  # a speck: one pixel of skeleton
-            a = float(area[chain[0]]) if not claimed[chain[0]] else 1.0
-            claimed[chain[0]] = True
-            w = 2.0 * np.sqrt(max(a, 1.0) / np.pi)  # the diameter of a disc of its area
-            # a cross of two half-pixel segments: 1 px of crack with no direction (0 and 90
-            # degrees cancel in the doubled-angle mean), so specks do not tilt a patch's angle
-            p0s.append(xy + [[-0.25, 0.0], [0.0, -0.25]])
-            p1s.append(xy + [[0.25, 0.0], [0.0, 0.25]])
-            ws.append(np.array([w, w]))
-            halos.append(np.array([w / 2.0 + 1.0] * 2))
-            continue
-        a0, a1, w = _chain_segments(xy, chain, area, claimed)
-        p0s.append(a0)
-        p1s.append(a1)
-        ws.append(w)
-        halos.append(np.full(len(w), float(w.max()) / 2.0 + 1.0))
-    if not p0s:
+    flat, off = graph.chains()
+    if not len(flat):
         return DrawnCracks.empty()
-    w = np.concatenate(ws)
-    return DrawnCracks(np.concatenate(p0s), np.concatenate(p1s), w, w, np.concatenate(halos))
+    area = _pixels_per_skeleton_pixel(m, rc, *_chain_ends(graph, flat, off))
+    n_chains = len(off) - 1
+    sizes = np.diff(off)
+    chain_of = np.repeat(np.arange(n_chains), sizes)
+    # a pixel's crack pixels count once, for the first chain that holds it (junctions)
+    first = np.full(len(rc), n_chains)
+    np.minimum.at(first, flat, chain_of)
+    own = first[flat] == chain_of
+    xy = rc[flat][:, ::-1] + 0.5  # pixel centres, x then y
+    speck = sizes == 1
+    parts = []  # (chain of each segment, p0, p1, width, halo)
+    if np.any(speck):
+        pos = off[:-1][speck]
+        a = np.where(own[pos], area[flat[pos]], 1.0)
+        w = 2.0 * np.sqrt(np.maximum(a, 1.0) / np.pi)  # the diameter of a disc of its area
+        # a cross of two half-pixel segments: 1 px of crack with no direction (0 and 90
+        # degrees cancel in the doubled-angle mean), so specks do not tilt a patch's angle
+        c = xy[pos]
+        p0 = np.stack([c + [-0.25, 0.0], c + [0.0, -0.25]], axis=1).reshape(-1, 2)
+        p1 = np.stack([c + [0.25, 0.0], c + [0.0, 0.25]], axis=1).reshape(-1, 2)
+        ww = np.repeat(w, 2)
+        parts.append((np.repeat(np.flatnonzero(speck), 2), p0, p1, ww, ww / 2.0 + 1.0))
+    if not np.all(speck):
+        parts.append(_chain_segments(xy, off, area[flat], own, ~speck))
+    if not parts:
+        return DrawnCracks.empty()
+    order = np.argsort(np.concatenate([q[0] for q in parts]), kind="stable")
+    p0, p1, w, halo = (np.concatenate([q[i] for q in parts])[order] for i in range(1, 5))
+    return DrawnCracks(p0, p1, w, w, halo)
 
 
-def _chain_ends(graph: _SkeletonGraph, chains: list[list[int]]) -> dict[int, np.ndarray]:
-    """Skeleton end pixel -> the unit direction (row, col) in which its chain leaves it."""
-    out: dict[int, np.ndarray] = {}
-    for chain in chains:
-        if len(chain) < 2:
-            continue
-        for end, inner in ((chain[0], chain[min(4, len(chain) - 1)]),
-                           (chain[-1], chain[max(0, len(chain) - 5)])):  # fmt: skip
-            if graph.degree(end) == 1:
-                d = (graph.rc[end] - graph.rc[inner]).astype(float)
-                out[end] = d / max(float(np.hypot(*d)), 1e-9)
-    return out
+def _chain_ends(
+    graph: _SkeletonGraph, flat: np.ndarray, off: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Skeleton end pixels (degree 1) and the unit direction (row, col) in which their
+    chain leaves them (taken over up to 4 pixels)."""
+    sizes = np.diff(off)
+    lo, hi = off[:-1][sizes >= 2], off[1:][sizes >= 2]
+    n = hi - lo
+    end = np.concatenate([flat[lo], flat[hi - 1]])
+    inner = np.concatenate([flat[lo + np.minimum(4, n - 1)], flat[lo + np.maximum(0, n - 5)]])
+    keep = graph.deg[end] == 1
+    end, inner = end[keep], inner[keep]
+    d = (graph.rc[end] - graph.rc[inner]).astype(float)
+    u = d / np.maximum(np.hypot(d[:, 0], d[:, 1]), 1e-9)[:, None]
+    return end, u
 
 
 def _pixels_per_skeleton_pixel(
-    mask: np.ndarray, rc: np.ndarray, ends: dict[int, np.ndarray]
+    mask: np.ndarray, rc: np.ndarray, ends: np.ndarray, u: np.ndarray
 ) -> np.ndarray:
     """How many crack pixels have each skeleton pixel as their nearest (ties to one),
     leaving out the cap beyond a crack's end (pixels more than half a pixel past an end
-    pixel, along its chain): the crack is measured across, not along."""
+    pixel ``ends``, along its chain's direction ``u``): the crack is measured across, not
+    along."""
     from scipy.spatial import cKDTree
 
     if not len(rc):
         return np.zeros(0)
-    crack = np.argwhere(mask)
+    skel = np.zeros(mask.shape, bool)
+    skel[rc[:, 0], rc[:, 1]] = True
+    crack = np.argwhere(mask & ~skel)  # a skeleton pixel is its own nearest
     _, nearest = cKDTree(rc).query(crack, k=1)
-    area = np.bincount(nearest, minlength=len(rc)).astype(float)
-    if ends:
-        order = np.argsort(nearest, kind="stable")
-        bounds = np.searchsorted(nearest[order], [[e, e + 1] for e in ends])
-        for (e, u), (lo, hi) in zip(ends.items(), bounds, strict=True):
-            past = (crack[order[lo:hi]] - rc[e]) @ u > 0.5
-            area[e] -= float(np.count_nonzero(past))
+    area = np.bincount(nearest, minlength=len(rc)).astype(float) + 1.0
+    if len(ends):
+        which = np.full(len(rc), -1)
+        which[ends] = np.arange(len(ends))
+        at = which[nearest]
+        sel = at >= 0
+        d = (crack[sel] - rc[nearest[sel]]).astype(float)
+        uu = u[at[sel]]
+        past = d[:, 0] * uu[:, 0] + d[:, 1] * uu[:, 1] > 0.5
+        area[ends] -= np.bincount(at[sel][past], minlength=len(ends))
     return area
 
 
 def _chain_segments(
-    xy: np.ndarray, chain: list[int], area: np.ndarray, claimed: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """A chain of skeleton pixels as simplified segments, cut into equal stretches of at
-    most WIDTH_STRETCH_PX along it; each segment has its stretch's width: the crack pixels
-    of the stretch's skeleton pixels over the stretch's length."""
-    keep = np.asarray(simplify_polyline(xy, SIMPLIFY_PX))
-    verts = xy[keep]
-    cum = np.concatenate([[0.0], np.cumsum(np.hypot(*np.diff(verts, axis=0).T))])
-    total = float(cum[-1])
-    n = max(1, int(np.ceil(total / WIDTH_STRETCH_PX)))
+    xy: np.ndarray, off: np.ndarray, area: np.ndarray, own: np.ndarray, which: np.ndarray
+) -> tuple[np.ndarray, ...]:
+    """Chains of skeleton pixels (``xy[off[i]:off[i+1]]`` for the chains ``which``) as
+    simplified segments, each chain cut into equal stretches of at most WIDTH_STRETCH_PX
+    along it; each segment has its stretch's width: the crack pixels of the stretch's
+    skeleton pixels (``area``, counted where ``own``) over the stretch's length.
+
+    Returns the chain of each segment, its ends, width and halo."""
+    ids = np.flatnonzero(which)
+    lo, hi = off[:-1][ids], off[1:][ids]
+    sizes = hi - lo
+    pos = np.repeat(lo - np.concatenate([[0], np.cumsum(sizes)[:-1]]), sizes) + np.arange(
+        int(sizes.sum())
+    )
+    loc_off = np.concatenate([[0], np.cumsum(sizes)])
+    pts, ar, mine = xy[pos], area[pos], own[pos]
+    keep = _simplify_chains(pts, loc_off, SIMPLIFY_PX)  # (K,) positions kept, ascending
+    chain_of_pt = np.repeat(np.arange(len(ids)), sizes)
+    kc = chain_of_pt[keep]
+    nk = np.bincount(kc, minlength=len(ids))
+    koff = np.concatenate([[0], np.cumsum(nk)])
+    verts = pts[keep]
+    step = np.zeros(len(keep))
+    dv = np.diff(verts, axis=0)
+    step[1:] = np.hypot(dv[:, 0], dv[:, 1])
+    step[koff[:-1]] = 0.0
+    cum = _running_sum(step, koff)
+    total = cum[koff[1:] - 1]
+    n = np.maximum(1, np.ceil(total / WIDTH_STRETCH_PX).astype(int))
     stretch = total / n
     # where each skeleton pixel lies along the simplified chain, and so its stretch
-    k = np.arange(len(chain))
-    m = np.clip(np.searchsorted(keep, k, side="right") - 1, 0, len(keep) - 2)
-    frac = (k - keep[m]) / (keep[m + 1] - keep[m])
+    g = np.searchsorted(keep, np.arange(len(pts)), side="right") - 1
+    m = np.clip(g - koff[chain_of_pt], 0, nk[chain_of_pt] - 2) + koff[chain_of_pt]
+    frac = (np.arange(len(pts)) - keep[m]) / (keep[m + 1] - keep[m])
     along = cum[m] + frac * (cum[m + 1] - cum[m])
-    piece = np.minimum((along / stretch).astype(int), n - 1) if stretch > 0 else np.zeros_like(k)
-    idx = np.asarray(chain)
-    own = ~claimed[idx]
-    claimed[idx] = True
-    widths = np.bincount(piece[own], weights=area[idx[own]], minlength=n) / max(stretch, 1e-9)
-    starts, ends, seg_w = [], [], []
-    edges = stretch * np.arange(1, n)
-    for i in range(len(verts) - 1):
-        s0, s1 = cum[i], cum[i + 1]
-        if s1 <= s0:
-            continue
-        cuts = [s0, *edges[(edges > s0) & (edges < s1)], s1]
-        for a, b in zip(cuts[:-1], cuts[1:], strict=True):
-            pa = verts[i] + (verts[i + 1] - verts[i]) * ((a - s0) / (s1 - s0))
-            pb = verts[i] + (verts[i + 1] - verts[i]) * ((b - s0) / (s1 - s0))
-            starts.append(pa)
-            ends.append(pb)
-            seg_w.append(widths[min(int((a + b) / 2.0 / stretch), n - 1)])
-    return np.array(starts), np.array(ends), np.array(seg_w)
+    st = stretch[chain_of_pt]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        piece = np.where(st > 0, along / np.where(st > 0, st, 1.0), 0.0).astype(int)
+    piece = np.minimum(piece, n[chain_of_pt] - 1)
+    poff = np.concatenate([[0], np.cumsum(n)])
+    gpiece = poff[chain_of_pt] + piece
+    widths = np.bincount(gpiece[mine], weights=ar[mine], minlength=int(poff[-1]))
+    widths /= np.repeat(np.maximum(stretch, 1e-9), n)
+    # the simplified edges, cut at the stretches' ends
+    e = np.flatnonzero(np.diff(kc) == 0)  # edge from vertex e to e + 1 of one chain
+    ec = kc[e]
+    s0, s1 = cum[e], cum[e + 1]
+    ok = s1 > s0
+    e, ec, s0, s1 = e[ok], ec[ok], s0[ok], s1[ok]
+    est, en = stretch[ec], n[ec]
+    jlo, jhi = _cut_range(s0, s1, est, en)
+    q = np.maximum(0, jhi - jlo + 1)  # cuts inside each edge
+    ns = q + 1
+    es = np.repeat(np.arange(len(e)), ns)
+    r = np.arange(int(ns.sum())) - np.repeat(np.cumsum(ns) - ns, ns)
+    S0, S1, ST = s0[es], s1[es], est[es]
+    a = np.where(r == 0, S0, ST * (jlo[es] + r - 1))
+    b = np.where(r == q[es], S1, ST * (jlo[es] + r))
+    v0, v1 = verts[e][es], verts[e + 1][es]
+    span = v1 - v0
+    pa = v0 + span * ((a - S0) / (S1 - S0))[:, None]
+    pb = v0 + span * ((b - S0) / (S1 - S0))[:, None]
+    sc = ec[es]
+    wi = np.minimum((((a + b) / 2.0) / ST).astype(int), en[es] - 1)
+    seg_w = widths[poff[sc] + wi]
+    # halo: half the chain's widest stretch + 1 px
+    starts = np.flatnonzero(np.concatenate([[True], sc[1:] != sc[:-1]])) if len(sc) else sc
+    widest = np.maximum.reduceat(seg_w, starts) if len(sc) else seg_w
+    halo = np.repeat(widest / 2.0 + 1.0, np.diff(np.concatenate([starts, [len(sc)]])))
+    return ids[sc], pa, pb, seg_w, halo
+
+
+def _running_sum(values: np.ndarray, off: np.ndarray) -> np.ndarray:
+    """Each group ``values[off[i]:off[i+1]]`` summed up in order from its first value (as
+    ``np.cumsum`` of the group would, to the bit): one numpy step per rank in the group."""
+    out = values.copy()
+    sizes = np.diff(off)
+    if not len(values):
+        return out
+    order = np.argsort(-sizes, kind="stable")  # longest groups first
+    srt = sizes[order]
+    base = off[:-1][order]
+    for k in range(1, int(srt[0])):
+        live = base[: int(np.searchsorted(-srt, -k, side="left"))]
+        at = live + k
+        out[at] = out[at - 1] + values[at]
+    return out
+
+
+def _cut_range(
+    s0: np.ndarray, s1: np.ndarray, stretch: np.ndarray, n: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """The first and last j in 1..n-1 with s0 < stretch * j < s1 (as the products are
+    computed: an estimate by division, settled on the products themselves)."""
+    safe = np.where(stretch > 0, stretch, 1.0)
+    jlo = np.floor(s0 / safe).astype(int) + 1
+    for _ in range(2):
+        jlo = np.where((jlo > 1) & (stretch * (jlo - 1) > s0), jlo - 1, jlo)
+    for _ in range(2):
+        jlo = np.where(stretch * jlo <= s0, jlo + 1, jlo)
+    jhi = np.ceil(s1 / safe).astype(int) - 1
+    for _ in range(2):
+        jhi = np.where(stretch * jhi >= s1, jhi - 1, jhi)
+    for _ in range(2):
+        jhi = np.where(stretch * (jhi + 1) < s1, jhi + 1, jhi)
+    jlo = np.maximum(jlo, 1)
+    jhi = np.minimum(jhi, n - 1)
+    jhi = np.where(stretch > 0, jhi, 0)
+    return jlo, jhi
+
+
+def _simplify_chains(pts: np.ndarray, off: np.ndarray, tolerance: float) -> np.ndarray:
+    """:func:`simplify_polyline` of every chain ``pts[off[i]:off[i+1]]`` at once (one numpy
+    pass per level of the recursion): the positions kept, ascending."""
+    keep = np.zeros(len(pts), bool)
+    keep[off[:-1]] = True
+    keep[off[1:] - 1] = True
+    i, j = off[:-1].copy(), off[1:] - 1
+    while True:
+        more = j > i + 1
+        i, j = i[more], j[more]
+        if not len(i):
+            break
+        cnt = j - i - 1
+        seg = np.repeat(np.arange(len(i)), cnt)
+        gstart = np.cumsum(cnt) - cnt
+        p = np.repeat(i + 1 - gstart, cnt) + np.arange(int(cnt.sum()))
+        a = pts[i]
+        d = pts[j] - a
+        norm = np.hypot(d[:, 0], d[:, 1])
+        rel = pts[p] - a[seg]
+        ds, ns = d[seg], norm[seg]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dist = np.where(
+                ns == 0.0,
+                np.hypot(rel[:, 0], rel[:, 1]),
+                np.abs(rel[:, 0] * ds[:, 1] - rel[:, 1] * ds[:, 0]) / ns,
+            )
+        top = np.maximum.reduceat(dist, gstart)
+        hit = np.flatnonzero(dist == top[seg])
+        firsts = hit[np.concatenate([[True], seg[hit[1:]] != seg[hit[:-1]]])]
+        split = top > tolerance
+        mid = p[firsts][split]
+        keep[mid] = True
+        i, j = np.concatenate([i[split], mid]), np.concatenate([mid, j[split]])
+    return np.flatnonzero(keep)
 
 
 def simplify_polyline(points: np.ndarray, tolerance: float) -> list[int]:
@@ -331,95 +454,203 @@ def simplify_polyline(points: np.ndarray, tolerance: float) -> list[int]:
 #: The 8 neighbour offsets (row, column), straight ones first.
 _STRAIGHT = ((0, 1), (1, 0), (0, -1), (-1, 0))
 _DIAGONAL = ((1, 1), (1, -1), (-1, 1), (-1, -1))
+#: How far (px) around a junction the crack's width is looked for when judging a spur.
+_SPUR_WINDOW = 16
 
 
 class _SkeletonGraph:
     """A skeleton's pixels and links: 8-neighbours, minus the diagonal links that two
-    straight links through a skeleton pixel already make."""
+    straight links through a skeleton pixel already make.
+
+    Links are held as arcs (directed links), sorted by pixel and then by neighbour
+    offset (straight ones first): ``src``, ``dst``; ``deg`` is each pixel's link count.
+    """
 
     def __init__(self, skel: np.ndarray) -> None:
+        skel = np.asarray(skel, bool)
         self.rc = np.argwhere(skel)
-        h, w = skel.shape
-        index = np.full((h + 2, w + 2), -1, np.int64)  # padded: neighbours never wrap
-        index[self.rc[:, 0] + 1, self.rc[:, 1] + 1] = np.arange(len(self.rc))
-        self._index = index
+        pad = np.pad(skel, 1)  # neighbours never wrap
+        width = pad.shape[1]
         r, c = self.rc[:, 0] + 1, self.rc[:, 1] + 1
-        nbrs: list[list[int]] = [[] for _ in range(len(self.rc))]
-        for dr, dc in _STRAIGHT + _DIAGONAL:
-            other = index[r + dr, c + dc]
-            ok = other >= 0
+        lin = r * width + c  # ascending: argwhere is row-major
+        src, dst, rank = [], [], []
+        for k, (dr, dc) in enumerate(_STRAIGHT + _DIAGONAL):
+            ok = pad[r + dr, c + dc]
             if dr and dc:  # a diagonal link only where no straight two-step path exists
-                ok &= (index[r + dr, c] < 0) & (index[r, c + dc] < 0)
-            for a, b in zip(np.flatnonzero(ok), other[ok], strict=True):
-                nbrs[a].append(int(b))
-        self.nbrs = nbrs
+                ok &= ~pad[r + dr, c] & ~pad[r, c + dc]
+            a = np.flatnonzero(ok)
+            src.append(a)
+            dst.append(np.searchsorted(lin, lin[a] + dr * width + dc))
+            rank.append(np.full(len(a), k))
+        s, d, k = (np.concatenate(v) for v in (src, dst, rank))
+        order = np.lexsort((k, s))
+        self.src, self.dst = s[order], d[order]
+        self.deg = np.bincount(self.src, minlength=len(self.rc))
+        self.ptr = np.concatenate([[0], np.cumsum(self.deg)])
 
     def degree(self, i: int) -> int:
-        return len(self.nbrs[i])
+        return int(self.deg[i])
 
-    def chains(self) -> list[list[int]]:
+    def chains(self) -> tuple[np.ndarray, np.ndarray]:
         """Every pixel path between ends and junctions (junctions shared by their chains),
-        closed loops, and lone pixels; each link walked once."""
-        seen: set[tuple[int, int]] = set()
-        out: list[list[int]] = []
-        nodes = [i for i in range(len(self.nbrs)) if self.degree(i) != 2]
-        for n in nodes:
-            if not self.nbrs[n]:
-                out.append([n])
-                continue
-            for m in self.nbrs[n]:
-                if (n, m) not in seen:
-                    out.append(self._walk(n, m, seen))
-        for i in range(len(self.nbrs)):  # loops: degree-2 pixels not reached from a node
-            for m in self.nbrs[i]:
-                if (i, m) not in seen:
-                    out.append(self._walk(i, m, seen))
-        return out
+        closed loops, and lone pixels, each link in one chain, as pixel indices ``flat``
+        with chain ``i`` at ``flat[off[i]:off[i+1]]``.
 
-    def _walk(self, start: int, nxt: int, seen: set[tuple[int, int]]) -> list[int]:
-        path = [start]
-        prev, cur = start, nxt
-        seen.add((prev, cur))
-        seen.add((cur, prev))
-        while True:
-            path.append(cur)
-            if self.degree(cur) != 2 or cur == start:
-                return path
-            a, b = self.nbrs[cur]
-            step = b if a == prev else a
-            if (cur, step) in seen:  # a loop closed on itself
-                return path
-            seen.add((cur, step))
-            seen.add((step, cur))
-            prev, cur = cur, step
+        The order is that of a walk over the pixels (row-major): from each end or
+        junction, along each of its links not yet walked (in neighbour order), to the
+        next end or junction; then each closed loop of the rest from its first pixel
+        (listed at both ends) along its first link."""
+        n, na = len(self.rc), len(self.src)
+        deg, src, dst = self.deg, self.src, self.dst
+        node = deg != 2
+        if na == 0:
+            return np.arange(n), np.arange(n + 1)
+        # the arc after u->v (v of degree 2): v's other arc
+        first = self.ptr[dst]
+        nxt_arc = np.where(dst[first] != src, first, first + 1)
+        succ = np.where(node[dst], -1, nxt_arc)
+        term, dist, loose = _list_rank(succ, np.flatnonzero(succ >= 0))
+        start_pix = np.empty(0, int)
+        if len(loose):  # arcs on closed loops without a node: cut each at its first pixel
+            low = src.copy()
+            hop = succ.copy()
+            live = loose
+            for _ in range(int(na).bit_length() + 1):
+                low[live] = np.minimum(low[live], low[hop[live]])
+                hop[live] = hop[hop[live]]
+            succ = succ.copy()
+            succ[loose[dst[loose] == low[loose]]] = -1
+            term[loose] = np.where(succ[loose] >= 0, succ[loose], loose)
+            dist[loose] = succ[loose] >= 0
+            again = loose[succ[loose] >= 0]
+            term, dist, _ = _list_rank(succ, again, term, dist)
+            start_pix = np.unique(low[loose])
+        rev = _reverse_arcs(src, dst, n)
+        starts = np.flatnonzero(node[src])
+        starts = starts[starts < rev[term[starts]]]  # each chain walked from its first end
+        loops = self.ptr[start_pix]
+        # order of the chains: arcs by (pixel, neighbour), a lone pixel at its place,
+        # closed loops last
+        key_of_term = np.full(na, -1)
+        key_of_term[term[starts]] = 2 * starts + 1
+        key_of_term[term[loops]] = 4 * na + 4 + start_pix
+        lone = np.flatnonzero(deg == 0)
+        arcs = np.flatnonzero(key_of_term[term] >= 0)
+        key = key_of_term[term[arcs]]
+        arcs = arcs[np.lexsort((-dist[arcs], key))]
+        key = key_of_term[term[arcs]]
+        head = np.concatenate([[True], key[1:] != key[:-1]])
+        heads = np.flatnonzero(head)
+        # chain pixels: the first arc's source, then every arc's destination
+        flat_arcs = np.insert(dst[arcs], heads, src[arcs[heads]])
+        sizes = np.diff(np.concatenate([heads, [len(arcs)]])) + 1
+        all_keys = np.concatenate([key[heads], 2 * self.ptr[lone]])
+        all_sizes = np.concatenate([sizes, np.ones(len(lone), int)])
+        flat = np.concatenate([flat_arcs, lone])
+        off0 = np.concatenate([[0], np.cumsum(all_sizes)])
+        perm = np.argsort(all_keys, kind="stable")
+        ln = all_sizes[perm]
+        off = np.concatenate([[0], np.cumsum(ln)])
+        take = np.repeat(off0[:-1][perm] - off[:-1], ln) + np.arange(int(off[-1]))
+        return flat[take], off
 
-    def spurs(self, mask: np.ndarray) -> list[tuple[int, int]]:
+    def spurs(self, mask: np.ndarray) -> np.ndarray:
         """Pixels (row, col) of end branches no longer than the crack is wide at their
-        junction (twice the distance transform there): thinning's spurs."""
-        from scipy import ndimage
+        junction (twice the Euclidean distance to the background there, looked for
+        within :data:`_SPUR_WINDOW` px): thinning's spurs."""
+        flat, off = self.chains()
+        lo, hi = off[:-1], off[1:]
+        a, b = flat[lo], flat[hi - 1]
+        deg = self.deg
+        ends0, ends1 = deg[a] == 1, deg[b] == 1
+        joins0, joins1 = deg[a] >= 3, deg[b] >= 3
+        cand = (hi - lo >= 2) & ((ends0 & joins1) | (ends1 & joins0))
+        if not np.any(cand):
+            return np.zeros((0, 2), int)
+        ids = np.flatnonzero(cand)
+        junction = np.where(joins1[ids], b[ids], a[ids])
+        half = _half_width_at(mask, self.rc[junction])
+        steps = np.diff(self.rc[flat], axis=0)
+        step = np.hypot(steps[:, 0], steps[:, 1])
+        # chain i's steps are step[lo[i]:hi[i]-1]
+        length = _group_sums(step, lo[ids], hi[ids] - 1)
+        spur = length <= 2.0 * half
+        if not np.any(spur):
+            return np.zeros((0, 2), int)
+        sid, sj = ids[spur], junction[spur]
+        sizes = hi[sid] - lo[sid]
+        at = np.repeat(lo[sid] - np.cumsum(sizes) + sizes, sizes) + np.arange(int(sizes.sum()))
+        pix = flat[at]
+        pix = pix[pix != np.repeat(sj, sizes)]
+        return self.rc[pix]
 
-        out: list[tuple[int, int]] = []
-        for chain in self.chains():
-            if len(chain) < 2:
-                continue
-            a, b = chain[0], chain[-1]
-            ends = (self.degree(a) == 1, self.degree(b) == 1)
-            joins = (self.degree(a) >= 3, self.degree(b) >= 3)
-            if not ((ends[0] and joins[1]) or (ends[1] and joins[0])):
-                continue
-            junction = b if joins[1] else a
-            r, c = self.rc[junction]
-            win = 16
-            ra, ca = max(0, r - win), max(0, c - win)
-            local = ndimage.distance_transform_edt(
-                np.pad(mask[ra : r + win + 1, ca : c + win + 1], 1)
-            )
-            half = float(local[r - ra + 1, c - ca + 1])
-            steps = np.diff(self.rc[chain], axis=0)
-            length = float(np.sum(np.hypot(steps[:, 0], steps[:, 1])))
-            if length <= 2.0 * half:
-                out.extend(tuple(int(v) for v in self.rc[i]) for i in chain if i != junction)
-        return out
+
+def _group_sums(values: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """``values[lo[i]:hi[i]].sum()`` of each group, as numpy sums a short array (pairwise
+    summation only matters from 8 values on: those groups are summed one by one)."""
+    sizes = hi - lo
+    out = np.zeros(len(lo))
+    short = sizes < 8
+    idx = np.flatnonzero(short)
+    for k in range(int(sizes[short].max()) if len(idx) else 0):
+        at = idx[sizes[idx] > k]
+        out[at] = out[at] + values[lo[at] + k]
+    for i in np.flatnonzero(~short):
+        out[i] = values[lo[i] : hi[i]].sum()
+    return out
+
+
+def _half_width_at(mask: np.ndarray, rc: np.ndarray) -> np.ndarray:
+    """The Euclidean distance from each pixel ``rc`` to the nearest background pixel
+    within :data:`_SPUR_WINDOW` px (rows and columns) of it, the window's outside
+    counting as background."""
+    w = _SPUR_WINDOW
+    side = 2 * w + 3
+    pad = np.pad(mask, w + 1)
+    out = np.empty(len(rc))
+    off = np.arange(side) - (w + 1)
+    d2 = off[:, None] ** 2 + off[None, :] ** 2
+    ring = np.zeros((side, side), bool)
+    ring[1:-1, 1:-1] = True
+    for s in range(0, len(rc), 512):
+        r, c = rc[s : s + 512, 0], rc[s : s + 512, 1]
+        win = pad[r[:, None, None] + np.arange(side)[None, :, None],
+                  c[:, None, None] + np.arange(side)[None, None, :]]  # fmt: skip
+        win &= ring
+        out[s : s + 512] = np.sqrt(np.where(win, np.iinfo(np.int64).max, d2).min(axis=(1, 2)))
+    return out
+
+
+def _list_rank(
+    succ: np.ndarray,
+    active: np.ndarray,
+    term: np.ndarray | None = None,
+    dist: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Linked lists ``succ`` (-1 at a list's end) ranked by pointer jumping: each item's
+    last item and its distance to it. Items still ``active`` after as many rounds as the
+    lists could be long lie on cycles; they are returned as the third value."""
+    if term is None or dist is None:
+        term = np.arange(len(succ))
+        dist = np.zeros(len(succ), int)
+        term[active] = succ[active]
+        dist[active] = 1
+    act = active[succ[term[active]] >= 0]
+    for _ in range(int(len(succ)).bit_length() + 1):
+        if not len(act):
+            break
+        t = term[act]
+        dist[act] = dist[act] + dist[t]
+        term[act] = term[t]
+        act = act[succ[term[act]] >= 0]
+    return term, dist, act
+
+
+def _reverse_arcs(src: np.ndarray, dst: np.ndarray, n: int) -> np.ndarray:
+    """For each arc u->v, the arc v->u."""
+    key = src * n + dst
+    order = np.argsort(key)
+    return order[np.searchsorted(key[order], dst * n + src)]
 
 
 # ----- one patch -------------------------------------------------------------------------
