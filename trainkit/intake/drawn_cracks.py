@@ -36,6 +36,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -98,12 +99,79 @@ class DrawnCracks:
         """The segments whose bounding box meets ``box`` grown by their halo (the only
         ones the rule or the measures of that box can see)."""
         x0, y0, x1, y1 = (float(v) for v in box)
-        lo = np.minimum(self.p0, self.p1) - self.halo[:, None]
-        hi = np.maximum(self.p0, self.p1) + self.halo[:, None]
-        keep = (hi[:, 0] >= x0) & (lo[:, 0] <= x1) & (hi[:, 1] >= y0) & (lo[:, 1] <= y1)
+        lo, hi = self._reach
+        if len(self) > _NEAR_ALL:  # many segments: test only those in the box's cells
+            idx = self._cells.candidates(x0, y0, x1, y1)
+            lo, hi = lo[idx], hi[idx]
+        else:
+            idx = np.arange(len(self))
+        hit = (hi[:, 0] >= x0) & (lo[:, 0] <= x1) & (hi[:, 1] >= y0) & (lo[:, 1] <= y1)
+        keep = idx[hit]
         return DrawnCracks(
             self.p0[keep], self.p1[keep], self.w0[keep], self.w1[keep], self.halo[keep]
         )
+
+    @cached_property
+    def _reach(self) -> tuple[np.ndarray, np.ndarray]:
+        """Each segment's bounding box grown by its halo: (N, 2) lows and highs."""
+        grow = self.halo[:, None]
+        return np.minimum(self.p0, self.p1) - grow, np.maximum(self.p0, self.p1) + grow
+
+    @cached_property
+    def _cells(self) -> _CellIndex:
+        return _CellIndex(*self._reach)
+
+
+#: Up to this many segments, :meth:`DrawnCracks.near` tests them all.
+_NEAR_ALL = 2000
+#: Side (px) of the square cells :class:`_CellIndex` files segments under.
+_CELL_PX = 128.0
+
+
+class _CellIndex:
+    """Boxes (a photo's segments grown by their halo) filed under every square cell of
+    :data:`_CELL_PX` they meet, so that a box query looks at the boxes of its cells only."""
+
+    def __init__(self, lo: np.ndarray, hi: np.ndarray) -> None:
+        c0 = np.floor(lo / _CELL_PX).astype(np.int64)
+        c1 = np.floor(hi / _CELL_PX).astype(np.int64)
+        self.origin = c0.min(axis=0)
+        self.last = c1.max(axis=0)
+        self.cols = int(self.last[0] - self.origin[0] + 1)
+        c0 -= self.origin
+        c1 -= self.origin
+        nx, ny = c1[:, 0] - c0[:, 0] + 1, c1[:, 1] - c0[:, 1] + 1
+        count = nx * ny
+        box = np.repeat(np.arange(len(lo)), count)
+        k = np.arange(int(count.sum())) - np.repeat(np.cumsum(count) - count, count)
+        cell = (c0[box, 1] + k // nx[box]) * self.cols + c0[box, 0] + k % nx[box]
+        order = np.argsort(cell, kind="stable")
+        self.items = box[order]
+        rows = int(self.last[1] - self.origin[1] + 1)
+        self.bounds = np.searchsorted(cell[order], np.arange(rows * self.cols + 1))
+
+    def candidates(self, x0: float, y0: float, x1: float, y1: float) -> np.ndarray:
+        """Indices (ascending, unique) of every box that may meet [x0, x1] x [y0, y1]."""
+        ax, ay = (
+            max(int(np.floor(v / _CELL_PX)), int(o))
+            for v, o in zip((x0, y0), self.origin, strict=True)
+        )
+        bx, by = (
+            min(int(np.floor(v / _CELL_PX)), int(e))
+            for v, e in zip((x1, y1), self.last, strict=True)
+        )
+        if ax > bx or ay > by:
+            return np.zeros(0, np.int64)
+        ox, oy = int(self.origin[0]), int(self.origin[1])
+        parts = [
+            self.items[
+                self.bounds[(r - oy) * self.cols + ax - ox] : self.bounds[
+                    (r - oy) * self.cols + bx - ox + 1
+                ]
+            ]
+            for r in range(ay, by + 1)
+        ]
+        return np.unique(np.concatenate(parts))
 
 
 @dataclass(frozen=True)
@@ -454,6 +522,9 @@ def simplify_polyline(points: np.ndarray, tolerance: float) -> list[int]:
 #: The 8 neighbour offsets (row, column), straight ones first.
 _STRAIGHT = ((0, 1), (1, 0), (0, -1), (-1, 0))
 _DIAGONAL = ((1, 1), (1, -1), (-1, 1), (-1, -1))
+_OFFSETS = _STRAIGHT + _DIAGONAL
+#: Index in _OFFSETS of each offset's opposite.
+_OPPOSITE = np.array([_OFFSETS.index((-dr, -dc)) for dr, dc in _OFFSETS])
 #: How far (px) around a junction the crack's width is looked for when judging a spur.
 _SPUR_WINDOW = 16
 
@@ -463,29 +534,30 @@ class _SkeletonGraph:
     straight links through a skeleton pixel already make.
 
     Links are held as arcs (directed links), sorted by pixel and then by neighbour
-    offset (straight ones first): ``src``, ``dst``; ``deg`` is each pixel's link count.
+    offset (straight ones first): ``src``, ``dst``, offset ``k``; ``deg`` is each
+    pixel's link count and ``ptr`` where its arcs start.
     """
 
     def __init__(self, skel: np.ndarray) -> None:
         skel = np.asarray(skel, bool)
+        h, w = skel.shape
+        width = w + 2  # padded: neighbours never wrap
         self.rc = np.argwhere(skel)
-        pad = np.pad(skel, 1)  # neighbours never wrap
-        width = pad.shape[1]
-        r, c = self.rc[:, 0] + 1, self.rc[:, 1] + 1
-        lin = r * width + c  # ascending: argwhere is row-major
-        src, dst, rank = [], [], []
-        for k, (dr, dc) in enumerate(_STRAIGHT + _DIAGONAL):
-            ok = pad[r + dr, c + dc]
-            if dr and dc:  # a diagonal link only where no straight two-step path exists
-                ok &= ~pad[r + dr, c] & ~pad[r, c + dc]
-            a = np.flatnonzero(ok)
-            src.append(a)
-            dst.append(np.searchsorted(lin, lin[a] + dr * width + dc))
-            rank.append(np.full(len(a), k))
-        s, d, k = (np.concatenate(v) for v in (src, dst, rank))
-        order = np.lexsort((k, s))
-        self.src, self.dst = s[order], d[order]
-        self.deg = np.bincount(self.src, minlength=len(self.rc))
+        n = len(self.rc)
+        index = np.full((h + 2) * width, -1, np.int64 if n >= 2**31 else np.int32)
+        lin = (self.rc[:, 0] + 1) * width + self.rc[:, 1] + 1
+        index[lin] = np.arange(n)
+        nb = np.empty((n, 8), index.dtype)
+        for k, (dr, dc) in enumerate(_OFFSETS):
+            nb[:, k] = index[lin + (dr * width + dc)]
+        ok = nb >= 0
+        for k, (dr, dc) in enumerate(_DIAGONAL, start=len(_STRAIGHT)):
+            # a diagonal link only where no straight two-step path exists
+            ok[:, k] &= ~ok[:, _OFFSETS.index((dr, 0))] & ~ok[:, _OFFSETS.index((0, dc))]
+        self.src, self.k = np.nonzero(ok)  # row-major: by pixel, then by offset
+        self.dst = nb[ok].astype(np.int64)
+        self._arc_at = np.cumsum(ok.ravel()) - 1  # arc id of (pixel, offset) where linked
+        self.deg = np.count_nonzero(ok, axis=1)
         self.ptr = np.concatenate([[0], np.cumsum(self.deg)])
 
     def degree(self, i: int) -> int:
@@ -503,56 +575,47 @@ class _SkeletonGraph:
         n, na = len(self.rc), len(self.src)
         deg, src, dst = self.deg, self.src, self.dst
         node = deg != 2
-        if na == 0:
-            return np.arange(n), np.arange(n + 1)
         # the arc after u->v (v of degree 2): v's other arc
         first = self.ptr[dst]
-        nxt_arc = np.where(dst[first] != src, first, first + 1)
-        succ = np.where(node[dst], -1, nxt_arc)
-        term, dist, loose = _list_rank(succ, np.flatnonzero(succ >= 0))
-        start_pix = np.empty(0, int)
-        if len(loose):  # arcs on closed loops without a node: cut each at its first pixel
-            low = src.copy()
-            hop = succ.copy()
-            live = loose
-            for _ in range(int(na).bit_length() + 1):
-                low[live] = np.minimum(low[live], low[hop[live]])
-                hop[live] = hop[hop[live]]
-            succ = succ.copy()
-            succ[loose[dst[loose] == low[loose]]] = -1
-            term[loose] = np.where(succ[loose] >= 0, succ[loose], loose)
-            dist[loose] = succ[loose] >= 0
-            again = loose[succ[loose] >= 0]
-            term, dist, _ = _list_rank(succ, again, term, dist)
-            start_pix = np.unique(low[loose])
-        rev = _reverse_arcs(src, dst, n)
+        succ = np.where(node[dst], -1, np.where(dst[first] != src, first, first + 1))
+        # from every arc leaving an end or junction along degree-2 pixels to the next one
         starts = np.flatnonzero(node[src])
-        starts = starts[starts < rev[term[starts]]]  # each chain walked from its first end
-        loops = self.ptr[start_pix]
-        # order of the chains: arcs by (pixel, neighbour), a lone pixel at its place,
-        # closed loops last
-        key_of_term = np.full(na, -1)
-        key_of_term[term[starts]] = 2 * starts + 1
-        key_of_term[term[loops]] = 4 * na + 4 + start_pix
+        reached = node.copy()
+        last, steps = _follow(succ, dst, starts, mark=reached)
+        back = self._arc_at[dst[last] * 8 + _OPPOSITE[self.k[last]]]
+        keep = starts < back  # each chain walked from its first end, by its first link
+        starts, steps = starts[keep], steps[keep]
+        # closed loops of degree-2 pixels: from each one's first pixel along its first link
+        loop_pix = loop_steps = np.zeros(0, np.int64)
+        if not reached.all():
+            arcs = np.flatnonzero(~reached[src])
+            low = np.full(na, n)
+            low[arcs] = src[arcs]
+            hop = np.arange(na)
+            hop[arcs] = succ[arcs]
+            for _ in range(len(arcs).bit_length() + 1):  # each loop's smallest pixel
+                low[arcs] = np.minimum(low[arcs], low[hop[arcs]])
+                hop[arcs] = hop[hop[arcs]]
+            loop_pix, count = np.unique(low[arcs], return_counts=True)
+            loop_steps = count // 2  # each link is two arcs
+            succ = succ.copy()
+            succ[arcs[dst[arcs] == low[arcs]]] = -1  # a loop ends back at its first pixel
         lone = np.flatnonzero(deg == 0)
-        arcs = np.flatnonzero(key_of_term[term] >= 0)
-        key = key_of_term[term[arcs]]
-        arcs = arcs[np.lexsort((-dist[arcs], key))]
-        key = key_of_term[term[arcs]]
-        head = np.concatenate([[True], key[1:] != key[:-1]])
-        heads = np.flatnonzero(head)
-        # chain pixels: the first arc's source, then every arc's destination
-        flat_arcs = np.insert(dst[arcs], heads, src[arcs[heads]])
-        sizes = np.diff(np.concatenate([heads, [len(arcs)]])) + 1
-        all_keys = np.concatenate([key[heads], 2 * self.ptr[lone]])
-        all_sizes = np.concatenate([sizes, np.ones(len(lone), int)])
-        flat = np.concatenate([flat_arcs, lone])
-        off0 = np.concatenate([[0], np.cumsum(all_sizes)])
-        perm = np.argsort(all_keys, kind="stable")
-        ln = all_sizes[perm]
-        off = np.concatenate([[0], np.cumsum(ln)])
-        take = np.repeat(off0[:-1][perm] - off[:-1], ln) + np.arange(int(off[-1]))
-        return flat[take], off
+        # the walk's order: arcs by (pixel, offset), a lone pixel in its place, loops last
+        key = np.concatenate([2 * starts + 1, 2 * self.ptr[lone], 4 * na + 4 + loop_pix])
+        size = np.concatenate([steps + 1, np.ones(len(lone), np.int64), loop_steps + 1])
+        order = np.argsort(key, kind="stable")
+        off = np.concatenate([[0], np.cumsum(size[order])])
+        at = np.empty(len(order), np.int64)
+        at[order] = off[:-1]
+        flat = np.empty(int(off[-1]), np.int64)
+        ns, nl = len(starts), len(lone)
+        flat[at[ns : ns + nl]] = lone
+        walk = np.concatenate([starts, self.ptr[loop_pix]])
+        base = np.concatenate([at[:ns], at[ns + nl :]])
+        flat[base] = src[walk]
+        _follow(succ, dst, walk, flat=flat, base=base)
+        return flat, off
 
     def spurs(self, mask: np.ndarray) -> np.ndarray:
         """Pixels (row, col) of end branches no longer than the crack is wide at their
@@ -621,36 +684,52 @@ def _half_width_at(mask: np.ndarray, rc: np.ndarray) -> np.ndarray:
     return out
 
 
-def _list_rank(
+def _follow(
     succ: np.ndarray,
-    active: np.ndarray,
-    term: np.ndarray | None = None,
-    dist: np.ndarray | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Linked lists ``succ`` (-1 at a list's end) ranked by pointer jumping: each item's
-    last item and its distance to it. Items still ``active`` after as many rounds as the
-    lists could be long lie on cycles; they are returned as the third value."""
-    if term is None or dist is None:
-        term = np.arange(len(succ))
-        dist = np.zeros(len(succ), int)
-        term[active] = succ[active]
-        dist[active] = 1
-    act = active[succ[term[active]] >= 0]
-    for _ in range(int(len(succ)).bit_length() + 1):
-        if not len(act):
-            break
-        t = term[act]
-        dist[act] = dist[act] + dist[t]
-        term[act] = term[t]
-        act = act[succ[term[act]] >= 0]
-    return term, dist, act
-
-
-def _reverse_arcs(src: np.ndarray, dst: np.ndarray, n: int) -> np.ndarray:
-    """For each arc u->v, the arc v->u."""
-    key = src * n + dst
-    order = np.argsort(key)
-    return order[np.searchsorted(key[order], dst * n + src)]
+    dst: np.ndarray,
+    starts: np.ndarray,
+    *,
+    mark: np.ndarray | None = None,
+    flat: np.ndarray | None = None,
+    base: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Walk the arcs from each of ``starts`` along ``succ`` (-1: stop) all at once: the
+    last arc of each walk and its number of arcs. Marks each arc's ``dst`` pixel in
+    ``mark``, and writes it to ``flat[base + 1 + step]``, when given."""
+    cur = starts.copy()
+    steps = np.ones(len(starts), np.int64)
+    pos = None if base is None else base + 1
+    alive = np.arange(len(starts))
+    while len(alive) > 16:
+        c = cur[alive]
+        d = dst[c]
+        if mark is not None:
+            mark[d] = True
+        if flat is not None:
+            flat[pos[alive]] = d
+            pos[alive] += 1
+        s = succ[c]
+        go = s >= 0
+        alive = alive[go]
+        cur[alive] = s[go]
+        steps[alive] += 1
+    for i in alive.tolist():  # the last few long walks, one step at a time
+        a = int(cur[i])
+        p = None if pos is None else int(pos[i])
+        while True:
+            d = int(dst[a])
+            if mark is not None:
+                mark[d] = True
+            if flat is not None:
+                flat[p] = d
+                p += 1
+            s = int(succ[a])
+            if s < 0:
+                break
+            a = s
+            steps[i] += 1
+        cur[i] = a
+    return cur, steps
 
 
 # ----- one patch -------------------------------------------------------------------------
