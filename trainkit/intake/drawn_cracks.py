@@ -257,13 +257,12 @@ def _cracks_from_submask(m: np.ndarray) -> DrawnCracks:
     graph = _SkeletonGraph(skel)
     spurs = graph.spurs(m)
     if len(spurs):
-        skel[spurs[:, 0], spurs[:, 1]] = False
-        graph = _SkeletonGraph(skel)
+        graph = graph.without(spurs)
     rc = graph.rc  # (M, 2) skeleton pixels, row and column
     flat, off = graph.chains()
     if not len(flat):
         return DrawnCracks.empty()
-    area = _pixels_per_skeleton_pixel(m, rc, *_chain_ends(graph, flat, off))
+    area = _pixels_per_skeleton_pixel(m, graph, *_chain_ends(graph, flat, off))
     n_chains = len(off) - 1
     sizes = np.diff(off)
     chain_of = np.repeat(np.arange(n_chains), sizes)
@@ -312,21 +311,30 @@ def _chain_ends(
 
 
 def _pixels_per_skeleton_pixel(
-    mask: np.ndarray, rc: np.ndarray, ends: np.ndarray, u: np.ndarray
+    mask: np.ndarray, graph: _SkeletonGraph, ends: np.ndarray, u: np.ndarray
 ) -> np.ndarray:
-    """How many crack pixels have each skeleton pixel as their nearest (ties to one),
-    leaving out the cap beyond a crack's end (pixels more than half a pixel past an end
-    pixel ``ends``, along its chain's direction ``u``): the crack is measured across, not
-    along."""
+    """How many crack pixels have each skeleton pixel as their nearest (ties to one, as
+    scipy's ``cKDTree`` query picks), leaving out the cap beyond a crack's end (pixels
+    more than half a pixel past an end pixel ``ends``, along its chain's direction
+    ``u``): the crack is measured across, not along."""
     from scipy.spatial import cKDTree
 
+    rc = graph.rc
     if not len(rc):
         return np.zeros(0)
-    skel = np.zeros(mask.shape, bool)
-    skel[rc[:, 0], rc[:, 1]] = True
-    crack = np.argwhere(mask & ~skel)  # a skeleton pixel is its own nearest
-    _, nearest = cKDTree(rc).query(crack, k=1)
-    area = np.bincount(nearest, minlength=len(rc)).astype(float) + 1.0
+    crack = np.argwhere(mask)
+    lin = (crack[:, 0] + 1) * graph.width + crack[:, 1] + 1
+    nearest = graph.index[lin].astype(np.int64)  # a skeleton pixel is its own nearest
+    rest = np.flatnonzero(nearest < 0)
+    # one skeleton pixel among the 4 straight neighbours (1 px away; any other is at
+    # least 1.4 px away): that one is the nearest, tie-free
+    nb = np.stack([graph.index[lin[rest] + dr * graph.width + dc] for dr, dc in _STRAIGHT])
+    one = np.count_nonzero(nb >= 0, axis=0) == 1
+    nearest[rest[one]] = nb.max(axis=0)[one]
+    ask = rest[~one]
+    if len(ask):
+        nearest[ask] = cKDTree(rc).query(crack[ask], k=1)[1]
+    area = np.bincount(nearest, minlength=len(rc)).astype(float)
     if len(ends):
         which = np.full(len(rc), -1)
         which[ends] = np.arange(len(ends))
@@ -541,11 +549,28 @@ class _SkeletonGraph:
     def __init__(self, skel: np.ndarray) -> None:
         skel = np.asarray(skel, bool)
         h, w = skel.shape
-        width = w + 2  # padded: neighbours never wrap
-        self.rc = np.argwhere(skel)
-        n = len(self.rc)
-        index = np.full((h + 2) * width, -1, np.int64 if n >= 2**31 else np.int32)
-        lin = (self.rc[:, 0] + 1) * width + self.rc[:, 1] + 1
+        #: row length of the padded image ``index`` (neighbours never wrap)
+        self.width = w + 2
+        #: each padded pixel's skeleton pixel index, -1 off the skeleton
+        self.index = np.full((h + 2) * self.width, -1, np.int64 if h * w >= 2**31 else np.int32)
+        self._link(np.argwhere(skel))
+
+    def without(self, rc: np.ndarray) -> _SkeletonGraph:
+        """The graph of this skeleton less the pixels ``rc`` (row, col); takes over this
+        graph's index image (this graph is not to be used after)."""
+        g = object.__new__(_SkeletonGraph)
+        g.width, g.index = self.width, self.index
+        lin = (rc[:, 0] + 1) * self.width + rc[:, 1] + 1
+        keep = np.ones(len(self.rc), bool)
+        keep[self.index[lin]] = False
+        g.index[lin] = -1
+        g._link(self.rc[keep])
+        return g
+
+    def _link(self, rc: np.ndarray) -> None:
+        self.rc = rc
+        n, width, index = len(rc), self.width, self.index
+        lin = (rc[:, 0] + 1) * width + rc[:, 1] + 1
         index[lin] = np.arange(n)
         nb = np.empty((n, 8), index.dtype)
         for k, (dr, dc) in enumerate(_OFFSETS):
