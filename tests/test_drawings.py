@@ -630,32 +630,39 @@ def test_the_half_width_at_a_junction_is_scipys_distance_transform(seed):
         assert g == local[r - ra + 1, c - ca + 1]
 
 
+@pytest.mark.parametrize("sparse", [1, 10**9])  # skeleton pixels by index image, by search
 @pytest.mark.parametrize("seed", [0, 1, 2])
-def test_crack_pixels_go_to_the_skeleton_pixel_scipys_kdtree_finds(seed):
+def test_crack_pixels_go_to_the_skeleton_pixel_scipys_kdtree_finds(seed, sparse, monkeypatch):
     """Each crack pixel's nearest skeleton pixel (before the end caps are left out, so with
     no chain ends given) is the one scipy's ``cKDTree`` query finds, ties included."""
     from scipy.spatial import cKDTree
     from skimage.morphology import skeletonize
 
+    import trainkit.intake.drawn_cracks as dc
     from trainkit.intake.drawn_cracks import _pixels_per_skeleton_pixel, _SkeletonGraph
 
+    monkeypatch.setattr(dc, "_SPARSE", sparse)
     mask = _scribbles(seed)
     graph = _SkeletonGraph(skeletonize(mask))
-    got = _pixels_per_skeleton_pixel(mask, graph, np.zeros(0, int), np.zeros((0, 2)))
+    assert (graph.index is None) == (sparse == 1)
+    got = _pixels_per_skeleton_pixel(np.argwhere(mask), graph, np.zeros(0, int), np.zeros((0, 2)))
     _, nearest = cKDTree(graph.rc).query(np.argwhere(mask), k=1)
     assert np.array_equal(got, np.bincount(nearest, minlength=len(graph.rc)))
 
 
+@pytest.mark.parametrize("sparse", [1, 10**9])
 @pytest.mark.parametrize("seed", [0, 1, 2])
-def test_the_chains_cover_scikit_images_skeleton_link_by_link(seed):
+def test_the_chains_cover_scikit_images_skeleton_link_by_link(seed, sparse, monkeypatch):
     """The chains hold every pixel of scikit-image's skeleton, and each pair of
     8-neighbours of it (less the diagonals two straight steps make) is one step of exactly
     one chain; inner chain pixels have two links, so chains break only at ends and
     junctions."""
     from skimage.morphology import skeletonize
 
+    import trainkit.intake.drawn_cracks as drawn
     from trainkit.intake.drawn_cracks import _SkeletonGraph
 
+    monkeypatch.setattr(drawn, "_SPARSE", sparse)
     skel = skeletonize(_scribbles(seed))
     graph = _SkeletonGraph(skel)
     flat, off = graph.chains()

@@ -233,28 +233,31 @@ def cracks_from_mask(mask: np.ndarray) -> DrawnCracks:
     Args:
         mask: (H, W) array; non-zero = crack.
     """
-    m = np.asarray(mask) != 0
+    m = np.asarray(mask)
     if m.ndim != 2:
         raise ValueError(f"expected a 2-D mask, got shape {m.shape}")
-    rows = np.flatnonzero(m.any(axis=1))
-    if not len(rows):
+    at = np.flatnonzero(m)  # the crack pixels, row-major: the one pass over the whole mask
+    if not len(at):
         return DrawnCracks.empty()
-    cols = np.flatnonzero(m.any(axis=0))
+    rows, cols = np.divmod(at, m.shape[1])
     r0, r1 = int(rows[0]), int(rows[-1]) + 1
-    c0, c1 = int(cols[0]), int(cols[-1]) + 1
+    c0, c1 = int(cols.min()), int(cols.max()) + 1
     # one pixel of background around the cracks' bounding box: thinning sees the edge
+    crack = np.stack([rows - (r0 - 1), cols - (c0 - 1)], axis=1)
     sub = np.zeros((r1 - r0 + 2, c1 - c0 + 2), bool)
-    sub[1:-1, 1:-1] = m[r0:r1, c0:c1]
-    out = _cracks_from_submask(sub)
+    sub[crack[:, 0], crack[:, 1]] = True
+    out = _cracks_from_submask(sub, crack)
     offset = np.array([c0 - 1.0, r0 - 1.0])
     return DrawnCracks(out.p0 + offset, out.p1 + offset, out.w0, out.w1, out.halo)
 
 
-def _cracks_from_submask(m: np.ndarray) -> DrawnCracks:
+def _cracks_from_submask(m: np.ndarray, crack: np.ndarray) -> DrawnCracks:
+    """:func:`cracks_from_mask` of a mask with a background border; ``crack`` its
+    non-zero pixels (row, col), row-major."""
     from skimage.morphology import skeletonize
 
     skel = skeletonize(m)
-    graph = _SkeletonGraph(skel)
+    graph = _SkeletonGraph(skel, crack)
     spurs = graph.spurs(m)
     if len(spurs):
         graph = graph.without(spurs)
@@ -262,7 +265,7 @@ def _cracks_from_submask(m: np.ndarray) -> DrawnCracks:
     flat, off = graph.chains()
     if not len(flat):
         return DrawnCracks.empty()
-    area = _pixels_per_skeleton_pixel(m, graph, *_chain_ends(graph, flat, off))
+    area = _pixels_per_skeleton_pixel(crack, graph, *_chain_ends(graph, flat, off))
     n_chains = len(off) - 1
     sizes = np.diff(off)
     chain_of = np.repeat(np.arange(n_chains), sizes)
@@ -311,7 +314,7 @@ def _chain_ends(
 
 
 def _pixels_per_skeleton_pixel(
-    mask: np.ndarray, graph: _SkeletonGraph, ends: np.ndarray, u: np.ndarray
+    crack: np.ndarray, graph: _SkeletonGraph, ends: np.ndarray, u: np.ndarray
 ) -> np.ndarray:
     """How many crack pixels have each skeleton pixel as their nearest (ties to one, as
     scipy's ``cKDTree`` query picks), leaving out the cap beyond a crack's end (pixels
@@ -322,13 +325,12 @@ def _pixels_per_skeleton_pixel(
     rc = graph.rc
     if not len(rc):
         return np.zeros(0)
-    crack = np.argwhere(mask)
     lin = (crack[:, 0] + 1) * graph.width + crack[:, 1] + 1
-    nearest = graph.index[lin].astype(np.int64)  # a skeleton pixel is its own nearest
+    nearest = graph.lookup(lin).astype(np.int64)  # a skeleton pixel is its own nearest
     rest = np.flatnonzero(nearest < 0)
     # one skeleton pixel among the 4 straight neighbours (1 px away; any other is at
     # least 1.4 px away): that one is the nearest, tie-free
-    nb = np.stack([graph.index[lin[rest] + dr * graph.width + dc] for dr, dc in _STRAIGHT])
+    nb = np.stack([graph.lookup(lin[rest] + dr * graph.width + dc) for dr, dc in _STRAIGHT])
     one = np.count_nonzero(nb >= 0, axis=0) == 1
     nearest[rest[one]] = nb.max(axis=0)[one]
     ask = rest[~one]
@@ -535,6 +537,9 @@ _OFFSETS = _STRAIGHT + _DIAGONAL
 _OPPOSITE = np.array([_OFFSETS.index((-dr, -dc)) for dr, dc in _OFFSETS])
 #: How far (px) around a junction the crack's width is looked for when judging a spur.
 _SPUR_WINDOW = 16
+#: A skeleton with fewer pixels than 1 in this many of its image is numbered by sorted
+#: pixel numbers rather than an index image.
+_SPARSE = 64
 
 
 class _SkeletonGraph:
@@ -546,14 +551,29 @@ class _SkeletonGraph:
     pixel's link count and ``ptr`` where its arcs start.
     """
 
-    def __init__(self, skel: np.ndarray) -> None:
+    def __init__(self, skel: np.ndarray, within: np.ndarray | None = None) -> None:
+        """``within``: pixels (row, col), row-major, that hold every skeleton pixel (the
+        crack's); saves a pass over the whole image."""
         skel = np.asarray(skel, bool)
         h, w = skel.shape
-        #: row length of the padded image ``index`` (neighbours never wrap)
+        #: row length of the padded image the pixels are numbered in (neighbours never wrap)
         self.width = w + 2
-        #: each padded pixel's skeleton pixel index, -1 off the skeleton
-        self.index = np.full((h + 2) * self.width, -1, np.int64 if h * w >= 2**31 else np.int32)
-        self._link(np.argwhere(skel))
+        rc = np.argwhere(skel) if within is None else within[skel[within[:, 0], within[:, 1]]]
+        #: each padded pixel's skeleton pixel index, -1 off the skeleton; None where the
+        #: skeleton is sparse (then looked up in the sorted pixel numbers)
+        self.index = None
+        if len(rc) * _SPARSE > (h + 2) * self.width:
+            self.index = np.full((h + 2) * self.width, -1, np.int64 if h * w >= 2**31 else np.int32)
+        self._link(rc)
+
+    def lookup(self, lin: np.ndarray) -> np.ndarray:
+        """The skeleton pixel index of padded pixel numbers ``lin``; -1 off the skeleton."""
+        if self.index is not None:
+            return self.index[lin]
+        at = np.minimum(np.searchsorted(self.lin, lin), max(len(self.lin) - 1, 0))
+        if not len(self.lin):
+            return np.full(len(lin), -1)
+        return np.where(self.lin[at] == lin, at, -1)
 
     def without(self, rc: np.ndarray) -> _SkeletonGraph:
         """The graph of this skeleton less the pixels ``rc`` (row, col); takes over this
@@ -562,19 +582,21 @@ class _SkeletonGraph:
         g.width, g.index = self.width, self.index
         lin = (rc[:, 0] + 1) * self.width + rc[:, 1] + 1
         keep = np.ones(len(self.rc), bool)
-        keep[self.index[lin]] = False
-        g.index[lin] = -1
+        keep[self.lookup(lin)] = False
+        if g.index is not None:
+            g.index[lin] = -1
         g._link(self.rc[keep])
         return g
 
     def _link(self, rc: np.ndarray) -> None:
         self.rc = rc
-        n, width, index = len(rc), self.width, self.index
-        lin = (rc[:, 0] + 1) * width + rc[:, 1] + 1
-        index[lin] = np.arange(n)
-        nb = np.empty((n, 8), index.dtype)
+        n, width = len(rc), self.width
+        self.lin = lin = (rc[:, 0] + 1) * width + rc[:, 1] + 1  # ascending
+        if self.index is not None:
+            self.index[lin] = np.arange(n)
+        nb = np.empty((n, 8), np.int64)
         for k, (dr, dc) in enumerate(_OFFSETS):
-            nb[:, k] = index[lin + (dr * width + dc)]
+            nb[:, k] = self.lookup(lin + (dr * width + dc))
         ok = nb >= 0
         for k, (dr, dc) in enumerate(_DIAGONAL, start=len(_STRAIGHT)):
             # a diagonal link only where no straight two-step path exists
@@ -694,16 +716,17 @@ def _half_width_at(mask: np.ndarray, rc: np.ndarray) -> np.ndarray:
     counting as background."""
     w = _SPUR_WINDOW
     side = 2 * w + 3
-    pad = np.pad(mask, w + 1)
+    h, wd = mask.shape
     out = np.empty(len(rc))
     off = np.arange(side) - (w + 1)
     d2 = off[:, None] ** 2 + off[None, :] ** 2
     ring = np.zeros((side, side), bool)
     ring[1:-1, 1:-1] = True
     for s in range(0, len(rc), 512):
-        r, c = rc[s : s + 512, 0], rc[s : s + 512, 1]
-        win = pad[r[:, None, None] + np.arange(side)[None, :, None],
-                  c[:, None, None] + np.arange(side)[None, None, :]]  # fmt: skip
+        r = rc[s : s + 512, 0, None] + off  # (k, side) rows and columns of each window
+        c = rc[s : s + 512, 1, None] + off
+        win = mask[np.clip(r, 0, h - 1)[:, :, None], np.clip(c, 0, wd - 1)[:, None, :]]
+        win &= ((r >= 0) & (r < h))[:, :, None] & ((c >= 0) & (c < wd))[:, None, :]
         win &= ring
         out[s : s + 512] = np.sqrt(np.where(win, np.iinfo(np.int64).max, d2).min(axis=(1, 2)))
     return out
