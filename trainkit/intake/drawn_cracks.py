@@ -607,9 +607,6 @@ class _SkeletonGraph:
         self.deg = np.count_nonzero(ok, axis=1)
         self.ptr = np.concatenate([[0], np.cumsum(self.deg)])
 
-    def degree(self, i: int) -> int:
-        return int(self.deg[i])
-
     def chains(self) -> tuple[np.ndarray, np.ndarray]:
         """Every pixel path between ends and junctions (junctions shared by their chains),
         closed loops, and lone pixels, each link in one chain, as pixel indices ``flat``
