@@ -3,7 +3,8 @@
 Outside references, named beside each check: lines and bands drawn by OpenCV (``cv2.line``,
 ``cv2.fillConvexPoly``) at angles and widths known by construction; scikit-image's
 ``skeletonize`` for the centreline; scipy's ``distance_transform_edt`` for a band's
-width; hashlib for the drawing's SHA-256; hand-worked polyline lengths.
+width and a junction's half width; scipy's ``cKDTree`` for each crack pixel's nearest
+skeleton pixel; hashlib for the drawing's SHA-256; hand-worked polyline lengths.
 """
 
 from __future__ import annotations
@@ -595,3 +596,142 @@ def test_tile_imports_masks_and_says_what_it_left_out(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert err[-1].startswith("trainkit: mask ") and "100 x 100 pixels" in err[-1]
     assert "Traceback" not in "\n".join(err) and _counts(ws) == before
+
+
+# ----- the vectorised mask reading, against the plain computations it replaces ---------
+
+
+def _scribbles(seed: int, size: int = 160) -> np.ndarray:
+    """Lines, rings and specks drawn by OpenCV at random: ends, junctions, closed loops."""
+    rng = np.random.default_rng(seed)
+    mask = np.zeros((size, size), np.uint8)
+    for _ in range(4):
+        pts = rng.integers(5, size - 5, (int(rng.integers(2, 5)), 2)).astype(np.int32)
+        cv2.polylines(mask, [pts], bool(rng.integers(0, 2)), 1, int(rng.integers(1, 8)))
+    cv2.circle(mask, (size // 2, size // 2), int(rng.integers(10, 40)), 1, 1)
+    mask[rng.integers(2, size - 2, 6), rng.integers(2, size - 2, 6)] = 1
+    return np.pad(mask > 0, 1)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_the_half_width_at_a_junction_is_scipys_distance_transform(seed):
+    """The crack's half width at a pixel, read from one window around it, equals scipy's
+    ``distance_transform_edt`` of that window padded with background (16 px each way)."""
+    from scipy import ndimage
+
+    from trainkit.intake.drawn_cracks import _half_width_at
+
+    mask = _scribbles(seed)
+    pix = np.argwhere(mask)[:: max(1, int(mask.sum()) // 60)]
+    got = _half_width_at(mask, pix)
+    for (r, c), g in zip(pix, got, strict=True):
+        ra, ca = max(0, r - 16), max(0, c - 16)
+        local = ndimage.distance_transform_edt(np.pad(mask[ra : r + 17, ca : c + 17], 1))
+        assert g == local[r - ra + 1, c - ca + 1]
+
+
+@pytest.mark.parametrize("sparse", [1, 10**9])  # skeleton pixels by index image, by search
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_crack_pixels_go_to_the_skeleton_pixel_scipys_kdtree_finds(seed, sparse, monkeypatch):
+    """Each crack pixel's nearest skeleton pixel (before the end caps are left out, so with
+    no chain ends given) is the one scipy's ``cKDTree`` query finds, ties included."""
+    from scipy.spatial import cKDTree
+    from skimage.morphology import skeletonize
+
+    import trainkit.intake.drawn_cracks as dc
+    from trainkit.intake.drawn_cracks import _pixels_per_skeleton_pixel, _SkeletonGraph
+
+    monkeypatch.setattr(dc, "_SPARSE", sparse)
+    mask = _scribbles(seed)
+    graph = _SkeletonGraph(skeletonize(mask))
+    assert (graph.index is None) == (sparse == 1)
+    got = _pixels_per_skeleton_pixel(np.argwhere(mask), graph, np.zeros(0, int), np.zeros((0, 2)))
+    _, nearest = cKDTree(graph.rc).query(np.argwhere(mask), k=1)
+    assert np.array_equal(got, np.bincount(nearest, minlength=len(graph.rc)))
+
+
+@pytest.mark.parametrize("sparse", [1, 10**9])
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_the_chains_cover_scikit_images_skeleton_link_by_link(seed, sparse, monkeypatch):
+    """The chains hold every pixel of scikit-image's skeleton, and each pair of
+    8-neighbours of it (less the diagonals two straight steps make) is one step of exactly
+    one chain; inner chain pixels have two links, so chains break only at ends and
+    junctions."""
+    from skimage.morphology import skeletonize
+
+    import trainkit.intake.drawn_cracks as drawn
+    from trainkit.intake.drawn_cracks import _SkeletonGraph
+
+    monkeypatch.setattr(drawn, "_SPARSE", sparse)
+    skel = skeletonize(_scribbles(seed))
+    graph = _SkeletonGraph(skel)
+    flat, off = graph.chains()
+    px = {tuple(p) for p in np.argwhere(skel)}
+    assert {tuple(graph.rc[i]) for i in flat} == px
+    links = set()
+    for r, c in px:
+        for dr in (-1, 0, 1):
+            for dc in (-1, 0, 1):
+                q = (r + dr, c + dc)
+                if (dr or dc) and q in px and not (dr and dc and ({(r + dr, c), (r, c + dc)} & px)):
+                    links.add(frozenset([(r, c), q]))
+    steps = [
+        frozenset([tuple(graph.rc[a]), tuple(graph.rc[b])])
+        for lo, hi in zip(off[:-1], off[1:], strict=True)
+        for a, b in zip(flat[lo : hi - 1], flat[lo + 1 : hi], strict=True)
+    ]
+    assert len(steps) == len(set(steps)) and set(steps) == links
+    for lo, hi in zip(off[:-1], off[1:], strict=True):
+        inner = flat[lo + 1 : hi - 1]
+        assert np.all(graph.deg[inner] == 2)
+
+
+def test_near_picks_what_a_plain_comparison_picks():
+    """With enough segments to file them by cell, ``near`` returns, in their order, the
+    segments whose reach (bounding box grown by the halo) meets the box: the plain numpy
+    comparison over all of them, on boxes inside, across and outside the photo."""
+    from trainkit.intake.drawn_cracks import _NEAR_ALL, DrawnCracks
+
+    rng = np.random.default_rng(5)
+    n = _NEAR_ALL * 3
+    p0 = rng.uniform(-50, 1050, (n, 2))
+    p1 = p0 + rng.uniform(-20, 20, (n, 2))
+    halo = rng.uniform(1, 30, n)
+    cracks = DrawnCracks(p0, p1, halo, halo, halo)
+    lo = np.minimum(p0, p1) - halo[:, None]
+    hi = np.maximum(p0, p1) + halo[:, None]
+    for x0, y0, w, h in rng.uniform([-300, -300, 1, 1], [1200, 1200, 500, 500], (60, 4)):
+        box = (x0, y0, x0 + w, y0 + h)
+        want = (
+            (hi[:, 0] >= box[0])
+            & (lo[:, 0] <= box[2])
+            & (hi[:, 1] >= box[1])
+            & (lo[:, 1] <= box[3])
+        )
+        assert np.array_equal(cracks.near(box).p0, p0[want])
+
+
+def test_all_chains_simplified_at_once_keep_what_each_alone_keeps():
+    """Ramer-Douglas-Peucker over many chains at once keeps, chain by chain, the vertices
+    the one-chain ``simplify_polyline`` keeps (itself checked on hand-worked lengths
+    above), on random walks, straight runs and closed loops."""
+    from trainkit.intake.drawn_cracks import SIMPLIFY_PX, _simplify_chains, simplify_polyline
+
+    rng = np.random.default_rng(9)
+    chains = [
+        np.cumsum(rng.integers(-1, 2, (int(k), 2)), axis=0) + 0.5 for k in rng.integers(1, 90, 40)
+    ]
+    chains.append(np.stack([np.arange(30.0), np.full(30, 2.5)], axis=1))
+    ring = np.stack(
+        [np.cos(np.linspace(0, 2 * np.pi, 41)), np.sin(np.linspace(0, 2 * np.pi, 41))], 1
+    )
+    chains.append(np.round(ring * 15) + 0.5)
+    off = np.concatenate([[0], np.cumsum([len(c) for c in chains])])
+    kept = _simplify_chains(np.concatenate(chains), off, SIMPLIFY_PX)
+    want = np.concatenate(
+        [
+            np.asarray(simplify_polyline(c, SIMPLIFY_PX), int) + o
+            for c, o in zip(chains, off, strict=False)
+        ]
+    )
+    assert np.array_equal(kept, want)
