@@ -6,7 +6,8 @@ into two halves of equal photo count (whole photos, as the split does): the thre
 chosen on one half and the recall it reaches is measured on the other. Two rules:
 
 - ``promise``: :func:`trainkit.metrics.threshold_with_recall_promise` (recall >= target
-  with the stated confidence given the half's crack count), what ``evaluate`` uses now;
+  with the stated confidence given the half's crack count, counted for the photos they
+  cluster in), what ``evaluate`` uses now;
 - ``edge``: :func:`trainkit.metrics.threshold_for_recall` (the highest threshold reaching
   the target on the half's own cracks), what ``evaluate`` used before.
 
@@ -59,7 +60,7 @@ def resplits(data: dict, *, draws: int, target: float, confidence: float, seed: 
 
     rng = np.random.default_rng(seed)
     names, idx = np.unique(data["photos"], return_inverse=True)
-    y, p = data["crack"], data["score"]
+    y, p, photos = data["crack"], data["score"], data["photos"]
     out: dict[str, dict[str, list]] = {
         r: {"kept": [], "recall": [], "far": [], "t": [], "promised": []}
         for r in ("promise", "edge")
@@ -70,7 +71,7 @@ def resplits(data: dict, *, draws: int, target: float, confidence: float, seed: 
         if not y[cal].any() or not y[new].any():
             continue
         pr = M.threshold_with_recall_promise(
-            y[cal], p[cal], target_recall=target, confidence=confidence
+            y[cal], p[cal], target_recall=target, confidence=confidence, photos=photos[cal]
         )
         edge = M.threshold_for_recall(y[cal], p[cal], target_recall=target)
         for rule, t, promised in (("promise", pr.threshold, pr.kept), ("edge", edge, False)):

@@ -364,21 +364,30 @@ def test_the_threshold_carries_a_recall_promise_recomputed_with_scipy(evaluated)
 
     from trainkit.core.contract import screening_probability
     from trainkit.judging.evaluation import EvaluationOptions, _run_experiment
+    from trainkit.metrics import photo_design_effect
 
     a, _, res = evaluated
     s, pr = res["screening"], res["screening"]["promise"]
     run = _run_experiment(a, EvaluationOptions(), None)
-    crack = np.sort(screening_probability(run.val.probs)[run.val.labels != 0])
+    is_crack = run.val.labels != 0
+    p = screening_probability(run.val.probs)[is_crack]
+    crack = np.sort(p)
     n, target, conf = crack.size, s["target_recall"], pr["confidence"]
     assert pr["cracks"] == n and pr["target"] == target and conf == 0.9
-    ok = [k for k in range(1, n + 1) if stats.beta.cdf(1 - target, k, n + 1 - k) >= conf]
+    # the cracks counted for their photos (checked against scipy's ANOVA in
+    # test_threshold_promise), then the order statistic of the beta law on those
+    deff, _ = photo_design_effect(p, np.asarray(run.val.photos)[is_crack])
+    m = max(1, int(np.floor(n / deff + 1e-9)))
+    assert pr["effective_cracks"] == pytest.approx(n / deff, abs=1e-3)
+    ok = [k for k in range(1, m + 1) if stats.beta.cdf(1 - target, k, m + 1 - k) >= conf]
     assert pr["kept"] == bool(ok)
-    k = max(ok) if ok else 1
+    k = max(1, int(np.floor(max(ok) * n / m + 1e-9))) if ok else 1
     assert pr["below"] == k and pr["threshold"] == pytest.approx(crack[k - 1])
     assert s["threshold"] == pytest.approx(pr["threshold"]) == pr["operating_threshold"]
     html = (a / "evaluation" / "report.html").read_text(encoding="utf-8")
     assert ("promises recall" in html) if ok else ("NO RECALL PROMISE" in html)
     assert ("promised with confidence 0.9" in s["threshold_source"]) == bool(ok)
+    assert pr["photo_correlation"] >= 0
 
 
 def test_two_evaluations_of_one_experiment_at_once_both_finish_whole(evaluated, tmp_path):

@@ -94,3 +94,45 @@ def test_ties_and_refusals():
         threshold_with_recall_promise(y, [0.1] * 4, target_recall=1.0, confidence=0.9)
     with pytest.raises(ValueError, match="confidence"):
         threshold_with_recall_promise(y, [0.1] * 4, target_recall=0.9, confidence=1.0)
+
+
+def test_photo_design_effect_against_scipys_one_way_anova():
+    """rho from the one-way ANOVA of the ranks: with F = MSB / MSW from
+    ``scipy.stats.f_oneway``, rho = (F - 1) / (F + m0 - 1) (Donner 1986), and the design
+    effect 1 + (m_bar - 1) rho (Kish 1965), m_bar = sum m_j^2 / N."""
+    from trainkit.metrics import photo_design_effect
+
+    rng = np.random.default_rng(5)
+    sizes = rng.integers(2, 12, 30)
+    photos = np.repeat(np.arange(30), sizes)
+    level = rng.normal(0, 1, 30)[photos]  # photos differ: a real intra-photo correlation
+    scores = 1 / (1 + np.exp(-(level + rng.normal(0, 1, photos.size))))
+    deff, rho = photo_design_effect(scores, photos)
+    ranks = stats.rankdata(scores)
+    f = stats.f_oneway(*[ranks[photos == j] for j in range(30)]).statistic
+    n = photos.size
+    m0 = (n - np.sum(sizes**2) / n) / 29
+    assert rho == pytest.approx((f - 1) / (f + m0 - 1))
+    assert 0.2 < rho < 0.8
+    assert deff == pytest.approx(1 + (np.sum(sizes**2) / n - 1) * rho)
+    # one crack per photo: no clustering, no design effect
+    assert photo_design_effect(scores, np.arange(n)) == (1.0, 0.0)
+
+
+def test_cracks_clustered_in_photos_count_for_fewer():
+    """The same 300 crack scores: spread one per photo the promise counts 300 cracks;
+    clustered 30 to a photo with photo-level differences it counts far fewer and sets a
+    lower (more cautious) threshold; without photos given, the plain rule."""
+    rng = np.random.default_rng(8)
+    photos = np.repeat(np.arange(10), 30)
+    s = 1 / (1 + np.exp(-(rng.normal(2, 1.5, 10)[photos] + rng.normal(0, 0.5, 300))))
+    y = np.ones(300, bool)
+    plain = threshold_with_recall_promise(y, s, target_recall=0.95, confidence=0.9)
+    alone = threshold_with_recall_promise(
+        y, s, target_recall=0.95, confidence=0.9, photos=np.arange(300)
+    )
+    grouped = threshold_with_recall_promise(y, s, target_recall=0.95, confidence=0.9, photos=photos)
+    assert alone.threshold == plain.threshold and alone.effective_cracks == 300
+    assert grouped.photo_correlation > 0.5 and grouped.effective_cracks < 30
+    assert not grouped.kept and grouped.threshold == s.min()  # too few: the lowest score
+    assert grouped.threshold <= plain.threshold

@@ -46,6 +46,8 @@ key                                    meaning
                                        ``achieved_confidence``, ``recall_bound``,
                                        ``validation_recall``, ``kept`` (false: too few
                                        cracks, no promise), ``cracks_needed``,
+                                       ``effective_cracks`` and ``photo_correlation`` (the
+                                       cracks counted for the photos they cluster in),
                                        ``operating_threshold``; ``null`` under a budget
 ``screening.at_default_threshold``     the counts and rates at 0.5, to show what the target
                                        recall costs in false alarms

@@ -409,9 +409,9 @@ def _threshold(metrics: MetricsRecord | None, export: ExportRecord) -> list[str]
         lines.append(
             f"Promise: on photos like the validation photos, recall >= {_f(pr.get('target'))} "
             f"with confidence {_f(pr.get('confidence'))} (set on {pr.get('cracks')} validation "
-            "cracks by a distribution-free order-statistic bound that counts them as "
-            "independent; cracks of one photo resemble each other, so it is weaker than stated "
-            "when few photos hold them)."
+            f"cracks, counted as {_f(pr.get('effective_cracks'), 0)} independent ones for the "
+            "photos they cluster in, by an order-statistic bound; the count for photos is an "
+            "approximation)."
         )
     elif pr:
         lines.append(

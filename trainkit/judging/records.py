@@ -155,6 +155,8 @@ class PromiseRecord(TypedDict, total=False):
     validation_recall: float
     kept: bool
     cracks_needed: int
+    effective_cracks: float
+    photo_correlation: float
     operating_threshold: float
 
 

@@ -102,7 +102,11 @@ def choose_threshold(
         return 0.5, "default 0.5 (validation has no clean patches)", None
     if val is not None and len(val) and np.any(val.is_crack):
         pr = M.threshold_with_recall_promise(
-            val.is_crack, val.screening, target_recall=target_recall, confidence=confidence
+            val.is_crack,
+            val.screening,
+            target_recall=target_recall,
+            confidence=confidence,
+            photos=np.asarray(val.photos),
         )
         return pr.threshold, promise_words(pr.as_dict()), pr.as_dict()
     return 0.5, "default 0.5 (validation has no crack patches)", None
@@ -111,15 +115,18 @@ def choose_threshold(
 def promise_words(pr: dict) -> str:
     """How a threshold with a recall promise was chosen, in one sentence's words."""
     n, k = pr["cracks"], pr["below"]
+    n_eff = pr.get("effective_cracks", n)
+    counted = "" if n_eff == n else f", worth {n_eff:.0f} independent ones for their photos"
     if pr["kept"]:
         return (
             f"validation subset: recall >= {pr['target']:g} promised with confidence "
-            f"{pr['confidence']:g} on photos like the validation photos (the {lowest_rank(k)} of {n} "
-            "validation crack scores; order-statistic bound)"
+            f"{pr['confidence']:g} on photos like the validation photos (the {lowest_rank(k)} "
+            f"of {n} validation crack scores{counted}; order-statistic bound)"
         )
     return (
-        f"validation subset: only {n} validation cracks, fewer than the {pr['cracks_needed']} "
-        f"a promise of recall >= {pr['target']:g} with confidence {pr['confidence']:g} needs; "
+        f"validation subset: only {n} validation cracks{counted}, fewer than the "
+        f"{pr['cracks_needed']} a promise of recall >= {pr['target']:g} with confidence "
+        f"{pr['confidence']:g} needs; "
         f"the lowest crack score is used, which keeps that recall with confidence "
         f"{pr['achieved_confidence']:.2f} only (NO PROMISE: label more validation cracks)"
     )

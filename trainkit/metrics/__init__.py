@@ -24,6 +24,7 @@ from trainkit.metrics.classification import (
 from trainkit.metrics.screening import (
     RecallPromise,
     cracks_needed_for_promise,
+    photo_design_effect,
     recall_at_false_alarm,
     screening_scores,
     threshold_for_false_alarms,
@@ -45,6 +46,7 @@ __all__ = [
     "fit_temperature",
     "mcnemar_test",
     "negative_log_likelihood",
+    "photo_design_effect",
     "weighted_thresholds",
     "per_class_report",
     "recall_at_false_alarm",

@@ -126,7 +126,12 @@ class RecallPromise:
         recall_bound: recall at the threshold is at least this with ``confidence``.
         validation_recall: the share of the validation cracks the threshold flags.
         kept: whether the promise is made; False when n is too few for it (``cracks_needed``).
-        cracks_needed: the fewest validation cracks for which this promise can be made.
+        cracks_needed: the fewest validation cracks for which this promise can be made
+            (independent cracks; with photos given, effective ones).
+        effective_cracks: n divided by the design effect of the cracks' photos (n when no
+            photos are given).
+        photo_correlation: the intra-photo correlation of the crack scores' ranks behind
+            that design effect (0 when no photos are given).
     """
 
     threshold: float
@@ -139,6 +144,8 @@ class RecallPromise:
     validation_recall: float
     kept: bool
     cracks_needed: int
+    effective_cracks: float = math.nan
+    photo_correlation: float = 0.0
 
     def as_dict(self) -> dict[str, Any]:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
@@ -169,8 +176,45 @@ def _confidence(confidence: float) -> float:
     return c
 
 
+def photo_design_effect(scores: ArrayLike, photos: ArrayLike) -> tuple[float, float]:
+    """Kish's design effect of cracks clustered in photos, and the correlation behind it.
+
+    The intra-photo correlation rho of the crack scores' ranks is the one-way ANOVA
+    estimator (Donner 1986; MSB and MSW as in ``scipy.stats.f_oneway``:
+    rho = (MSB - MSW) / (MSB + (m0 - 1) MSW), m0 = (N - sum m_j^2 / N) / (J - 1)),
+    clipped to [0, 1]; the design effect is 1 + (m_bar - 1) rho with m_bar = sum m_j^2 / N
+    the size-weighted mean number of cracks per photo (Kish 1965). Cracks of one photo
+    that score alike (a hard photo whose cracks all score low) make it large.
+
+    Returns:
+        (design effect >= 1, rho); (1, 0) with fewer than two photos or no photo holding
+        two cracks.
+    """
+    from scipy import stats
+
+    r = stats.rankdata(np.asarray(scores, dtype=float))
+    _, inv = np.unique(np.asarray(photos), return_inverse=True)
+    m = np.bincount(inv)
+    n, j = r.size, m.size
+    if j < 2 or n <= j:
+        return 1.0, 0.0
+    means = np.bincount(inv, weights=r) / m
+    msb = float(np.sum(m * (means - r.mean()) ** 2)) / (j - 1)
+    msw = float(np.sum((r - means[inv]) ** 2)) / (n - j)
+    m0 = (n - float(np.sum(m**2)) / n) / (j - 1)
+    den = msb + (m0 - 1.0) * msw
+    rho = min(max((msb - msw) / den, 0.0), 1.0) if den > 0 else 0.0
+    m_bar = float(np.sum(m**2)) / n
+    return 1.0 + (m_bar - 1.0) * rho, rho
+
+
 def threshold_with_recall_promise(
-    y_true_crack: ArrayLike, p_crack: ArrayLike, *, target_recall: float, confidence: float
+    y_true_crack: ArrayLike,
+    p_crack: ArrayLike,
+    *,
+    target_recall: float,
+    confidence: float,
+    photos: ArrayLike | None = None,
 ) -> RecallPromise:
     """The highest threshold at which recall >= ``target_recall`` holds with ``confidence``.
 
@@ -188,9 +232,13 @@ def threshold_with_recall_promise(
     set of n cracks can support), ``kept`` is False and ``achieved_confidence`` says how
     much confidence n cracks give.
 
-    The promise assumes new cracks are exchangeable with the validation cracks: it holds
-    for photos like the validation photos, and cracks of one photo resemble each other,
-    so a validation set of few photos promises less than its crack count says.
+    The exact bound assumes new cracks are exchangeable with the validation cracks, one by
+    one. Cracks of one photo resemble each other, so with ``photos`` (each patch's photo)
+    the rule counts n_eff = n / design effect cracks (:func:`photo_design_effect`): it
+    takes the largest k_eff for n_eff cracks and the threshold at the same share of the n
+    scores (k = floor(k_eff n / n_eff), at least 1). That adjustment is the survey
+    practice for clustered samples, an approximation, not part of the exact bound. Either
+    way the promise is for photos like the validation photos.
 
     Raises:
         MetricsError: no crack patch.
@@ -211,27 +259,40 @@ def threshold_with_recall_promise(
             "expected at least one crack patch (y_true_crack true) to set a recall threshold, "
             f"got 0 of {y.size}"
         )
+    deff, rho = 1.0, 0.0
+    if photos is not None:
+        ph = np.asarray(photos)
+        if ph.shape != p.shape:
+            raise ValueError(f"expected {p.size} photos, one per patch, got shape {ph.shape}")
+        deff, rho = photo_design_effect(p[y], ph[y])
+    n_eff = n / deff
+    m = max(1, math.floor(n_eff + 1e-9))  # the whole effective cracks the bound counts
     miss = 1.0 - target
-    ks = np.arange(1, n + 1)
-    # P(Binomial(n, miss) >= k) = P(Beta(k, n + 1 - k) <= miss), for every k at once
-    held = stats.binom.sf(ks - 1, n, miss)
+    ks = np.arange(1, m + 1)
+    # P(Binomial(m, miss) >= k) = P(Beta(k, m + 1 - k) <= miss), for every k at once
+    held = stats.binom.sf(ks - 1, m, miss)
     ok = np.flatnonzero(held >= conf)
     kept = ok.size > 0
-    k = int(ks[ok[-1]]) if kept else 1
+    k_eff = int(ks[ok[-1]]) if kept else 1
+    # the same share of the n scores; without a promise, the lowest score (k = 1)
+    k = max(1, min(n, math.floor(k_eff * n / m + 1e-9))) if kept else 1
     scores = np.sort(p[y])
     t = float(scores[k - 1])
-    bound = 1.0 - float(stats.beta.ppf(conf, k, n + 1 - k))
+    bound = 1.0 - float(stats.beta.ppf(conf, k_eff, m + 1 - k_eff))
+    needed = cracks_needed_for_promise(target, conf)
     return RecallPromise(
         threshold=t,
         target=target,
         confidence=conf,
         cracks=n,
         below=k,
-        achieved_confidence=float(held[k - 1]),
+        achieved_confidence=float(held[k_eff - 1]),
         recall_bound=bound,
         validation_recall=float(np.mean(p[y] >= t)),
         kept=kept,
-        cracks_needed=cracks_needed_for_promise(target, conf),
+        cracks_needed=needed if deff == 1.0 else math.ceil(needed * deff),
+        effective_cracks=round(n_eff, 3),
+        photo_correlation=round(rho, 4),
     )
 
 
