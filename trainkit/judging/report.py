@@ -310,16 +310,17 @@ def _promise(R: dict) -> str:
             (
                 f"The threshold promises recall &ge; {pr['target']:g} with confidence "
                 f"{pr['confidence']:g}: it is the score of the {lowest_rank(pr['below'])} of "
-                f"{pr['cracks']} validation cracks, the highest a distribution-free order-statistic "
-                f"bound allows (at confidence {pr['confidence']:g} recall is at least "
-                f"{pr['recall_bound']:.3f})."
+                f"{pr['cracks']} validation cracks (counted as {_eff(pr)} independent ones for "
+                "the photos they cluster in), the highest an order-statistic bound allows (at "
+                f"confidence {pr['confidence']:g} recall is at least {pr['recall_bound']:.3f})."
             ),
         )
     else:
         cls, head = (
             "fail",
             (
-                f"NO RECALL PROMISE: validation holds {pr['cracks']} cracks, fewer than the "
+                f"NO RECALL PROMISE: validation holds {pr['cracks']} cracks (worth {_eff(pr)} "
+                "independent ones for the photos they cluster in), fewer than the "
                 f"{pr['cracks_needed']} a promise of recall &ge; {pr['target']:g} with confidence "
                 f"{pr['confidence']:g} needs. The threshold is the lowest validation crack's score, "
                 f"which keeps the target with confidence {pr['achieved_confidence']:.2f} only; "
@@ -328,10 +329,16 @@ def _promise(R: dict) -> str:
         )
     return (
         f'<p class="verdict {cls}">{head}</p><p>{here} The promise holds for photos like '
-        "the validation photos, treating their cracks as independent draws; cracks of one "
-        "photo resemble each other, so a few photos promise less than their crack count "
-        "says.</p>"
+        "the validation photos. Cracks of one photo resemble each other, so they are counted "
+        "for their photos by the survey design effect (an approximation): a few photos "
+        "promise less than their crack count says.</p>"
     )
+
+
+def _eff(pr: dict) -> str:
+    """The effective crack count of a promise, in words (older metrics: the count)."""
+    n = pr.get("effective_cracks")
+    return str(pr["cracks"]) if n is None else f"{n:.0f}"
 
 
 def _cascade(R: dict) -> str:
