@@ -235,8 +235,8 @@ def threshold_with_recall_promise(
     The exact bound assumes new cracks are exchangeable with the validation cracks, one by
     one. Cracks of one photo resemble each other, so with ``photos`` (each patch's photo)
     the rule counts n_eff = n / design effect cracks (:func:`photo_design_effect`): it
-    takes the largest k_eff for n_eff cracks and the threshold at the same share of the n
-    scores (k = floor(k_eff n / n_eff), at least 1). That adjustment is the survey
+    takes the largest k_eff for m = floor(n_eff) cracks and the threshold at the same share
+    of the n scores (k = floor(k_eff n / m), at least 1). That adjustment is the survey
     practice for clustered samples, an approximation, not part of the exact bound. Either
     way the promise is for photos like the validation photos.
 
