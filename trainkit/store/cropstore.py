@@ -21,11 +21,13 @@ from __future__ import annotations
 import hashlib
 import sqlite3
 import time
-from collections.abc import Iterable, Iterator, Sequence
-from contextlib import contextmanager
+from collections.abc import Iterable, Sequence
+from contextlib import AbstractContextManager
 from pathlib import Path
 
 import numpy as np
+
+from trainkit.store.sqlitefile import transaction
 
 __all__ = ["CropStore", "CROPS_NAME", "CUT_RULE", "crop_key"]
 
@@ -83,20 +85,8 @@ class CropStore:
     def __init__(self, root: str | Path) -> None:
         self.path = Path(root) / CROPS_NAME
 
-    @contextmanager
-    def _connect(self) -> Iterator[sqlite3.Connection]:
-        con = sqlite3.connect(self.path, timeout=30.0)
-        try:
-            con.execute("PRAGMA journal_mode=WAL")
-            con.execute("PRAGMA synchronous=NORMAL")
-            con.executescript(_SCHEMA)
-            yield con
-            con.commit()
-        except BaseException:
-            con.rollback()
-            raise
-        finally:
-            con.close()
+    def _connect(self) -> AbstractContextManager[sqlite3.Connection]:
+        return transaction(self.path, schema=_SCHEMA)
 
     def get_many(self, keys: Iterable[str]) -> dict[str, np.ndarray]:
         """The stored crops among ``keys`` (key -> (S, S, 3) uint8 RGB); a missing key is

@@ -13,7 +13,7 @@ import sqlite3
 import time
 import warnings
 from collections.abc import Callable, Collection, Iterable, Iterator
-from contextlib import contextmanager
+from contextlib import AbstractContextManager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import NamedTuple
@@ -22,6 +22,7 @@ from trainkit.core.errors import TrainkitError, TrainkitNote
 from trainkit.core.taxonomy import ClassSet, class_set_from_dict
 from trainkit.store.cropstore import CropStore
 from trainkit.store.schema import SCHEMA as _SCHEMA
+from trainkit.store.sqlitefile import transaction
 
 __all__ = [
     "Workspace",
@@ -212,21 +213,10 @@ class Workspace:
             stacklevel=3,
         )
 
-    @contextmanager
-    def connect(self) -> Iterator[sqlite3.Connection]:
-        """A connection in WAL mode; commits on success, rolls back on error."""
-        con = sqlite3.connect(self.db_path, timeout=30.0)
-        try:
-            con.execute("PRAGMA journal_mode=WAL")
-            con.execute("PRAGMA foreign_keys=ON")
-            con.execute("PRAGMA synchronous=NORMAL")
-            yield con
-            con.commit()
-        except BaseException:
-            con.rollback()
-            raise
-        finally:
-            con.close()
+    def connect(self) -> AbstractContextManager[sqlite3.Connection]:
+        """A connection in WAL mode with foreign keys on; commits on success, rolls back
+        on error (:func:`trainkit.store.sqlitefile.transaction`)."""
+        return transaction(self.db_path, foreign_keys=True)
 
     # ----- meta ------------------------------------------------------------------
     def meta(self, key: str) -> str | None:
