@@ -339,9 +339,9 @@ def test_empty_masks_unmatched_masks_and_photos_without_one_are_one_line_each(tm
     _save(tmp_path / "m" / "zz.png", np.zeros((10, 10)))  # no such photo
     res = import_masks(ws, tmp_path / "m", workers=1)
     assert len(res.notes) == 3 and all("\n" not in n for n in res.notes)
-    assert any("1 masks match no photo" in n and "zz.png" in n for n in res.notes)
-    assert any("1 photos have no drawing" in n and "c.jpg" in n for n in res.notes)
-    assert any("1 masks hold no crack pixel" in n and "6 patches are labelled none" in n
+    assert any("1 mask matches no photo" in n and "zz.png" in n for n in res.notes)
+    assert any("1 photo has no drawing" in n and "c.jpg" in n for n in res.notes)
+    assert any("1 mask holds no crack pixel" in n and "6 patches are labelled none" in n
                for n in res.notes)  # fmt: skip
     labelled = {r.photo: r.label for r in ws.patches(labelled=True) if r.photo == "b.jpg"}
     assert labelled == {"b.jpg": "none"}
@@ -581,8 +581,8 @@ def test_tile_imports_masks_and_says_what_it_left_out(tmp_path, capsys):
     assert main([*args, "--import-masks", str(tmp_path / "m")]) == 0
     cap = capsys.readouterr()
     out = " ".join(cap.out.split())  # the console wraps long lines
-    assert "imported masks of 1 photos" in out and "6 patches measured" in out
-    assert "trainkit: 1 photos have no drawing (e.g. p1.png)" in cap.err
+    assert "imported masks of 1 photo from" in out and "6 patches measured" in out
+    assert "trainkit: 1 photo has no drawing (e.g. p1.png)" in cap.err
     ws = Workspace.open(tmp_path / "ws")
     assert {e["origin"] for e in ws.label_events()} == {"drawing"}
     # a vertical crack is 22.5 degrees from a class boundary: nothing to confirm

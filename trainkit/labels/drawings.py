@@ -100,7 +100,8 @@ class DrawingImport:
         """One sentence for the user: what was imported from ``source``."""
         what = {"mask": "masks", "svg": "SVG drawings", "csv": "centrelines"}[self.kind]
         text = (
-            f"imported {what} of {self.photos} photos from {source}: {self.patches} patches "
+            f"imported {what} of {_n(self.photos, 'photo', 'photos')} from {source}: "
+            f"{self.patches} patches "
             f"measured, {self.added} labels added (origin drawing), {self.ambiguous} "
             "ambiguous left unlabelled"
         )
@@ -241,20 +242,26 @@ def _eg(items: list[str]) -> str:
     return f"e.g. {items[0]}" if len(items) > 0 else ""
 
 
+def _n(count: int, one: str, many: str) -> str:
+    """``1 mask holds`` / ``2 masks hold``: a count with its words in agreement."""
+    return f"{count} {one if count == 1 else many}"
+
+
 def _unmatched_notes(
-    photos: _Photos, matched: set[str], unmatched: list[str], what: str
+    photos: _Photos, matched: set[str], unmatched: list[str], what: tuple[str, str]
 ) -> list[str]:
     notes = []
     if unmatched:
         notes.append(
-            f"{len(unmatched)} {what} match no photo of the workspace ({_eg(unmatched)}): not "
-            "imported (a drawing is named as its photo, relative to the folder, any suffix)"
+            f"{_n(len(unmatched), what[0] + ' matches', what[1] + ' match')} no photo of the "
+            f"workspace ({_eg(unmatched)}): not imported (a drawing is named as its photo, "
+            "relative to the folder, any suffix)"
         )
     missing = [r["name"] for r in photos.rows if r["name"] not in matched]
     if missing and matched:
         notes.append(
-            f"{len(missing)} photos have no drawing ({_eg(missing)}): their patches are left "
-            "as they are"
+            f"{_n(len(missing), 'photo has', 'photos have')} no drawing ({_eg(missing)}): "
+            "their patches are left as they are"
         )
     return notes
 
@@ -305,9 +312,11 @@ def import_masks(
                 f"{size[0]} x {size[1]}; a mask must be drawn at the photo's size"
             )
         todo.append(PhotoDrawing(photo["name"], size, [], "mask", str(path)))
-    notes = _unmatched_notes(photos, {d.photo for d in todo}, unmatched, "masks")
+    notes = _unmatched_notes(photos, {d.photo for d in todo}, unmatched, ("mask", "masks"))
     if others:
-        notes.append(f"{len(others)} other files in {folder} left out ({_eg(others)})")
+        notes.append(
+            f"{_n(len(others), 'other file', 'other files')} in {folder} left out ({_eg(others)})"
+        )
     return _run(ws, todo, "mask", notes, rules, workers, progress)
 
 
@@ -352,7 +361,7 @@ def import_centrelines(
             size = (int(photo["width"]), int(photo["height"]))
             check_inside(lines, size, f"{source.name}, photo {name}")
             todo.append(PhotoDrawing(name, size, [], kind, str(source), sha, tuple(lines)))
-        what = "photos named in the file"
+        what = ("photo named in the file", "photos named in the file")
     else:
         kind = "svg"
         if source.is_file():
@@ -387,8 +396,11 @@ def import_centrelines(
                 )  # fmt: skip
             )
         if others:
-            notes.append(f"{len(others)} other files in {source} left out ({_eg(others)})")
-        what = "SVG drawings"
+            notes.append(
+                f"{_n(len(others), 'other file', 'other files')} in {source} left out "
+                f"({_eg(others)})"
+            )
+        what = ("SVG drawing", "SVG drawings")
     notes[:0] = _unmatched_notes(photos, {d.photo for d in todo}, unmatched, what)
     return _run(ws, todo, kind, notes, rules, 1, progress)
 
@@ -421,9 +433,14 @@ def _run(
         if progress:
             progress(i, len(todo))
     if empty:
-        what = "masks hold no crack pixel" if kind == "mask" else "photos have no crack drawn"
+        what = (
+            ("mask holds no crack pixel", "masks hold no crack pixel")
+            if kind == "mask"
+            else ("photo has no crack drawn", "photos have no crack drawn")
+        )
         notes.append(
-            f"{len(empty)} {what} ({_eg(empty)}): their {empty_patches} patches are labelled none"
+            f"{_n(len(empty), *what)} ({_eg(empty)}): their {empty_patches} patches are "
+            "labelled none"
         )
     counts = ws.add_drawing_measures(rows, reviewer=DRAWING_REVIEWER) if rows else {}
     res = DrawingImport(kind, photos=len(todo), patches=len(rows), notes=notes)
