@@ -13,6 +13,7 @@ from trainkit.metrics._checks import (
     MetricsError,
     _as_bool,
     _as_unit_float,
+    _check_confidence,
     _ratio,
     _same_length,
     _unit_number,
@@ -158,7 +159,7 @@ def cracks_needed_for_promise(target_recall: float, confidence: float) -> int:
     new crack with probability Beta(1, n); with target 0.95 and confidence 0.95, 59 --
     the success-run count of reliability testing)."""
     target = _unit_number(target_recall, "target_recall", "(0, 1]")
-    conf = _confidence(confidence)
+    conf = _check_confidence(confidence)
     if target >= 1.0:
         raise ValueError("a recall of 1 can never be promised from a finite sample")
     n = math.ceil(math.log1p(-conf) / math.log(target))
@@ -167,13 +168,6 @@ def cracks_needed_for_promise(target_recall: float, confidence: float) -> int:
     while 1.0 - target**n < conf:
         n += 1
     return max(1, n)
-
-
-def _confidence(confidence: float) -> float:
-    c = float(confidence)
-    if not 0.0 < c < 1.0:
-        raise ValueError(f"expected confidence in (0, 1), got {confidence}")
-    return c
 
 
 def photo_design_effect(scores: ArrayLike, photos: ArrayLike) -> tuple[float, float]:
@@ -250,7 +244,7 @@ def threshold_with_recall_promise(
     p = _as_unit_float(p_crack, "p_crack")
     _same_length(y, p, "y_true_crack", "p_crack")
     target = _unit_number(target_recall, "target_recall", "(0, 1]")
-    conf = _confidence(confidence)
+    conf = _check_confidence(confidence)
     if target >= 1.0:
         raise ValueError("a recall of 1 can never be promised from a finite sample")
     n = int(y.sum())
